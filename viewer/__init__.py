@@ -1,0 +1,3 @@
+"""Headlight: inspect attention inside small transformer checkpoints on a CPU, offline."""
+
+__version__ = "0.1.0"

@@ -1,0 +1,107 @@
+"""The recording: what every layer and head did on one text, as plain frozen numpy data.
+
+A recording is produced by ``viewer.model.recorder`` and consumed by everything else (the
+re-derivation check, head metrics, panes, figures, the card export). It holds no torch tensors
+and no reference to the model, so it can be pickled, saved and drawn without the model.
+
+Shapes (L layers, H query heads, G key/value heads, T tokens of this text, d head size):
+
+==============  ===============  ===========================================================
+field           shape            meaning
+==============  ===============  ===========================================================
+q               (L, H, T, d)     queries per head, after the reshape and after rotary
+k               (L, G, T, d)     keys per key/value head (not repeated), after rotary
+v               (L, G, T, d)     values per key/value head
+probs           (L, H, T, T)     the model's own attention probabilities (query rows, key cols)
+context         (L, H, T, d)     each head's output (probs @ v) before the output projection
+scale           (L,)             the factor applied to q·k before the softmax, per layer
+logits          (C,) or (T, V)   classifier logits, or per-token LM logits
+==============  ===============  ===========================================================
+
+Padding of a batch is removed: T is this text's own token count.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+
+@dataclass(frozen=True, eq=False)
+class Recording:
+    text: str
+    tokens: tuple[str, ...]
+    offsets: np.ndarray  # (T, 2) character span of each token in `text`; (0, 0) for specials
+    special: np.ndarray  # (T,) bool, True for [CLS]/[SEP]/<s>/... tokens
+    token_ids: np.ndarray  # (T,) int64
+    q: np.ndarray  # (L, H, T, d)
+    k: np.ndarray  # (L, G, T, d)
+    v: np.ndarray  # (L, G, T, d)
+    probs: np.ndarray  # (L, H, T, T)
+    context: np.ndarray  # (L, H, T, d)
+    scale: np.ndarray  # (L,)
+    causal: bool
+    logits: np.ndarray  # (C,) for a classifier, (T, V) for a language-model head, (0,) bare
+    head_kind: str  # "classifier" | "masked-lm" | "causal-lm" | "encoder"
+    labels: tuple[str, ...] = ()  # class names for a classifier, index order
+    family: str = ""
+    model_name: str = ""
+    truncated_from: int | None = None  # original token count when the text was cut
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+    # -- derived sizes -------------------------------------------------------------------
+    @property
+    def n_layers(self) -> int:
+        return int(self.probs.shape[0])
+
+    @property
+    def n_heads(self) -> int:
+        return int(self.probs.shape[1])
+
+    @property
+    def n_kv_heads(self) -> int:
+        return int(self.k.shape[1])
+
+    @property
+    def n_tokens(self) -> int:
+        return int(self.probs.shape[2])
+
+    @property
+    def truncated(self) -> bool:
+        return self.truncated_from is not None
+
+    def key_mask(self) -> np.ndarray:
+        """(T, T) bool: True where a query row may see a key column (causal rows see j <= i)."""
+        t = self.n_tokens
+        if self.causal:
+            return np.tril(np.ones((t, t), dtype=bool))
+        return np.ones((t, t), dtype=bool)
+
+    def class_probabilities(self) -> np.ndarray:
+        """(C,) softmax of classifier logits (float64); empty for non-classifiers."""
+        if self.head_kind != "classifier":
+            return np.zeros(0)
+        z = self.logits.astype(np.float64)
+        z = z - z.max()
+        e = np.exp(z)
+        return e / e.sum()
+
+    def predicted(self) -> int | None:
+        """Index of the predicted class for a classifier, else None."""
+        if self.head_kind != "classifier":
+            return None
+        return int(np.argmax(self.logits))
+
+    def predicted_label(self) -> str | None:
+        i = self.predicted()
+        if i is None:
+            return None
+        return self.labels[i] if i < len(self.labels) else str(i)
+
+    def summary_index(self) -> int:
+        """Token whose representation the prediction is read from.
+
+        Encoders classify from the first token ([CLS] / <s>); causal decoders read the last.
+        """
+        return self.n_tokens - 1 if self.causal else 0

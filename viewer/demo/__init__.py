@@ -1,0 +1,1 @@
+"""demo layer of Headlight (see DEVELOPERS.md for the layering)."""

@@ -1,0 +1,1 @@
+"""figures layer of Headlight (see DEVELOPERS.md for the layering)."""

@@ -1,0 +1,1 @@
+"""gui layer of Headlight (see DEVELOPERS.md for the layering)."""

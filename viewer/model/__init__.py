@@ -1,0 +1,1 @@
+"""model layer of Headlight (see DEVELOPERS.md for the layering)."""

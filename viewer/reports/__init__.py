@@ -1,0 +1,1 @@
+"""reports layer of Headlight (see DEVELOPERS.md for the layering)."""
