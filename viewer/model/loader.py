@@ -1,0 +1,433 @@
+"""Opening a local checkpoint folder, safely and offline, and recording texts through it.
+
+``open_model(folder)`` validates the folder before any weights are deserialised: the config must
+be valid JSON for a supported family and must not ask for remote code; weights must be
+safetensors (pickle only on explicit opt-in, then loaded with ``weights_only=True``) whose
+headers and sizes are intact; a fast tokenizer (for character offsets) must be present. The model
+is loaded with the eager attention implementation so that probabilities exist, from local files
+only: nothing is ever looked up on a model hub.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import struct
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+# Never reach for a model hub, not even for a name that looks like a hub id.
+os.environ.setdefault("HF_HUB_OFFLINE", "1")
+os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
+os.environ.setdefault("HF_HUB_DISABLE_TELEMETRY", "1")
+
+import torch  # noqa: E402
+import transformers  # noqa: E402
+from transformers import (  # noqa: E402
+    AutoConfig,
+    AutoModel,
+    AutoModelForCausalLM,
+    AutoModelForMaskedLM,
+    AutoModelForSequenceClassification,
+    AutoTokenizer,
+)
+
+from viewer.core.recording import Recording  # noqa: E402
+from viewer.core.rotary import apply_rotary  # noqa: E402
+from viewer.errors import HeadlightError  # noqa: E402
+from viewer.model.families import (  # noqa: E402
+    Family,
+    Geometry,
+    _get,
+    check_supported,
+    family_for,
+    layer_scale,
+)
+from viewer.model.recorder import AttentionHooks, Capture  # noqa: E402
+
+transformers.logging.set_verbosity_error()
+transformers.logging.disable_progress_bar()
+
+HEAD_KINDS = {
+    "ForSequenceClassification": ("classifier", AutoModelForSequenceClassification),
+    "ForMaskedLM": ("masked-lm", AutoModelForMaskedLM),
+    "ForPreTraining": ("masked-lm", AutoModelForMaskedLM),
+    "ForCausalLM": ("causal-lm", AutoModelForCausalLM),
+    "LMHeadModel": ("causal-lm", AutoModelForCausalLM),
+}
+
+TOKENIZER_FILES = ("tokenizer.json", "vocab.txt", "vocab.json", "tokenizer.model", "spiece.model")
+
+
+# -- folder validation (before anything is deserialised) ------------------------------------
+
+
+def _read_config(folder: Path) -> dict:
+    path = folder / "config.json"
+    if not path.is_file():
+        raise HeadlightError(f"{folder} has no config.json; is it a Hugging Face model folder?")
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise HeadlightError(f"config.json in {folder} is not valid JSON: {exc}") from None
+    if not isinstance(data, dict):
+        raise HeadlightError(f"config.json in {folder} is not a JSON object")
+    if data.get("auto_map") or data.get("trust_remote_code"):
+        raise HeadlightError(
+            f"config.json in {folder} asks for remote code (auto_map); Headlight never runs code "
+            "from a model folder"
+        )
+    if "model_type" not in data:
+        raise HeadlightError(f"config.json in {folder} has no model_type")
+    return data
+
+
+def check_safetensors(path: Path) -> dict:
+    """Validate a safetensors file's header and size without loading tensors.
+
+    Format: 8-byte little-endian header length N, N bytes of JSON, then the tensor bytes; every
+    tensor's ``data_offsets`` must lie inside the byte buffer, and the buffer must end exactly
+    where the last tensor does (a truncated download fails here).
+    """
+    size = path.stat().st_size
+    try:
+        with path.open("rb") as fh:
+            head = fh.read(8)
+            if len(head) < 8:
+                raise ValueError("file shorter than its 8-byte header length")
+            (n,) = struct.unpack("<Q", head)
+            if n > size - 8 or n > 100_000_000:
+                raise ValueError("header length points past the end of the file")
+            header = json.loads(fh.read(n).decode("utf-8"))
+    except (ValueError, UnicodeDecodeError) as exc:
+        raise HeadlightError(f"{path.name} is not a valid safetensors file: {exc}") from None
+    if not isinstance(header, dict):
+        raise HeadlightError(f"{path.name} is not a valid safetensors file: header not an object")
+    buffer = size - 8 - n
+    end = 0
+    for name, info in header.items():
+        if name == "__metadata__":
+            continue
+        try:
+            start, stop = info["data_offsets"]
+        except (TypeError, KeyError, ValueError):
+            raise HeadlightError(f"{path.name}: tensor {name!r} has no data offsets") from None
+        if not (0 <= start <= stop <= buffer):
+            raise HeadlightError(
+                f"{path.name} is truncated or corrupt: tensor {name!r} lies past the end of the file"
+            )
+        end = max(end, stop)
+    if end != buffer:
+        raise HeadlightError(
+            f"{path.name} is truncated or corrupt: {buffer} data bytes but tensors cover {end}"
+        )
+    return header
+
+
+def _weight_files(folder: Path, allow_pickle: bool) -> tuple[list[Path], bool]:
+    """The weight files to load and whether they are safetensors."""
+    single = folder / "model.safetensors"
+    index = folder / "model.safetensors.index.json"
+    if single.is_file():
+        return [single], True
+    if index.is_file():
+        try:
+            shards = sorted(set(json.loads(index.read_text(encoding="utf-8"))["weight_map"].values()))
+        except (ValueError, KeyError, TypeError):
+            raise HeadlightError(f"{index.name} in {folder} is not a valid shard index") from None
+        paths = [folder / s for s in shards]
+        missing = [p.name for p in paths if not p.is_file()]
+        if missing:
+            raise HeadlightError(f"weight shard {missing[0]} listed in {index.name} is missing")
+        return paths, True
+    pickles = sorted(folder.glob("pytorch_model*.bin"))
+    if pickles:
+        if not allow_pickle:
+            raise HeadlightError(
+                f"{folder} has only pickle weights ({pickles[0].name}); pickle files can run code. "
+                "Convert to safetensors, or pass --allow-pickle to load them with weights_only=True"
+            )
+        return pickles, False
+    raise HeadlightError(f"{folder} has no weights (model.safetensors or pytorch_model.bin)")
+
+
+def _head_kind(config: dict) -> tuple[str, Any, str | None]:
+    archs = config.get("architectures") or []
+    arch = archs[0] if archs else ""
+    for suffix, (kind, auto) in HEAD_KINDS.items():
+        if arch.endswith(suffix):
+            return kind, auto, None
+    note = None
+    if arch and not arch.endswith("Model"):
+        note = f"head {arch} is not one Headlight reads; showing the bare encoder"
+    return "encoder", AutoModel, note
+
+
+def _max_tokens(config: Any, tokenizer: Any) -> int:
+    positions = _get(config, "max_position_embeddings", "n_positions", default=512)
+    if getattr(config, "model_type", "") == "roberta":
+        positions -= 2  # RoBERTa's position ids start after the padding index (padding_idx + 1)
+    limit = getattr(tokenizer, "model_max_length", None)
+    if isinstance(limit, int) and 0 < limit < positions:
+        positions = limit
+    return int(positions)
+
+
+@dataclass(frozen=True)
+class Batch:
+    encoding: Any  # transformers BatchEncoding (input_ids, attention_mask, offsets, specials)
+    lengths: list[int]  # real tokens per text
+    truncated_from: list[int | None]
+    texts: list[str]
+
+
+class LoadedModel:
+    """A checkpoint opened for recording: the torch model, its tokenizer and attention hooks."""
+
+    def __init__(self, folder: Path, model: Any, tokenizer: Any, family: Family,
+                 geometry: Geometry, head_kind: str, notes: tuple[str, ...]):
+        self.folder = folder
+        self.name = folder.name
+        self.model = model
+        self.tokenizer = tokenizer
+        self.family = family
+        self.geometry = geometry
+        self.head_kind = head_kind
+        self.notes = notes
+        self.config = model.config
+        self.n_layers = _layer_count(self.config)
+        self.max_tokens = _max_tokens(self.config, tokenizer)
+        self.scales = np.array(
+            [layer_scale(family, self.config, i, geometry) for i in range(self.n_layers)]
+        )
+        id2label = getattr(self.config, "id2label", None) or {}
+        if head_kind == "classifier":
+            n = int(getattr(self.config, "num_labels", len(id2label)))
+            self.labels = tuple(str(id2label.get(i, id2label.get(str(i), i))) for i in range(n))
+        else:
+            self.labels = ()
+        self.hooks = AttentionHooks(model, family, geometry, self.n_layers)
+        self._check_module_scales()
+        # Causal classifiers find their summary token via the pad id; with none defined they
+        # can only run one text at a time.
+        self.max_batch = 64
+        if tokenizer.pad_token is None:
+            fallback = tokenizer.eos_token or tokenizer.unk_token
+            if fallback is None:
+                self.max_batch = 1
+            else:
+                tokenizer.pad_token = fallback
+            if head_kind == "classifier" and getattr(self.config, "pad_token_id", None) is None:
+                self.max_batch = 1
+
+    @property
+    def n_heads(self) -> int:
+        return self.geometry.n_heads
+
+    def _check_module_scales(self) -> None:
+        """Refuse when an attention module's own scale differs from the family rule."""
+        for layer, name in enumerate(self.hooks.module_names):
+            parent = self.model.get_submodule(name.rsplit(".", 1)[0]) if "." in name else None
+            own = getattr(parent, "scaling", None)
+            if isinstance(own, (int, float)):
+                rule = self.scales[layer]
+                if abs(float(own) - rule) > 1e-9 * max(1.0, abs(rule)):
+                    raise HeadlightError(
+                        f"{self.family.name} layer {layer} scales scores by {own}, not the "
+                        f"family's {rule}; refusing rather than re-deriving wrong numbers"
+                    )
+
+    # -- tokenising ---------------------------------------------------------------------
+    def encode(self, texts: Sequence[str]) -> Batch:
+        texts = [str(t) for t in texts]
+        full = self.tokenizer(texts, add_special_tokens=True)["input_ids"]
+        enc = self.tokenizer(
+            texts,
+            padding=True,
+            truncation=True,
+            max_length=self.max_tokens,
+            return_offsets_mapping=True,
+            return_special_tokens_mask=True,
+            return_tensors="pt",
+        )
+        lengths = [int(n) for n in enc["attention_mask"].sum(dim=1)]
+        cut = [len(f) if len(f) > n else None for f, n in zip(full, lengths, strict=True)]
+        return Batch(enc, lengths, cut, texts)
+
+    def model_inputs(self, batch: Batch) -> dict:
+        return {"input_ids": batch.encoding["input_ids"],
+                "attention_mask": batch.encoding["attention_mask"]}
+
+    # -- running ------------------------------------------------------------------------
+    def forward(self, batch: Batch, *, capture: bool = False, gates: torch.Tensor | None = None,
+                output_attentions: bool = False, grad: bool = False, **extra: Any):
+        """One forward pass over a batch; returns (model output, capture or None).
+
+        gates: (L, H) multiplicative per-head gates on the head outputs (1 = untouched,
+        0 = knocked out); leave None for the plain model.
+        """
+        self.hooks.gates = gates
+        self.hooks.begin(capture)
+        inputs = self.model_inputs(batch)
+        inputs.update(extra)
+        try:
+            with torch.set_grad_enabled(grad):
+                out = self.model(**inputs, output_attentions=output_attentions)
+            cap = self.hooks.end()
+        finally:
+            self.hooks.gates = None
+            self.hooks.capturing = False
+        return out, (cap if capture else None)
+
+    def record_batch(self, batch: Batch) -> list[Recording]:
+        out, cap = self.forward(batch, capture=True, output_attentions=True)
+        return self._recordings(batch, out, cap)
+
+    def record(self, text: str) -> Recording:
+        """Record one text: every layer's and head's Q, K, V, probabilities and head outputs."""
+        return self.record_batch(self.encode([text]))[0]
+
+    def record_many(self, texts: Sequence[str], batch_size: int = 16) -> Iterator[Recording]:
+        """Record many texts in padded batches; yields one recording per text, in order."""
+        size = max(1, min(batch_size, self.max_batch))
+        for start in range(0, len(texts), size):
+            yield from self.record_batch(self.encode(texts[start:start + size]))
+
+    def _recordings(self, batch: Batch, out: Any, cap: Capture) -> list[Recording]:
+        attentions = out.attentions
+        if attentions is None or len(attentions) != self.n_layers:
+            got = 0 if attentions is None else len(attentions)
+            raise RuntimeError(f"model returned {got} attention maps for {self.n_layers} layers")
+        probs = torch.stack(attentions, dim=1).float().numpy()  # (B, L, H, T, T)
+        q = torch.stack(cap.q, dim=1).float().numpy()  # (B, L, H, T, d)
+        k = torch.stack(cap.k, dim=1).float().numpy()  # (B, L, G, T, d)
+        v = torch.stack(cap.v, dim=1).float().numpy()  # (B, L, G, T, d)
+        ctx = torch.stack(cap.context, dim=1).float().numpy()  # (B, L, H, T, d)
+        rot = None
+        if cap.rotary:
+            # The model's own tables are used for every layer; they are the same for all layers.
+            cos, sin = cap.rotary[0]
+            rot = (cos.float().numpy(), sin.float().numpy())  # (B, T, d) each
+        logits = getattr(out, "logits", None)
+        logits = None if logits is None else logits.detach().float().numpy()
+        enc = batch.encoding
+        ids = enc["input_ids"].numpy()
+        offsets = enc["offset_mapping"].numpy()
+        specials = enc["special_tokens_mask"].numpy().astype(bool)
+        recs = []
+        for i, n in enumerate(batch.lengths):
+            qi, ki = q[i, :, :, :n], k[i, :, :, :n]
+            if rot is not None:
+                cos_i, sin_i = rot[0][i, :n], rot[1][i, :n]
+                qi, ki = apply_rotary(qi, cos_i, sin_i), apply_rotary(ki, cos_i, sin_i)
+            if self.head_kind == "classifier":
+                lg = logits[i].copy()
+            elif logits is not None and logits.ndim == 3:
+                lg = logits[i, :n].copy()
+            else:
+                lg = np.zeros(0, dtype=np.float32)
+            notes = list(self.notes)
+            if batch.truncated_from[i] is not None:
+                notes.append(
+                    f"text cut from {batch.truncated_from[i]} to {n} tokens "
+                    f"(the model reads at most {self.max_tokens})"
+                )
+            tok_ids = ids[i, :n].copy()
+            recs.append(Recording(
+                text=batch.texts[i],
+                tokens=tuple(self.tokenizer.convert_ids_to_tokens(tok_ids.tolist())),
+                offsets=offsets[i, :n].copy(),
+                special=specials[i, :n].copy(),
+                token_ids=tok_ids,
+                q=np.ascontiguousarray(qi, dtype=np.float32),
+                k=np.ascontiguousarray(ki, dtype=np.float32),
+                v=v[i, :, :, :n].copy(),
+                probs=probs[i, :, :, :n, :n].copy(),
+                context=ctx[i, :, :, :n].copy(),
+                scale=self.scales.copy(),
+                causal=self.family.causal,
+                logits=lg,
+                head_kind=self.head_kind,
+                labels=self.labels,
+                family=self.family.name,
+                model_name=self.name,
+                truncated_from=batch.truncated_from[i],
+                notes=tuple(notes),
+            ))
+        return recs
+
+
+def _layer_count(config: Any) -> int:
+    n = _get(config, "num_hidden_layers", "n_layer", "n_layers")
+    if getattr(config, "model_type", "") == "albert":
+        n *= int(getattr(config, "inner_group_num", 1))
+    return int(n)
+
+
+def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> LoadedModel:
+    """Open a local Hugging Face-format folder for recording (offline, eager attention)."""
+    path = Path(folder).expanduser()
+    if not path.exists():
+        hint = ""
+        if "/" in str(folder) and not str(folder).startswith((".", "/", "~")):
+            hint = " (Headlight opens local folders only and never downloads models)"
+        raise HeadlightError(f"model folder not found: {folder}{hint}")
+    if not path.is_dir():
+        raise HeadlightError(f"{folder} is a file, not a model folder")
+    raw = _read_config(path)
+    family = family_for(raw.get("model_type"))
+    weights, safe = _weight_files(path, allow_pickle)
+    if safe:
+        for w in weights:
+            check_safetensors(w)
+    if not any((path / f).is_file() for f in TOKENIZER_FILES):
+        raise HeadlightError(f"{path} has no tokenizer (tokenizer.json or vocab files)")
+    head_kind, auto_cls, note = _head_kind(raw)
+    try:
+        config = AutoConfig.from_pretrained(path, local_files_only=True, trust_remote_code=False)
+    except (ValueError, OSError, TypeError, KeyError) as exc:
+        raise HeadlightError(f"config.json in {path} cannot be read: {_first_line(exc)}") from None
+    check_supported(family, config)
+    geometry = family.head_geometry(config)
+    try:
+        tokenizer = AutoTokenizer.from_pretrained(path, local_files_only=True,
+                                                  trust_remote_code=False)
+    except (ValueError, OSError, TypeError, KeyError, AttributeError, RuntimeError) as exc:
+        raise HeadlightError(f"tokenizer in {path} cannot be loaded: {_first_line(exc)}") from None
+    if not getattr(tokenizer, "is_fast", False):
+        raise HeadlightError(f"tokenizer in {path} is not a fast tokenizer (needed for offsets)")
+    tokenizer.padding_side = "right"
+    try:
+        model, info = auto_cls.from_pretrained(
+            path,
+            config=config,
+            attn_implementation="eager",
+            local_files_only=True,
+            trust_remote_code=False,
+            use_safetensors=safe,
+            weights_only=True,
+            output_loading_info=True,
+        )
+    except (RuntimeError, ValueError, OSError, KeyError) as exc:
+        raise HeadlightError(f"weights in {path} do not fit config.json: {_first_line(exc)}") from None
+    mismatched = info.get("mismatched_keys") or []
+    if mismatched:
+        first = mismatched[0]
+        raise HeadlightError(f"weights in {path} do not match config.json in shape: {first}")
+    missing = [k for k in info.get("missing_keys") or [] if "position_ids" not in k]
+    if missing:
+        raise HeadlightError(
+            f"weights in {path} lack {len(missing)} parameter(s) the config needs, e.g. {missing[0]}"
+        )
+    model.eval()
+    notes = (note,) if note else ()
+    return LoadedModel(path, model, tokenizer, family, geometry, head_kind, notes)
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0][:300] if text else type(exc).__name__
