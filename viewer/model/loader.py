@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import os
+import pickle
 import struct
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
@@ -311,7 +312,7 @@ class LoadedModel:
         if cap.rotary:
             # The model's own tables are used for every layer; they are the same for all layers.
             cos, sin = cap.rotary[0]
-            rot = (cos.float().numpy(), sin.float().numpy())  # (B, T, d) each
+            rot = (cos.float().numpy(), sin.float().numpy())  # (B or 1, T, d) each
         logits = getattr(out, "logits", None)
         logits = None if logits is None else logits.detach().float().numpy()
         enc = batch.encoding
@@ -322,7 +323,8 @@ class LoadedModel:
         for i, n in enumerate(batch.lengths):
             qi, ki = q[i, :, :, :n], k[i, :, :, :n]
             if rot is not None:
-                cos_i, sin_i = rot[0][i, :n], rot[1][i, :n]
+                row = min(i, rot[0].shape[0] - 1)  # tables may be shared across the batch
+                cos_i, sin_i = rot[0][row, :n], rot[1][row, :n]
                 qi, ki = apply_rotary(qi, cos_i, sin_i), apply_rotary(ki, cos_i, sin_i)
             if self.head_kind == "classifier":
                 lg = logits[i].copy()
@@ -412,7 +414,12 @@ def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> Load
             weights_only=True,
             output_loading_info=True,
         )
-    except (RuntimeError, ValueError, OSError, KeyError) as exc:
+    except pickle.UnpicklingError as exc:
+        raise HeadlightError(
+            f"pickle weights in {path} hold more than tensors and were refused by "
+            f"weights_only=True: {_first_line(exc)[:160]}"
+        ) from None
+    except (RuntimeError, ValueError, OSError, KeyError, EOFError) as exc:
         raise HeadlightError(f"weights in {path} do not fit config.json: {_first_line(exc)}") from None
     mismatched = info.get("mismatched_keys") or []
     if mismatched:

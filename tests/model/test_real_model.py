@@ -1,0 +1,64 @@
+"""Real pretrained weights: all-MiniLM-L6-v2 (6 layers × 12 heads, BERT family)."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import torch
+
+from viewer.cli import main
+from viewer.core.attention import check_recordings
+from viewer.core.rotary import rotary_tables
+
+LONG = " ".join(f"member {i} asked the workshop about wheel truing and chain wear" for i in range(80))
+
+
+def test_check_passes_on_three_texts_including_512_tokens(minilm):
+    texts = ["The co-op mechanic trued the wheel.", "Is my invoice for the brake pads paid?", LONG]
+    recs = list(minilm.record_many(texts, batch_size=3))
+    assert recs[2].n_tokens == 512 and recs[2].truncated
+    assert (recs[0].n_layers, recs[0].n_heads) == (6, 12)
+    result = check_recordings(recs, 1e-5)
+    assert result.passed, result.to_dict()
+    assert result.texts == 3
+
+
+def test_probabilities_equal_output_attentions_on_real_weights(minilm):
+    """Reference: the model's own output_attentions (transformers), without our hooks."""
+    text = "She returned the tandem because its gears slipped."
+    rec = minilm.record(text)
+    minilm.hooks.remove()
+    try:
+        enc = minilm.tokenizer(text, return_tensors="pt")
+        with torch.no_grad():
+            out = minilm.model(**enc, output_attentions=True)
+    finally:
+        from viewer.model.recorder import AttentionHooks
+
+        minilm.hooks = AttentionHooks(minilm.model, minilm.family, minilm.geometry,
+                                      minilm.n_layers)
+    np.testing.assert_allclose(rec.probs, torch.stack(out.attentions, 1)[0].numpy(), atol=1e-7)
+
+
+def test_headlight_check_json_contract(minilm_dir, tmp_path, capsys):
+    out = tmp_path / "out.json"
+    assert main(["check", str(minilm_dir), "--json", str(out)]) == 0
+    data = json.loads(out.read_text())
+    assert data["passed"] is True and data["max_abs_error"] <= 1e-5
+    assert data["tolerance"] == 1e-5
+    assert len(data["layers"]) == 6 and all(r["max_abs_error"] <= 1e-5 for r in data["layers"])
+
+
+def test_rotary_tables_match_a_llama_models_own(tmp_path):
+    """Reference: transformers' LlamaRotaryEmbedding tables for the same head size and base."""
+    from transformers import LlamaConfig
+    from transformers.models.llama.modeling_llama import LlamaRotaryEmbedding
+
+    cfg = LlamaConfig(hidden_size=64, num_attention_heads=4, max_position_embeddings=128)
+    emb = LlamaRotaryEmbedding(cfg)
+    x = torch.zeros(1, 100, 16)
+    cos, sin = emb(x, torch.arange(100)[None])
+    ours_cos, ours_sin = rotary_tables(100, 16, 10000.0)
+    np.testing.assert_allclose(cos[0].numpy(), ours_cos, atol=1e-4)
+    np.testing.assert_allclose(sin[0].numpy(), ours_sin, atol=1e-4)
