@@ -49,7 +49,8 @@ def softmax(scores: np.ndarray, visible: np.ndarray | None = None) -> np.ndarray
         s = np.where(visible, s, -np.inf)
     m = np.max(s, axis=-1, keepdims=True)
     m = np.where(np.isfinite(m), m, 0.0)
-    e = np.exp(s - m)
+    e = s - m
+    np.exp(e, out=e)
     total = e.sum(axis=-1, keepdims=True)
     return np.divide(e, total, out=np.zeros_like(e), where=total > 0)
 
@@ -63,14 +64,14 @@ def attention_probabilities(
     """
     q64 = np.asarray(q, dtype=np.float64)
     k64 = repeat_kv(np.asarray(k, dtype=np.float64), q64.shape[0])
-    scores = np.einsum("htd,hsd->hts", q64, k64) * float(scale)  # (H, T, T)
-    return softmax(scores, visible_keys(q64.shape[1], causal))
+    scores = np.matmul(q64, k64.transpose(0, 2, 1)) * float(scale)  # (H, T, T)
+    return softmax(scores, visible_keys(q64.shape[1], causal) if causal else None)
 
 
 def head_outputs(probs: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Each head's context vectors probs @ V: probs (H, T, T), v (G, T, d) -> (H, T, d)."""
     v64 = repeat_kv(np.asarray(v, dtype=np.float64), probs.shape[0])
-    return np.einsum("hts,hsd->htd", np.asarray(probs, dtype=np.float64), v64)
+    return np.matmul(np.asarray(probs, dtype=np.float64), v64)  # (H, T, d)
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,67 @@
+"""Recording and check cost on the real MiniLM model, as ratios measured side by side.
+
+Run:  python tests/benchmarks/bench_recording.py
+
+For each length (32, 128, 512 tokens) it alternates a full Headlight recording (hooks, copies to
+numpy, slicing per text) with a bare forward pass of the same model asking for
+``output_attentions=True`` and no hooks, and reports the ratio of medians. It also times the
+re-derivation check of one recording against one bare forward. Goals: recording <= 1.25x at 128
+tokens; check <= 0.3x of one forward. Not a test: machines are noisy, read the ratios.
+"""
+
+from __future__ import annotations
+
+import statistics
+import sys
+import time
+from pathlib import Path
+
+import torch
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
+
+from tests.conftest import minilm_folder  # noqa: E402
+from viewer.core.attention import check_recording  # noqa: E402
+from viewer.model.loader import open_model  # noqa: E402
+
+
+def text_of(loaded, n_tokens: int) -> str:
+    words = "the co-op mechanic trued a wheel and checked the chain for wear".split()
+    text = " ".join(words[i % len(words)] for i in range(n_tokens))
+    while len(loaded.tokenizer(text)["input_ids"]) > n_tokens:
+        text = text.rsplit(" ", 1)[0]
+    return text
+
+
+def main(repeats: int = 15) -> None:
+    torch.set_num_threads(2)
+    loaded = open_model(minilm_folder())
+    print(f"model: MiniLM ({loaded.n_layers} layers x {loaded.n_heads} heads), torch threads 2")
+    for n in (32, 128, 512):
+        text = text_of(loaded, n)
+        batch = loaded.encode([text])
+        inputs = loaded.model_inputs(batch)
+        rec_t, bare_t, check_t = [], [], []
+        loaded.record(text)  # warm-up
+        for _ in range(repeats):
+            t0 = time.perf_counter()
+            rec = loaded.record(text)
+            rec_t.append(time.perf_counter() - t0)
+            loaded.hooks.remove()
+            t0 = time.perf_counter()
+            with torch.no_grad():
+                loaded.tokenizer([text], return_tensors="pt")
+                loaded.model(**inputs, output_attentions=True)
+            bare_t.append(time.perf_counter() - t0)
+            loaded.hooks.__init__(loaded.model, loaded.family, loaded.geometry, loaded.n_layers)
+            t0 = time.perf_counter()
+            check_recording(rec)
+            check_t.append(time.perf_counter() - t0)
+        rec_m, bare_m, check_m = (statistics.median(x) for x in (rec_t, bare_t, check_t))
+        print(f"{rec.n_tokens:4d} tokens: recording {rec_m*1e3:7.1f} ms, bare forward "
+              f"{bare_m*1e3:7.1f} ms, ratio {rec_m / bare_m:.2f}x (goal <= 1.25x at 128); "
+              f"check {check_m*1e3:7.1f} ms = {check_m / bare_m:.2f}x of a forward (goal <= 0.3x)")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,126 @@
+"""Word-knockout tally and ranking (viewer.core.shortcuts)."""
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy.stats import binomtest
+
+from viewer.core.shortcuts import (
+    KnockoutOutcome,
+    KnockoutTally,
+    phrase_spans,
+    summary_share,
+    word_key,
+    word_spans,
+)
+
+
+def test_word_key_follows_design():
+    # DESIGN.md "Word knockout": whitespace word, lower-cased, end punctuation stripped
+    assert word_key("Portal]") == "portal"
+    assert word_key("[via") == "via"
+    assert word_key("co-op's,") == "co-op's"
+    assert word_key("«Brake»") == "brake"
+    assert word_key("—") == ""
+    assert word_key("...") == ""
+
+
+def test_word_and_phrase_spans():
+    text = "Fix my brake. [via portal]  -- Brake!"
+    spans = word_spans(text)
+    assert list(spans) == ["fix", "my", "brake", "via", "portal"]
+    assert [text[s:e] for s, e in spans["brake"]] == ["brake", "Brake"]
+    assert [text[s:e] for s, e in spans["portal"]] == ["portal"]
+    phrases = phrase_spans(text)
+    assert "via portal" in phrases and "my brake" in phrases
+    assert [text[s:e] for s, e in phrases["via portal"]] == ["via", "portal"]
+    assert not any("--" in p for p in phrases)  # a pure-punctuation word breaks the chain
+    assert "portal brake" not in phrases
+
+
+def _add(tally, word, flips, count, drop=0.1, focus=0.0):
+    for i in range(count):
+        tally.add_text({word: KnockoutOutcome(flipped=i < flips, drop=drop, focus=focus)})
+
+
+def test_rare_word_does_not_outrank_frequent_one():
+    # DESIGN.md: 2 flips in 3 texts (rate 0.67) must not outrank 40 in 90 (rate 0.44); Wilson
+    # lower ends 0.208 vs 0.346 (outside reference: scipy binomtest(...).proportion_ci)
+    tally = KnockoutTally()
+    _add(tally, "rare", 2, 3)
+    _add(tally, "common", 40, 90)
+    ranked = tally.ranking()
+    assert [e["token"] for e in ranked] == ["common", "rare"]
+    ref = binomtest(40, 90).proportion_ci(method="wilson").low
+    assert ranked[0]["flip_low"] == pytest.approx(ref, abs=1e-12)
+    assert ranked[1]["flip_rate"] == pytest.approx(2 / 3)
+
+
+def test_words_in_fewer_than_three_texts_are_left_out():
+    tally = KnockoutTally()
+    _add(tally, "twice", 2, 2)
+    _add(tally, "thrice", 0, 3)
+    assert [e["token"] for e in tally.ranking()] == ["thrice"]
+
+
+def test_ties_by_mean_drop_then_word():
+    tally = KnockoutTally()
+    _add(tally, "b", 1, 4, drop=0.2)
+    _add(tally, "a", 1, 4, drop=0.2)
+    _add(tally, "c", 1, 4, drop=0.5)
+    assert [e["token"] for e in tally.ranking()] == ["c", "a", "b"]
+
+
+def test_entry_values_and_keys():
+    tally = KnockoutTally()
+    tally.add_text({"via portal": KnockoutOutcome(True, 0.6, 0.3)})
+    tally.add_text({"via portal": KnockoutOutcome(False, 0.2, 0.1)})
+    tally.add_text({"via portal": KnockoutOutcome(True, 0.4, 0.2), "": KnockoutOutcome(True, 1, 1)})
+    (entry,) = tally.ranking()
+    assert set(entry) == {"token", "count", "flip_rate", "flip_low", "mean_drop", "focus"}
+    assert entry["token"] == "via portal" and entry["count"] == 3
+    assert entry["flip_rate"] == pytest.approx(2 / 3)
+    assert entry["mean_drop"] == pytest.approx(0.4)
+    assert entry["focus"] == pytest.approx(0.2)
+    assert tally.texts == 3 and len(tally) == 1  # the empty key is skipped
+    assert tally.to_dict() == {"texts": 3, "tokens": [entry]}
+
+
+@settings(max_examples=30, deadline=None, database=None)
+@given(
+    texts=st.lists(
+        st.dictionaries(
+            st.sampled_from(["a", "b", "c", "d"]),
+            st.tuples(st.booleans(), st.floats(-1, 1), st.floats(0, 1)),
+            min_size=1,
+        ),
+        max_size=20,
+    ),
+    split=st.integers(0, 20),
+)
+def test_merge_equals_one_pass(texts, split):
+    def fill(chunk):
+        t = KnockoutTally()
+        for d in chunk:
+            t.add_text({k: KnockoutOutcome(*v) for k, v in d.items()})
+        return t
+
+    merged = fill(texts[:split]).merge(fill(texts[split:]))
+    one = fill(texts)
+    assert merged.texts == one.texts
+    a, b = merged.ranking(min_count=1), one.ranking(min_count=1)
+    assert [e["token"] for e in a] == [e["token"] for e in b]
+    for x, y in zip(a, b, strict=True):
+        assert x["count"] == y["count"]
+        for key in ("flip_rate", "flip_low", "mean_drop", "focus"):
+            assert x[key] == pytest.approx(y[key], abs=1e-12)
+
+
+def test_summary_share():
+    # by hand: head mean of row 0 is [0.25, 0.5, 0.25]; tokens 1 and 2 get 0.75
+    att = np.zeros((2, 3, 3))
+    att[0, 0] = [0.5, 0.5, 0.0]
+    att[1, 0] = [0.0, 0.5, 0.5]
+    assert summary_share(att, 0, np.array([1, 2])) == pytest.approx(0.75)
+    assert summary_share(att, 0, np.array([], dtype=int)) == 0.0

@@ -1,0 +1,181 @@
+"""Head summaries over a text set: a streaming, mergeable accumulator of per-head metrics.
+
+``HeadStats`` keeps float64 sums and row counts of shape (L, H) and nothing per text, so its
+memory does not depend on how many texts it has seen. Two accumulators filled on different
+parts of a text set (another process, another batch) ``merge`` into the one a single pass
+would have produced.
+
+Every metric is a **mean over query rows**, pooled over all texts (a long text weighs more than
+a short one, in proportion to its rows). For a query row i with attention a_i. over keys j:
+
+==============  =======================================  ======================================
+metric          per row                                  rows counted
+==============  =======================================  ======================================
+entropy         H_i / ln n_i (``viewer.core.entropy``)   rows that see more than one key
+distance        sum_j a_ij |i - j|                       all rows
+special         sum_{j special} a_ij                     all rows
+previous        a_{i, i-1}                               rows i >= 1
+same            a_ii                                     all rows
+next            a_{i, i+1}                               rows i <= T-2 of an encoder; none in a
+                                                         causal model (key i+1 is not visible)
+confidence      max_j a_ij (Voita et al. 2019)           all rows
+==============  =======================================  ======================================
+
+A metric with no counted rows is NaN (e.g. ``next`` when only causal texts were added);
+``to_dict`` writes NaN as ``None`` so the JSON stays valid. Row 0 of a causal model is forced
+(all weight on itself): it is left out of the entropy mean, where it would add a fake 0, and kept
+in the others, where it is what the model actually does.
+
+"Confidence" follows Voita et al. (2019), who define a head's confidence as the average of its
+maximum attention weight over tokens; they leave out the end-of-sentence token, here every query
+row counts (use ``special`` alongside to see heads that park weight on special tokens).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from viewer.core.entropy import normalized_entropy, visible_keys
+
+METRICS: tuple[str, ...] = (
+    "entropy",
+    "distance",
+    "special",
+    "previous",
+    "same",
+    "next",
+    "confidence",
+)
+
+
+@dataclass(frozen=True, eq=False)
+class HeadSummary:
+    """Per-head means over a text set; every array is (L, H) float64."""
+
+    texts: int
+    rows: int  # query rows seen (sum of T over texts)
+    entropy: np.ndarray  # (L, H) mean normalised entropy, rows with > 1 visible key
+    distance: np.ndarray  # (L, H) mean attention distance in tokens
+    special: np.ndarray  # (L, H) mean share of weight on special tokens
+    previous: np.ndarray  # (L, H) mean weight on the previous token
+    same: np.ndarray  # (L, H) mean weight on the query's own token
+    next: np.ndarray  # (L, H) mean weight on the next token (NaN for causal models)
+    confidence: np.ndarray  # (L, H) mean maximum weight (Voita et al. 2019)
+
+    @property
+    def n_layers(self) -> int:
+        return int(self.entropy.shape[0])
+
+    @property
+    def n_heads(self) -> int:
+        return int(self.entropy.shape[1])
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready: ``layers``, ``heads``, ``texts``, ``rows`` and each metric as L x H lists."""
+        out: dict[str, Any] = {
+            "layers": self.n_layers,
+            "heads": self.n_heads,
+            "texts": self.texts,
+            "rows": self.rows,
+        }
+        for name in METRICS:
+            out[name] = _json_grid(getattr(self, name))
+        return out
+
+
+def _json_grid(a: np.ndarray) -> list[list[float | None]]:
+    return [[None if math.isnan(v) else float(v) for v in row] for row in a.tolist()]
+
+
+class HeadStats:
+    """Streaming accumulator of head metrics over texts; state is (L, H) sums plus row counts."""
+
+    __slots__ = ("n_layers", "n_heads", "texts", "_sums", "_rows")
+
+    def __init__(self, n_layers: int, n_heads: int) -> None:
+        self.n_layers = int(n_layers)
+        self.n_heads = int(n_heads)
+        self.texts = 0
+        self._sums = np.zeros((len(METRICS), self.n_layers, self.n_heads))  # (M, L, H) float64
+        self._rows = np.zeros(len(METRICS), dtype=np.int64)  # (M,) rows counted per metric
+
+    def add(self, probs: np.ndarray, special: np.ndarray, causal: bool) -> None:
+        """Add one text's attention, probs (L, H, T, T), special (T,) bool."""
+        probs = np.asarray(probs)
+        special = np.asarray(special, dtype=bool)
+        if probs.ndim != 4 or probs.shape[:2] != (self.n_layers, self.n_heads):
+            raise ValueError(
+                f"probs must be (L={self.n_layers}, H={self.n_heads}, T, T), got {probs.shape}"
+            )
+        t = probs.shape[2]
+        if probs.shape[3] != t or special.shape != (t,):
+            raise ValueError(f"probs {probs.shape} and special {special.shape} disagree on T")
+        self.texts += 1
+        if t == 0:
+            return
+        idx = np.arange(t)
+        dist = np.abs(idx[:, None] - idx[None, :]).astype(np.float64)  # (T, T) |i - j|
+        multi_key = visible_keys(t, causal) > 1  # (T,) rows with a real choice
+        special_f = special.astype(np.float64)  # (T,)
+        sums = np.zeros((len(METRICS), self.n_layers, self.n_heads))  # (M, L, H)
+        for layer in range(self.n_layers):  # one layer at a time bounds the float64 copy
+            a = probs[layer].astype(np.float64)  # (H, T, T)
+            ent = normalized_entropy(a, causal)  # (H, T)
+            sums[0, layer] = ent[:, multi_key].sum(axis=-1)
+            sums[1, layer] = a.reshape(self.n_heads, -1) @ dist.ravel()  # sum_ij a_ij |i - j|
+            sums[2, layer] = (a @ special_f).sum(axis=-1)  # sum_i sum_{j special} a_ij
+            sums[3, layer] = np.diagonal(a, offset=-1, axis1=1, axis2=2).sum(axis=-1)
+            sums[4, layer] = np.diagonal(a, offset=0, axis1=1, axis2=2).sum(axis=-1)
+            if not causal:
+                sums[5, layer] = np.diagonal(a, offset=1, axis1=1, axis2=2).sum(axis=-1)
+            sums[6, layer] = a.max(axis=-1).sum(axis=-1)
+        self._sums += sums
+        self._rows += np.array(
+            [
+                int(multi_key.sum()),  # entropy
+                t,  # distance
+                t,  # special
+                t - 1,  # previous
+                t,  # same
+                0 if causal else t - 1,  # next
+                t,  # confidence
+            ],
+            dtype=np.int64,
+        )
+
+    def merge(self, other: HeadStats) -> HeadStats:
+        """Fold ``other`` into this accumulator (in place) and return self."""
+        if (other.n_layers, other.n_heads) != (self.n_layers, self.n_heads):
+            raise ValueError(
+                f"cannot merge head stats of shape ({other.n_layers}, {other.n_heads}) "
+                f"into ({self.n_layers}, {self.n_heads})"
+            )
+        self.texts += other.texts
+        self._sums += other._sums
+        self._rows += other._rows
+        return self
+
+    @property
+    def rows(self) -> int:
+        """Query rows seen over all texts (sum of T)."""
+        return int(self._rows[METRICS.index("same")])
+
+    def state_nbytes(self) -> int:
+        """Bytes held by the accumulator's arrays; constant in the number of texts."""
+        return int(self._sums.nbytes + self._rows.nbytes)
+
+    def summary(self) -> HeadSummary:
+        """Means over counted rows as a frozen ``HeadSummary`` (NaN where no row counted)."""
+        means = {}
+        for m, name in enumerate(METRICS):
+            n = int(self._rows[m])
+            means[name] = self._sums[m] / n if n > 0 else np.full_like(self._sums[m], np.nan)
+        return HeadSummary(texts=self.texts, rows=self.rows, **means)
+
+    def to_dict(self) -> dict[str, Any]:
+        """``summary().to_dict()``: JSON-ready lists."""
+        return self.summary().to_dict()

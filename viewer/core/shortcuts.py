@@ -1,0 +1,184 @@
+"""Shortcut search by word knockout: words, their spans, a per-word tally and the ranking.
+
+DESIGN.md, "Word knockout": a word is a whitespace-separated word, lower-cased, with punctuation
+at its ends stripped (``word_key``); a word that is all punctuation has the empty key and is
+skipped. The model layer knocks each word of a text out (deleting all of its sub-tokens) and
+reports, per text and word, whether the predicted class flipped, the ``drop`` in the originally
+predicted class's probability, and the ``focus`` (share of the last layer's head-mean attention
+from the summary token on the word's sub-tokens, ``summary_share``). ``KnockoutTally`` sums these
+per word over the text set; ``KnockoutTally.ranking`` leaves out words seen in fewer than 3 texts
+and ranks the rest by ``flip_low``, the lower end of the 95% Wilson interval of the flip rate
+(Wilson 1927), then by ``mean_drop``, then by the word itself.
+
+Two-word phrases use the same tally with the key ``"w1 w2"`` (``phrase_spans``): the two words
+must be adjacent in the whitespace split and both must have a non-empty key.
+"""
+
+from __future__ import annotations
+
+import string
+import unicodedata
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from viewer.core.stats import Z95, wilson_interval
+
+Span = tuple[int, int]
+MIN_TEXTS: int = 3
+"""Words seen in fewer texts than this are left out of the ranking (DESIGN.md)."""
+
+_ASCII_PUNCTUATION = frozenset(string.punctuation)
+
+
+def _is_punctuation(ch: str) -> bool:
+    """ASCII punctuation (string.punctuation) or any Unicode punctuation category P*."""
+    return ch in _ASCII_PUNCTUATION or unicodedata.category(ch).startswith("P")
+
+
+def _strip_bounds(word: str) -> tuple[int, int]:
+    start, end = 0, len(word)
+    while start < end and _is_punctuation(word[start]):
+        start += 1
+    while end > start and _is_punctuation(word[end - 1]):
+        end -= 1
+    return start, end
+
+
+def word_key(word: str) -> str:
+    """The knockout key of a whitespace word: lower-cased, punctuation stripped from both ends.
+
+    "Portal]" -> "portal", "co-op's," -> "co-op's", "--" -> "" (skipped). Punctuation is ASCII
+    ``string.punctuation`` plus every Unicode punctuation character (categories P*).
+    """
+    w = word.strip()
+    start, end = _strip_bounds(w)
+    return w[start:end].lower()
+
+
+def word_spans(text: str) -> dict[str, list[Span]]:
+    """Every word key of ``text`` with the character spans of all its occurrences.
+
+    A span covers the word without its stripped end punctuation ("portal]" -> just "portal").
+    Keys are in order of first occurrence; the empty key is skipped.
+    """
+    out: dict[str, list[Span]] = {}
+    for start, end, key in _words(text):
+        if key:
+            out.setdefault(key, []).append((start, end))
+    return out
+
+
+def phrase_spans(text: str) -> dict[str, list[Span]]:
+    """Every two-word phrase key ``"w1 w2"`` of ``text`` with both words' spans per occurrence.
+
+    A phrase is two adjacent whitespace words whose keys are both non-empty; each occurrence
+    contributes its two word spans to the list.
+    """
+    out: dict[str, list[Span]] = {}
+    words = _words(text)
+    for (s1, e1, k1), (s2, e2, k2) in zip(words, words[1:], strict=False):
+        if k1 and k2:
+            out.setdefault(f"{k1} {k2}", []).extend([(s1, e1), (s2, e2)])
+    return out
+
+
+def _words(text: str) -> list[tuple[int, int, str]]:
+    """(start, end, key) per whitespace word; start/end exclude the stripped punctuation."""
+    words = []
+    pos = 0
+    for raw in text.split():
+        begin = text.index(raw, pos)
+        pos = begin + len(raw)
+        a, b = _strip_bounds(raw)
+        words.append((begin + a, begin + b, raw[a:b].lower()))
+    return words
+
+
+def summary_share(attention: np.ndarray, summary_index: int, tokens: np.ndarray) -> float:
+    """Share of the summary token's attention on ``tokens``: sum_{j in tokens} Ā[s, j].
+
+    attention (H, T, T) of the last layer; Ā is its head mean and s the summary token (e.g.
+    [CLS]). This is the per-text ``focus`` of DESIGN.md, "Word knockout".
+    """
+    a = np.asarray(attention, dtype=np.float64)
+    row = a[:, summary_index, :].mean(axis=0)  # (T,) head-mean attention from the summary token
+    return float(row[np.asarray(tokens, dtype=np.int64)].sum())
+
+
+@dataclass(frozen=True)
+class KnockoutOutcome:
+    """What knocking one word out of one text did."""
+
+    flipped: bool  # the predicted class changed
+    drop: float  # probability of the originally predicted class, before minus after
+    focus: float  # summary-token attention share on the word's sub-tokens
+
+
+class KnockoutTally:
+    """Streaming, mergeable per-word sums: texts seen, flips, sum of drop, sum of focus.
+
+    Memory grows with the number of distinct words (or phrases), not with the number of texts.
+    """
+
+    __slots__ = ("texts", "_sums")
+
+    def __init__(self) -> None:
+        self.texts = 0
+        self._sums: dict[str, list[float]] = {}  # key -> [count, flips, sum_drop, sum_focus]
+
+    def add_text(self, outcomes: Mapping[str, KnockoutOutcome]) -> None:
+        """Add one text: one outcome per distinct word (or phrase) key of that text."""
+        self.texts += 1
+        for key, o in outcomes.items():
+            if not key:
+                continue
+            s = self._sums.setdefault(key, [0, 0, 0.0, 0.0])
+            s[0] += 1
+            s[1] += int(bool(o.flipped))
+            s[2] += float(o.drop)
+            s[3] += float(o.focus)
+
+    def merge(self, other: KnockoutTally) -> KnockoutTally:
+        """Fold ``other`` into this tally (in place) and return self."""
+        self.texts += other.texts
+        for key, o in other._sums.items():
+            s = self._sums.setdefault(key, [0, 0, 0.0, 0.0])
+            for i in range(4):
+                s[i] += o[i]
+        return self
+
+    def __len__(self) -> int:
+        return len(self._sums)
+
+    def keys(self) -> Iterable[str]:
+        return self._sums.keys()
+
+    def entry(self, key: str) -> dict[str, Any]:
+        """``{token, count, flip_rate, flip_low, mean_drop, focus}`` for one key."""
+        count, flips, drop, focus = self._sums[key]
+        count, flips = int(count), int(flips)
+        return {
+            "token": key,
+            "count": count,
+            "flip_rate": flips / count,
+            "flip_low": wilson_interval(flips, count, Z95)[0],
+            "mean_drop": drop / count,
+            "focus": focus / count,
+        }
+
+    def ranking(self, min_count: int = MIN_TEXTS, limit: int | None = None) -> list[dict[str, Any]]:
+        """Words seen in at least ``min_count`` texts, strongest shortcut first.
+
+        Sorted by flip_low (lower end of the 95% Wilson score interval of flips / count,
+        Wilson 1927) descending, then mean_drop descending, then the word ascending.
+        """
+        entries = [self.entry(k) for k, s in self._sums.items() if s[0] >= min_count]
+        entries.sort(key=lambda e: (-e["flip_low"], -e["mean_drop"], e["token"]))
+        return entries if limit is None else entries[:limit]
+
+    def to_dict(self, min_count: int = MIN_TEXTS) -> dict[str, Any]:
+        """JSON-ready: ``texts`` and ``tokens`` (the ranking, strongest first)."""
+        return {"texts": self.texts, "tokens": self.ranking(min_count)}
