@@ -92,6 +92,138 @@ def cmd_check(args: argparse.Namespace) -> int:
     return 0 if result.passed else 1
 
 
+def _count(path: str) -> int | None:
+    """Number of texts in a text-set file, by a cheap streaming pass (for the progress bar)."""
+    from viewer.reports.textsets import read_text_set
+
+    return sum(1 for _ in read_text_set(path))
+
+
+def _grid(title: str, grid, fmt: str = "{:6.3f}") -> str:
+    """A plain-text layers × heads table."""
+    import numpy as np
+
+    a = np.asarray(grid, dtype=float)
+    head = "layer " + " ".join(f"{'h' + str(h):>6}" for h in range(a.shape[1]))
+    rows = [f"{layer:>5} " + " ".join(fmt.format(v) if np.isfinite(v) else f"{'-':>6}"
+                                      for v in a[layer]) for layer in range(a.shape[0])]
+    return "\n".join([title, head, *rows])
+
+
+def cmd_heads(args: argparse.Namespace) -> int:
+    from viewer.reports.heads import head_importance, head_knockout, head_summary
+    from viewer.reports.progress import Progress
+    from viewer.reports.textsets import load_text_set, read_text_set
+
+    loaded = _open(args)
+    total = _count(args.texts)
+    if not total:
+        raise HeadlightError(f"{Path(args.texts).name} holds no texts")
+    with Progress(total, "head summaries", enabled=not args.quiet) as bar:
+        summary = head_summary(loaded, read_text_set(args.texts), args.batch_size, bar)
+    data = {"model": str(loaded.folder), **summary.to_dict()}
+    print(_grid("mean entropy (0 = one key, 1 = uniform over the visible keys)", summary.entropy))
+    prediction = loaded.head_kind in ("classifier", "causal-lm")
+    if prediction and not args.skip_importance:
+        items = load_text_set(args.texts)
+        with Progress(len(items), "head importance", enabled=not args.quiet) as bar:
+            imp = head_importance(loaded, items, args.batch_size, bar)
+        data["importance"] = imp["importance"].tolist()
+        data["importance_raw"] = imp["importance_raw"].tolist()
+        data["importance_targets"] = imp["importance_targets"]
+        print(_grid("head importance (Michel et al. 2019), unit norm per layer", imp["importance"]))
+    if prediction and args.knockout_heads:
+        items = load_text_set(args.texts)
+        with Progress(loaded.n_layers * loaded.n_heads, "head knockout",
+                      enabled=not args.quiet) as bar:
+            ko = head_knockout(loaded, items, args.batch_size, bar)
+        data["knockout_prob_drop"] = ko["prob_drop"].tolist()
+        if "accuracy" in ko:
+            data["knockout_accuracy"] = ko["accuracy"].tolist()
+            data["base_accuracy"] = float(ko["base_accuracy"])
+        print(_grid("predicted-class probability drop when the head alone is knocked out",
+                    ko["prob_drop"]))
+    if args.json:
+        write_json(args.json, data)
+    return 0
+
+
+def cmd_links(args: argparse.Namespace) -> int:
+    from viewer.core.links import read_link_pairs
+    from viewer.reports.links import link_report
+    from viewer.reports.progress import Progress
+
+    pairs = read_link_pairs(args.pairs)
+    if not pairs:
+        raise HeadlightError(f"{Path(args.pairs).name} holds no link pairs")
+    loaded = _open(args)
+    with Progress(len(pairs), "link scores", enabled=not args.quiet) as bar:
+        acc = link_report(loaded, pairs, args.batch_size, bar)
+    data = {"model": str(loaded.folder), **acc.to_dict()}
+    print(_grid(f"link accuracy over {acc.pairs} pairs (target strictly above every distractor)",
+                acc.accuracy))
+    best = data["best"]
+    print(f"best head: layer {best['layer']} · head {best['head']} accuracy {best['accuracy']:.3f}"
+          f"; nearest-candidate baseline {data['nearest_baseline']:.3f}")
+    if args.json:
+        write_json(args.json, data)
+    return 0
+
+
+def cmd_shortcuts(args: argparse.Namespace) -> int:
+    from viewer.reports.progress import Progress
+    from viewer.reports.shortcuts import shortcut_search
+    from viewer.reports.textsets import read_text_set
+
+    loaded = _open(args)
+    total = _count(args.texts)
+    if not total:
+        raise HeadlightError(f"{Path(args.texts).name} holds no texts")
+    with Progress(total, "word knockout", enabled=not args.quiet) as bar:
+        report = shortcut_search(loaded, read_text_set(args.texts), batch_size=args.batch_size,
+                                 phrases=not args.no_phrases, keep_examples=False, progress=bar)
+    data = {"model": str(loaded.folder), **report.to_dict()}
+    for title, rows in (("words", data["tokens"]), ("two-word phrases", data["phrases"])):
+        if title != "words" and args.no_phrases:
+            continue
+        print(f"shortcut search, {title} (seen in >= 3 of {report.texts} texts), strongest first")
+        print(f"{'word':<24} {'count':>6} {'flip rate':>9} {'flip low':>8} {'mean drop':>9} "
+              f"{'focus':>6}")
+        for r in rows[: args.top]:
+            print(f"{r['token'][:24]:<24} {r['count']:>6} {r['flip_rate']:>9.3f} "
+                  f"{r['flip_low']:>8.3f} {r['mean_drop']:>9.3f} {r['focus']:>6.3f}")
+    if args.json:
+        write_json(args.json, data)
+    return 0
+
+
+def cmd_evidence(args: argparse.Namespace) -> int:
+    from viewer.reports.evidence import KIND_TITLES, KINDS, evidence_for
+
+    loaded = _open(args)
+    ev = evidence_for(loaded, args.text, steps=args.steps)
+    data = {"model": str(loaded.folder), **ev.to_dict()}
+    if ev.target_label is not None:
+        print(f"prediction: {ev.target_label}")
+    if ev.probabilities.size:
+        print("  " + "  ".join(f"{lab} {p:.3f}" for lab, p in zip(ev.recording.labels,
+                                                                ev.probabilities, strict=True)))
+    width = max(len(t) for t in ev.recording.tokens)
+    print(f"{'token':<{width}} " + " ".join(f"{k[:10]:>10}" for k in KINDS))
+    for i, tok in enumerate(ev.recording.tokens):
+        vals = " ".join(f"{ev.rows[k][i]:>10.4f}" for k in KINDS)
+        print(f"{tok:<{width}} {vals.replace('nan', '  -')}")
+    if ev.agreement:
+        print("rank agreement with knockout (Spearman):")
+        for kind, rho in ev.agreement.items():
+            print(f"  {KIND_TITLES[kind]:<50} {rho:+.3f}")
+    for note in ev.notes:
+        print(f"note: {note}")
+    if args.json:
+        write_json(args.json, data)
+    return 0
+
+
 def cmd_window(args: argparse.Namespace) -> int:
     from viewer.gui.app import run_window  # Qt is imported only here
 
@@ -123,6 +255,31 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--texts", metavar="FILE", help="text set (.txt, .jsonl, .csv)")
     p.add_argument("--tolerance", type=float, default=1e-5, help="max abs error (default 1e-5)")
     p.set_defaults(func=cmd_check)
+
+    def set_command(name: str, help_text: str, func) -> argparse.ArgumentParser:
+        p = model_command(name, help_text)
+        p.add_argument("--batch-size", type=int, default=16, help="texts per batch (default 16)")
+        p.add_argument("--quiet", action="store_true", help="no progress bar on stderr")
+        p.set_defaults(func=func)
+        return p
+
+    p = set_command("heads", "head summaries over a text set", cmd_heads)
+    p.add_argument("--texts", metavar="FILE", required=True, help="text set (.txt, .jsonl, .csv)")
+    p.add_argument("--skip-importance", action="store_true",
+                   help="leave out head importance (gradients; slower)")
+    p.add_argument("--knockout-heads", action="store_true",
+                   help="also knock out each head alone (one pass over the set per head)")
+    p = set_command("links", "per-head link accuracy over a link-pairs file", cmd_links)
+    p.add_argument("--pairs", metavar="FILE", required=True, help="link pairs (.jsonl)")
+    p = set_command("shortcuts", "shortcut search by word knockout over a text set",
+                    cmd_shortcuts)
+    p.add_argument("--texts", metavar="FILE", required=True, help="text set (.txt, .jsonl, .csv)")
+    p.add_argument("--no-phrases", action="store_true", help="skip the two-word phrase search")
+    p.add_argument("--top", type=int, default=15, help="rows to print (default 15)")
+    p = model_command("evidence", "per-token evidence for one prediction (the evidence strip)")
+    p.add_argument("--text", required=True, help="the text to explain")
+    p.add_argument("--steps", type=int, default=50, help="integrated-gradients steps (default 50)")
+    p.set_defaults(func=cmd_evidence)
     return parser
 
 

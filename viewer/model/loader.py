@@ -186,6 +186,19 @@ class Batch:
     texts: list[str]
 
 
+@dataclass(frozen=True, eq=False)
+class Attention:
+    """What dataset-level reports need of one text (T its own tokens, no padding)."""
+
+    text: str
+    token_ids: np.ndarray  # (T,)
+    offsets: np.ndarray  # (T, 2)
+    special: np.ndarray  # (T,) bool
+    probs: np.ndarray  # (L, H, T, T) the model's own attention probabilities
+    target: np.ndarray | None  # (C,) target probabilities, None without a prediction head
+    truncated_from: int | None
+
+
 class LoadedModel:
     """A checkpoint opened for recording: the torch model, its tokenizer and attention hooks."""
 
@@ -258,6 +271,93 @@ class LoadedModel:
         lengths = [int(n) for n in enc["attention_mask"].sum(dim=1)]
         cut = [len(f) if len(f) > n else None for f, n in zip(full, lengths, strict=True)]
         return Batch(enc, lengths, cut, texts)
+
+    def batch_from_ids(self, id_lists: Sequence[Sequence[int]]) -> Batch:
+        """A right-padded batch from token-id lists (e.g. texts with tokens knocked out)."""
+        width = max(len(ids) for ids in id_lists)
+        pad = self.tokenizer.pad_token_id
+        ids = torch.full((len(id_lists), width), pad if pad is not None else 0, dtype=torch.long)
+        mask = torch.zeros((len(id_lists), width), dtype=torch.long)
+        for i, row in enumerate(id_lists):
+            ids[i, : len(row)] = torch.as_tensor(list(row), dtype=torch.long)
+            mask[i, : len(row)] = 1
+        lengths = [len(r) for r in id_lists]
+        return Batch({"input_ids": ids, "attention_mask": mask}, lengths, [None] * len(lengths),
+                     [""] * len(lengths))
+
+    def target_probabilities(self, batch: Batch, out: Any) -> torch.Tensor:
+        """(B, C) the distribution a prediction is read from.
+
+        A classifier's class probabilities; for a causal LM, the next-token distribution at each
+        text's last real token (the only position that sees the whole text).
+        """
+        logits = out.logits
+        if self.head_kind == "classifier":
+            return torch.softmax(logits.float(), dim=-1)
+        if self.head_kind == "causal-lm":
+            last = torch.as_tensor(batch.lengths) - 1
+            return torch.softmax(logits[torch.arange(len(last)), last].float(), dim=-1)
+        raise HeadlightError(
+            f"{self.name} has a {self.head_kind} head with no prediction to explain; this needs "
+            "a sequence classifier or a causal language model"
+        )
+
+    def predict(self, batch: Batch, gates: torch.Tensor | None = None) -> np.ndarray:
+        """(B, C) target probabilities (float64) without gradients."""
+        out, _ = self.forward(batch, gates=gates)
+        return self.target_probabilities(batch, out).double().numpy()
+
+    def predict_ids(self, id_lists: Sequence[Sequence[int]], batch_size: int = 32) -> np.ndarray:
+        """(N, C) target probabilities for many token-id lists, in padded batches."""
+        parts = [self.predict(self.batch_from_ids(id_lists[i:i + batch_size]))
+                 for i in range(0, len(id_lists), max(1, min(batch_size, self.max_batch)))]
+        return np.concatenate(parts, axis=0)
+
+    def output_projection(self, layer: int) -> np.ndarray:
+        """(H*d, D) weight of a layer's attention output projection in x @ W convention."""
+        module = self.hooks.out_modules[self._module_index(layer)]
+        weight = module.weight.detach().double().numpy()
+        # nn.Linear stores (out, in); GPT-2's Conv1D stores (in, out).
+        return weight if type(module).__name__ == "Conv1D" else weight.T
+
+    def _module_index(self, layer: int) -> int:
+        """Which of the distinct attention modules runs as `layer` (ALBERT shares them).
+
+        ALBERT runs num_hidden_layers passes; pass p uses layer group
+        p // (num_hidden_layers / num_hidden_groups), each group holding inner_group_num layers.
+        """
+        if len(self.hooks.out_modules) == self.n_layers:
+            return layer
+        inner = int(getattr(self.config, "inner_group_num", 1))
+        passes = int(self.config.num_hidden_layers)
+        groups = int(getattr(self.config, "num_hidden_groups", 1))
+        pass_index, inner_index = divmod(layer, inner)
+        return int(pass_index / (passes / groups)) * inner + inner_index
+
+    def attentions(self, texts: Sequence[str], batch_size: int = 16) -> Iterator[Attention]:
+        """Light recording: only probabilities, offsets, specials and logits per text.
+
+        Used by dataset-level reports, which need neither Q/K/V nor head outputs.
+        """
+        size = max(1, min(batch_size, self.max_batch))
+        for start in range(0, len(texts), size):
+            batch = self.encode(texts[start:start + size])
+            out, _ = self.forward(batch, output_attentions=True)
+            probs = torch.stack(out.attentions, dim=1).float().numpy()  # (B, L, H, T, T)
+            logits = getattr(out, "logits", None)
+            enc = batch.encoding
+            for i, n in enumerate(batch.lengths):
+                yield Attention(
+                    text=batch.texts[i],
+                    token_ids=enc["input_ids"][i, :n].numpy().copy(),
+                    offsets=enc["offset_mapping"][i, :n].numpy().copy(),
+                    special=enc["special_tokens_mask"][i, :n].numpy().astype(bool),
+                    probs=probs[i, :, :, :n, :n].copy(),
+                    target=(self.target_probabilities(batch, out)[i].double().numpy()
+                            if self.head_kind in ("classifier", "causal-lm") and logits is not None
+                            else None),
+                    truncated_from=batch.truncated_from[i],
+                )
 
     def model_inputs(self, batch: Batch) -> dict:
         return {"input_ids": batch.encoding["input_ids"],

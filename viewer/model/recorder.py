@@ -52,7 +52,7 @@ class AttentionHooks:
         self.n_layers = n_layers
         self.capturing = False
         self.capture = Capture()
-        # (L, H) multiplicative gates on the head outputs, or None for an ungated model.
+        # (L, H) or (B, L, H) multiplicative gates on the head outputs; None leaves them alone.
         self.gates: torch.Tensor | None = None
         self._out_calls = 0
         self._handles: list = []
@@ -123,7 +123,10 @@ class AttentionHooks:
             return None
         b, t, _ = x.shape
         h, d = self.geometry.n_heads, self.geometry.head_dim
-        gate = self.gates[layer].to(x.dtype).view(1, 1, h, 1)
+        if self.gates.dim() == 3:  # (B, L, H): one set of gates per text of the batch
+            gate = self.gates[:, layer].to(x.dtype).view(b, 1, h, 1)
+        else:  # (L, H): the same gates for the whole batch
+            gate = self.gates[layer].to(x.dtype).view(1, 1, h, 1)
         gated = (x.reshape(b, t, h, d) * gate).reshape(b, t, h * d)
         return (gated, *args[1:])
 

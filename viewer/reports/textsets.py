@@ -11,13 +11,28 @@ from __future__ import annotations
 
 import csv
 import json
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
+from typing import TypeVar
 from dataclasses import dataclass
 from pathlib import Path
 
 from viewer.errors import HeadlightError
 
 FORMATS = (".txt", ".jsonl", ".csv")
+
+Item = TypeVar("Item")
+
+
+def chunks(items: Iterable[Item], size: int) -> Iterator[list[Item]]:
+    """Consecutive lists of at most `size` items, read lazily from a stream."""
+    chunk: list[Item] = []
+    for item in items:
+        chunk.append(item)
+        if len(chunk) == size:
+            yield chunk
+            chunk = []
+    if chunk:
+        yield chunk
 
 
 @dataclass(frozen=True)

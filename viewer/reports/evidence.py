@@ -1,0 +1,148 @@
+"""The evidence strip: several kinds of per-token evidence for one prediction, side by side.
+
+Attention alone is not an explanation (Jain & Wallace 2019), so each attention-based row is
+shown beside counterfactual evidence (token knockout) and gradient evidence, and each row's
+ranking of the tokens is compared with the knockout ranking by Spearman's ρ over the ordinary
+(non-special) tokens. A low or negative ρ is the sign that attention misleads on this text.
+
+Rows (all (T,), one value per token of the recording):
+
+- ``attention``: last-layer head-mean attention from the summary token to each token;
+- ``rollout``: attention rollout from the summary token (Abnar & Zuidema 2020, Eq. 1, residual
+  as 0.5·A + 0.5·I);
+- ``flow``: attention flow to the summary token at the top (Abnar & Zuidema 2020), max-flow;
+- ``value_norm``: ‖Σ_h α_sj f_h(x_j)‖ in the last layer (Kobayashi et al. 2020);
+- ``grad_input``: Σ_dims x ⊙ ∂F/∂x on the input embeddings;
+- ``integrated_gradients``: Σ_dims IG on the input embeddings (Sundararajan et al. 2017);
+- ``knockout``: F(text) − F(text without the token).
+
+The summary token is the first token of an encoder ([CLS], <s>) and the last token of a causal
+decoder, which is the only decoder position that sees the whole text; so for decoders every
+attention-based row reads the last query row, whose softmax runs over all T keys, and nothing
+needs re-normalising. F is the probability of the predicted class (or of the top next token).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from viewer.core.recording import Recording
+from viewer.core.rollout import attention_flow, attention_rollout
+from viewer.core.norms import value_weighted_norms
+from viewer.core.stats import spearman
+from viewer.model.attribution import gradient_evidence, token_knockout
+from viewer.model.loader import LoadedModel
+
+KINDS = ("attention", "rollout", "flow", "value_norm", "grad_input", "integrated_gradients",
+         "knockout")
+KIND_TITLES = {
+    "attention": "summary-token attention (last layer, head mean)",
+    "rollout": "attention rollout",
+    "flow": "attention flow",
+    "value_norm": "value-weighted norm (last layer)",
+    "grad_input": "gradient × input",
+    "integrated_gradients": "integrated gradients (50 steps)",
+    "knockout": "knockout: drop in probability",
+}
+ATTENTION_KINDS = ("attention", "rollout", "flow", "value_norm")
+FLOW_MAX_TOKENS = 160
+
+
+@dataclass(frozen=True, eq=False)
+class Evidence:
+    recording: Recording
+    rows: dict[str, np.ndarray]  # kind -> (T,) values, NaN where a kind does not apply
+    per_head_attention: np.ndarray  # (H, T) last-layer attention from the summary token
+    agreement: dict[str, float]  # kind -> Spearman ρ with the knockout row (ordinary tokens)
+    target: int | None  # index of the explained class / next token
+    target_label: str | None
+    probabilities: np.ndarray  # (C,) class probabilities (empty for LMs and bare encoders)
+    completeness_gap: float | None  # IG: |Σ IG − (F(x) − F(x'))| / |F(x) − F(x')|
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+    def to_dict(self) -> dict:
+        rec = self.recording
+
+        def num(x):
+            return None if x is None or not np.isfinite(x) else float(x)
+
+        return {
+            "text": rec.text,
+            "tokens": list(rec.tokens),
+            "special": [bool(s) for s in rec.special],
+            "summary_token": rec.summary_index(),
+            "target": self.target,
+            "target_label": self.target_label,
+            "probabilities": {lab: float(p) for lab, p in zip(rec.labels, self.probabilities,
+                                                               strict=False)},
+            "rows": {k: [num(v) for v in self.rows[k]] for k in KINDS},
+            "agreement_with_knockout": {k: num(v) for k, v in self.agreement.items()},
+            "integrated_gradients_completeness_gap": num(self.completeness_gap),
+            "notes": list(self.notes),
+        }
+
+
+def value_norm_row(loaded: LoadedModel, rec: Recording, summary: int) -> np.ndarray:
+    """‖Σ_h α^h_sj f_h(x_j)‖ for the summary row s of the last layer (Kobayashi et al. 2020).
+
+    f_h(x_j) = (x_j W_V^h + b_V^h) W_O^h: the captured values already are x_j W_V^h + b_V^h,
+    so only the output projection's slice W_O^h is applied here.
+    """
+    layer = rec.n_layers - 1
+    h, d = rec.n_heads, rec.q.shape[-1]
+    v = np.repeat(rec.v[layer].astype(np.float64), h // rec.n_kv_heads, axis=0)  # (H, T, d)
+    w_o = loaded.output_projection(layer).reshape(h, d, -1)  # (H, d, D)
+    f = np.einsum("htd,hdD->htD", v, w_o)  # (H, T, D)
+    return value_weighted_norms(rec.probs[layer], f).head_sum[summary]
+
+
+def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
+                 recording: Recording | None = None, knockout_batch: int = 32) -> Evidence:
+    """All evidence rows for one text (the model is run several times; use a worker thread)."""
+    rec = recording if recording is not None else loaded.record(text)
+    s = rec.summary_index()
+    t = rec.n_tokens
+    notes = list(rec.notes)
+    last = rec.probs[-1].astype(np.float64)  # (H, T, T)
+    rows = {k: np.full(t, np.nan) for k in KINDS}
+    rows["attention"] = last[:, s, :].mean(axis=0)
+    rows["rollout"] = attention_rollout(rec.probs)[s]
+    if t <= FLOW_MAX_TOKENS:
+        rows["flow"] = attention_flow(rec.probs, s, max_tokens=FLOW_MAX_TOKENS)
+    else:
+        notes.append(f"attention flow is computed up to {FLOW_MAX_TOKENS} tokens; this text has {t}")
+    rows["value_norm"] = value_norm_row(loaded, rec, s)
+
+    target = label = None
+    probs = rec.class_probabilities()
+    gap = None
+    if loaded.head_kind in ("classifier", "causal-lm"):
+        dist = (probs if loaded.head_kind == "classifier"
+                else _softmax(rec.logits[-1].astype(np.float64)))
+        target = int(np.argmax(dist))
+        label = (rec.labels[target] if loaded.head_kind == "classifier"
+                 else loaded.tokenizer.convert_ids_to_tokens(target))
+        grads = gradient_evidence(loaded, text, target, steps=steps)
+        rows["grad_input"] = grads.grad_input
+        rows["integrated_gradients"] = grads.integrated
+        gap = grads.completeness_gap
+        rows["knockout"] = token_knockout(loaded, rec.token_ids, rec.special, target,
+                                          float(dist[target]), batch_size=knockout_batch)
+    else:
+        notes.append(f"{loaded.name} has a {loaded.head_kind} head: no prediction to explain, so "
+                     "no gradient or knockout rows")
+
+    ordinary = ~rec.special
+    agreement = {}
+    if target is not None and ordinary.sum() >= 2:
+        for kind in KINDS[:-1]:
+            agreement[kind] = spearman(rows[kind][ordinary], rows["knockout"][ordinary]) \
+                if np.all(np.isfinite(rows[kind][ordinary])) else float("nan")
+    return Evidence(rec, rows, last[:, s, :], agreement, target, label, probs, gap, tuple(notes))
+
+
+def _softmax(z: np.ndarray) -> np.ndarray:
+    e = np.exp(z - z.max())
+    return e / e.sum()
