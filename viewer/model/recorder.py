@@ -73,6 +73,7 @@ class AttentionHooks:
         self.module_names = [name for name, _ in projections]
         self.projection_modules = [m for _, m in projections]
         self.out_modules = [m for _, m in out]
+        self.value_modules = [m for _, m in (qkv if family.qkv else v)]
 
         if family.qkv:
             for _, m in qkv:

@@ -1,0 +1,213 @@
+"""Dataset-level reports and their commands: heads, links, shortcuts; bad input."""
+
+from __future__ import annotations
+
+import json
+import random
+import tracemalloc
+
+import numpy as np
+import pytest
+import torch
+
+from tests.model import tiny
+from viewer.cli import main
+from viewer.core.links import find_word, read_link_pairs
+from viewer.model.loader import open_model
+from viewer.reports.heads import head_summary
+from viewer.reports.links import link_report
+from viewer.reports.shortcuts import shortcut_search
+from viewer.reports.textsets import TextItem, load_text_set, read_text_set
+from viewer.errors import HeadlightError
+
+WORDS = "the mechanic trued wheel and she replaced chain a member asked about invoice".split()
+PAIRS = [
+    {"text": "the mechanic told the courier that she replaced the chain", "source": "she",
+     "target": "mechanic", "distractors": ["courier"]},
+    {"text": "a member asked the mechanic about the invoice and she paid it", "source": "she",
+     "target": "member", "distractors": ["mechanic"]},
+    {"text": "the courier left the frame at the workshop because it was bent", "source": "it",
+     "target": "frame", "distractors": ["workshop", "courier"]},
+]
+
+
+@pytest.fixture(scope="module")
+def bert(tmp_path_factory):
+    return open_model(tiny.save(tmp_path_factory.mktemp("bert"), "bert"))
+
+
+def write_jsonl(path, rows):
+    path.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
+    return path
+
+
+def test_links_against_a_brute_force_computation(bert, tmp_path):
+    """Reference: DESIGN.md's definition computed here from recordings, token by token."""
+    pairs_file = write_jsonl(tmp_path / "pairs.jsonl", PAIRS)
+    acc = link_report(bert, read_link_pairs(pairs_file), batch_size=2)
+    correct = np.zeros((bert.n_layers, bert.n_heads))
+    for pair in PAIRS:
+        rec = bert.record(pair["text"])
+
+        def tokens_of(word, rec=rec, pair=pair):
+            a, b = find_word(pair["text"], word)
+            return [i for i, (s, e) in enumerate(rec.offsets) if e > s and s < b and e > a]
+
+        src = tokens_of(pair["source"])[0]
+        for layer in range(bert.n_layers):
+            for head in range(bert.n_heads):
+                row = rec.probs[layer, head, src]
+                target = sum(row[j] for j in tokens_of(pair["target"]))
+                others = [sum(row[j] for j in tokens_of(w)) for w in pair["distractors"]]
+                correct[layer, head] += all(target > o for o in others)
+    np.testing.assert_allclose(acc.accuracy, correct / len(PAIRS))
+    assert acc.pairs == 3
+
+
+def test_head_summary_streams_and_equals_one_at_a_time(bert):
+    """Batched streaming over the set equals adding one text at a time (padding respected)."""
+    from viewer.core.headstats import HeadStats
+
+    items = [TextItem(t, None, i) for i, t in enumerate(tiny.TEXTS * 3)]
+    summary = head_summary(bert, iter(items), batch_size=4)
+    stats = HeadStats(bert.n_layers, bert.n_heads)
+    for item in items:
+        rec = bert.record(item.text)
+        stats.add(rec.probs, rec.special, rec.causal)
+    np.testing.assert_allclose(summary.entropy, stats.summary().entropy, atol=1e-6)
+    assert summary.texts == 9
+
+
+def test_planted_token_ranks_first(tmp_path):
+    """A tiny classifier trained here to key on one planted word: the search must find it."""
+    random.seed(0)
+    torch.manual_seed(0)
+    folder = tiny.save(tmp_path / "planted", "bert")
+    loaded = open_model(folder)
+
+    def sample(with_token: bool) -> str:
+        words = random.choices(WORDS, k=random.randint(4, 9))
+        if with_token:
+            words.insert(random.randrange(len(words) + 1), "tuesday")
+        return " ".join(words)
+
+    texts = [(sample(i % 2 == 0), 1 if i % 2 == 0 else 0) for i in range(256)]
+    model = loaded.model
+    model.train()
+    opt = torch.optim.AdamW(model.parameters(), lr=3e-3)
+    for step in range(60):
+        batch = texts[(step * 32) % 256:(step * 32) % 256 + 32]
+        enc = loaded.tokenizer([t for t, _ in batch], padding=True, return_tensors="pt")
+        loss = model(**enc, labels=torch.tensor([y for _, y in batch])).loss
+        opt.zero_grad()
+        loss.backward()
+        opt.step()
+    model.eval()
+    items = [TextItem(sample(i % 2 == 0), None, i) for i in range(40)]
+    report = shortcut_search(loaded, items, batch_size=16)
+    top = report.words.ranking()[0]
+    assert top["token"] == "tuesday", report.words.ranking()[:3]
+    assert top["flip_rate"] > 0.8 and top["mean_drop"] > 0.3
+    assert report.texts == 40
+    # Phrases containing the planted word are listed separately and rank high too.
+    assert "tuesday" in report.phrases.ranking()[0]["token"]
+
+
+def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
+    """count = texts a word occurs in; drop = p(pred) before minus after deleting its tokens."""
+    text = "the chain and the wheel"
+    items = [TextItem(text, None, 1), TextItem("the invoice", None, 2),
+             TextItem("the member", None, 3)]
+    report = shortcut_search(bert, items, phrases=False)
+    entry = report.words.entry("the")
+    assert entry["count"] == 3
+    # By hand for "chain" in the first text (reference: DESIGN.md "Word knockout").
+    rec = bert.record(text)
+    pred = rec.predicted()
+    keep = [t for t, tok in zip(rec.token_ids, rec.tokens, strict=True) if tok != "chain"]
+    after = bert.predict(bert.batch_from_ids([keep]))[0, pred]
+    assert report.words.entry("chain")["mean_drop"] == pytest.approx(
+        rec.class_probabilities()[pred] - after, abs=1e-6)
+
+
+def test_cli_json_contracts(bert, tmp_path, capsys):
+    texts = write_jsonl(tmp_path / "t.jsonl", [{"text": t, "label": "repair"} for t in tiny.TEXTS])
+    pairs = write_jsonl(tmp_path / "p.jsonl", PAIRS)
+    folder = str(bert.folder)
+    assert main(["heads", folder, "--texts", str(texts), "--json", str(tmp_path / "h.json"),
+                 "--knockout-heads"]) == 0
+    h = json.loads((tmp_path / "h.json").read_text())
+    assert (h["layers"], h["heads"], h["texts"]) == (2, 4, 3)
+    for key in ("entropy", "distance", "special", "confidence", "importance",
+                "knockout_prob_drop", "knockout_accuracy"):
+        assert np.asarray(h[key]).shape == (2, 4), key
+    assert main(["links", folder, "--pairs", str(pairs), "--json", str(tmp_path / "l.json")]) == 0
+    lk = json.loads((tmp_path / "l.json").read_text())
+    assert lk["pairs"] == 3 and np.asarray(lk["accuracy"]).shape == (2, 4)
+    assert {"layer", "head", "accuracy"} <= set(lk["best"]) and "nearest_baseline" in lk
+    more = write_jsonl(tmp_path / "m.jsonl", [{"text": t} for t in tiny.TEXTS * 2])
+    assert main(["shortcuts", folder, "--texts", str(more), "--json",
+                 str(tmp_path / "s.json")]) == 0
+    sc = json.loads((tmp_path / "s.json").read_text())
+    assert sc["texts"] == 6
+    assert sc["tokens"] and set(sc["tokens"][0]) == {"token", "count", "flip_rate", "flip_low",
+                                                     "mean_drop", "focus"}
+    lows = [r["flip_low"] for r in sc["tokens"]]
+    assert lows == sorted(lows, reverse=True)
+    err = capsys.readouterr().err
+    assert "head summaries [" in err and "word knockout [" in err  # progress bars on stderr
+
+
+@pytest.mark.parametrize("case", ["empty", "not-utf8", "missing-word", "half-labelled",
+                                  "bad-label", "encoder-shortcuts"])
+def test_bad_input_is_one_line_exit_2(case, bert, tmp_path, capsys, minilm_dir):
+    folder = str(bert.folder)
+    if case == "empty":
+        f = tmp_path / "e.txt"
+        f.write_text("\n\n", encoding="utf-8")
+        argv, expect = ["heads", folder, "--texts", str(f)], "holds no texts"
+    elif case == "not-utf8":
+        f = tmp_path / "latin.txt"
+        f.write_bytes("caf\xe9 au lait\n".encode("latin-1"))
+        argv, expect = ["shortcuts", folder, "--texts", str(f)], "not UTF-8"
+    elif case == "missing-word":
+        rows = PAIRS + [{"text": "the frame is bent", "source": "it", "target": "frame",
+                         "distractors": ["wheel"]}]
+        f = write_jsonl(tmp_path / "p.jsonl", rows)
+        argv, expect = ["links", folder, "--pairs", str(f)], "line 4"
+    elif case == "half-labelled":
+        f = write_jsonl(tmp_path / "h.jsonl", [{"text": "a", "label": "repair"}, {"text": "b"}])
+        argv, expect = ["heads", folder, "--texts", str(f)], "line 2 has no label"
+    elif case == "bad-label":
+        f = write_jsonl(tmp_path / "b.jsonl", [{"text": "a", "label": "refund"}])
+        argv, expect = ["heads", folder, "--texts", str(f)], "'refund' is not one of"
+    else:
+        f = write_jsonl(tmp_path / "t.jsonl", [{"text": "a chain"}])
+        argv, expect = ["shortcuts", str(minilm_dir), "--texts", str(f)], "needs a prediction"
+    capsys.readouterr()
+    assert main(argv) == 2
+    err = capsys.readouterr().err.strip().splitlines()[-1]
+    assert err.startswith("headlight: error: ") and expect in err, err
+
+
+def test_load_text_set_can_require_labels(tmp_path):
+    f = tmp_path / "u.txt"
+    f.write_text("one\ntwo\n", encoding="utf-8")
+    with pytest.raises(HeadlightError, match="needs a label on every text; line 1"):
+        load_text_set(f, need_labels=True)
+
+
+def test_a_10_mb_text_set_streams(tmp_path):
+    """Reading a 10 MB file holds one line at a time (tracemalloc peak stays small)."""
+    f = tmp_path / "big.txt"
+    line = "the member asked about the invoice for the new brake pads again and again\n"
+    with f.open("w", encoding="utf-8") as fh:
+        for _ in range(10 * 1024 * 1024 // len(line) + 1):
+            fh.write(line)
+    assert f.stat().st_size >= 10 * 1024 * 1024
+    tracemalloc.start()
+    n = sum(1 for _ in read_text_set(f))
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    assert n > 100_000
+    assert peak < 2 * 1024 * 1024, peak
