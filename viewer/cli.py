@@ -72,31 +72,21 @@ def _open(args: argparse.Namespace):
 
 
 def cmd_check(args: argparse.Namespace) -> int:
-    from viewer.core.attention import check_recordings
+    from viewer.reports.runs import check_data
 
-    if not (args.tolerance > 0):
-        raise HeadlightError(f"--tolerance must be positive, got {args.tolerance}")
     texts = _texts(args, DEFAULT_CHECK_TEXT)
     loaded = _open(args)
-    result = check_recordings(loaded.record_many(texts, batch_size=8), args.tolerance)
-    data = {"model": str(loaded.folder), "family": loaded.family.name, **result.to_dict()}
-    print(f"re-derivation check: {loaded.family.name} · {loaded.n_layers} layers × "
-          f"{loaded.n_heads} heads · {result.texts} text(s)")
+    data = check_data(loaded, texts, args.tolerance)
+    print(f"re-derivation check: {data['family']} · {loaded.n_layers} layers × "
+          f"{loaded.n_heads} heads · {data['texts']} text(s)")
     print(f"{'layer':>5}  {'max abs error':>13}")
     for row in data["layers"]:
         print(f"{row['layer']:>5}  {row['max_abs_error']:>13.3e}")
-    verdict = "passed" if result.passed else "FAILED"
-    print(f"{verdict}: max abs error {result.max_abs_error:.3e} (tolerance {args.tolerance:g})")
+    verdict = "passed" if data["passed"] else "FAILED"
+    print(f"{verdict}: max abs error {data['max_abs_error']:.3e} (tolerance {args.tolerance:g})")
     if args.json:
         write_json(args.json, data)
-    return 0 if result.passed else 1
-
-
-def _count(path: str) -> int | None:
-    """Number of texts in a text-set file, by a cheap streaming pass (for the progress bar)."""
-    from viewer.reports.textsets import read_text_set
-
-    return sum(1 for _ in read_text_set(path))
+    return 0 if data["passed"] else 1
 
 
 def _grid(title: str, grid, fmt: str = "{:6.3f}") -> str:
@@ -111,38 +101,19 @@ def _grid(title: str, grid, fmt: str = "{:6.3f}") -> str:
 
 
 def cmd_heads(args: argparse.Namespace) -> int:
-    from viewer.reports.heads import head_importance, head_knockout, head_summary
-    from viewer.reports.progress import Progress
-    from viewer.reports.textsets import load_text_set, read_text_set
+    from viewer.reports.runs import heads_data
 
     loaded = _open(args)
-    total = _count(args.texts)
-    if not total:
-        raise HeadlightError(f"{Path(args.texts).name} holds no texts")
-    with Progress(total, "head summaries", enabled=not args.quiet) as bar:
-        summary = head_summary(loaded, read_text_set(args.texts), args.batch_size, bar)
-    data = {"model": str(loaded.folder), **summary.to_dict()}
-    print(_grid("mean entropy (0 = one key, 1 = uniform over the visible keys)", summary.entropy))
-    prediction = loaded.head_kind in ("classifier", "causal-lm")
-    if prediction and not args.skip_importance:
-        items = load_text_set(args.texts)
-        with Progress(len(items), "head importance", enabled=not args.quiet) as bar:
-            imp = head_importance(loaded, items, args.batch_size, bar)
-        data["importance"] = imp["importance"].tolist()
-        data["importance_raw"] = imp["importance_raw"].tolist()
-        data["importance_targets"] = imp["importance_targets"]
-        print(_grid("head importance (Michel et al. 2019), unit norm per layer", imp["importance"]))
-    if prediction and args.knockout_heads:
-        items = load_text_set(args.texts)
-        with Progress(loaded.n_layers * loaded.n_heads, "head knockout",
-                      enabled=not args.quiet) as bar:
-            ko = head_knockout(loaded, items, args.batch_size, bar)
-        data["knockout_prob_drop"] = ko["prob_drop"].tolist()
-        if "accuracy" in ko:
-            data["knockout_accuracy"] = ko["accuracy"].tolist()
-            data["base_accuracy"] = float(ko["base_accuracy"])
+    data = heads_data(loaded, args.texts, batch_size=args.batch_size,
+                      importance=not args.skip_importance, knockout=args.knockout_heads,
+                      quiet=args.quiet)
+    print(_grid("mean entropy (0 = one key, 1 = uniform over the visible keys)", data["entropy"]))
+    if "importance" in data:
+        print(_grid("head importance (Michel et al. 2019), unit norm per layer",
+                    data["importance"]))
+    if "knockout_prob_drop" in data:
         print(_grid("predicted-class probability drop when the head alone is knocked out",
-                    ko["prob_drop"]))
+                    data["knockout_prob_drop"]))
     if args.json:
         write_json(args.json, data)
     return 0
@@ -150,18 +121,13 @@ def cmd_heads(args: argparse.Namespace) -> int:
 
 def cmd_links(args: argparse.Namespace) -> int:
     from viewer.core.links import read_link_pairs
-    from viewer.reports.links import link_report
-    from viewer.reports.progress import Progress
+    from viewer.reports.runs import links_data
 
-    pairs = read_link_pairs(args.pairs)
-    if not pairs:
-        raise HeadlightError(f"{Path(args.pairs).name} holds no link pairs")
+    read_link_pairs(args.pairs)  # bad pairs are reported before the model is opened
     loaded = _open(args)
-    with Progress(len(pairs), "link scores", enabled=not args.quiet) as bar:
-        acc = link_report(loaded, pairs, args.batch_size, bar)
-    data = {"model": str(loaded.folder), **acc.to_dict()}
-    print(_grid(f"link accuracy over {acc.pairs} pairs (target strictly above every distractor)",
-                acc.accuracy))
+    data = links_data(loaded, args.pairs, batch_size=args.batch_size, quiet=args.quiet)
+    print(_grid(f"link accuracy over {data['pairs']} pairs (target strictly above every "
+                "distractor)", data["accuracy"]))
     best = data["best"]
     print(f"best head: layer {best['layer']} · head {best['head']} accuracy {best['accuracy']:.3f}"
           f"; nearest-candidate baseline {data['nearest_baseline']:.3f}")
@@ -171,22 +137,15 @@ def cmd_links(args: argparse.Namespace) -> int:
 
 
 def cmd_shortcuts(args: argparse.Namespace) -> int:
-    from viewer.reports.progress import Progress
-    from viewer.reports.shortcuts import shortcut_search
-    from viewer.reports.textsets import read_text_set
+    from viewer.reports.runs import shortcuts_data
 
     loaded = _open(args)
-    total = _count(args.texts)
-    if not total:
-        raise HeadlightError(f"{Path(args.texts).name} holds no texts")
-    with Progress(total, "word knockout", enabled=not args.quiet) as bar:
-        report = shortcut_search(loaded, read_text_set(args.texts), batch_size=args.batch_size,
-                                 phrases=not args.no_phrases, keep_examples=False, progress=bar)
-    data = {"model": str(loaded.folder), **report.to_dict()}
+    data = shortcuts_data(loaded, args.texts, batch_size=args.batch_size,
+                          phrases=not args.no_phrases, quiet=args.quiet)
     for title, rows in (("words", data["tokens"]), ("two-word phrases", data["phrases"])):
         if title != "words" and args.no_phrases:
             continue
-        print(f"shortcut search, {title} (seen in >= 3 of {report.texts} texts), strongest first")
+        print(f"shortcut search, {title} (seen in >= 3 of {data['texts']} texts), strongest first")
         print(f"{'word':<24} {'count':>6} {'flip rate':>9} {'flip low':>8} {'mean drop':>9} "
               f"{'focus':>6}")
         for r in rows[: args.top]:

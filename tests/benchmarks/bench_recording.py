@@ -47,13 +47,11 @@ def main(repeats: int = 15) -> None:
             t0 = time.perf_counter()
             rec = loaded.record(text)
             rec_t.append(time.perf_counter() - t0)
-            loaded.hooks.remove()
-            t0 = time.perf_counter()
-            with torch.no_grad():
+            with loaded.unhooked() as model, torch.no_grad():
+                t0 = time.perf_counter()
                 loaded.tokenizer([text], return_tensors="pt")
-                loaded.model(**inputs, output_attentions=True)
-            bare_t.append(time.perf_counter() - t0)
-            loaded.hooks.__init__(loaded.model, loaded.family, loaded.geometry, loaded.n_layers)
+                model(**inputs, output_attentions=True)
+                bare_t.append(time.perf_counter() - t0)
             t0 = time.perf_counter()
             check_recording(rec)
             check_t.append(time.perf_counter() - t0)

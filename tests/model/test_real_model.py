@@ -28,16 +28,8 @@ def test_probabilities_equal_output_attentions_on_real_weights(minilm):
     """Reference: the model's own output_attentions (transformers), without our hooks."""
     text = "She returned the tandem because its gears slipped."
     rec = minilm.record(text)
-    minilm.hooks.remove()
-    try:
-        enc = minilm.tokenizer(text, return_tensors="pt")
-        with torch.no_grad():
-            out = minilm.model(**enc, output_attentions=True)
-    finally:
-        from viewer.model.recorder import AttentionHooks
-
-        minilm.hooks = AttentionHooks(minilm.model, minilm.family, minilm.geometry,
-                                      minilm.n_layers)
+    with minilm.unhooked() as model, torch.no_grad():
+        out = model(**minilm.tokenizer(text, return_tensors="pt"), output_attentions=True)
     np.testing.assert_allclose(rec.probs, torch.stack(out.attentions, 1)[0].numpy(), atol=1e-7)
 
 

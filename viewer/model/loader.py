@@ -15,6 +15,7 @@ import os
 import pickle
 import struct
 from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -241,6 +242,15 @@ class LoadedModel:
     @property
     def n_heads(self) -> int:
         return self.geometry.n_heads
+
+    @contextmanager
+    def unhooked(self) -> Iterator[Any]:
+        """The plain torch model with none of Headlight's hooks (for references and timing)."""
+        self.hooks.remove()
+        try:
+            yield self.model
+        finally:
+            self.hooks = AttentionHooks(self.model, self.family, self.geometry, self.n_layers)
 
     def _check_module_scales(self) -> None:
         """Refuse when an attention module's own scale differs from the family rule."""
