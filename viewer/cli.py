@@ -8,15 +8,13 @@ Heavy libraries (torch, transformers, Qt) are imported inside the commands that 
 from __future__ import annotations
 
 import argparse
-import json
-import os
 import sys
-import tempfile
 from collections.abc import Sequence
 from pathlib import Path
 
 from viewer import __version__
 from viewer.errors import HeadlightError
+from viewer.files import write_json
 
 DEFAULT_CHECK_TEXT = (
     "The mechanic at the co-op trued the rear wheel, then she checked the brake cables twice."
@@ -26,26 +24,6 @@ DEFAULT_CHECK_TEXT = (
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str):  # one line, exit 2, as for every bad input
         self.exit(2, f"headlight: error: {message} (see headlight --help)\n")
-
-
-def write_json(path: str | Path, data: dict) -> None:
-    """Write JSON atomically: a temporary file in the same folder, then a rename."""
-    path = Path(path)
-    folder = path.parent if str(path.parent) else Path(".")
-    if not folder.is_dir():
-        raise HeadlightError(f"cannot write {path}: folder {folder} does not exist")
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=folder)
-    except OSError as exc:
-        raise HeadlightError(f"cannot write {path}: {exc.strerror}") from None
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(data, fh, indent=2, sort_keys=False)
-            fh.write("\n")
-        os.replace(tmp, path)
-    except OSError as exc:
-        Path(tmp).unlink(missing_ok=True)
-        raise HeadlightError(f"cannot write {path}: {exc.strerror}") from None
 
 
 def _texts(args: argparse.Namespace, default: str | None = None) -> list[str]:
@@ -183,6 +161,25 @@ def cmd_evidence(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_card(args: argparse.Namespace) -> int:
+    from viewer.core.links import read_link_pairs
+    from viewer.figures.card import export_card
+    from viewer.reports.textsets import load_text_set
+
+    out = Path(args.out)
+    if out.exists() and not args.force:
+        raise HeadlightError(f"{out} already exists; pass --force to replace it")
+    load_text_set(args.texts)  # bad inputs are reported before the model is opened
+    if args.pairs:
+        read_link_pairs(args.pairs)
+    loaded = _open(args)
+    command = ["headlight", *(args.argv or [])]
+    export_card(loaded, args.texts, out, pairs_path=args.pairs, force=args.force,
+                command=command, batch_size=args.batch_size, quiet=args.quiet)
+    print(f"card written to {out}/ (card.md, card.json, figures/)")
+    return 0
+
+
 def cmd_window(args: argparse.Namespace) -> int:
     from viewer.gui.app import run_window  # Qt is imported only here
 
@@ -239,12 +236,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--text", required=True, help="the text to explain")
     p.add_argument("--steps", type=int, default=50, help="integrated-gradients steps (default 50)")
     p.set_defaults(func=cmd_evidence)
+    p = set_command("card", "card export: Markdown section, figures and numbers for a model card",
+                    cmd_card)
+    p.add_argument("--texts", metavar="FILE", required=True, help="text set (.txt, .jsonl, .csv)")
+    p.add_argument("--pairs", metavar="FILE", help="link pairs (.jsonl)")
+    p.add_argument("--out", metavar="FOLDER", required=True, help="folder to create")
+    p.add_argument("--force", action="store_true", help="replace an existing folder")
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    args.argv = list(sys.argv[1:] if argv is None else argv)
     func = getattr(args, "func", cmd_window)
     try:
         return int(func(args) or 0)

@@ -213,6 +213,7 @@ class LoadedModel:
         self.geometry = geometry
         self.head_kind = head_kind
         self.notes = notes
+        self.weight_files: tuple[Path, ...] = ()
         self.config = model.config
         self.n_layers = _layer_count(self.config)
         self.max_tokens = _max_tokens(self.config, tokenizer)
@@ -542,7 +543,9 @@ def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> Load
         )
     model.eval()
     notes = (note,) if note else ()
-    return LoadedModel(path, model, tokenizer, family, geometry, head_kind, notes)
+    loaded = LoadedModel(path, model, tokenizer, family, geometry, head_kind, notes)
+    loaded.weight_files = tuple(weights)
+    return loaded
 
 
 def _first_line(exc: BaseException) -> str:

@@ -1,0 +1,157 @@
+"""Card export and figure files: formats decode, numbers agree with the commands, files safe."""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import xml.etree.ElementTree as ET
+from pathlib import Path
+
+import numpy as np
+import pytest
+from matplotlib.figure import Figure
+from PIL import Image
+from pypdf import PdfReader
+
+from tests.model import tiny
+from viewer.cli import main
+from viewer.errors import HeadlightError
+from viewer.figures.export import PRINT_DPI, save_figure
+from viewer.files import atomic_write_text, sanitise_name
+
+PAIRS = [
+    {"text": "the mechanic told the courier that she replaced the chain", "source": "she",
+     "target": "mechanic", "distractors": ["courier"]},
+    {"text": "a member asked the mechanic about the invoice and she paid it", "source": "she",
+     "target": "member", "distractors": ["mechanic"]},
+]
+TEXTS = [("the mechanic trued the wheel", "repair"), ("the invoice for the brake pads", "billing"),
+         ("renewal of the membership", "membership"), ("the chain and the wheel", "repair")]
+
+
+@pytest.fixture(scope="module")
+def inputs(tmp_path_factory):
+    root = tmp_path_factory.mktemp("card")
+    model = tiny.save(root / "model", "bert")
+    texts = root / "texts.jsonl"
+    texts.write_text("".join(json.dumps({"text": t, "label": y}) + "\n" for t, y in TEXTS))
+    pairs = root / "pairs.jsonl"
+    pairs.write_text("".join(json.dumps(p) + "\n" for p in PAIRS))
+    return root, model, texts, pairs
+
+
+def card_in(folder: Path, *argv: str) -> int:
+    """Run `headlight card ... --out card` from inside `folder` (so the commands are equal)."""
+    here = os.getcwd()
+    os.chdir(folder)
+    try:
+        return main(["card", *argv, "--out", "card", "--quiet"])
+    finally:
+        os.chdir(here)
+
+
+@pytest.fixture(scope="module")
+def card(inputs):
+    root, model, texts, pairs = inputs
+    assert card_in(root, str(model), "--texts", str(texts), "--pairs", str(pairs)) == 0
+    return root / "card"
+
+
+def test_png_size_and_dpi_svg_xml_pdf_one_page(tmp_path):
+    """Readers: Pillow for PNG size and dpi, ElementTree for SVG, pypdf for the PDF pages."""
+    fig = Figure(figsize=(4.0, 2.5))
+    fig.add_subplot().imshow(np.eye(3))
+    paths = save_figure(fig, tmp_path / "grid")
+    png, svg, pdf = paths
+    with Image.open(png) as im:
+        assert im.size == (4 * PRINT_DPI, int(2.5 * PRINT_DPI))
+        assert tuple(round(d) for d in im.info["dpi"]) == (PRINT_DPI, PRINT_DPI)
+    assert ET.parse(svg).getroot().tag.endswith("svg")
+    assert pdf.read_bytes().startswith(b"%PDF-")
+    assert len(PdfReader(pdf).pages) == 1
+
+
+def test_card_files_and_image_links(card):
+    md = (card / "card.md").read_text(encoding="utf-8")
+    links = re.findall(r"!\[[^\]]*\]\(([^)]+)\)", md)
+    assert len(links) >= 3
+    for link in links:
+        target = (card / link).resolve()
+        assert target.is_file() and card.resolve() in target.parents, link
+        with Image.open(target) as im:
+            assert im.format == "PNG"
+        assert ET.parse(target.with_suffix(".svg")).getroot().tag.endswith("svg")
+    for words in ("not by itself an explanation", "does not certify", "review process"):
+        assert words in md
+    assert "SHA-256" in md and "| command |" in md
+
+
+def test_card_numbers_equal_the_commands(card, inputs, tmp_path):
+    """card.json's parts equal the JSON of `heads`, `links`, `shortcuts` and `check`."""
+    root, model, texts, pairs = inputs
+    data = json.loads((card / "card.json").read_text())
+    out = {}
+    for name, extra in (("check", ["--texts", str(texts)]), ("heads", ["--texts", str(texts)]),
+                        ("links", ["--pairs", str(pairs)]),
+                        ("shortcuts", ["--texts", str(texts)])):
+        path = tmp_path / f"{name}.json"
+        quiet = [] if name == "check" else ["--quiet"]
+        assert main([name, str(model), *extra, *quiet, "--json", str(path)]) == 0
+        out[name] = json.loads(path.read_text())
+        out[name].pop("model")
+        assert data[name] == out[name], name
+    assert data["check"]["passed"] is True
+    assert data["reproducibility"]["sha256"]["model.safetensors"]
+
+
+def test_two_exports_differ_only_in_the_date_line(card, inputs, tmp_path):
+    root, model, texts, pairs = inputs
+    second = tmp_path / "again"
+    second.mkdir()
+    assert card_in(second, str(model), "--texts", str(texts), "--pairs", str(pairs)) == 0
+    a_files = sorted(p.relative_to(card) for p in card.rglob("*") if p.is_file())
+    b_files = sorted(p.relative_to(second / "card") for p in (second / "card").rglob("*")
+                     if p.is_file())
+    assert a_files == b_files
+    for rel in a_files:
+        a, b = (card / rel).read_bytes(), (second / "card" / rel).read_bytes()
+        if rel.suffix in (".md", ".json"):
+            diff = [(x, y) for x, y in zip(a.decode().splitlines(), b.decode().splitlines(),
+                                           strict=True) if x != y]
+            assert all("date" in x for x, _ in diff), diff
+        else:
+            assert a == b, rel
+
+
+def test_existing_folder_is_not_overwritten_without_force(card, inputs, capsys):
+    root, model, texts, pairs = inputs
+    before = (card / "card.md").read_bytes()
+    assert card_in(root, str(model), "--texts", str(texts)) == 2
+    assert "already exists; pass --force" in capsys.readouterr().err
+    assert (card / "card.md").read_bytes() == before
+    assert card_in(root, str(model), "--texts", str(texts), "--force") == 0
+    assert "Link pairs" not in (card / "card.md").read_text()  # replaced: this run had none
+
+
+def test_missing_parent_folder_is_a_one_line_error(inputs, tmp_path, capsys):
+    root, model, texts, _ = inputs
+    assert main(["card", str(model), "--texts", str(texts), "--out",
+                 str(tmp_path / "no" / "such" / "card"), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "does not exist" in err and err.count("\n") == 1
+
+
+def test_unwritable_target_even_as_root(tmp_path):
+    """A path under a regular file cannot be written by anyone (reference: POSIX ENOTDIR)."""
+    blocker = tmp_path / "file"
+    blocker.write_text("x")
+    with pytest.raises(HeadlightError, match="cannot write|does not exist"):
+        atomic_write_text(blocker / "card.md", "hello")
+
+
+def test_names_from_text_are_sanitised():
+    assert sanitise_name("Héllo / ../../etc/passwd [via portal]!") == "hello-etc-passwd-via-portal"
+    assert sanitise_name("///") == "text"
+    assert len(sanitise_name("word " * 40)) <= 40
+    assert Path(sanitise_name("a\0b\nc")).name == "a-b-c"

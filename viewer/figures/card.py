@@ -1,0 +1,284 @@
+"""Card export: a folder with a Markdown section, figures and numbers for a model card.
+
+The section follows the model-card structure of Mitchell et al. 2019 and contributes to its
+*Metrics*, *Evaluation data*, *Quantitative analyses* and *Caveats and recommendations*.
+Every number in ``card.md`` comes from ``card.json``, whose parts are the very dictionaries
+the ``check``, ``heads``, ``links`` and ``shortcuts`` commands print, so the card agrees with
+the commands. Apart from its one ``date`` line, an export is reproducible byte for byte.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import platform
+from collections.abc import Sequence
+from importlib import metadata
+from pathlib import Path
+
+import numpy as np
+from matplotlib.figure import Figure
+
+from viewer import __version__
+from viewer.errors import HeadlightError
+from viewer.figures.evidence import evidence_into
+from viewer.figures.export import PRINT_SIZE, save_figure
+from viewer.figures.head_map import head_map_into
+from viewer.figures.links import accuracy_into
+from viewer.files import StagedFolder, atomic_write_text, json_text
+from viewer.model.loader import LoadedModel
+from viewer.reports.evidence import KIND_TITLES, KINDS, evidence_for
+from viewer.reports.predictions import accuracy_data, predict_items
+from viewer.reports.runs import check_data, heads_data, links_data, shortcuts_data
+from viewer.reports.textsets import load_text_set
+
+CARD_FORMATS = ("png", "svg")
+LIBRARIES = ("torch", "transformers", "tokenizers", "numpy", "scipy", "matplotlib", "safetensors")
+
+CAUTIONS = (
+    "Attention is not by itself an explanation: a head attending to a token does not show that "
+    "the prediction depends on it (Jain & Wallace 2019). Read the attention figures beside the "
+    "knockout and gradient evidence, and trust the counterfactual numbers when they disagree.",
+    "Headlight does not certify this model as safe or fair. These analyses look for specific "
+    "problems on the texts given; finding none is not evidence that there are none.",
+    "Decisions about deploying this model follow the team's own review process; the numbers "
+    "here are inputs to that review, not a verdict.",
+)
+
+
+def sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with path.open("rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def versions() -> dict[str, str]:
+    out = {"headlight": __version__, "python": platform.python_version()}
+    for name in LIBRARIES:
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+def _fmt(x: float | None, digits: int = 3) -> str:
+    return "–" if x is None or not np.isfinite(x) else f"{x:.{digits}f}"
+
+
+def _figure() -> Figure:
+    return Figure(figsize=PRINT_SIZE, dpi=100)
+
+
+def _example_text(items, shortcuts: dict | None) -> str | None:
+    """The first text containing the strongest shortcut word (else the first text)."""
+    if shortcuts and shortcuts["tokens"]:
+        word = shortcuts["tokens"][0]["token"]
+        from viewer.core.shortcuts import word_spans
+
+        for item in items:
+            if word in word_spans(item.text):
+                return item.text
+    return items[0].text if items else None
+
+
+def collect(loaded: LoadedModel, texts_path: Path, pairs_path: Path | None, *,
+            batch_size: int = 16, quiet: bool = False) -> dict:
+    """All numbers of a card, computed by the same runs as the commands."""
+    items = load_text_set(texts_path)
+    texts = [i.text for i in items]
+    prediction = loaded.head_kind in ("classifier", "causal-lm")
+    data: dict = {
+        "model": {"folder": loaded.folder.name, "family": loaded.family.name,
+                  "layers": loaded.n_layers, "heads": loaded.n_heads,
+                  "head_kind": loaded.head_kind, "labels": list(loaded.labels)},
+        "evaluation_data": {"texts_file": texts_path.name, "texts": len(items),
+                            "labelled": sum(i.label is not None for i in items)},
+        "check": check_data(loaded, texts, 1e-5),
+        "heads": heads_data(loaded, texts_path, batch_size=batch_size, quiet=quiet),
+    }
+    if pairs_path is not None:
+        data["links"] = links_data(loaded, pairs_path, batch_size=batch_size, quiet=quiet)
+        data["evaluation_data"]["pairs_file"] = pairs_path.name
+        data["evaluation_data"]["pairs"] = data["links"]["pairs"]
+    if prediction:
+        data["shortcuts"] = shortcuts_data(loaded, texts_path, batch_size=batch_size, quiet=quiet)
+        if loaded.head_kind == "classifier":
+            data["accuracy"] = accuracy_data(loaded, items, predict_items(loaded, items))
+        example = _example_text(items, data["shortcuts"])
+        if example is not None:
+            ev = evidence_for(loaded, example)
+            data["example"] = ev.to_dict()
+    for part in ("check", "heads", "links", "shortcuts"):
+        if part in data:
+            data[part].pop("model", None)  # the folder path is machine-specific; see "model"
+    return data
+
+
+def _figures(data: dict, out: Path) -> dict[str, str]:
+    """Draw the card's figures into out/figures; returns name -> PNG path inside the card."""
+    folder = out / "figures"
+    folder.mkdir()
+    made = {}
+    model = data["model"]["folder"]
+
+    def save(name: str, fig: Figure) -> None:
+        save_figure(fig, folder / name, CARD_FORMATS)
+        made[name] = f"figures/{name}.png"
+
+    heads = data["heads"]
+    fig = _figure()
+    head_map_into(fig, np.asarray(heads["entropy"], dtype=float),
+                  label="mean entropy (0–1, normalised)",
+                  title=f"{model} · head map · mean entropy over {heads['texts']} texts")
+    save("head_entropy", fig)
+    if "importance" in heads:
+        fig = _figure()
+        head_map_into(fig, np.asarray(heads["importance"], dtype=float),
+                      label="head importance (unit norm per layer)",
+                      title=f"{model} · head importance (Michel et al. 2019), "
+                            f"{heads['importance_targets']} as targets")
+        save("head_importance", fig)
+    if "links" in data:
+        links = data["links"]
+        fig = _figure()
+        accuracy_into(fig, np.asarray(links["accuracy"], dtype=float),
+                      nearest_baseline=links["nearest_baseline"], pairs=links["pairs"])
+        save("link_accuracy", fig)
+    if "example" in data:
+        ex = data["example"]
+        values = np.array([[np.nan if v is None else v for v in ex["rows"][k]] for k in KINDS])
+        rho = [ex["agreement_with_knockout"].get(k) for k in KINDS]
+        labels = list(ex["probabilities"])
+        fig = Figure(figsize=(9.0, 3.6), dpi=100)
+        evidence_into(fig, ex["tokens"], [KIND_TITLES[k] for k in KINDS], values, rho,
+                      labels=labels, probabilities=np.array(list(ex["probabilities"].values())),
+                      predicted=ex["target"] if labels else None,
+                      title=f"{model} · evidence strip · predicted {ex['target_label']}")
+        save("evidence_example", fig)
+    return made
+
+
+def _markdown(data: dict, figures: dict[str, str]) -> str:
+    m, ev, chk, heads = data["model"], data["evaluation_data"], data["check"], data["heads"]
+    lines = ["## Attention inspection (Headlight)", "",
+             "*This section contributes to the Metrics, Evaluation data, Quantitative analyses "
+             "and Caveats and recommendations of the model card (Mitchell et al. 2019).*", ""]
+    kind = {"classifier": "sequence classifier", "causal-lm": "causal language model",
+            "masked-lm": "masked language model", "encoder": "bare encoder"}[m["head_kind"]]
+    classes = f" with classes {', '.join(m['labels'])}" if m["labels"] else ""
+    lines += ["### What was inspected", "",
+              f"- Model: `{m['folder']}`, {m['family']} family, {m['layers']} layers × "
+              f"{m['heads']} heads, {kind}{classes}.",
+              f"- Evaluation data: `{ev['texts_file']}`, {ev['texts']} texts "
+              f"({ev['labelled']} labelled)."]
+    if "pairs_file" in ev:
+        lines.append(f"- Link pairs: `{ev['pairs_file']}`, {ev['pairs']} pairs.")
+    lines += ["- Layers and heads are counted from 0.", "", "### Metrics", ""]
+    verdict = "passed" if chk["passed"] else "FAILED"
+    lines.append(f"- Re-derivation check {verdict}: attention recomputed from the captured "
+                 f"queries and keys matches the model's own probabilities to a max absolute "
+                 f"error of {chk['max_abs_error']:.1e} over {chk['texts']} texts "
+                 f"(tolerance {chk['tolerance']:g}).")
+    acc = data.get("accuracy")
+    if acc and acc.get("labelled"):
+        lines.append(f"- Accuracy on the labelled texts: {_fmt(acc['accuracy'])} "
+                     f"({acc['correct']} of {acc['labelled']}).")
+    if "links" in data:
+        b = data["links"]["best"]
+        lines.append(f"- Link accuracy: best head layer {b['layer']} · head {b['head']} at "
+                     f"{_fmt(b['accuracy'])}; nearest-candidate baseline "
+                     f"{_fmt(data['links']['nearest_baseline'])}.")
+    sc = data.get("shortcuts")
+    if sc and (not sc["tokens"] or sc["tokens"][0]["flip_rate"] == 0):
+        lines.append("- Shortcut search: knocking out no single word seen in at least 3 texts "
+                     "changed a prediction.")
+    elif sc:
+        t = sc["tokens"][0]
+        lines.append(f"- Strongest shortcut candidate: “{t['token']}” — knocking it out flips "
+                     f"the prediction in {_fmt(100 * t['flip_rate'], 0)}% of the {t['count']} "
+                     f"texts containing it (95% Wilson lower bound {_fmt(t['flip_low'])}).")
+    lines += ["", "### Quantitative analyses", ""]
+    lines += [f"![Head map of mean attention entropy]({figures['head_entropy']})", "",
+              "Mean attention entropy per head, normalised by the log of the number of visible "
+              "keys (0: all weight on one key; 1: uniform).", ""]
+    if "head_importance" in figures:
+        lines += [f"![Head importance]({figures['head_importance']})", "",
+                  "Head importance (Michel et al. 2019, Eq. 2): mean |∂L/∂ξ_h| of the "
+                  f"cross-entropy against the {heads['importance_targets']}, unit ℓ2 norm per "
+                  "layer.", ""]
+    if "links" in data:
+        links = data["links"]
+        accs = np.asarray(links["accuracy"], dtype=float)
+        lines += [f"![Link accuracy per head]({figures['link_accuracy']})", "",
+                  "| layer | best head | link accuracy |", "|---:|---:|---:|"]
+        for layer, row in enumerate(accs):
+            h = int(np.nanargmax(row))
+            lines.append(f"| {layer} | {h} | {_fmt(row[h])} |")
+        lines += [f"| nearest-candidate baseline | | {_fmt(links['nearest_baseline'])} |", ""]
+    if sc:
+        lines += [f"Shortcut search by word knockout over {sc['texts']} texts (words seen in at "
+                  "least 3 texts, ranked by the lower end of the 95% Wilson interval of the flip "
+                  "rate):", "",
+                  "| word | texts | flip rate | flip rate, 95% low | mean drop | focus |",
+                  "|---|---:|---:|---:|---:|---:|"]
+        for r in sc["tokens"][:10]:
+            lines.append(f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
+                         f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} | {_fmt(r['focus'])} |")
+        if sc["phrases"]:
+            lines += ["", "| two-word phrase | texts | flip rate | 95% low | mean drop |",
+                      "|---|---:|---:|---:|---:|"]
+            for r in sc["phrases"][:5]:
+                lines.append(f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
+                             f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} |")
+        lines.append("")
+    if "evidence_example" in figures:
+        ex = data["example"]
+        lines += [f"![Evidence strip for one text]({figures['evidence_example']})", "",
+                  f"Per-token evidence for one text (predicted: {ex['target_label']}). Rank "
+                  "agreement with knockout (Spearman ρ): " + ", ".join(
+                      f"{KIND_TITLES[k]} {_fmt(v, 2)}"
+                      for k, v in ex["agreement_with_knockout"].items()) + ".", ""]
+    lines += ["### Caveats and recommendations", ""]
+    lines += [f"- {c}" for c in CAUTIONS]
+    if sc and sc["tokens"] and sc["tokens"][0]["flip_low"] > 0.2:
+        t = sc["tokens"][0]
+        lines.append(f"- The predictions depend strongly on “{t['token']}”. Check whether this "
+                     "word carries the meaning of the class or only correlates with it in the "
+                     "training data, and test on texts where it appears with other classes.")
+    rep = data["reproducibility"]
+    lines += ["", "### Reproducibility", "", "| item | value |", "|---|---|"]
+    for name, digest in rep["sha256"].items():
+        lines.append(f"| SHA-256 of `{name}` | `{digest}` |")
+    lines += [f"| {k} | {v} |" for k, v in rep["versions"].items()]
+    lines += [f"| command | `{rep['command']}` |", f"| date | {rep['date']} |", ""]
+    return "\n".join(lines)
+
+
+def export_card(loaded: LoadedModel, texts_path: str | Path, out: str | Path, *,
+                pairs_path: str | Path | None = None, force: bool = False,
+                command: Sequence[str] = (), batch_size: int = 16, quiet: bool = False,
+                date: str | None = None) -> Path:
+    """Write the card folder at `out` (refusing to replace an existing one without `force`)."""
+    texts_path = Path(texts_path)
+    pairs_path = Path(pairs_path) if pairs_path is not None else None
+    out = Path(out)
+    if out.exists() and not force:
+        raise HeadlightError(f"{out} already exists; pass --force to replace it")
+    data = collect(loaded, texts_path, pairs_path, batch_size=batch_size, quiet=quiet)
+    inputs = [*loaded.weight_files, texts_path] + ([pairs_path] if pairs_path else [])
+    data["reproducibility"] = {
+        "sha256": {p.name: sha256(p) for p in inputs},
+        "versions": versions(),
+        "command": " ".join(command) if command else "(called from Python)",
+        "date": date or dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+    }
+    data["cautions"] = list(CAUTIONS)
+    with StagedFolder(out, force=force) as tmp:
+        figures = _figures(data, tmp)
+        data["figures"] = figures
+        atomic_write_text(tmp / "card.md", _markdown(data, figures))
+        atomic_write_text(tmp / "card.json", json_text(data))
+    return out

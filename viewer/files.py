@@ -1,0 +1,118 @@
+"""Safe file output: atomic writes, no silent overwrites, sanitised names.
+
+Every file Headlight writes goes to a temporary file in the target folder first and is then
+renamed over the target (``os.replace`` is atomic on one file system), so a crash or a full
+disk never leaves a half-written figure or card behind. An existing file or folder is only
+replaced when the caller says so (``--force`` on the command line, a confirmation in the
+window). Problems the user can fix become one-line ``HeadlightError`` messages.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import tempfile
+import unicodedata
+from pathlib import Path
+from typing import Any
+
+from viewer.errors import HeadlightError
+
+
+def _fail(path: Path, exc: OSError) -> HeadlightError:
+    reason = exc.strerror or type(exc).__name__
+    return HeadlightError(f"cannot write {path}: {reason}")
+
+
+def atomic_write_bytes(path: str | os.PathLike, data: bytes, *, force: bool = True) -> Path:
+    """Write `data` to `path` through a temporary file and a rename."""
+    path = Path(path)
+    folder = path.parent if str(path.parent) else Path(".")
+    if not folder.is_dir():
+        raise HeadlightError(f"cannot write {path}: folder {folder} does not exist")
+    if path.exists() and not force:
+        raise HeadlightError(f"{path} already exists; pass --force to replace it")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=folder)
+    except OSError as exc:
+        raise _fail(path, exc) from None
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except OSError as exc:
+        Path(tmp).unlink(missing_ok=True)
+        raise _fail(path, exc) from None
+    return path
+
+
+def atomic_write_text(path: str | os.PathLike, text: str, *, force: bool = True) -> Path:
+    return atomic_write_bytes(path, text.encode("utf-8"), force=force)
+
+
+def json_text(data: Any) -> str:
+    return json.dumps(data, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+
+
+def write_json(path: str | os.PathLike, data: Any, *, force: bool = True) -> Path:
+    """Write JSON atomically (NaN is not JSON: callers turn it into null first)."""
+    return atomic_write_text(path, json_text(data), force=force)
+
+
+def sanitise_name(text: str, *, max_chars: int = 40, fallback: str = "text") -> str:
+    """A file-name stem from free text: ASCII letters, digits and single dashes only."""
+    ascii_text = unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode()
+    stem = re.sub(r"[^a-z0-9]+", "-", ascii_text.lower()).strip("-")
+    stem = stem[:max_chars].rstrip("-")
+    return stem or fallback
+
+
+class StagedFolder:
+    """Build a folder under a temporary name, then move it into place in one rename.
+
+    ``with StagedFolder(out, force) as tmp: ...write into tmp...`` leaves either the complete
+    new folder at `out` or, on any error, the old state untouched.
+    """
+
+    def __init__(self, target: str | os.PathLike, force: bool = False):
+        self.target = Path(target)
+        self.force = force
+        self.tmp: Path | None = None
+
+    def __enter__(self) -> Path:
+        parent = self.target.parent if str(self.target.parent) else Path(".")
+        if not parent.is_dir():
+            raise HeadlightError(f"cannot write {self.target}: folder {parent} does not exist")
+        if self.target.exists() and not self.force:
+            raise HeadlightError(f"{self.target} already exists; pass --force to replace it")
+        if self.target.exists() and not self.target.is_dir():
+            raise HeadlightError(f"{self.target} exists and is not a folder")
+        try:
+            self.tmp = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.", dir=parent))
+        except OSError as exc:
+            raise _fail(self.target, exc) from None
+        return self.tmp
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        assert self.tmp is not None
+        if exc_type is not None:
+            shutil.rmtree(self.tmp, ignore_errors=True)
+            return
+        old = None
+        try:
+            os.chmod(self.tmp, 0o755)
+            if self.target.exists():
+                old = self.target.with_name(f".{self.target.name}.old")
+                shutil.rmtree(old, ignore_errors=True)
+                os.replace(self.target, old)
+            os.replace(self.tmp, self.target)
+        except OSError as e:
+            shutil.rmtree(self.tmp, ignore_errors=True)
+            if old is not None and not self.target.exists():
+                os.replace(old, self.target)
+            raise _fail(self.target, e) from None
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
