@@ -13,12 +13,12 @@ import torch
 from tests.model import tiny
 from viewer.cli import main
 from viewer.core.links import find_word, read_link_pairs
+from viewer.errors import HeadlightError
 from viewer.model.loader import open_model
 from viewer.reports.heads import head_summary
 from viewer.reports.links import link_report
 from viewer.reports.shortcuts import shortcut_search
 from viewer.reports.textsets import TextItem, load_text_set, read_text_set
-from viewer.errors import HeadlightError
 
 WORDS = "the mechanic trued wheel and she replaced chain a member asked about invoice".split()
 PAIRS = [

@@ -273,7 +273,7 @@ def export_card(loaded: LoadedModel, texts_path: str | Path, out: str | Path, *,
         "sha256": {p.name: sha256(p) for p in inputs},
         "versions": versions(),
         "command": " ".join(command) if command else "(called from Python)",
-        "date": date or dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "date": date or dt.datetime.now(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
     }
     data["cautions"] = list(CAUTIONS)
     with StagedFolder(out, force=force) as tmp:

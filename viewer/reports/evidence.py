@@ -28,9 +28,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from viewer.core.norms import value_weighted_norms
 from viewer.core.recording import Recording
 from viewer.core.rollout import attention_flow, attention_rollout
-from viewer.core.norms import value_weighted_norms
 from viewer.core.stats import spearman
 from viewer.model.attribution import gradient_evidence, token_knockout
 from viewer.model.loader import LoadedModel

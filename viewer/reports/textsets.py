@@ -12,9 +12,9 @@ from __future__ import annotations
 import csv
 import json
 from collections.abc import Iterable, Iterator
-from typing import TypeVar
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TypeVar
 
 from viewer.errors import HeadlightError
 
@@ -45,8 +45,7 @@ class TextItem:
 def _lines(path: Path) -> Iterator[tuple[int, str]]:
     try:
         with path.open("r", encoding="utf-8", newline="") as fh:
-            for number, line in enumerate(fh, start=1):
-                yield number, line
+            yield from enumerate(fh, start=1)
     except UnicodeDecodeError as exc:
         raise HeadlightError(
             f"{path.name} is not UTF-8 text (byte {exc.start} of a line cannot be decoded)"
