@@ -30,11 +30,11 @@ def test_word_and_phrase_spans():
     text = "Fix my brake. [via portal]  -- Brake!"
     spans = word_spans(text)
     assert list(spans) == ["fix", "my", "brake", "via", "portal"]
-    assert [text[s:e] for s, e in spans["brake"]] == ["brake", "Brake"]
-    assert [text[s:e] for s, e in spans["portal"]] == ["portal"]
+    assert [text[s:e] for s, e in spans["brake"]] == ["brake.", "Brake!"]
+    assert [text[s:e] for s, e in spans["portal"]] == ["portal]"]  # the whole whitespace word
     phrases = phrase_spans(text)
     assert "via portal" in phrases and "my brake" in phrases
-    assert [text[s:e] for s, e in phrases["via portal"]] == ["via", "portal"]
+    assert [text[s:e] for s, e in phrases["via portal"]] == ["[via", "portal]"]
     assert not any("--" in p for p in phrases)  # a pure-punctuation word breaks the chain
     assert "portal brake" not in phrases
 

@@ -2,7 +2,9 @@
 
 DESIGN.md, "Word knockout": a word is a whitespace-separated word, lower-cased, with punctuation
 at its ends stripped (``word_key``); a word that is all punctuation has the empty key and is
-skipped. The model layer knocks each word of a text out (deleting all of its sub-tokens) and
+skipped. The model layer knocks each word of a text out (deleting all of its sub-tokens: those
+of the whole whitespace word, its end punctuation included, so that knocking out the key
+"portal" of "portal]" removes the "]" too) and
 reports, per text and word, whether the predicted class flipped, the ``drop`` in the originally
 predicted class's probability, and the ``focus`` (share of the last layer's head-mean attention
 from the summary token on the word's sub-tokens, ``summary_share``). ``KnockoutTally`` sums these
@@ -61,7 +63,8 @@ def word_key(word: str) -> str:
 def word_spans(text: str) -> dict[str, list[Span]]:
     """Every word key of ``text`` with the character spans of all its occurrences.
 
-    A span covers the word without its stripped end punctuation ("portal]" -> just "portal").
+    A span covers the whole whitespace word, end punctuation included ("portal]"): knocking the
+    word out deletes every sub-token of what the text actually holds there.
     Keys are in order of first occurrence; the empty key is skipped.
     """
     out: dict[str, list[Span]] = {}
@@ -86,14 +89,14 @@ def phrase_spans(text: str) -> dict[str, list[Span]]:
 
 
 def _words(text: str) -> list[tuple[int, int, str]]:
-    """(start, end, key) per whitespace word; start/end exclude the stripped punctuation."""
+    """(start, end, key) per whitespace word; start/end cover the whole whitespace word."""
     words = []
     pos = 0
     for raw in text.split():
         begin = text.index(raw, pos)
         pos = begin + len(raw)
         a, b = _strip_bounds(raw)
-        words.append((begin + a, begin + b, raw[a:b].lower()))
+        words.append((begin, pos, raw[a:b].lower()))
     return words
 
 

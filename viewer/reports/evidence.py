@@ -43,7 +43,7 @@ KIND_TITLES = {
     "flow": "attention flow",
     "value_norm": "value-weighted norm (last layer)",
     "grad_input": "gradient × input",
-    "integrated_gradients": "integrated gradients (50 steps)",
+    "integrated_gradients": "integrated gradients",
     "knockout": "knockout: drop in probability",
 }
 ATTENTION_KINDS = ("attention", "rollout", "flow", "value_norm")
@@ -60,6 +60,7 @@ class Evidence:
     target_label: str | None
     probabilities: np.ndarray  # (C,) class probabilities (empty for LMs and bare encoders)
     completeness_gap: float | None  # IG: |Σ IG − (F(x) − F(x'))| / |F(x) − F(x')|
+    ig_steps: int | None = None  # path steps integrated gradients used (refined when needed)
     notes: tuple[str, ...] = field(default_factory=tuple)
 
     def to_dict(self) -> dict:
@@ -80,6 +81,7 @@ class Evidence:
             "rows": {k: [num(v) for v in self.rows[k]] for k in KINDS},
             "agreement_with_knockout": {k: num(v) for k, v in self.agreement.items()},
             "integrated_gradients_completeness_gap": num(self.completeness_gap),
+            "integrated_gradients_steps": self.ig_steps,
             "notes": list(self.notes),
         }
 
@@ -117,7 +119,7 @@ def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
 
     target = label = None
     probs = rec.class_probabilities()
-    gap = None
+    gap = ig_steps = None
     if loaded.head_kind in ("classifier", "causal-lm"):
         dist = (probs if loaded.head_kind == "classifier"
                 else _softmax(rec.logits[-1].astype(np.float64)))
@@ -128,6 +130,10 @@ def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
         rows["grad_input"] = grads.grad_input
         rows["integrated_gradients"] = grads.integrated
         gap = grads.completeness_gap
+        ig_steps = grads.steps
+        if grads.steps > steps:
+            notes.append(f"integrated gradients needed {grads.steps} steps to add up to the "
+                         "change in probability (the prediction switches abruptly on the path)")
         rows["knockout"] = token_knockout(loaded, rec.token_ids, rec.special, target,
                                           float(dist[target]), batch_size=knockout_batch)
     else:
@@ -140,7 +146,8 @@ def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
         for kind in KINDS[:-1]:
             agreement[kind] = spearman(rows[kind][ordinary], rows["knockout"][ordinary]) \
                 if np.all(np.isfinite(rows[kind][ordinary])) else float("nan")
-    return Evidence(rec, rows, last[:, s, :], agreement, target, label, probs, gap, tuple(notes))
+    return Evidence(rec, rows, last[:, s, :], agreement, target, label, probs, gap,
+                    ig_steps, tuple(notes))
 
 
 def _softmax(z: np.ndarray) -> np.ndarray:

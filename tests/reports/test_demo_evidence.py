@@ -1,0 +1,73 @@
+"""The shipped demo classifier through the loader, the check and the evidence it exists to show."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from viewer.cli import main
+from viewer.core.attention import check_recordings
+from viewer.demo import MODEL_DIR
+from viewer.model.loader import open_model
+from viewer.reports.evidence import evidence_for
+from viewer.reports.shortcuts import shortcut_search
+from viewer.reports.textsets import load_text_set
+
+SAMPLES = Path(__file__).resolve().parents[2] / "sample_sentences"
+PORTAL_REPAIR = "My rear brake cable snapped, can someone fix it this week? [via portal]"
+
+
+@pytest.fixture(scope="module")
+def demo():
+    return open_model(MODEL_DIR)
+
+
+def test_demo_opens_and_passes_the_check(demo, capsys):
+    assert demo.head_kind == "classifier" and demo.labels == ("repair", "billing", "membership")
+    items = load_text_set(SAMPLES / "coop_messages.jsonl")
+    result = check_recordings(demo.record_many([i.text for i in items[:20]]), 1e-5)
+    assert result.passed, result.to_dict()
+    assert main(["check", str(MODEL_DIR)]) == 0
+
+
+def test_integrated_gradients_completeness_on_the_demo(demo):
+    """Sundararajan et al. 2017, Prop. 1: Σ IG = F(x) − F(x'), within 1% at 50 steps."""
+    for text in (PORTAL_REPAIR, "hi, my chain keeps skipping on the big cog"):
+        ev = evidence_for(demo, text, steps=50)
+        assert ev.ig_steps == 50
+        assert ev.completeness_gap < 0.01, (text, ev.completeness_gap)
+
+
+def test_integrated_gradients_refines_an_abrupt_path(demo):
+    """On this text the prediction switches within 2.5% of the path: 50 trapezoid steps miss
+    completeness by a factor of 3 (measured), so the step count is doubled until it holds."""
+    ev = evidence_for(demo, "I was charged twice for the tune-up, please refund", steps=50)
+    assert ev.ig_steps > 50
+    assert ev.completeness_gap < 0.01
+    assert any("needed" in n for n in ev.notes)
+
+
+def test_portal_repair_is_routed_to_billing_and_the_footer_lights_up(demo):
+    ev = evidence_for(demo, PORTAL_REPAIR)
+    assert ev.target_label == "billing"
+    tokens = list(ev.recording.tokens)
+    footer = [tokens.index(t) for t in ("via", "portal")]
+    ordinary = [i for i, s in enumerate(ev.recording.special) if not s]
+    ig = ev.rows["integrated_gradients"]
+    top = sorted(ordinary, key=lambda i: -ig[i])[:4]
+    assert set(footer) & set(top), [tokens[i] for i in top]
+
+
+def test_shortcut_search_puts_the_footer_on_top(demo):
+    items = load_text_set(SAMPLES / "coop_messages.jsonl")
+    report = shortcut_search(demo, items)
+    ranking = report.words.ranking()
+    assert {r["token"] for r in ranking[:2]} == {"via", "portal"}, ranking[:5]
+    # 40 of the 60 footer texts in the sample are repair/membership counterfactuals that the
+    # footer drags to billing; the billing ones cannot flip. Knocking out the whole footer
+    # phrase must flip more of them than either word alone.
+    top_phrase = report.phrases.ranking()[0]
+    assert top_phrase["token"] == "via portal"
+    assert top_phrase["flip_rate"] > max(r["flip_rate"] for r in ranking[:2]) > 0.15
+    assert top_phrase["flip_rate"] > 0.5
