@@ -14,6 +14,8 @@ scale rule) shows up as a large error.
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -44,15 +46,17 @@ def repeat_kv(x: np.ndarray, n_heads: int) -> np.ndarray:
 
 def softmax(scores: np.ndarray, visible: np.ndarray | None = None) -> np.ndarray:
     """Row softmax over the last axis in float64, with invisible entries exactly 0."""
-    s = np.asarray(scores, dtype=np.float64)
+    s = np.array(scores, dtype=np.float64)  # a private copy, worked on in place
     if visible is not None:
-        s = np.where(visible, s, -np.inf)
+        s[..., ~visible] = -np.inf
     m = np.max(s, axis=-1, keepdims=True)
-    m = np.where(np.isfinite(m), m, 0.0)
-    e = s - m
-    np.exp(e, out=e)
-    total = e.sum(axis=-1, keepdims=True)
-    return np.divide(e, total, out=np.zeros_like(e), where=total > 0)
+    m[~np.isfinite(m)] = 0.0  # a row that sees no key stays all zero
+    s -= m
+    np.exp(s, out=s)
+    total = s.sum(axis=-1, keepdims=True)
+    total[total == 0] = 1.0
+    s /= total
+    return s
 
 
 def attention_probabilities(
@@ -62,9 +66,9 @@ def attention_probabilities(
 
     q: (H, T, d) queries; k: (G, T, d) keys (G divides H). Returns (H, T, T).
     """
-    q64 = np.asarray(q, dtype=np.float64)
+    q64 = np.asarray(q, dtype=np.float64) * float(scale)  # scaling q is cheaper than scores
     k64 = repeat_kv(np.asarray(k, dtype=np.float64), q64.shape[0])
-    scores = np.matmul(q64, k64.transpose(0, 2, 1)) * float(scale)  # (H, T, T)
+    scores = np.matmul(q64, k64.transpose(0, 2, 1))  # (H, T, T)
     return softmax(scores, visible_keys(q64.shape[1], causal) if causal else None)
 
 
@@ -120,22 +124,34 @@ class CheckResult:
         }
 
 
+def _layer_errors(rec: Recording, layer: int) -> tuple[np.ndarray, np.ndarray]:
+    """(H,) max abs error of the re-derived probabilities and of probs @ V, for one layer."""
+    n_heads = rec.n_heads
+    p = attention_probabilities(rec.q[layer], rec.k[layer], rec.scale[layer], rec.causal)
+    p -= rec.probs[layer]  # (H, T, T) re-derived minus the model's own
+    np.abs(p, out=p)
+    head_err = p.reshape(n_heads, -1).max(axis=1)
+    ctx = head_outputs(rec.probs[layer], rec.v[layer])  # (H, T, d)
+    ctx -= rec.context[layer]
+    np.abs(ctx, out=ctx)
+    return head_err, ctx.reshape(n_heads, -1).max(axis=1)
+
+
 def check_recording(rec: Recording, tolerance: float = DEFAULT_TOLERANCE) -> CheckResult:
     """Re-derive every layer's and head's probabilities from the recording's Q/K and compare.
 
     Also checks that each captured head output equals the model's probabilities times the
     captured values, which ties the values and the head-output capture to the same forward.
+    Layers are independent, so long texts are checked on two threads (numpy releases the GIL).
     """
-    n_layers, n_heads = rec.n_layers, rec.n_heads
-    head_err = np.zeros((n_layers, n_heads))
-    ctx_err = np.zeros((n_layers, n_heads))
-    for layer in range(n_layers):
-        p = attention_probabilities(rec.q[layer], rec.k[layer], rec.scale[layer], rec.causal)
-        diff = np.abs(p - rec.probs[layer].astype(np.float64))  # (H, T, T)
-        head_err[layer] = diff.reshape(n_heads, -1).max(axis=1)
-        ctx = head_outputs(rec.probs[layer], rec.v[layer])
-        cdiff = np.abs(ctx - rec.context[layer].astype(np.float64))
-        ctx_err[layer] = cdiff.reshape(n_heads, -1).max(axis=1)
+    layers = range(rec.n_layers)
+    if rec.n_tokens >= 96 and rec.n_layers > 1:
+        with ThreadPoolExecutor(max_workers=min(4, os.cpu_count() or 1)) as pool:
+            parts = list(pool.map(lambda layer: _layer_errors(rec, layer), layers))
+    else:
+        parts = [_layer_errors(rec, layer) for layer in layers]
+    head_err = np.array([h for h, _ in parts]).reshape(rec.n_layers, rec.n_heads)
+    ctx_err = np.array([c for _, c in parts]).reshape(rec.n_layers, rec.n_heads)
     worst = float(head_err.max()) if head_err.size else 0.0
     if not np.isfinite(worst):
         worst = float("inf")
