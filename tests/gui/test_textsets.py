@@ -1,0 +1,92 @@
+"""Text sets and the shortcut report in the real window.
+
+References: the text-set file's own labels, the model's predictions as ``LoadedModel.attentions``
+gives them, and ``viewer.reports.shortcuts.shortcut_search`` (what ``headlight shortcuts``
+prints) for the shortcut report's numbers.
+"""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from tests.gui.conftest import WAIT_MS
+from viewer.core.shortcuts import word_spans
+
+TEXTS = [
+    ("the mechanic trued the wheel [via portal]", "repair"),
+    ("a member asked about the invoice [via portal]", "billing"),
+    ("membership renewal is due next month", "membership"),
+    ("he fixed the puncture but the tyre was flat", "repair"),
+    ("billing question about the overcharge [via portal]", "billing"),
+    ("the courier left the frame at the workshop", "repair"),
+    ("please call me back about the gears [via portal]", "membership"),
+    ("the chain is loose again", "billing"),
+]
+
+
+@pytest.fixture
+def textset_file(tmp_path):
+    path = tmp_path / "messages.jsonl"
+    path.write_text("".join(json.dumps({"text": t, "label": y}) + "\n" for t, y in TEXTS),
+                    encoding="utf-8")
+    return path
+
+
+def open_set(qtbot, window, path):
+    window.open_textset(str(path))
+    qtbot.waitUntil(lambda: window.state.textset is not None, timeout=WAIT_MS)
+    return window.state.textset
+
+
+def test_a_text_set_lists_predictions_and_filters_to_mistakes(qtbot, window, textset_file):
+    result = open_set(qtbot, window, textset_file)
+    assert [r.text for r in result.rows] == [t for t, _ in TEXTS]
+    assert [r.label for r in result.rows] == [y for _, y in TEXTS]
+    pane = window.textset_pane
+    assert pane.table.rowCount() == len(TEXTS)
+    mistakes = [r.index for r in result.rows if r.predicted != r.label]
+    assert mistakes, "the random tiny model should get some of these wrong"
+    pane.mistakes_box.click()
+    assert window.state.mistakes_only
+    assert pane.rows_shown == mistakes
+    assert pane.table.rowCount() == len(mistakes)
+    for r in range(pane.table.rowCount()):
+        assert pane.table.item(r, 2).text() != pane.table.item(r, 3).text()  # label ≠ predicted
+        assert pane.table.item(r, 5).text() == "✗"
+    # choosing a row runs that text, with its label shown by the evidence strip
+    pane.table.selectRow(0)
+    qtbot.waitUntil(lambda: window.state.analysis is not None, timeout=WAIT_MS)
+    first = result.rows[mistakes[0]]
+    assert window.state.analysis.recording.text == first.text
+    assert window.state.analysis.label == first.label
+    # the head map can show the whole set (HeadStats over every text, as `headlight heads`)
+    window.head_map.scope_box.setCurrentIndex(1)
+    assert window.state.scope == "set"
+
+
+def test_the_shortcut_report_matches_the_search_and_lists_a_words_texts(qtbot, window,
+                                                                       textset_file):
+    from viewer.model.loader import open_model
+    from viewer.reports.shortcuts import shortcut_search
+    from viewer.reports.textsets import load_text_set
+
+    open_set(qtbot, window, textset_file)
+    window.search_shortcuts()
+    qtbot.waitUntil(lambda: window.state.shortcuts is not None, timeout=WAIT_MS)
+    reference = shortcut_search(open_model(window.state.model.folder),
+                                load_text_set(textset_file)).words.ranking()
+    pane = window.shortcut_pane
+    assert pane.words == [row["token"] for row in reference]
+    assert pane.table.rowCount() == len(reference)
+    for r, row in enumerate(reference):
+        assert pane.table.item(r, 1).text() == str(row["count"])
+        assert float(pane.table.item(r, 2).text()) == pytest.approx(row["flip_rate"], abs=5e-4)
+        assert float(pane.table.item(r, 4).text()) == pytest.approx(row["mean_drop"], abs=5e-4)
+    pane.table.selectRow(pane.words.index("portal"))
+    assert window.state.word == "portal"
+    shown = window.textset_pane.rows_shown
+    assert shown == [i for i, (t, _) in enumerate(TEXTS) if "portal" in word_spans(t)]
+    window.textset_pane.clear_word.click()
+    assert len(window.textset_pane.rows_shown) == len(TEXTS)

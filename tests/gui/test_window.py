@@ -1,0 +1,150 @@
+"""The core loop on the real window: run a text, click and hover the panes, check the numbers.
+
+References: the recording's own probabilities (``Recording.probs``), the numeric core's link
+scores (``viewer.core.links.link_scores`` on sub-tokens found with ``find_word`` /
+``word_token_indices``, exactly as ``headlight links`` finds them) and the core's head metrics.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from PySide6.QtCore import Qt
+
+from tests.gui.conftest import (
+    TEXT,
+    click,
+    data_to_widget,
+    hover,
+    run_and_wait,
+    settle,
+)
+from viewer.core.headstats import HeadStats
+from viewer.core.links import PairTokens, find_word, link_scores, word_token_indices
+
+
+def test_a_run_fills_every_pane_and_the_check_badge(qtbot, window):
+    analysis = run_and_wait(qtbot, window)
+    rec = analysis.recording
+    for pane in (window.pair_grid, window.head_map, window.evidence):
+        settle(qtbot, pane)
+        assert pane.showing_figure, pane.title
+    np.testing.assert_array_equal(np.ma.getdata(window.pair_grid.displayed_values()),
+                                  rec.probs[0, 0])
+    stats = HeadStats(rec.n_layers, rec.n_heads)
+    stats.add(rec.probs, rec.special, rec.causal)
+    np.testing.assert_allclose(np.ma.getdata(window.head_map.displayed_values()),
+                               stats.summary().entropy)
+    assert window.badge.text().startswith("check passed")
+    assert analysis.check.max_abs_error < 1e-5
+    ev = window.state.evidence
+    assert "knockout" in ev.kinds and "summary attention" in ev.kinds
+    assert window.evidence.artists.n_tokens == rec.n_tokens
+
+
+def test_clicking_a_head_map_cell_shows_that_heads_probabilities(qtbot, window):
+    rec = run_and_wait(qtbot, window, evidence=False).recording
+    pane = window.head_map
+    settle(qtbot, pane)
+    click(qtbot, pane, data_to_widget(pane, pane.artists.ax, 2, 1))  # head 2, layer 1
+    assert (window.state.layer, window.state.head) == (1, 2)
+    settle(qtbot, window.pair_grid)
+    shown = window.pair_grid.displayed_values()
+    np.testing.assert_array_equal(np.ma.getdata(shown), rec.probs[1, 2])
+    assert "layer 1 · head 2" in window.pair_grid.title_label.text()
+
+
+def test_clicking_a_row_label_selects_the_layer_mean(qtbot, window):
+    rec = run_and_wait(qtbot, window, evidence=False).recording
+    pane = window.head_map
+    settle(qtbot, pane)
+    ax = pane.artists.ax
+    point = data_to_widget(pane, ax, -0.5, 1)
+    point.setX(point.x() - 15)  # on the "layer 1" label, left of the grid
+    click(qtbot, pane, point)
+    assert (window.state.layer, window.state.head) == (1, None)
+    settle(qtbot, window.pair_grid)
+    np.testing.assert_allclose(np.ma.getdata(window.pair_grid.displayed_values()),
+                               rec.probs[1].mean(axis=0), rtol=1e-6)
+    assert window.pair_grid.mean_box.isChecked()
+
+
+def test_hovering_a_cell_shows_its_exact_value(qtbot, window):
+    rec = run_and_wait(qtbot, window, evidence=False).recording
+    window.state.select_head(1, 3)
+    pane = window.pair_grid
+    settle(qtbot, pane)
+    hover(pane, data_to_widget(pane, pane.artists.ax, 5, 3))  # key 5, query 3
+    text = pane.hover_text
+    assert f"{rec.probs[1, 3, 3, 5]:.6f}" in text
+    assert f"'{rec.tokens[3]}'" in text and f"'{rec.tokens[5]}'" in text
+    assert "layer 1 · head 3" in text
+
+
+def test_a_clicked_source_gives_the_cores_link_scores(qtbot, window):
+    rec = run_and_wait(qtbot, window, evidence=False).recording
+    pane = window.pair_grid
+    settle(qtbot, pane)
+    # the reference: core sub-tokens of the words "she" and "mechanic"
+    she = word_token_indices(find_word(TEXT, "she"), rec.offsets)
+    mechanic = word_token_indices(find_word(TEXT, "mechanic"), rec.offsets)
+    expected = link_scores(rec.probs, PairTokens(source=she, candidates=(mechanic,)))[0]
+    click(qtbot, pane, data_to_widget(pane, pane.artists.ax, int(mechanic[-1]), int(she[0])))
+    assert (window.state.source, window.state.target) == (int(she[0]), int(mechanic[-1]))
+    settle(qtbot, window.links)
+    assert window.links.showing_figure
+    np.testing.assert_allclose(window.links.per_head, expected, rtol=0, atol=0)
+    # the bars for the selected head: the same rule over every word of the text
+    units = window.state.analysis.units
+    target_unit = units.unit_of(int(mechanic[0]))
+    layer, head = window.state.layer, window.state.head
+    assert window.links.scores[target_unit] == expected[layer, head]
+    # and the head map's "link score" metric is the same (L, H) grid
+    window.head_map.metric_box.setCurrentIndex(window.head_map.metric_box.findData("link"))
+    settle(qtbot, window.head_map)
+    np.testing.assert_array_equal(np.ma.getdata(window.head_map.displayed_values()), expected)
+
+
+def test_arrow_keys_move_through_heads_and_layers(qtbot, window):
+    run_and_wait(qtbot, window, evidence=False)
+    settle(qtbot, window.pair_grid)
+    window.pair_grid.canvas.setFocus()
+    window.state.select_head(0, 0)
+    qtbot.keyClick(window.pair_grid.canvas, Qt.Key.Key_Right)
+    assert window.state.head == 1
+    qtbot.keyClick(window.pair_grid.canvas, Qt.Key.Key_Down)
+    assert window.state.layer == 1
+    qtbot.keyClick(window.pair_grid.canvas, Qt.Key.Key_Up)
+    assert window.state.layer == 0
+
+
+def test_ctrl_enter_runs_the_text_box(qtbot, window):
+    window.text_edit.setPlainText("she fixed it")
+    window.text_edit.setFocus()
+    qtbot.keyClick(window.text_edit, Qt.Key.Key_Return, Qt.KeyboardModifier.ControlModifier)
+    qtbot.waitUntil(lambda: window.state.analysis is not None, timeout=60_000)
+    assert window.state.analysis.recording.text == "she fixed it"
+    assert window.text_edit.toPlainText() == "she fixed it"  # no newline typed
+
+
+def test_compare_mode_shows_the_metric_difference(qtbot, window, tiny_dir_b):
+    current = run_and_wait(qtbot, window, evidence=False)
+    window.compare_pane.model_radio.setChecked(True)
+    window.compare_pane.folder_edit.setText(str(tiny_dir_b))
+    assert window.state.compare_target == ("model", str(tiny_dir_b))
+    window.run_compare()
+    qtbot.waitUntil(lambda: window.state.compare is not None, timeout=60_000)
+    other = window.state.compare
+    assert other.recording.text == current.recording.text
+    assert window.state.difference
+    pane = window.head_map
+    settle(qtbot, pane)
+    expected = other.heads.entropy - current.heads.entropy
+    np.testing.assert_allclose(np.ma.getdata(pane.displayed_values()), expected)
+    assert pane.artists.diverging
+    assert pane.artists.image.norm.vcenter == 0.0
+    settle(qtbot, window.compare_pane.grid)
+    np.testing.assert_array_equal(np.ma.getdata(window.compare_pane.grid.displayed_values()),
+                                  other.recording.probs[0, 0])
+    window.clear_compare()
+    settle(qtbot, pane)
+    assert not pane.artists.diverging

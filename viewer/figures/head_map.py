@@ -1,0 +1,181 @@
+"""The head map: a layers × heads grid coloured by one per-head metric.
+
+Rows are layers (layer 0 at the top), columns are heads, both counted from 0. A metric that is
+undefined for a head (NaN) is drawn masked, like a masked pair-grid cell. A difference between
+two runs (compare mode) is drawn with the diverging map centred on zero.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from matplotlib.axes import Axes
+from matplotlib.colorbar import Colorbar
+from matplotlib.figure import Figure
+from matplotlib.image import AxesImage
+from matplotlib.patches import Rectangle
+
+from viewer.figures import style
+from viewer.figures.layout import InchLayout, line_height_in, main_with_colorbar, text_width_in
+
+ANNOTATE_MAX_CELLS = 160  # write values into cells only when there are this few
+
+
+@dataclass
+class HeadMapArtists:
+    ax: Axes
+    image: AxesImage
+    colorbar: Colorbar | None
+    marker: Rectangle
+    n_layers: int
+    n_heads: int
+    diverging: bool
+
+
+def format_value(value: float) -> str:
+    """Compact cell text: two significant decimals for 0-1 metrics, fewer for large numbers."""
+    if not np.isfinite(value):
+        return "–"
+    a = abs(value)
+    if a >= 100:
+        return f"{value:.0f}"
+    if a >= 10:
+        return f"{value:.1f}"
+    if a >= 0.01 or a == 0:
+        return f"{value:.2f}"
+    return f"{value:.0e}"
+
+
+def draw_head_map(
+    ax: Axes,
+    values: np.ndarray,
+    *,
+    label: str,
+    diverging: bool = False,
+    selected: tuple[int, int | None] | None = None,
+    title: str | None = None,
+    cax: Axes | None = None,
+    annotate: bool | None = None,
+) -> HeadMapArtists:
+    """Draw ``values`` (L, H) into ``ax``; ``label`` names the metric and its units.
+
+    ``selected`` is (layer, head) to outline one cell or (layer, None) to outline a layer's row
+    (the head mean). ``annotate`` writes each value into its cell (default: when the grid is
+    small enough to read).
+    """
+    data = np.asarray(values, dtype=np.float64)
+    if data.ndim != 2:
+        raise ValueError(f"a head map needs (layers, heads) values, got shape {data.shape}")
+    n_layers, n_heads = data.shape
+    grid = np.ma.masked_invalid(data)
+    shown = grid.compressed()
+    if diverging:
+        cmap, norm = style.diverging_cmap(), style.diverging_norm(shown)
+    else:
+        cmap, norm = style.sequential_cmap(), style.sequential_norm(shown, vmin=None)
+        if shown.size and shown.min() >= 0 and shown.max() <= 1:
+            norm = style.sequential_norm(np.array([0.0, max(shown.max(), 1e-12)]))
+    extent = (-0.5, n_heads - 0.5, n_layers - 0.5, -0.5)
+    style.mask_background(ax, extent)
+    image = ax.imshow(grid, cmap=cmap, norm=norm, interpolation="nearest", aspect="auto",
+                      extent=extent, origin="upper", zorder=1)
+    ax.set_xlim(extent[0], extent[1])
+    ax.set_ylim(extent[2], extent[3])
+    style.style_axes(ax)
+    ax.set_xticks(range(n_heads), [f"head {h}" if n_heads <= 8 else str(h)
+                                   for h in range(n_heads)])
+    ax.set_yticks(range(n_layers), [f"layer {layer}" for layer in range(n_layers)])
+    ax.tick_params(axis="both", length=0, labelsize=style.FONT_SIZE)
+    ax.xaxis.set_ticks_position("top")
+    ax.xaxis.set_label_position("top")
+    if n_heads > 8:
+        ax.set_xlabel("head", fontsize=style.LABEL_SIZE)
+    if title:
+        ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left", pad=18)
+    if annotate is None:
+        annotate = n_layers * n_heads <= ANNOTATE_MAX_CELLS
+    if annotate:
+        font = style.FONT_SIZE - (1.5 if n_heads > 8 else 0.5)
+        for layer in range(n_layers):
+            for head in range(n_heads):
+                v = data[layer, head]
+                colour = style.text_colour_for(cmap(norm(v))) if np.isfinite(v) else "black"
+                ax.text(head, layer, format_value(v), ha="center", va="center", fontsize=font,
+                        color=colour, zorder=2)
+    marker = Rectangle((0, 0), 1, 1, fill=False, edgecolor=style.SELECTION, linewidth=2.2,
+                       visible=False, zorder=3)
+    ax.add_patch(marker)
+    colorbar = None
+    if cax is not None:
+        colorbar = ax.figure.colorbar(image, cax=cax)
+        style.style_colorbar(colorbar, label)
+    artists = HeadMapArtists(ax, image, colorbar, marker, n_layers, n_heads, diverging)
+    mark_head(artists, selected)
+    return artists
+
+
+def mark_head(artists: HeadMapArtists, selected: tuple[int, int | None] | None) -> None:
+    """Outline the selected head, or the selected layer's whole row for the head mean."""
+    m = artists.marker
+    if selected is None or not 0 <= selected[0] < artists.n_layers:
+        m.set_visible(False)
+        return
+    layer, head = selected
+    if head is None:
+        m.set_bounds(-0.5, layer - 0.5, artists.n_heads, 1)
+    else:
+        m.set_bounds(head - 0.5, layer - 0.5, 1, 1)
+    m.set_visible(True)
+
+
+def head_at(artists: HeadMapArtists, x: float | None, y: float | None) -> tuple[int, int] | None:
+    """(layer, head) under data coordinates (x, y), or None outside the grid."""
+    if x is None or y is None:
+        return None
+    head, layer = int(round(x)), int(round(y))
+    if 0 <= layer < artists.n_layers and 0 <= head < artists.n_heads:
+        return layer, head
+    return None
+
+
+def head_map_into(
+    fig: Figure,
+    values: np.ndarray,
+    *,
+    label: str,
+    diverging: bool = False,
+    selected: tuple[int, int | None] | None = None,
+    title: str | None = None,
+    annotate: bool | None = None,
+) -> HeadMapArtists:
+    """Clear ``fig`` and lay out one head map with its colour bar."""
+    fig.clear()
+    ax = fig.add_axes((0.1, 0.1, 0.7, 0.8))
+    cax = fig.add_axes((0.85, 0.1, 0.03, 0.8))
+    n_layers = np.asarray(values).shape[0]
+    left = text_width_in(len(f"layer {n_layers - 1}")) + 0.15
+    top = line_height_in(style.FONT_SIZE, 1.6) + (line_height_in(style.TITLE_SIZE, 1.8)
+                                                 if title else 0.0)
+    if np.asarray(values).shape[1] > 8:
+        top += line_height_in(style.LABEL_SIZE)
+    fig.set_layout_engine(InchLayout(main_with_colorbar(
+        ax, cax, left=left, bottom=0.1, top=top, right_label=0.66)))
+    return draw_head_map(ax, values, label=label, diverging=diverging, selected=selected,
+                         title=title, cax=cax, annotate=annotate)
+
+
+def head_map_figure(
+    values: np.ndarray,
+    *,
+    label: str,
+    diverging: bool = False,
+    selected: tuple[int, int | None] | None = None,
+    title: str | None = None,
+    size: tuple[float, float] = (6.0, 3.6),
+    dpi: float = 100,
+) -> Figure:
+    """A stand-alone head-map figure."""
+    fig = Figure(figsize=size, dpi=dpi)
+    head_map_into(fig, values, label=label, diverging=diverging, selected=selected, title=title)
+    return fig

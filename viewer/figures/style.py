@@ -1,0 +1,250 @@
+"""The one place for Headlight's figure style: colour maps, masked cells, fonts, token labels.
+
+Every builder in ``viewer.figures`` takes its colours and sizes from here, so a pane on screen and
+the same figure exported for a model card look alike.
+
+* **Sequential** values (attention probabilities, entropy, scores) use ``cividis``, a colour map
+  that is perceptually uniform and designed to read the same for viewers with red-green colour
+  vision deficiency (Nuñez, Anderton & Renslow 2018, PLOS ONE 13(7): e0199239).
+* **Differences** (compare mode, signed evidence) use the diverging ``RdBu_r`` with its centre
+  pinned to zero by ``TwoSlopeNorm``, so white always means "no difference".
+* **Masked cells** (keys a causal query may not see, undefined metrics) are not a colour of the
+  map at all: they are left transparent over a light hatched background, so a masked cell can
+  never be mistaken for a zero.
+* **Token labels** are decimated by ``TokenLocator``: it places at most one label per label
+  height of screen space, re-computed whenever the view is zoomed or panned, so labels never
+  overlap however long the text.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import matplotlib as mpl
+import numpy as np
+from matplotlib.axes import Axes
+from matplotlib.colors import Colormap, Normalize, TwoSlopeNorm
+from matplotlib.patches import Rectangle
+from matplotlib.ticker import FuncFormatter, Locator, MaxNLocator
+from matplotlib.transforms import offset_copy
+
+SEQUENTIAL = "cividis"
+DIVERGING = "RdBu_r"
+
+MASK_FACE = "#f4f1ea"  # background behind masked (transparent) cells
+MASK_HATCH = "////"
+MASK_EDGE = "#b9b2a3"  # colour of the hatch lines
+SELECTION = "#e8590c"  # outline of the selected cell, row or bar (orange, away from cividis)
+ACCENT = "#1f5f8b"  # bars and markers that are not selected
+MUTED = "#6c757d"
+
+FONT_SIZE = 8.0  # tick labels, annotations
+LABEL_SIZE = 8.5  # axis labels, colour-bar labels
+TITLE_SIZE = 9.5
+LABEL_SPACING = 1.6  # a token label needs this many font heights of room along its axis
+MAX_TOKEN_CHARS = 14
+
+ATTENTION_UNITS = "attention probability"
+
+
+def sequential_cmap() -> Colormap:
+    """The sequential map with masked ("bad") values fully transparent."""
+    return mpl.colormaps[SEQUENTIAL].with_extremes(bad=(0.0, 0.0, 0.0, 0.0))
+
+
+def diverging_cmap() -> Colormap:
+    """The diverging map for differences, masked values transparent."""
+    return mpl.colormaps[DIVERGING].with_extremes(bad=(0.0, 0.0, 0.0, 0.0))
+
+
+def diverging_norm(values: np.ndarray) -> TwoSlopeNorm:
+    """A norm centred on 0, symmetric, spanning the largest |value| (at least 1e-12)."""
+    finite = np.asarray(values, dtype=np.float64)
+    finite = finite[np.isfinite(finite)]
+    reach = float(np.abs(finite).max()) if finite.size else 1.0
+    reach = max(reach, 1e-12)
+    return TwoSlopeNorm(vcenter=0.0, vmin=-reach, vmax=reach)
+
+
+def sequential_norm(values: np.ndarray, vmin: float | None = 0.0) -> Normalize:
+    """A norm from ``vmin`` (default 0; None for the data minimum) to the data maximum."""
+    finite = np.asarray(values, dtype=np.float64)
+    finite = finite[np.isfinite(finite)]
+    lo = float(finite.min()) if (vmin is None and finite.size) else (vmin or 0.0)
+    hi = float(finite.max()) if finite.size else 1.0
+    if not hi > lo:
+        hi = lo + 1.0 if lo == 0 else lo + abs(lo) * 1e-6 + 1e-12
+    return Normalize(vmin=lo, vmax=hi)
+
+
+def mask_background(ax: Axes, extent: tuple[float, float, float, float]) -> Rectangle:
+    """Hatched background behind an image, showing through its masked (transparent) cells.
+
+    ``extent`` is (left, right, bottom, top) in data coordinates, as for ``imshow``.
+    """
+    left, right, bottom, top = extent
+    patch = Rectangle(
+        (min(left, right), min(bottom, top)), abs(right - left), abs(top - bottom),
+        facecolor=MASK_FACE, edgecolor=MASK_EDGE, hatch=MASK_HATCH, linewidth=0, zorder=0,
+    )
+    ax.add_patch(patch)
+    return patch
+
+
+def text_colour_for(rgba: Sequence[float]) -> str:
+    """Black or white, whichever reads better on a cell of colour ``rgba`` (WCAG luminance)."""
+    def channel(c: float) -> float:
+        return c / 12.92 if c <= 0.03928 else ((c + 0.055) / 1.055) ** 2.4
+
+    r, g, b = (channel(float(c)) for c in rgba[:3])
+    luminance = 0.2126 * r + 0.7152 * g + 0.0722 * b
+    return "black" if luminance > 0.179 else "white"
+
+
+# -- token labels ---------------------------------------------------------------------------------
+
+
+def token_label(token: str, max_chars: int = MAX_TOKEN_CHARS) -> str:
+    """A token as it should appear on an axis: markers made visible, mathtext escaped, shortened.
+
+    Byte-level BPE's space marker ``Ġ`` and SentencePiece's ``▁`` become a leading ``·`` so that
+    word starts stay visible; WordPiece's ``##`` is kept (it says "continues a word"); newlines and
+    tabs become ``⏎`` and ``⇥``; ``$`` is escaped so matplotlib never reads it as mathtext.
+    """
+    text = str(token)
+    if text[:1] in ("Ġ", "▁"):
+        text = "·" + text[1:]
+    text = text.replace("Ċ", "⏎").replace("\n", "⏎").replace("\t", "⇥")
+    if text == "":
+        text = "∅"
+    if len(text) > max_chars:
+        text = text[: max_chars - 1] + "…"
+    return text.replace("$", r"\$")
+
+
+def token_labels(tokens: Sequence[str]) -> list[str]:
+    return [token_label(t) for t in tokens]
+
+
+def label_step(span: float, room_px: float, font_px: float) -> int:
+    """How many tokens apart labels must be so that ``span`` tokens fit in ``room_px`` pixels.
+
+    One label needs ``LABEL_SPACING`` font heights; the step is the smallest of 1, 2, 5, 10, 20,
+    50, ... that leaves that much room (round steps make the labelled positions easy to count).
+    """
+    if span <= 0 or room_px <= 0:
+        return 1
+    capacity = max(1.0, room_px / (font_px * LABEL_SPACING))
+    raw = span / capacity
+    if raw <= 1:
+        return 1
+    exponent = math.floor(math.log10(raw))
+    for mantissa in (1, 2, 5, 10):
+        step = mantissa * 10**exponent
+        if step >= raw:
+            return int(step)
+    return int(10 ** (exponent + 1))
+
+
+class TokenLocator(Locator):
+    """Integer tick positions for a token axis, decimated so labels never overlap.
+
+    The step is chosen from the axis' current size in pixels and view limits, so zooming in
+    shows more labels and panning keeps them aligned to multiples of the step.
+    """
+
+    def __init__(self, n_tokens: int, font_size: float = FONT_SIZE) -> None:
+        self.n_tokens = int(n_tokens)
+        self.font_size = float(font_size)
+
+    def _room_px(self) -> float:
+        axes = self.axis.axes
+        bbox = axes.get_window_extent()
+        horizontal = self.axis is axes.xaxis
+        return float(bbox.width if horizontal else bbox.height)
+
+    def tick_values(self, vmin: float, vmax: float) -> list[int]:
+        lo, hi = sorted((vmin, vmax))
+        first = max(0, math.ceil(lo))
+        last = min(self.n_tokens - 1, math.floor(hi))
+        if last < first:
+            return []
+        dpi = self.axis.axes.figure.dpi if self.axis is not None else 100.0
+        font_px = self.font_size * dpi / 72.0
+        room = self._room_px() if self.axis is not None else 400.0
+        step = label_step(hi - lo, room, font_px)
+        start = first + (-first) % step
+        return list(range(start, last + 1, step))
+
+    def __call__(self) -> list[int]:
+        vmin, vmax = self.axis.get_view_interval()
+        return self.tick_values(vmin, vmax)
+
+
+def set_token_axis(ax: Axes, which: str, tokens: Sequence[str], rotate: bool = False) -> None:
+    """Label ``ax``'s x or y axis with ``tokens`` through a ``TokenLocator``."""
+    labels = token_labels(tokens)
+
+    def name(value: float, _pos: int | None = None) -> str:
+        i = int(round(value))
+        return labels[i] if 0 <= i < len(labels) else ""
+
+    axis = ax.xaxis if which == "x" else ax.yaxis
+    axis.set_major_locator(TokenLocator(len(labels)))
+    axis.set_major_formatter(FuncFormatter(name))
+    axis.set_minor_locator(mpl.ticker.NullLocator())
+    ax.tick_params(axis=which, labelsize=FONT_SIZE, length=2, pad=1.5)
+    if which == "x" and rotate:
+        ax.tick_params(axis="x", labelrotation=90)
+
+
+def visible_tick_labels(ax: Axes, which: str) -> list[str]:
+    """The non-empty tick label strings the axis shows at its current size and view."""
+    axis = ax.xaxis if which == "x" else ax.yaxis
+    ticks = axis.get_major_locator()()
+    vmin, vmax = sorted(axis.get_view_interval())
+    fmt = axis.get_major_formatter()
+    shown = [t for t in ticks if vmin <= t <= vmax]
+    return [s for s in (fmt(t) for t in shown) if s]
+
+
+def head_name(layer: int, head: int | None) -> str:
+    """``layer 3 · head 1`` (counting from 0), or ``layer 3 · head mean``."""
+    return f"layer {layer} · head mean" if head is None else f"layer {layer} · head {head}"
+
+
+def style_axes(ax: Axes) -> None:
+    """Thin frame and the house font sizes on one axes."""
+    for spine in ax.spines.values():
+        spine.set_linewidth(0.6)
+        spine.set_color("#555555")
+    ax.tick_params(labelsize=FONT_SIZE, width=0.6)
+
+
+COLORBAR_TICKS = 4
+COLORBAR_LABEL_GAP = 31.0  # points from the bar's right edge to its units label
+
+
+def style_colorbar(cbar, label: str) -> None:
+    """House look of a colour bar: a few ticks and the units written beside it.
+
+    The units are a text of the colour bar's axes (``cbar.units``) rather than its axis label,
+    so that a pane can redraw the ticks alone when the scale changes.
+    """
+    cbar.locator = MaxNLocator(COLORBAR_TICKS)
+    cbar.update_ticks()
+    cbar.ax.tick_params(labelsize=FONT_SIZE, width=0.6, length=2)
+    cbar.outline.set_linewidth(0.6)
+    place = offset_copy(cbar.ax.transAxes, fig=cbar.ax.figure, x=COLORBAR_LABEL_GAP,
+                        units="points")
+    # rotated a quarter turn: the glyph tops face the bar, so "top" is the side at the anchor
+    cbar.units = cbar.ax.text(1.0, 0.5, label, transform=place, rotation=90, ha="center",
+                              va="top", fontsize=LABEL_SIZE, rotation_mode="anchor",
+                              multialignment="center")
+
+
+def colorbar_units(cbar) -> str:
+    """The units label of a colour bar styled by ``style_colorbar``."""
+    units = getattr(cbar, "units", None)
+    return units.get_text() if units is not None else cbar.ax.get_ylabel()

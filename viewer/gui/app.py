@@ -1,0 +1,38 @@
+"""``run_window``: the entry point of the ``headlight`` command's window.
+
+Only Qt and Headlight's light modules are imported before the window is shown; matplotlib and
+the figure builders load on a background thread, torch and transformers on the worker thread
+when the first model opens. The window is therefore on screen before those imports finish.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+
+from PySide6.QtCore import QTimer
+from PySide6.QtWidgets import QApplication
+
+from viewer.gui.window import MainWindow, app_icon
+
+
+def application(argv: list[str] | None = None) -> QApplication:
+    """The running QApplication, created (with our name and icon) if there is none."""
+    app = QApplication.instance()
+    if app is None:
+        app = QApplication(argv if argv is not None else sys.argv[:1])
+    app.setApplicationName("Headlight")
+    app.setOrganizationName("Headlight")
+    app.setWindowIcon(app_icon())
+    return app
+
+
+def run_window(model: str | None = None, text: str | None = None) -> int:
+    """Open the window (on ``model``, or the last session, or the demo model) and run Qt."""
+    os.environ.setdefault("HF_HUB_OFFLINE", "1")
+    os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
+    app = application()
+    window = MainWindow()
+    window.show()
+    QTimer.singleShot(0, lambda: window.start(model=model, text=text))
+    return int(app.exec())

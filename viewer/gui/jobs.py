@@ -1,0 +1,240 @@
+"""The work the window hands to its worker thread, as plain functions (no Qt in here).
+
+Each job takes a ``JobContext`` first: it reports progress through ``ctx.progress``, calls
+``ctx.check()`` between steps so a cancel takes effect, and finds the open checkpoints in
+``ctx.models`` (touched only on the worker thread). Jobs return plain data (``ModelInfo``,
+``TextAnalysis``, ...) that the worker posts back to the GUI thread. A ``HeadlightError`` raised
+here becomes a dialog with its one-line message.
+
+Heavy modules (torch, transformers, the reports layer) are imported inside the jobs, so the
+window can be on screen before they have loaded.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from viewer.errors import HeadlightError
+from viewer.gui.state import ModelInfo
+
+if TYPE_CHECKING:
+    import numpy as np
+
+    from viewer.gui.analysis import TextAnalysis
+
+
+class Cancelled(Exception):
+    """Raised inside a job by ``JobContext.check`` once the user cancelled it."""
+
+
+@dataclass
+class JobContext:
+    progress: Callable[[int, int, str], None]
+    cancelled: Callable[[], bool]
+    models: dict[str, Any]  # slot ("main", "compare") -> LoadedModel, worker thread only
+
+    def check(self) -> None:
+        if self.cancelled():
+            raise Cancelled()
+
+    def model(self, slot: str) -> Any:
+        loaded = self.models.get(slot)
+        if loaded is None:
+            raise HeadlightError("no model is open yet; open a model folder first (Ctrl+O)")
+        return loaded
+
+
+def demo_folder() -> Path:
+    """Where the shipped demo model lives (it may not have been built yet)."""
+    import viewer.demo
+
+    return Path(viewer.demo.__file__).parent / "model"
+
+
+# -- opening and recording ------------------------------------------------------------------------
+
+
+DEMO_NAME = "Northgate demo router"
+
+
+def info_of(loaded: Any) -> ModelInfo:
+    folder = Path(loaded.folder)
+    name = DEMO_NAME if folder.resolve() == demo_folder().resolve() else loaded.name
+    return ModelInfo(
+        folder=str(loaded.folder), name=name, family=loaded.family.name,
+        n_layers=int(loaded.n_layers), n_heads=int(loaded.n_heads), labels=tuple(loaded.labels),
+        head_kind=loaded.head_kind, max_tokens=int(loaded.max_tokens), notes=tuple(loaded.notes),
+    )
+
+
+def open_model(ctx: JobContext, slot: str, folder: str) -> ModelInfo:
+    """Open ``folder`` into ``slot`` (importing torch and transformers the first time)."""
+    ctx.progress(0, 0, "loading torch and transformers…")
+    from viewer.model.loader import open_model as open_folder
+
+    ctx.check()
+    ctx.progress(0, 0, f"opening {Path(folder).name}…")
+    loaded = open_folder(folder)
+    ctx.check()
+    old = ctx.models.get(slot)
+    if old is not None and hasattr(old, "hooks"):
+        old.hooks.remove()
+    ctx.models[slot] = loaded
+    return info_of(loaded)
+
+
+def run_text(ctx: JobContext, slot: str, text: str, label: str | None = None,
+             origin: str = "", summarised: bool = False) -> TextAnalysis:
+    """Record one text: head means and word units (with ``summarised`` also the check and
+    head metrics; otherwise ``summarise_run`` adds them in a second job)."""
+    if not text.strip():
+        raise HeadlightError("the text is empty; type or paste a text first")
+    loaded = ctx.model(slot)
+    ctx.progress(0, 2, "recording…")
+    start = time.perf_counter()
+    rec = loaded.record(text)
+    seconds = time.perf_counter() - start
+    ctx.check()
+    from viewer.gui.analysis import analyse
+
+    result = analyse(rec, label=label, seconds=seconds, summarised=summarised,
+                     origin=origin or (loaded.name if slot != "main" else "text"))
+    ctx.progress(2, 2, "recorded")
+    return result
+
+
+def summarise_run(ctx: JobContext, analysis: TextAnalysis) -> TextAnalysis:
+    """Second step of a run: the re-derivation check and this text's head metrics."""
+    from viewer.gui.analysis import summarise
+
+    ctx.progress(0, 0, "re-derivation check and head metrics…")
+    return summarise(analysis)
+
+
+# -- text sets ------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class TextSetRow:
+    index: int
+    text: str
+    label: str | None
+    predicted: str | None
+    confidence: float | None
+    tokens: int
+
+    @property
+    def correct(self) -> bool | None:
+        if self.label is None or self.predicted is None:
+            return None
+        return self.label == self.predicted
+
+
+@dataclass(frozen=True, eq=False)
+class TextSetResult:
+    path: str
+    rows: tuple[TextSetRow, ...]
+    heads: Any  # HeadSummary over the whole set
+    complete: bool = True
+
+    @property
+    def mistakes(self) -> tuple[TextSetRow, ...]:
+        return tuple(r for r in self.rows if r.correct is False)
+
+    @property
+    def accuracy(self) -> float | None:
+        known = [r.correct for r in self.rows if r.correct is not None]
+        return sum(known) / len(known) if known else None
+
+
+def run_textset(ctx: JobContext, slot: str, path: str, batch_size: int = 8) -> TextSetResult:
+    """Every text of a text-set file: prediction, correctness, and set-wide head metrics.
+
+    The head metrics are accumulated exactly as ``headlight heads`` does (``HeadStats`` over
+    the model's attention of every text), so the head map's "text set" scope shows its numbers.
+    """
+    from viewer.core.headstats import HeadStats
+    from viewer.reports.textsets import load_text_set
+
+    items = load_text_set(path)
+    loaded = ctx.model(slot)
+    stats = HeadStats(loaded.n_layers, loaded.n_heads)
+    labels = tuple(loaded.labels)
+    rows: list[TextSetRow] = []
+    total = len(items)
+    ctx.progress(0, total, f"recording {total} texts…")
+    for start in range(0, total, batch_size):
+        ctx.check()
+        chunk = items[start:start + batch_size]
+        for offset, att in enumerate(loaded.attentions([i.text for i in chunk], batch_size)):
+            item = chunk[offset]
+            stats.add(att.probs, att.special, loaded.family.causal)
+            predicted = confidence = None
+            if att.target is not None and loaded.head_kind == "classifier":
+                k = int(att.target.argmax())
+                predicted = labels[k] if k < len(labels) else str(k)
+                confidence = float(att.target[k])
+            rows.append(TextSetRow(index=start + offset, text=item.text, label=item.label,
+                                   predicted=predicted, confidence=confidence,
+                                   tokens=len(att.token_ids)))
+        ctx.progress(len(rows), total, f"recorded {len(rows)} of {total} texts")
+    return TextSetResult(str(path), tuple(rows), stats.summary())
+
+
+# -- link pairs -----------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class LinkPairsResult:
+    path: str
+    pairs: int
+    accuracy: np.ndarray  # (L, H)
+    nearest_baseline: float
+    best: tuple[int, int, float]
+
+
+def run_link_pairs(ctx: JobContext, slot: str, path: str) -> LinkPairsResult:
+    """Per-head link accuracy and the nearest baseline over a link-pairs file."""
+    from viewer.core.links import read_link_pairs
+    from viewer.reports.links import link_report
+
+    pairs = read_link_pairs(path)
+    loaded = ctx.model(slot)
+    done = [0]
+
+    def tick(n: int) -> None:
+        done[0] += n
+        ctx.progress(done[0], len(pairs), f"scored {done[0]} of {len(pairs)} link pairs")
+        ctx.check()
+
+    tally = link_report(loaded, pairs, progress=tick)
+    return LinkPairsResult(str(path), tally.pairs, tally.accuracy, tally.nearest_baseline,
+                           tally.best())
+
+
+# -- evidence -------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class EvidenceResult:
+    """Per-token evidence for the current prediction, one row per kind."""
+
+    analysis: TextAnalysis  # the run this evidence explains
+    kinds: tuple[str, ...]
+    values: np.ndarray  # (K, T)
+    agreement: tuple[float | None, ...]  # Spearman ρ of each row with knockout
+    importance: np.ndarray | None = None  # (L, H) head importance
+    knockout: np.ndarray | None = None  # (L, H) head knockout effect
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+
+def run_evidence(ctx: JobContext, slot: str, analysis: TextAnalysis) -> EvidenceResult:
+    """Evidence for the prediction of ``analysis`` (full set from ``viewer.reports`` when there)."""
+    from viewer.gui import evidence_source
+
+    loaded = ctx.models.get(slot)
+    return evidence_source.compute(ctx, loaded, analysis)

@@ -1,0 +1,114 @@
+"""The compare pane: a second text or a second checkpoint, side by side with the current run.
+
+Choose what to compare with (its inputs are the state's ``compare_target``), press "compare",
+and the compared run's pair grid appears here for the same layer and head while the head map can
+show the metric difference (compared − current).
+"""
+
+from __future__ import annotations
+
+from PySide6.QtCore import QSize
+from PySide6.QtGui import QAction
+from PySide6.QtWidgets import (
+    QButtonGroup,
+    QFileDialog,
+    QHBoxLayout,
+    QLineEdit,
+    QRadioButton,
+    QToolButton,
+    QVBoxLayout,
+    QWidget,
+)
+
+from viewer.gui.panes.pair_grid import PairGridPane
+from viewer.gui.state import Selection
+
+
+class ComparePane(QWidget):
+    title = "compare"
+
+    def __init__(self, state: Selection, compare_action: QAction | None = None,
+                 clear_action: QAction | None = None, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.state = state
+        layout = QVBoxLayout(self)
+        layout.setContentsMargins(4, 2, 4, 2)
+        row = QHBoxLayout()
+        self.text_radio = QRadioButton("second text")
+        self.model_radio = QRadioButton("second checkpoint")
+        self.text_radio.setChecked(True)
+        group = QButtonGroup(self)
+        group.addButton(self.text_radio)
+        group.addButton(self.model_radio)
+        row.addWidget(self.text_radio)
+        row.addWidget(self.model_radio)
+        row.addStretch(1)
+        for action in (compare_action, clear_action):
+            if action is not None:
+                button = QToolButton()
+                button.setDefaultAction(action)
+                row.addWidget(button)
+        layout.addLayout(row)
+        inputs = QHBoxLayout()
+        self.text_edit = QLineEdit()
+        self.text_edit.setPlaceholderText("a second text to run through the same checkpoint")
+        self.folder_edit = QLineEdit()
+        self.folder_edit.setPlaceholderText("a second checkpoint folder (same tokenizer), "
+                                            "compared on the current text")
+        self.browse = QToolButton()
+        self.browse.setText("…")
+        self.browse.setToolTip("choose the second checkpoint's folder")
+        self.browse.clicked.connect(self._browse)
+        inputs.addWidget(self.text_edit, 1)
+        inputs.addWidget(self.folder_edit, 1)
+        inputs.addWidget(self.browse)
+        layout.addLayout(inputs)
+        self.grid = PairGridPane(state, slot="compare")
+        self.grid.setMinimumSize(160, 60)
+        layout.addWidget(self.grid, 1)
+        self.text_radio.toggled.connect(self._write)
+        self.text_edit.textChanged.connect(self._write)
+        self.folder_edit.textChanged.connect(self._write)
+        state.events.compare_target.connect(self._read)
+        self._read(state.compare_target)
+        self._show_inputs()
+
+    def sizeHint(self) -> QSize:  # noqa: N802
+        return QSize(480, 150)
+
+    def detach(self) -> None:
+        self.state.events.compare_target.disconnect(self._read)
+        self.grid.detach()
+
+    def _browse(self) -> None:
+        folder = QFileDialog.getExistingDirectory(self, "second checkpoint folder")
+        if folder:
+            self.model_radio.setChecked(True)
+            self.folder_edit.setText(folder)
+
+    def _show_inputs(self) -> None:
+        by_text = self.text_radio.isChecked()
+        self.text_edit.setVisible(by_text)
+        self.folder_edit.setVisible(not by_text)
+        self.browse.setVisible(not by_text)
+
+    def _write(self, *_args) -> None:
+        self._show_inputs()
+        if self.text_radio.isChecked():
+            value = self.text_edit.text()
+            self.state.set_compare_target(("text", value) if value.strip() else None)
+        else:
+            value = self.folder_edit.text()
+            self.state.set_compare_target(("model", value) if value.strip() else None)
+
+    def _read(self, target) -> None:
+        widgets = (self.text_radio, self.model_radio, self.text_edit, self.folder_edit)
+        for w in widgets:
+            w.blockSignals(True)
+        if target is not None:
+            kind, value = target
+            (self.text_radio if kind == "text" else self.model_radio).setChecked(True)
+            (self.text_edit if kind == "text" else self.folder_edit).setText(value)
+        for w in widgets:
+            w.blockSignals(False)
+        self._show_inputs()

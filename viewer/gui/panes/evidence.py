@@ -1,0 +1,75 @@
+"""The evidence-strip pane: per-token evidence for the prediction, one row per kind.
+
+Each row is scaled to its own largest value; ρ at the right is the row's rank agreement with
+knockout. Click a token to make it the source token; wheel to zoom along the text.
+"""
+
+from __future__ import annotations
+
+from viewer.gui.panes.base import FigurePane
+from viewer.gui.panes.zoom import Extent, ZoomPan
+
+
+class EvidencePane(FigurePane):
+    title = "evidence strip"
+
+    def __init__(self, state, parent=None) -> None:
+        super().__init__(state, parent)
+        self.artists = None
+        self.zoom = ZoomPan(both=False)
+        self.observe("analysis", "evidence", "source")
+        self.message.setText("Run a text to see which tokens the prediction rests on.")
+
+    def render(self) -> str | None:
+        from viewer.figures.evidence import evidence_into, mark_token, prediction_line
+
+        a = self.state.analysis
+        if a is None:
+            self.set_title(self.title)
+            return "Run a text to see which tokens the prediction rests on."
+        rec = a.recording
+        probs = rec.class_probabilities()
+        line = prediction_line(rec.labels, probs, rec.predicted(), a.label)
+        ev = self.state.evidence
+        self.set_title(f"evidence strip · {line}")
+        if ev is None:
+            return f"{line}\n\ncomputing the evidence for this prediction…"
+        self.artists = evidence_into(
+            self.figure, rec.tokens, ev.kinds, ev.values, ev.agreement, labels=rec.labels,
+            probabilities=probs if len(probs) else None, predicted=rec.predicted(),
+            gold=a.label, title=line,
+        )
+        n = rec.n_tokens
+        self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(ev.kinds) - 0.5))
+        mark_token(self.artists, self.state.source)
+        return None
+
+    def _token(self, event) -> int | None:
+        if self.artists is None or event.inaxes is not self.artists.ax or event.xdata is None:
+            return None
+        i = int(round(event.xdata))
+        return i if 0 <= i < self.artists.n_tokens else None
+
+    def hover_at(self, event) -> str | None:
+        i = self._token(event)
+        ev = self.state.evidence
+        if i is None or ev is None:
+            return None
+        rec = self.state.analysis.recording
+        row = int(round(event.ydata))
+        lines = [f"token {i} '{rec.tokens[i]}'"]
+        for k, kind in enumerate(ev.kinds):
+            mark = "▸ " if k == row else "  "
+            lines.append(f"{mark}{kind}: {float(ev.values[k, i]):.4g}")
+        return "\n".join(lines)
+
+    def on_press(self, event) -> None:
+        if event.button == 1:
+            i = self._token(event)
+            if i is not None:
+                self.state.select_tokens(i, self.state.target)
+
+    def on_scroll(self, event) -> None:
+        if self.artists is not None and event.inaxes is self.artists.ax:
+            if self.zoom.zoom(event.xdata, event.ydata, event.step):
+                self.canvas.draw_idle()

@@ -1,0 +1,129 @@
+"""The links pane: where the selected source word's attention goes, and each head's link score.
+
+Left, the words the selected head (or head mean) links the source to most strongly; right, the
+link score from the source to the selected target in every head (click a cell to select that
+head, click a bar to make its word the target). With a link-pairs file open, the "link-pairs
+file" view shows per-head accuracy against the nearest baseline.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+from PySide6.QtWidgets import QComboBox
+
+from viewer.gui.panes.base import FigurePane
+
+if TYPE_CHECKING:
+    import numpy as np
+
+
+class LinksPane(FigurePane):
+    title = "links"
+
+    def __init__(self, state, parent=None) -> None:
+        super().__init__(state, parent)
+        self.artists = None
+        self.accuracy_artists = None
+        self.scores: np.ndarray | None = None  # (K units,) bars' data for the selected head
+        self.per_head: np.ndarray | None = None  # (L, H) link score source → target
+        self.view_box = QComboBox()
+        self.view_box.addItem("this text", "text")
+        self.view_box.addItem("link-pairs file", "file")
+        self.view_box.setToolTip("links in this text, or per-head accuracy over a link-pairs file")
+        self.view_box.currentIndexChanged.connect(lambda _i: self.schedule())
+        self.view_box.setVisible(False)
+        self.header.addWidget(self.view_box)
+        self.observe("analysis", "layer", "head", "source", "target", "link_pairs")
+        self.listen("link_pairs", self._pairs_changed)
+        self.message.setText("Run a text, then click a pair-grid cell to pick a source token.")
+
+    def _pairs_changed(self, result) -> None:
+        self.view_box.setVisible(result is not None)
+        if result is not None:
+            self.view_box.setCurrentIndex(1)
+
+    def render(self) -> str | None:
+        from viewer.figures.links import accuracy_into, links_into
+        from viewer.gui.analysis import per_head_link, unit_links
+
+        self.scores = self.per_head = None
+        pairs = self.state.link_pairs
+        if pairs is not None and self.view_box.currentData() == "file":
+            self.set_title(f"links · accuracy over {pairs.pairs} pairs")
+            self.artists = None
+            self.accuracy_artists = accuracy_into(
+                self.figure, pairs.accuracy, nearest_baseline=pairs.nearest_baseline,
+                pairs=pairs.pairs, selected=(self.state.layer, self.state.head))
+            return None
+        self.accuracy_artists = None
+        a = self.state.analysis
+        if a is None:
+            return "Run a text, then click a pair-grid cell to pick a source token."
+        s, t = self.state.source, self.state.target
+        n = a.recording.n_tokens
+        if s is None or s >= n:
+            return ("Click a pair-grid cell: its row becomes the source token and its column "
+                    "the target. Links show where the source's word attends.")
+        layer, head = self.state.layer, self.state.head
+        u = a.units
+        self.scores = unit_links(a, layer, head, s)
+        target_unit = None
+        if t is not None and t < n:
+            self.per_head = per_head_link(a, s, t)
+            target_unit = u.unit_of(t)
+        head_title = f"layer {layer} · " + ("head mean" if head is None else f"head {head}")
+        source_name = u.names[u.unit_of(s)]
+        self.set_title(f"links · from '{source_name}'")
+        self.artists = links_into(
+            self.figure, u.names, self.scores, per_head_to_target=self.per_head,
+            target=target_unit, source_name=source_name,
+            target_name=u.names[target_unit] if target_unit is not None else None,
+            head_title=head_title, selected=(layer, head), exclude=None,
+        )
+        return None
+
+    # -- mouse ------------------------------------------------------------------------------------
+    def _map_head(self, event):
+        from viewer.figures.head_map import head_at
+
+        arts = self.artists.map_artists if self.artists is not None else self.accuracy_artists
+        if arts is None or event.inaxes is not arts.ax:
+            return None
+        return head_at(arts, event.xdata, event.ydata)
+
+    def _bar(self, event) -> int | None:
+        if self.artists is None or event.inaxes is not self.artists.bars_ax:
+            return None
+        row = int(round(event.ydata))
+        shown = self.artists.shown
+        return shown[row] if 0 <= row < len(shown) else None
+
+    def hover_at(self, event) -> str | None:
+        cell = self._map_head(event)
+        if cell is not None:
+            layer, head = cell
+            if self.per_head is not None:
+                return f"layer {layer} · head {head}\nlink score {self.per_head[layer, head]:.6f}"
+            pairs = self.state.link_pairs
+            if pairs is not None:
+                return (f"layer {layer} · head {head}\nlink accuracy "
+                        f"{pairs.accuracy[layer, head]:.3f} (nearest baseline "
+                        f"{pairs.nearest_baseline:.3f})")
+        unit = self._bar(event)
+        if unit is not None and self.scores is not None:
+            name = self.state.analysis.units.names[unit]
+            return f"'{name}': link score {self.scores[unit]:.6f}\nclick to make it the target"
+        return None
+
+    def on_press(self, event) -> None:
+        if event.button != 1:
+            return
+        cell = self._map_head(event)
+        if cell is not None:
+            self.state.select_head(*cell)
+            return
+        unit = self._bar(event)
+        if unit is not None:
+            first = int(self.state.analysis.units.tokens[unit][0])
+            self.state.select_tokens(self.state.source, first)

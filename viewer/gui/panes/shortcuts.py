@@ -1,0 +1,117 @@
+"""The shortcut-report pane: words whose knockout flips the prediction, strongest first.
+
+Columns follow DESIGN.md ("Word knockout"): texts containing the word, flip rate, the lower end
+of its 95% Wilson interval (the ranking key), mean drop in the predicted class's probability,
+and focus (summary-token attention share). Clicking a word lists the texts that contain it.
+"""
+
+from __future__ import annotations
+
+from PySide6.QtCore import QSize
+from PySide6.QtGui import QAction
+from PySide6.QtWidgets import (
+    QAbstractItemView,
+    QHBoxLayout,
+    QHeaderView,
+    QLabel,
+    QTableWidget,
+    QTableWidgetItem,
+    QToolButton,
+    QVBoxLayout,
+    QWidget,
+)
+
+from viewer.gui.state import Selection
+
+COLUMNS = ("word", "texts", "flip rate", "flip low", "mean drop", "focus")
+KEYS = ("token", "count", "flip_rate", "flip_low", "mean_drop", "focus")
+
+
+class ShortcutPane(QWidget):
+    title = "shortcut report"
+
+    def __init__(self, state: Selection, search_action: QAction | None = None,
+                 parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.state = state
+        self.words: list[str] = []
+        layout = QVBoxLayout(self)
+        layout.setContentsMargins(4, 2, 4, 2)
+        top = QHBoxLayout()
+        if search_action is not None:
+            button = QToolButton()
+            button.setDefaultAction(search_action)
+            top.addWidget(button)
+        self.summary = QLabel("")
+        self.summary.setWordWrap(True)
+        top.addWidget(self.summary, 1)
+        layout.addLayout(top)
+        self.table = QTableWidget(0, len(COLUMNS))
+        self.table.setHorizontalHeaderLabels(COLUMNS)
+        self.table.verticalHeader().setVisible(False)
+        self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
+        self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
+        self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.table.horizontalHeader().setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
+        self.table.itemSelectionChanged.connect(self._word_chosen)
+        layout.addWidget(self.table, 1)
+        self._callbacks = [
+            ("shortcuts", state.events.shortcuts.connect(lambda _v: self.refresh())),
+            ("textset", state.events.textset.connect(lambda _v: self.refresh())),
+            ("word", state.events.word.connect(lambda _v: self._select_current())),
+        ]
+        self.refresh()
+
+    def sizeHint(self) -> QSize:  # noqa: N802
+        return QSize(480, 150)
+
+    def detach(self) -> None:
+        for name, cb in self._callbacks:
+            getattr(self.state.events, name).disconnect(cb)
+        self._callbacks.clear()
+
+    def closeEvent(self, event) -> None:  # noqa: N802
+        self.detach()
+        super().closeEvent(event)
+
+    def refresh(self) -> None:
+        result = self.state.shortcuts
+        self.table.blockSignals(True)
+        self.table.setRowCount(0)
+        self.words = []
+        if result is None:
+            if self.state.textset is None:
+                self.summary.setText("Open a text set, then search it for shortcut words.")
+            else:
+                self.summary.setText("Search the open text set for words the prediction "
+                                     "depends on too much (word knockout).")
+            self.table.blockSignals(False)
+            return
+        rows = list(result.rows)
+        self.summary.setText(f"{len(rows)} words seen in at least {result.min_count} of "
+                             f"{result.texts} texts, ranked by flip low (Wilson 95%)")
+        self.table.setRowCount(len(rows))
+        for r, row in enumerate(rows):
+            for c, key in enumerate(KEYS):
+                value = row[key]
+                text = value if isinstance(value, str) else (
+                    str(value) if isinstance(value, int) else f"{value:.3f}")
+                self.table.setItem(r, c, QTableWidgetItem(text))
+            self.words.append(row["token"])
+        self.table.resizeColumnsToContents()
+        self.table.horizontalHeader().setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
+        self.table.blockSignals(False)
+        self._select_current()
+
+    def _select_current(self) -> None:
+        self.table.blockSignals(True)
+        if self.state.word in self.words:
+            self.table.selectRow(self.words.index(self.state.word))
+        else:
+            self.table.clearSelection()
+        self.table.blockSignals(False)
+
+    def _word_chosen(self) -> None:
+        rows = self.table.selectionModel().selectedRows()
+        if rows:
+            self.state.select_word(self.words[rows[0].row()])

@@ -1,0 +1,695 @@
+"""The main window: the text box, the linked panes, the docks, the worker and the status bar.
+
+The window owns the one ``Selection`` and the ``Worker``. Panes observe the state and write to
+it; the window observes the few fields that start model work (a chosen text-set row, a new run
+needing evidence) and stores the worker's results back into the state on the GUI thread.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from PySide6.QtCore import QByteArray, QSettings, QSize, QStandardPaths, Qt, QTimer, Signal
+from PySide6.QtGui import QAction, QIcon, QKeySequence, QShortcut
+from PySide6.QtWidgets import (
+    QDockWidget,
+    QFileDialog,
+    QHBoxLayout,
+    QLabel,
+    QMainWindow,
+    QMessageBox,
+    QPlainTextEdit,
+    QProgressBar,
+    QPushButton,
+    QSplitter,
+    QToolButton,
+    QVBoxLayout,
+    QWidget,
+)
+
+from viewer.gui import jobs
+from viewer.gui import session as sessions
+from viewer.gui.badge import CheckBadge
+from viewer.gui.panes.compare import ComparePane
+from viewer.gui.panes.evidence import EvidencePane
+from viewer.gui.panes.head_map import HeadMapPane
+from viewer.gui.panes.links import LinksPane
+from viewer.gui.panes.pair_grid import PairGridPane
+from viewer.gui.panes.shortcuts import ShortcutPane
+from viewer.gui.panes.textset import TextSetPane
+from viewer.gui.preload import load_figures
+from viewer.gui.state import Selection
+from viewer.gui.worker import Worker
+
+DEMO_TEXT = ("Hi, the rear derailleur on my cargo bike keeps slipping and the chain jumps "
+             "when I climb. Could someone at the Oldmere depot look at it on Tuesday? "
+             "Thanks, Wren. [via portal]")
+RECENT_MAX = 8
+ICON = Path(__file__).parent / "icons" / "headlight.svg"
+STYLE = """
+QLabel#paneTitle { font-weight: bold; color: #1d2b36; }
+QLabel#paneMessage { color: #4a5560; font-size: 12px; }
+"""
+
+
+def app_icon() -> QIcon:
+    return QIcon(str(ICON))
+
+
+class _NotesEdit(QPlainTextEdit):
+    def sizeHint(self) -> QSize:  # noqa: N802 - a short dock leaves room for the panes
+        return QSize(480, 150)
+
+
+class MainWindow(QMainWindow):
+    """Headlight's window. ``settings`` and ``config_dir`` are injectable for tests."""
+
+    error_shown = Signal(str)
+
+    def __init__(self, *, settings: QSettings | None = None, config_dir: Path | None = None,
+                 restore_geometry: bool = True) -> None:
+        super().__init__()
+        self.state = Selection()
+        self.worker = Worker(self)
+        self.settings = settings or QSettings("Headlight", "Headlight")
+        if config_dir is None:
+            base = QStandardPaths.writableLocation(
+                QStandardPaths.StandardLocation.AppConfigLocation)
+            config_dir = Path(base or Path.home() / ".config" / "headlight")
+        self.config_dir = Path(config_dir)
+        self.errors: list[str] = []
+        self.error_dialog: QMessageBox | None = None
+        self._pending_selection: dict[str, Any] | None = None
+        self._pending_item: int | None = None
+        self._after_open: list[Any] = []
+        self.setWindowTitle("Headlight")
+        self.setWindowIcon(app_icon())
+        self.setStyleSheet(STYLE)
+        self._figures_requested = False
+        self._build_actions()
+        self._build_central()
+        self._build_docks()
+        self._build_menus()
+        self._build_status()
+        self._build_keys()
+        self._wire_worker()
+        self._wire_state()
+        self.resize(1440, 900)
+        if restore_geometry:
+            geometry = self.settings.value("window/geometry")
+            if isinstance(geometry, QByteArray):
+                self.restoreGeometry(geometry)
+            layout = self.settings.value("window/state")
+            if isinstance(layout, QByteArray):
+                self.restoreState(layout)
+
+    # -- building ----------------------------------------------------------------------------------
+    def _action(self, text: str, slot, shortcut=None, tip: str = "") -> QAction:
+        action = QAction(text, self)
+        action.triggered.connect(lambda _checked=False: slot())
+        if shortcut is not None:
+            action.setShortcut(QKeySequence(shortcut))
+        if tip:
+            action.setToolTip(tip)
+            action.setStatusTip(tip)
+        self.addAction(action)
+        return action
+
+    def _build_actions(self) -> None:
+        self.open_model_action = self._action("Open model folder…", self.open_model_dialog,
+                                              QKeySequence.StandardKey.Open,
+                                              "open a local checkpoint folder (Ctrl+O)")
+        self.run_action = self._action("Run", self.run_current, None,
+                                       "record the text and show it in every pane (Ctrl+Enter)")
+        self.cancel_action = self._action("Cancel", self.cancel, "Esc",
+                                          "stop the model work in progress")
+        self.cancel_action.setEnabled(False)
+        self.open_set_action = self._action("Open text set…", self.open_textset_dialog, None,
+                                            "list a .txt, .jsonl or .csv file's predictions")
+        self.open_pairs_action = self._action("Open link pairs…", self.open_pairs_dialog, None,
+                                              "per-head link accuracy over a link-pairs file")
+        self.shortcuts_action = self._action("Search shortcuts", self.search_shortcuts, None,
+                                             "knock each word out of every text of the set")
+        self.compare_action = self._action("Compare", self.run_compare, None,
+                                           "run the second text or checkpoint")
+        self.clear_compare_action = self._action("Clear", self.clear_compare, None,
+                                                 "leave compare mode")
+        self.save_session_action = self._action("Save session…", self.save_session_dialog,
+                                                QKeySequence.StandardKey.Save)
+        self.open_session_action = self._action("Open session…", self.open_session_dialog)
+        self.quit_action = self._action("Quit", self.close, QKeySequence.StandardKey.Quit)
+        self.evidence_action = self._action(
+            "Evidence after every run", self.run_evidence, None,
+            "compute the evidence strip, head importance and knockout after each run "
+            "(off: only on demand, for large models)")
+        self.evidence_action.setCheckable(True)
+        self.evidence_action.setChecked(True)
+        self.evidence_now_action = self._action("Compute evidence", self.run_evidence, None,
+                                                "compute the evidence strip for this text now")
+
+    def _build_central(self) -> None:
+        central = QWidget()
+        layout = QVBoxLayout(central)
+        layout.setContentsMargins(6, 4, 6, 2)
+        bar = QHBoxLayout()
+        self.model_label = QLabel("no model open")
+        self.model_label.setTextFormat(Qt.TextFormat.PlainText)
+        self.model_label.setMinimumWidth(180)
+        self.model_label.setWordWrap(True)
+        open_button = QToolButton()
+        open_button.setDefaultAction(self.open_model_action)
+        self.text_edit = QPlainTextEdit()
+        self.text_edit.setPlaceholderText("Type or paste a text, then press Ctrl+Enter")
+        self.text_edit.setFixedHeight(58)
+        self.text_edit.setTabChangesFocus(True)
+        self.run_button = QPushButton("Run  (Ctrl+Enter)")
+        self.run_button.setToolTip(self.run_action.toolTip())
+        self.run_button.clicked.connect(self.run_current)
+        left = QVBoxLayout()
+        left.addWidget(open_button)
+        left.addWidget(self.model_label)
+        bar.addLayout(left)
+        bar.addWidget(self.text_edit, 1)
+        bar.addWidget(self.run_button)
+        layout.addLayout(bar)
+        self.head_map = HeadMapPane(self.state)
+        self.links = LinksPane(self.state)
+        self.pair_grid = PairGridPane(self.state)
+        self.evidence = EvidencePane(self.state)
+        left_split = QSplitter(Qt.Orientation.Vertical)
+        left_split.addWidget(self.head_map)
+        left_split.addWidget(self.links)
+        left_split.setSizes([430, 330])
+        right_split = QSplitter(Qt.Orientation.Vertical)
+        right_split.addWidget(self.pair_grid)
+        right_split.addWidget(self.evidence)
+        right_split.setSizes([470, 330])
+        self.panes_split = QSplitter(Qt.Orientation.Horizontal)
+        self.panes_split.addWidget(left_split)
+        self.panes_split.addWidget(right_split)
+        self.panes_split.setSizes([640, 800])
+        layout.addWidget(self.panes_split, 1)
+        self.setCentralWidget(central)
+
+    def _dock(self, title: str, widget: QWidget, name: str, area) -> QDockWidget:
+        dock = QDockWidget(title, self)
+        dock.setObjectName(name)
+        dock.setWidget(widget)
+        self.addDockWidget(area, dock)
+        return dock
+
+    def _build_docks(self) -> None:
+        self.textset_pane = TextSetPane(self.state, self.open_set_action)
+        self.shortcut_pane = ShortcutPane(self.state, self.shortcuts_action)
+        self.compare_pane = ComparePane(self.state, self.compare_action, self.clear_compare_action)
+        self.notes_edit = _NotesEdit()
+        self.notes_edit.setPlaceholderText("notes saved with the session")
+        self.notes_edit.textChanged.connect(
+            lambda: self.state.set_notes(self.notes_edit.toPlainText()))
+        bottom = Qt.DockWidgetArea.BottomDockWidgetArea
+        self.textset_dock = self._dock("text set", self.textset_pane, "textsetDock", bottom)
+        self.shortcut_dock = self._dock("shortcut report", self.shortcut_pane, "shortcutDock",
+                                        bottom)
+        self.compare_dock = self._dock("compare", self.compare_pane, "compareDock", bottom)
+        self.notes_dock = self._dock("notes", self.notes_edit, "notesDock", bottom)
+        self.tabifyDockWidget(self.textset_dock, self.shortcut_dock)
+        self.tabifyDockWidget(self.shortcut_dock, self.compare_dock)
+        self.tabifyDockWidget(self.compare_dock, self.notes_dock)
+        self.textset_dock.raise_()
+        self._docks_sized = False
+
+    def _build_menus(self) -> None:
+        file_menu = self.menuBar().addMenu("&File")
+        file_menu.addAction(self.open_model_action)
+        self.recent_menu = file_menu.addMenu("Recent models")
+        file_menu.addSeparator()
+        file_menu.addAction(self.open_set_action)
+        file_menu.addAction(self.open_pairs_action)
+        file_menu.addSeparator()
+        file_menu.addAction(self.open_session_action)
+        file_menu.addAction(self.save_session_action)
+        file_menu.addSeparator()
+        file_menu.addAction(self.quit_action)
+        run_menu = self.menuBar().addMenu("&Run")
+        run_menu.addAction(self.run_action)
+        run_menu.addAction(self.cancel_action)
+        run_menu.addSeparator()
+        run_menu.addAction(self.evidence_now_action)
+        run_menu.addAction(self.evidence_action)
+        run_menu.addSeparator()
+        run_menu.addAction(self.shortcuts_action)
+        run_menu.addAction(self.compare_action)
+        view_menu = self.menuBar().addMenu("&View")
+        for dock in (self.textset_dock, self.shortcut_dock, self.compare_dock, self.notes_dock):
+            view_menu.addAction(dock.toggleViewAction())
+        self._fill_recent()
+
+    def _build_status(self) -> None:
+        bar = self.statusBar()
+        self.status_label = QLabel("starting…")
+        self.status_label.setTextFormat(Qt.TextFormat.PlainText)
+        bar.addWidget(self.status_label, 1)
+        self.progress = QProgressBar()
+        self.progress.setMaximumWidth(200)
+        self.progress.setMaximumHeight(14)
+        self.progress.setTextVisible(False)
+        self.progress.setVisible(False)
+        bar.addPermanentWidget(self.progress)
+        self.cancel_button = QToolButton()
+        self.cancel_button.setDefaultAction(self.cancel_action)
+        bar.addPermanentWidget(self.cancel_button)
+        self.badge = CheckBadge(self.state)
+        bar.addPermanentWidget(self.badge)
+
+    def _build_keys(self) -> None:
+        for keys in ("Ctrl+Return", "Ctrl+Enter"):
+            QShortcut(QKeySequence(keys), self, self.run_current)
+        moves = {
+            Qt.Key.Key_Left: lambda: self.state.move_head(-1),
+            Qt.Key.Key_Right: lambda: self.state.move_head(1),
+            Qt.Key.Key_Up: lambda: self.state.move_layer(-1),
+            Qt.Key.Key_Down: lambda: self.state.move_layer(1),
+        }
+        for key, fn in moves.items():
+            shortcut = QShortcut(QKeySequence(key), self.panes_split, fn)
+            shortcut.setContext(Qt.ShortcutContext.WidgetWithChildrenShortcut)
+
+    @property
+    def figure_panes(self) -> list:
+        return [self.head_map, self.links, self.pair_grid, self.evidence, self.compare_pane.grid]
+
+    def showEvent(self, event) -> None:  # noqa: N802
+        super().showEvent(event)
+        if not self._docks_sized and not self.settings.value("window/state"):
+            self._docks_sized = True
+            QTimer.singleShot(0, lambda: self.resizeDocks([self.textset_dock], [170],
+                                                          Qt.Orientation.Vertical))
+
+    # -- start-up
+    def start(self, model: str | None = None, text: str | None = None,
+              restore_last: bool = True) -> None:
+        """After the window is on screen: load the drawing library and a model, in background."""
+        self.load_figures()
+        if text:
+            self.text_edit.setPlainText(text)
+        if model:
+            self.open_model(model, run_after=bool(text))
+            return
+        last = self.last_session_path
+        if restore_last and last.is_file():
+            try:
+                self.restore_session(sessions.load(last))
+                return
+            except Exception as exc:  # noqa: BLE001 - a bad last session must not stop start-up
+                self.set_status(f"last session not restored: {exc}")
+        demo = jobs.demo_folder()
+        if (demo / "config.json").is_file():
+            if not text:
+                self.text_edit.setPlainText(DEMO_TEXT)
+            self.open_model(str(demo), run_after=True, remember=False)
+        else:
+            self.set_status("no demo model in this installation; open a model folder (Ctrl+O)")
+
+    def load_figures(self) -> None:
+        """Queue the matplotlib import as the worker's first job (once)."""
+        if not self._figures_requested:
+            self._figures_requested = True
+            self.worker.submit("figures", load_figures, replace=False)
+
+    def _done_figures(self, seconds: float) -> None:
+        for pane in self.figure_panes:
+            pane.attach_canvas()
+        self.set_status(f"drawing library ready ({seconds:.1f} s)", transient=True)
+
+    @property
+    def canvases_ready(self) -> bool:
+        return all(p.ready for p in self.figure_panes)
+
+    # -- worker plumbing
+    def _wire_worker(self) -> None:
+        w = self.worker
+        w.progress.connect(self._on_progress)
+        w.finished.connect(self._on_finished)
+        w.failed.connect(self._on_failed)
+        w.cancelled.connect(self._on_cancelled)
+        w.started.connect(lambda _k: self._busy(True))
+        w.idle.connect(lambda: self._busy(False))
+
+    def _busy(self, busy: bool) -> None:
+        self.cancel_action.setEnabled(busy)
+        self.progress.setVisible(busy)
+        if busy:
+            self.progress.setRange(0, 0)
+
+    def _on_progress(self, kind: str, done: int, total: int, message: str) -> None:
+        if total > 0:
+            self.progress.setRange(0, total)
+            self.progress.setValue(done)
+        else:
+            self.progress.setRange(0, 0)
+        self.set_status(message)
+
+    def _on_failed(self, kind: str, message: str) -> None:
+        if kind == "figures":
+            self._figures_requested = False
+        if kind == "open":
+            self._after_open.clear()
+        self.show_error(message)
+
+    def _on_cancelled(self, kind: str) -> None:
+        if not self.worker.busy:
+            self.set_status(f"{kind} cancelled")
+
+    def _on_finished(self, kind: str, result: Any) -> None:
+        handler = getattr(self, f"_done_{kind.replace('-', '_')}")
+        handler(result)
+
+    def set_status(self, text: str, transient: bool = False) -> None:
+        self.status_label.setText(text)
+
+    def show_error(self, message: str) -> None:
+        """A non-blocking dialog with the one-line message; the window stays usable."""
+        self.errors.append(message)
+        self.set_status(f"error: {message}")
+        if self.error_dialog is not None:
+            self.error_dialog.close()
+        box = QMessageBox(QMessageBox.Icon.Warning, "Headlight", message,
+                          QMessageBox.StandardButton.Ok, self)
+        box.setWindowModality(Qt.WindowModality.WindowModal)
+        self.error_dialog = box
+        box.open()
+        self.error_shown.emit(message)
+
+    # -- models
+    def open_model_dialog(self) -> None:
+        folder = QFileDialog.getExistingDirectory(self, "Open a model folder")
+        if folder:
+            self.open_model(folder, run_after=bool(self.text_edit.toPlainText().strip()))
+
+    def open_model(self, folder: str, *, run_after: bool = False, remember: bool = True) -> None:
+        self.worker.cancel("run")
+        self.worker.cancel("evidence")
+        self._after_open = [self.run_current] if run_after else []
+        self._remember = remember
+        self.model_label.setText(f"opening {Path(folder).name}…")
+        self.worker.submit("open", jobs.open_model, "main", str(folder))
+
+    def _done_open(self, info) -> None:
+        self.state.set_model(info)
+        self.model_label.setText(info.describe())
+        self.model_label.setToolTip(info.folder)
+        self.set_status(f"opened {info.name}")
+        if getattr(self, "_remember", True):
+            self._add_recent(info.folder)
+        for note in info.notes:
+            self.set_status(note)
+        todo, self._after_open = self._after_open, []
+        for fn in todo:
+            fn()
+
+    def _add_recent(self, folder: str) -> None:
+        recent = [f for f in self.recent_models() if f != folder]
+        self.settings.setValue("recent_models", [folder, *recent][:RECENT_MAX])
+        self._fill_recent()
+
+    def recent_models(self) -> list[str]:
+        value = self.settings.value("recent_models") or []
+        if isinstance(value, str):
+            value = [value]
+        return [str(v) for v in value]
+
+    def _fill_recent(self) -> None:
+        self.recent_menu.clear()
+        recent = self.recent_models()
+        if not recent:
+            self.recent_menu.addAction("(none yet)").setEnabled(False)
+        for folder in recent:
+            action = self.recent_menu.addAction(folder)
+            action.triggered.connect(lambda _c=False, f=folder: self.open_model(f))
+
+    # -- runs
+    def run_current(self) -> None:
+        """Ctrl+Enter: record the text box's text."""
+        self.run_text(self.text_edit.toPlainText(), label=None)
+
+    def run_text(self, text: str, label: str | None = None) -> None:
+        if self.state.model is None:
+            if self.worker.running_kinds().count("open"):
+                self._after_open = [self.run_current]
+                return
+            self.show_error("no model is open yet; open a model folder first (Ctrl+O)")
+            return
+        if not text.strip():
+            self.show_error("the text is empty; type or paste a text first")
+            return
+        if self.text_edit.toPlainText() != text:
+            self.text_edit.setPlainText(text)
+        self.worker.cancel("evidence")
+        self.worker.cancel("summary")
+        self.state.set_text(text)
+        self.worker.submit("run", jobs.run_text, "main", text, label)
+
+    def _done_run(self, analysis) -> None:
+        self.state.set_analysis(analysis)
+        self.worker.submit("summary", jobs.summarise_run, analysis)
+        pending, self._pending_selection = self._pending_selection, None
+        if pending:
+            self._apply_selection(pending)
+        elif self.state.source is None:
+            # Start the links pane from the token the prediction is read from ([CLS]).
+            self.state.select_tokens(analysis.recording.summary_index(), None)
+        rec = analysis.recording
+        note = f" · {rec.notes[-1]}" if rec.notes else ""
+        self.set_status(f"recorded {rec.n_tokens} tokens in {analysis.seconds:.2f} s{note}")
+        if self.evidence_action.isChecked():
+            self.run_evidence()
+
+    def _done_summary(self, analysis) -> None:
+        current = self.state.analysis
+        if current is not None and current.recording is analysis.recording:
+            self.state.set_analysis(analysis)
+    def run_evidence(self) -> None:
+        """Compute the evidence for the current run (automatic after runs unless switched off)."""
+        analysis = self.state.analysis
+        if analysis is None or self.state.evidence is not None:
+            return
+        self.worker.submit("evidence", jobs.run_evidence, "main", analysis)
+
+    def _done_evidence(self, evidence) -> None:
+        current = self.state.analysis
+        if current is None or evidence.analysis.recording is not current.recording:
+            return  # a newer run has arrived meanwhile
+        self.state.set_evidence(evidence)
+        if evidence.notes:
+            self.set_status(evidence.notes[0])
+
+    def cancel(self) -> None:
+        self.worker.cancel(keep=("figures",))
+        self._after_open.clear()
+        self.set_status("cancelling…")
+
+    # -- text sets, link pairs, shortcut search
+    def open_textset_dialog(self) -> None:
+        path, _ = QFileDialog.getOpenFileName(self, "Open a text set", "",
+                                              "Text sets (*.txt *.jsonl *.csv)")
+        if path:
+            self.open_textset(path)
+
+    def open_textset(self, path: str) -> None:
+        if self.state.model is None:
+            self.show_error("open a model before a text set: the list shows its predictions")
+            return
+        self.worker.submit("textset", jobs.run_textset, "main", str(path))
+        self.textset_dock.raise_()
+
+    def _done_textset(self, result) -> None:
+        self.state.set_textset(result)
+        pending, self._pending_item = self._pending_item, None
+        if pending is not None and pending < len(result.rows):
+            self.state.select_item(pending)
+        acc = result.accuracy
+        self.set_status(f"text set: {len(result.rows)} texts"
+                        + (f", accuracy {acc:.1%}" if acc is not None else ""))
+
+    def _item_chosen(self, index) -> None:
+        ts = self.state.textset
+        if index is None or ts is None or index >= len(ts.rows):
+            return
+        row = ts.rows[index]
+        self.run_text(row.text, row.label)
+
+    def open_pairs_dialog(self) -> None:
+        path, _ = QFileDialog.getOpenFileName(self, "Open link pairs", "", "Link pairs (*.jsonl)")
+        if path:
+            self.open_pairs(path)
+
+    def open_pairs(self, path: str) -> None:
+        if self.state.model is None:
+            self.show_error("open a model before a link-pairs file")
+            return
+        self.worker.submit("pairs", jobs.run_link_pairs, "main", str(path))
+
+    def _done_pairs(self, result) -> None:
+        self.state.set_link_pairs(result)
+        layer, head, acc = result.best
+        self.set_status(f"link pairs: best layer {layer} · head {head} ({acc:.2f}), nearest "
+                        f"baseline {result.nearest_baseline:.2f}")
+
+    def search_shortcuts(self) -> None:
+        ts = self.state.textset
+        if ts is None:
+            self.show_error("open a text set first; the shortcut search knocks words out of it")
+            return
+        from viewer.gui import shortcut_source
+
+        self.worker.submit("shortcuts", shortcut_source.run, "main", ts)
+        self.shortcut_dock.raise_()
+
+    def _done_shortcuts(self, result) -> None:
+        self.state.set_shortcuts(result)
+        self.set_status(f"shortcut report: {len(result.rows)} words")
+
+    # -- compare
+    def run_compare(self) -> None:
+        target = self.state.compare_target
+        if target is None:
+            self.show_error("give a second text or a second checkpoint folder to compare with")
+            return
+        kind, value = target
+        if kind == "text":
+            if self.state.model is None:
+                self.show_error("no model is open yet; open a model folder first (Ctrl+O)")
+                return
+            self.worker.submit("compare", jobs.run_text, "main", value, None, "second text",
+                               True)
+        else:
+            text = self.state.text or self.text_edit.toPlainText()
+            if not text.strip():
+                self.show_error("run a text first; the second checkpoint is compared on it")
+                return
+            self.worker.submit("compare-open", jobs.open_model, "compare", value)
+            self.worker.submit("compare", jobs.run_text, "compare", text, None, "", True,
+                               replace=False)
+        self.compare_dock.raise_()
+        if self.compare_dock.height() < 300:
+            self.resizeDocks([self.compare_dock], [340], Qt.Orientation.Vertical)
+
+    def _done_compare_open(self, info) -> None:
+        model = self.state.model
+        if model is not None and (info.n_layers, info.n_heads) != (model.n_layers,
+                                                                   model.n_heads):
+            self.set_status(f"compared checkpoint {info.name} has a different shape; the "
+                            "difference view is off")
+
+    def _done_compare(self, analysis) -> None:
+        self.state.set_compare(analysis)
+        self.state.set_difference(True)
+        self.set_status("compare: head map shows compared − current")
+
+    def clear_compare(self) -> None:
+        self.state.set_compare(None)
+
+    # -- state observers
+    def _wire_state(self) -> None:
+        self.state.events.item.connect(self._item_chosen)
+        self.state.events.notes.connect(self._notes_changed)
+
+    def _notes_changed(self, notes: str) -> None:
+        if self.notes_edit.toPlainText() != notes:
+            self.notes_edit.blockSignals(True)
+            self.notes_edit.setPlainText(notes)
+            self.notes_edit.blockSignals(False)
+
+    def _apply_selection(self, sel: dict[str, Any]) -> None:
+        s = self.state
+        layer = min(int(sel.get("layer") or 0), max(s.n_layers - 1, 0))
+        head = sel.get("head")
+        if head is not None and head >= s.n_heads:
+            head = None
+        s.select_head(layer, head)
+        n = s.n_tokens
+        source, target = sel.get("source"), sel.get("target")
+        s.select_tokens(source if source is not None and source < n else None,
+                        target if target is not None and target < n else None)
+        s.set_metric(sel.get("metric", "entropy"))
+        if sel.get("scope") == "set" and s.textset is not None:
+            s.set_scope("set")
+        s.set_mistakes_only(bool(sel.get("mistakes_only")))
+        s.select_word(sel.get("word"))
+        s.set_difference(bool(sel.get("difference")))
+
+    # -- sessions ----------------------------------------------------------------------------------
+    @property
+    def last_session_path(self) -> Path:
+        return self.config_dir / "last-session.json"
+
+    def current_session(self) -> sessions.Session:
+        return sessions.capture(self.state)
+
+    def save_session(self, path: str | Path) -> None:
+        sessions.save(path, self.current_session())
+
+    def save_session_dialog(self) -> None:
+        path, _ = QFileDialog.getSaveFileName(self, "Save session", "session.headlight.json",
+                                              "Headlight sessions (*.json)")
+        if path:
+            try:
+                self.save_session(path)
+                self.set_status(f"session saved to {path}")
+            except Exception as exc:  # noqa: BLE001
+                self.show_error(str(exc))
+
+    def open_session_dialog(self) -> None:
+        path, _ = QFileDialog.getOpenFileName(self, "Open session", "",
+                                              "Headlight sessions (*.json)")
+        if path:
+            self.open_session(path)
+
+    def open_session(self, path: str | Path) -> None:
+        from viewer.errors import HeadlightError
+
+        try:
+            self.restore_session(sessions.load(path))
+        except HeadlightError as exc:
+            self.show_error(str(exc))
+
+    def restore_session(self, session: sessions.Session) -> None:
+        """Open the session's model, run its text and re-apply its selection when it arrives."""
+        self.text_edit.setPlainText(session.text)
+        self.state.set_notes(session.notes)
+        compare = session.compare
+        self.state.set_compare_target(None if compare is None else
+                                      (compare["kind"], compare["value"]))
+        self._pending_selection = dict(session.selection)
+        self._pending_item = session.item
+        if session.model is None:
+            self.set_status("session restored (no model in it)")
+            return
+        follow: list[Any] = []
+        if session.text_set:
+            follow.append(lambda: self.open_textset(session.text_set))
+        if session.link_pairs:
+            follow.append(lambda: self.open_pairs(session.link_pairs))
+        if session.text.strip():
+            follow.append(self.run_current)
+        self.open_model(session.model)
+        self._after_open = follow
+
+    # -- closing
+    def closeEvent(self, event) -> None:  # noqa: N802
+        self.settings.setValue("window/geometry", self.saveGeometry())
+        self.settings.setValue("window/state", self.saveState())
+        if self.state.model is not None:
+            try:
+                self.save_session(self.last_session_path)
+            except Exception:  # noqa: BLE001 - never block closing
+                pass
+        self.settings.sync()
+        self.worker.shutdown()
+        for pane in self.figure_panes:
+            pane.detach()
+        self.textset_pane.detach()
+        self.shortcut_pane.detach()
+        super().closeEvent(event)
+

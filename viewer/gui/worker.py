@@ -1,0 +1,166 @@
+"""The worker thread: model work off the GUI thread, results back as messages.
+
+One ``QThreadPool`` with a single thread runs the jobs of ``viewer.gui.jobs`` one after another
+(a torch model is not meant to be driven from two threads at once, and the open checkpoints live
+in that thread's ``models`` dict).
+
+A job never touches a Qt object: it puts plain messages (progress, result, failure,
+cancellation) on a thread-safe ``queue.Queue``. While jobs are pending, a timer on the GUI thread
+drains that queue every few milliseconds and re-emits each message as a signal of the
+``Worker``, on the GUI thread. So widgets are only ever touched from the GUI thread, and no
+Python object has to be marshalled by Qt across threads. Cancelling sets a flag the job checks
+between steps; a new job of the same kind cancels the one it replaces.
+"""
+
+from __future__ import annotations
+
+import queue
+import sys
+import threading
+import traceback
+from collections.abc import Callable
+from typing import Any
+
+from PySide6.QtCore import QObject, QRunnable, QThreadPool, QTimer, Signal
+
+from viewer.errors import HeadlightError
+from viewer.gui.jobs import Cancelled, JobContext
+
+POLL_MS = 5  # how often the GUI thread collects messages while jobs are pending
+
+
+class Job(QRunnable):
+    """One call of a job function on the worker thread; reports through ``outbox``."""
+
+    def __init__(self, kind: str, fn: Callable[..., Any], args: tuple, models: dict,
+                 outbox: queue.Queue) -> None:
+        super().__init__()
+        self.setAutoDelete(False)
+        self.kind = kind
+        self.fn = fn
+        self.args = args
+        self.models = models
+        self.outbox = outbox
+        self.cancel_flag = threading.Event()
+        self.done = threading.Event()
+
+    def cancel(self) -> None:
+        self.cancel_flag.set()
+
+    def _post(self, what: str, *payload: Any) -> None:
+        self.outbox.put((self, what, payload))
+
+    def _progress(self, done: int, total: int, message: str) -> None:
+        self._post("progress", int(done), int(total), str(message))
+
+    def run(self) -> None:  # worker thread
+        ctx = JobContext(progress=self._progress, cancelled=self.cancel_flag.is_set,
+                         models=self.models)
+        try:
+            ctx.check()
+            result = self.fn(ctx, *self.args)
+            ctx.check()
+        except Cancelled:
+            self._post("cancelled")
+        except HeadlightError as exc:
+            self._post("failed", str(exc))
+        except Exception as exc:  # noqa: BLE001 - any failure must reach the user as a dialog
+            traceback.print_exc(file=sys.stderr)
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+            self._post("failed", f"internal error in {self.kind}: {type(exc).__name__}"
+                                 + (f": {first[:200]}" if first else ""))
+        else:
+            self._post("finished", result)
+        finally:
+            self.done.set()
+
+
+class Worker(QObject):
+    """Runs jobs one at a time; signals carry the job kind so the window can route results."""
+
+    started = Signal(str)  # kind
+    progress = Signal(str, int, int, str)  # kind, done, total (0 = unknown), message
+    finished = Signal(str, object)  # kind, result
+    failed = Signal(str, str)  # kind, one-line message
+    cancelled = Signal(str)  # kind
+    idle = Signal()
+
+    def __init__(self, parent: QObject | None = None) -> None:
+        super().__init__(parent)
+        self.pool = QThreadPool(self)
+        self.pool.setMaxThreadCount(1)
+        self.models: dict[str, Any] = {}
+        self.outbox: queue.Queue = queue.Queue()
+        self._jobs: list[Job] = []
+        self._retired: list[Job] = []  # kept alive until their thread has left run()
+        self.timer = QTimer(self)
+        self.timer.setInterval(POLL_MS)
+        self.timer.timeout.connect(self.deliver)
+
+    # -- submitting and cancelling ---------------------------------------------------------
+    def submit(self, kind: str, fn: Callable[..., Any], *args: Any,
+               replace: bool = True) -> Job:
+        """Queue ``fn(ctx, *args)``; ``replace`` cancels pending jobs of the same kind."""
+        if replace:
+            for job in self._jobs:
+                if job.kind == kind:
+                    job.cancel()
+        self._retired = [j for j in self._retired if not j.done.is_set()]
+        job = Job(kind, fn, args, self.models, self.outbox)
+        self._jobs.append(job)
+        self.started.emit(kind)
+        if not self.timer.isActive():
+            self.timer.start()
+        self.pool.start(job)
+        return job
+
+    def cancel(self, kind: str | None = None, keep: tuple[str, ...] = ()) -> None:
+        """Cancel every queued or running job (or those of one kind), except kinds in ``keep``."""
+        for job in self._jobs:
+            if (kind is None or job.kind == kind) and job.kind not in keep:
+                job.cancel()
+
+    @property
+    def busy(self) -> bool:
+        return bool(self._jobs)
+
+    def running_kinds(self) -> list[str]:
+        return [job.kind for job in self._jobs if not job.cancel_flag.is_set()]
+
+    def wait(self, msecs: int = 30000) -> bool:
+        """Block until the pool is empty (for shutdown and tests); True when it is."""
+        return bool(self.pool.waitForDone(msecs))
+
+    def shutdown(self) -> None:
+        self.cancel()
+        self.pool.clear()
+        self.pool.waitForDone(60000)
+        self.timer.stop()
+
+    # -- delivery on the GUI thread -----------------------------------------------------------
+    def deliver(self) -> None:
+        """Re-emit the messages the jobs have posted (GUI thread; called by the timer)."""
+        while True:
+            try:
+                job, what, payload = self.outbox.get_nowait()
+            except queue.Empty:
+                break
+            if what == "progress":
+                if not job.cancel_flag.is_set():
+                    self.progress.emit(job.kind, *payload)
+                continue
+            self._retire(job)
+            if what == "finished" and not job.cancel_flag.is_set():
+                self.finished.emit(job.kind, payload[0])
+            elif what == "failed":
+                self.failed.emit(job.kind, payload[0])
+            else:
+                self.cancelled.emit(job.kind)
+            if not self._jobs:
+                self.timer.stop()
+                self.idle.emit()
+
+    def _retire(self, job: Job) -> None:
+        if job in self._jobs:
+            self._jobs.remove(job)
+            self._retired.append(job)
