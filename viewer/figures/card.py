@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
+import os
 import platform
 from collections.abc import Sequence
 from importlib import metadata
@@ -267,6 +268,11 @@ def export_card(loaded: LoadedModel, texts_path: str | Path, out: str | Path, *,
     out = Path(out)
     if out.exists() and not force:
         raise HeadlightError(f"{out} already exists; pass --force to replace it")
+    parent = out.parent if str(out.parent) else Path(".")
+    if not parent.is_dir():  # fail before the (long) computation, not after it
+        raise HeadlightError(f"cannot write {out}: folder {parent} does not exist")
+    if not os.access(parent, os.W_OK):
+        raise HeadlightError(f"cannot write {out}: folder {parent} is not writable")
     data = collect(loaded, texts_path, pairs_path, batch_size=batch_size, quiet=quiet)
     inputs = [*loaded.weight_files, texts_path] + ([pairs_path] if pairs_path else [])
     data["reproducibility"] = {

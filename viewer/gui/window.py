@@ -31,6 +31,7 @@ from PySide6.QtWidgets import (
 from viewer.gui import jobs
 from viewer.gui import session as sessions
 from viewer.gui.badge import CheckBadge
+from viewer.gui.export import PaneExporter
 from viewer.gui.panes.compare import ComparePane
 from viewer.gui.panes.evidence import EvidencePane
 from viewer.gui.panes.head_map import HeadMapPane
@@ -230,6 +231,9 @@ class MainWindow(QMainWindow):
         file_menu.addAction(self.open_session_action)
         file_menu.addAction(self.save_session_action)
         file_menu.addSeparator()
+        self.exporter = PaneExporter(self)
+        self.exporter.add_menus(file_menu)
+        file_menu.addSeparator()
         file_menu.addAction(self.quit_action)
         run_menu = self.menuBar().addMenu("&Run")
         run_menu.addAction(self.run_action)
@@ -320,6 +324,7 @@ class MainWindow(QMainWindow):
     def _done_figures(self, seconds: float) -> None:
         for pane in self.figure_panes:
             pane.attach_canvas()
+        self.exporter.canvases_attached()
         self.set_status(f"drawing library ready ({seconds:.1f} s)", transient=True)
 
     @property
@@ -464,6 +469,9 @@ class MainWindow(QMainWindow):
         self.set_status(f"recorded {rec.n_tokens} tokens in {analysis.seconds:.2f} s{note}")
         if self.evidence_action.isChecked():
             self.run_evidence()
+
+    def _done_card(self, path: str) -> None:
+        self.exporter.card_done(path)
 
     def _done_summary(self, analysis) -> None:
         current = self.state.analysis
