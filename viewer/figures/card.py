@@ -73,16 +73,24 @@ def _figure() -> Figure:
     return Figure(figsize=PRINT_SIZE, dpi=100)
 
 
-def _example_text(items, shortcuts: dict | None) -> str | None:
-    """The first text containing the strongest shortcut word (else the first text)."""
-    if shortcuts and shortcuts["tokens"]:
-        word = shortcuts["tokens"][0]["token"]
-        from viewer.core.shortcuts import word_spans
+def _example_text(loaded: LoadedModel, items, shortcuts: dict | None,
+                  probabilities: np.ndarray | None) -> str | None:
+    """A text to show the evidence strip for: one containing the strongest shortcut word,
+    preferably one the model gets wrong (labelled, predicted otherwise); else the first text."""
+    if not items:
+        return None
+    if not (shortcuts and shortcuts["tokens"]):
+        return items[0].text
+    from viewer.core.shortcuts import word_spans
 
-        for item in items:
-            if word in word_spans(item.text):
-                return item.text
-    return items[0].text if items else None
+    word = shortcuts["tokens"][0]["token"]
+    having = [k for k, item in enumerate(items) if word in word_spans(item.text)]
+    if probabilities is not None and loaded.labels:
+        for k in having:
+            label = items[k].label
+            if label is not None and label != loaded.labels[int(probabilities[k].argmax())]:
+                return items[k].text
+    return items[having[0]].text if having else items[0].text
 
 
 def collect(loaded: LoadedModel, texts_path: Path, pairs_path: Path | None, *,
@@ -92,7 +100,7 @@ def collect(loaded: LoadedModel, texts_path: Path, pairs_path: Path | None, *,
     texts = [i.text for i in items]
     prediction = loaded.head_kind in ("classifier", "causal-lm")
     data: dict = {
-        "model": {"folder": loaded.folder.name, "family": loaded.family.name,
+        "model": {"folder": loaded.name, "family": loaded.family.name,
                   "layers": loaded.n_layers, "heads": loaded.n_heads,
                   "head_kind": loaded.head_kind, "labels": list(loaded.labels)},
         "evaluation_data": {"texts_file": texts_path.name, "texts": len(items),
@@ -106,9 +114,11 @@ def collect(loaded: LoadedModel, texts_path: Path, pairs_path: Path | None, *,
         data["evaluation_data"]["pairs"] = data["links"]["pairs"]
     if prediction:
         data["shortcuts"] = shortcuts_data(loaded, texts_path, batch_size=batch_size, quiet=quiet)
+        probabilities = None
         if loaded.head_kind == "classifier":
-            data["accuracy"] = accuracy_data(loaded, items, predict_items(loaded, items))
-        example = _example_text(items, data["shortcuts"])
+            probabilities = predict_items(loaded, items)
+            data["accuracy"] = accuracy_data(loaded, items, probabilities)
+        example = _example_text(loaded, items, data["shortcuts"], probabilities)
         if example is not None:
             ev = evidence_for(loaded, example)
             data["example"] = ev.to_dict()

@@ -206,7 +206,8 @@ class LoadedModel:
     def __init__(self, folder: Path, model: Any, tokenizer: Any, family: Family,
                  geometry: Geometry, head_kind: str, notes: tuple[str, ...]):
         self.folder = folder
-        self.name = folder.name
+        # A folder called just "model" says little: name it with its parent ("demo/model").
+        self.name = folder.name if folder.name != "model" else f"{folder.parent.name}/model"
         self.model = model
         self.tokenizer = tokenizer
         self.family = family
