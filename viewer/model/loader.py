@@ -356,7 +356,9 @@ class LoadedModel:
             batch = self.encode(texts[start:start + size])
             out, _ = self.forward(batch, output_attentions=True)
             probs = torch.stack(out.attentions, dim=1).float().numpy()  # (B, L, H, T, T)
-            logits = getattr(out, "logits", None)
+            predicts = (self.head_kind in ("classifier", "causal-lm")
+                        and getattr(out, "logits", None) is not None)
+            targets = self.target_probabilities(batch, out).double().numpy() if predicts else None
             enc = batch.encoding
             for i, n in enumerate(batch.lengths):
                 yield Attention(
@@ -365,9 +367,7 @@ class LoadedModel:
                     offsets=enc["offset_mapping"][i, :n].numpy().copy(),
                     special=enc["special_tokens_mask"][i, :n].numpy().astype(bool),
                     probs=probs[i, :, :, :n, :n].copy(),
-                    target=(self.target_probabilities(batch, out)[i].double().numpy()
-                            if self.head_kind in ("classifier", "causal-lm") and logits is not None
-                            else None),
+                    target=None if targets is None else targets[i].copy(),
                     truncated_from=batch.truncated_from[i],
                 )
 
