@@ -12,16 +12,18 @@ page says what the pane will show and how to get there.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
-from PySide6.QtCore import Qt, QTimer
+from PySide6.QtCore import QSize, Qt, QTimer
 from PySide6.QtGui import QCursor
 from PySide6.QtWidgets import (
+    QAbstractItemView,
     QHBoxLayout,
     QLabel,
     QSizePolicy,
     QStackedWidget,
+    QTableWidget,
     QToolTip,
     QVBoxLayout,
     QWidget,
@@ -30,7 +32,45 @@ from PySide6.QtWidgets import (
 from viewer.gui.state import Selection
 
 
-class FigurePane(QWidget):
+class StateListener:
+    """Connections of a widget to the shared selection state, undone when it closes."""
+
+    state: Selection
+
+    def listen(self, field: str, callback: Callable[[Any], None]) -> None:
+        event = getattr(self.state.events, field)
+        event.connect(callback)
+        self.__dict__.setdefault("_connections", []).append((event, callback))
+
+    def detach(self) -> None:
+        """Disconnect from the state (the widget is being closed)."""
+        for event, callback in self.__dict__.get("_connections", []):
+            event.disconnect(callback)
+        self.__dict__.get("_connections", []).clear()
+
+    def closeEvent(self, event) -> None:  # noqa: N802 - Qt name
+        self.detach()
+        super().closeEvent(event)
+
+
+class TableDock(StateListener, QWidget):
+    """A short dock holding a read-only table with whole-row, single selection."""
+
+    def sizeHint(self) -> QSize:  # noqa: N802 - a short dock leaves room for the panes
+        return QSize(480, 150)
+
+    @staticmethod
+    def make_table(columns: Sequence[str]) -> QTableWidget:
+        table = QTableWidget(0, len(columns))
+        table.setHorizontalHeaderLabels(list(columns))
+        table.verticalHeader().setVisible(False)
+        table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
+        table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
+        table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        return table
+
+
+class FigurePane(StateListener, QWidget):
     """Base class: subclasses implement ``render`` (draw or return a message)."""
 
     title = "pane"
@@ -46,7 +86,6 @@ class FigurePane(QWidget):
         self.hover_text = ""
         self.blitter: Any = None  # set by panes that redraw only a few artists on selection
         self.fast = False  # set by ``render``: only the blitter's artists changed
-        self._connections: list[tuple[Any, Callable]] = []
         self._scheduled = False
 
         outer = QVBoxLayout(self)
@@ -76,21 +115,6 @@ class FigurePane(QWidget):
         """Redraw (coalesced) whenever one of ``fields`` changes."""
         for name in fields:
             self.listen(name, lambda _value: self.schedule())
-
-    def listen(self, field: str, callback: Callable[[Any], None]) -> None:
-        event = getattr(self.state.events, field)
-        event.connect(callback)
-        self._connections.append((event, callback))
-
-    def detach(self) -> None:
-        """Disconnect from the state (the pane is being closed)."""
-        for event, callback in self._connections:
-            event.disconnect(callback)
-        self._connections.clear()
-
-    def closeEvent(self, event) -> None:  # noqa: N802 - Qt name
-        self.detach()
-        super().closeEvent(event)
 
     # -- canvas --------------------------------------------------------------------------------
     def attach_canvas(self) -> None:

@@ -7,27 +7,25 @@ and focus (summary-token attention share). Clicking a word lists the texts that 
 
 from __future__ import annotations
 
-from PySide6.QtCore import QSize
 from PySide6.QtGui import QAction
 from PySide6.QtWidgets import (
-    QAbstractItemView,
     QHBoxLayout,
     QHeaderView,
     QLabel,
-    QTableWidget,
     QTableWidgetItem,
     QToolButton,
     QVBoxLayout,
     QWidget,
 )
 
+from viewer.gui.panes.base import TableDock
 from viewer.gui.state import Selection
 
 COLUMNS = ("word", "texts", "flip rate", "flip low", "mean drop", "focus")
 KEYS = ("token", "count", "flip_rate", "flip_low", "mean_drop", "focus")
 
 
-class ShortcutPane(QWidget):
+class ShortcutPane(TableDock):
     title = "shortcut report"
 
     def __init__(self, state: Selection, search_action: QAction | None = None,
@@ -46,33 +44,14 @@ class ShortcutPane(QWidget):
         self.summary.setWordWrap(True)
         top.addWidget(self.summary, 1)
         layout.addLayout(top)
-        self.table = QTableWidget(0, len(COLUMNS))
-        self.table.setHorizontalHeaderLabels(COLUMNS)
-        self.table.verticalHeader().setVisible(False)
-        self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
-        self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
-        self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.table = self.make_table(COLUMNS)
         self.table.horizontalHeader().setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
         self.table.itemSelectionChanged.connect(self._word_chosen)
         layout.addWidget(self.table, 1)
-        self._callbacks = [
-            ("shortcuts", state.events.shortcuts.connect(lambda _v: self.refresh())),
-            ("textset", state.events.textset.connect(lambda _v: self.refresh())),
-            ("word", state.events.word.connect(lambda _v: self._select_current())),
-        ]
+        self.listen("shortcuts", lambda _v: self.refresh())
+        self.listen("textset", lambda _v: self.refresh())
+        self.listen("word", lambda _v: self._select_current())
         self.refresh()
-
-    def sizeHint(self) -> QSize:  # noqa: N802
-        return QSize(480, 150)
-
-    def detach(self) -> None:
-        for name, cb in self._callbacks:
-            getattr(self.state.events, name).disconnect(cb)
-        self._callbacks.clear()
-
-    def closeEvent(self, event) -> None:  # noqa: N802
-        self.detach()
-        super().closeEvent(event)
 
     def refresh(self) -> None:
         result = self.state.shortcuts

@@ -6,28 +6,27 @@ predictions; a word picked in the shortcut report keeps only the texts containin
 
 from __future__ import annotations
 
-from PySide6.QtCore import QSize, Qt
+from PySide6.QtCore import Qt
 from PySide6.QtGui import QAction, QColor
 from PySide6.QtWidgets import (
-    QAbstractItemView,
     QCheckBox,
     QHBoxLayout,
     QHeaderView,
     QLabel,
-    QTableWidget,
     QTableWidgetItem,
     QToolButton,
     QVBoxLayout,
     QWidget,
 )
 
+from viewer.gui.panes.base import TableDock
 from viewer.gui.state import Selection
 
 COLUMNS = ("#", "text", "label", "predicted", "p", "")
 WRONG = QColor("#fde2e1")
 
 
-class TextSetPane(QWidget):
+class TextSetPane(TableDock):
     title = "text set"
 
     def __init__(self, state: Selection, open_action: QAction | None = None,
@@ -59,12 +58,7 @@ class TextSetPane(QWidget):
         self.summary = QLabel("Open a text set (.txt, .jsonl or .csv) to list its predictions.")
         self.summary.setWordWrap(True)
         layout.addWidget(self.summary)
-        self.table = QTableWidget(0, len(COLUMNS))
-        self.table.setHorizontalHeaderLabels(COLUMNS)
-        self.table.verticalHeader().setVisible(False)
-        self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
-        self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
-        self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.table = self.make_table(COLUMNS)
         self.table.setWordWrap(False)
         header = self.table.horizontalHeader()
         header.setSectionResizeMode(1, QHeaderView.ResizeMode.Stretch)
@@ -72,25 +66,10 @@ class TextSetPane(QWidget):
             header.setSectionResizeMode(col, QHeaderView.ResizeMode.ResizeToContents)
         self.table.itemSelectionChanged.connect(self._row_chosen)
         layout.addWidget(self.table, 1)
-        self._connections = []
         for name in ("textset", "mistakes_only", "word"):
-            cb = getattr(state.events, name).connect(lambda _v: self.refresh())
-            self._connections.append((name, cb))
-        cb = state.events.item.connect(lambda _v: self._select_current())
-        self._connections.append(("item", cb))
+            self.listen(name, lambda _v: self.refresh())
+        self.listen("item", lambda _v: self._select_current())
         self.refresh()
-
-    def sizeHint(self) -> QSize:  # noqa: N802 - a short dock leaves room for the panes
-        return QSize(480, 150)
-
-    def detach(self) -> None:
-        for name, cb in self._connections:
-            getattr(self.state.events, name).disconnect(cb)
-        self._connections.clear()
-
-    def closeEvent(self, event) -> None:  # noqa: N802
-        self.detach()
-        super().closeEvent(event)
 
     def _has_word(self, row) -> bool:
         word = self.state.word
