@@ -24,6 +24,7 @@ from viewer.figures.pair_grid import (  # noqa: E402
     cell_at,
     pair_grid_figure,
     pair_grid_into,
+    retoken_pair_grid,
     update_pair_grid,
 )
 
@@ -78,6 +79,28 @@ def test_pair_grid_update_swaps_values_in_place():
     assert artists.image.get_clim() == (0.0, pytest.approx(other.max()))
     assert cell_at(artists, 2.2, 4.9) == (5, 2)
     assert cell_at(artists, -0.6, 0) is None
+
+
+@pytest.mark.parametrize("causal", [False, True])
+def test_retokened_pair_grid_draws_the_same_pixels_as_a_fresh_one(causal):
+    # reference: a fresh ``pair_grid_into`` of the second text on its own figure
+    first = random_attention(40, causal=causal, seed=3)
+    second = random_attention(23, causal=causal, seed=4)
+    visible = np.tril(np.ones((23, 23), dtype=bool)) if causal else None
+    tokens = [f"second-{i}" for i in range(23)]
+    reused, fresh = Figure(figsize=(6, 5), dpi=80), Figure(figsize=(6, 5), dpi=80)
+    artists = pair_grid_into(reused, first, [f"t{i}" for i in range(40)], title="first")
+    FigureCanvasAgg(reused).draw()
+    retoken_pair_grid(artists, second, tokens, visible=visible, title="second")
+    pair_grid_into(fresh, second, tokens, visible=visible, title="second")
+    pixels = []
+    for fig in (reused, fresh):
+        canvas = FigureCanvasAgg(fig)
+        canvas.draw()
+        pixels.append(np.asarray(canvas.buffer_rgba()).copy())
+    np.testing.assert_array_equal(pixels[0], pixels[1])
+    assert (artists.n_rows, artists.n_cols) == (23, 23)
+    assert cell_at(artists, 22.0, 22.0) == (22, 22) and cell_at(artists, 23.0, 0) is None
 
 
 @pytest.mark.parametrize("n_tokens", [512])

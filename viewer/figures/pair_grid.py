@@ -7,6 +7,8 @@ read as "not computed" rather than as zero attention.
 
 ``draw_pair_grid`` draws into given axes (used by the window's pane and by the card export);
 ``update_pair_grid`` swaps the values in place, the fast path for a head switch;
+``retoken_pair_grid`` puts another text into a figure laid out by ``pair_grid_into``, keeping its
+axes and tick objects (creating matplotlib's ticks is most of the cost of a fresh grid);
 ``pair_grid_figure`` returns a stand-alone figure.
 """
 
@@ -50,6 +52,12 @@ def masked_grid(probs: np.ndarray, visible: np.ndarray | None) -> np.ma.MaskedAr
     return np.ma.masked_array(values, mask=mask)
 
 
+def _set_title(ax: Axes, title: str) -> None:
+    # y given: matplotlib then skips measuring the tick labels to lift the title above them
+    # (there are none on top), a good part of every draw
+    ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left", y=1.0)
+
+
 def _norm(grid: np.ma.MaskedArray):
     shown = grid.compressed()
     return style.sequential_norm(shown if shown.size else np.zeros(1))
@@ -91,8 +99,9 @@ def draw_pair_grid(
     style.set_token_axis(ax, "y", query_tokens)
     ax.set_xlabel("key (attended to)", fontsize=style.LABEL_SIZE)
     ax.set_ylabel("query (attending)", fontsize=style.LABEL_SIZE)
+    place_axis_labels(ax, query_tokens, key_tokens)
     if title:
-        ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left")
+        _set_title(ax, title)
     marker = Rectangle((0, 0), 1, 1, fill=False, edgecolor=style.SELECTION, linewidth=1.6,
                        visible=False, zorder=3)
     ax.add_patch(marker)
@@ -119,7 +128,47 @@ def update_pair_grid(
     norm = _norm(grid)
     artists.image.set_clim(norm.vmin, norm.vmax)
     if title is not None:
-        artists.ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left")
+        _set_title(artists.ax, title)
+
+
+def retoken_pair_grid(
+    artists: PairGridArtists,
+    probs: np.ndarray,
+    query_tokens: Sequence[str],
+    key_tokens: Sequence[str] | None = None,
+    *,
+    visible: np.ndarray | None = None,
+    title: str | None = None,
+) -> PairGridArtists:
+    """``artists`` (from ``pair_grid_into``) showing another text: the same figure as a fresh
+    ``pair_grid_into`` would draw, built by changing the existing artists."""
+    key_tokens = query_tokens if key_tokens is None else key_tokens
+    grid = masked_grid(probs, visible)
+    n_rows, n_cols = grid.shape
+    if len(query_tokens) != n_rows or len(key_tokens) != n_cols:
+        raise ValueError(
+            f"{len(query_tokens)} query and {len(key_tokens)} key tokens for a grid {grid.shape}"
+        )
+    ax = artists.ax
+    extent = (-0.5, n_cols - 0.5, n_rows - 0.5, -0.5)
+    artists.background.set_bounds(-0.5, -0.5, n_cols, n_rows)
+    artists.image.set_data(grid)
+    artists.image.set_extent(extent)
+    norm = _norm(grid)
+    artists.image.set_clim(norm.vmin, norm.vmax)
+    ax.set_xlim(extent[0], extent[1])
+    ax.set_ylim(extent[2], extent[3])
+    style.set_token_axis(ax, "x", key_tokens, rotate=True, restyle=False)
+    style.set_token_axis(ax, "y", query_tokens, restyle=False)
+    place_axis_labels(ax, query_tokens, key_tokens)
+    if title is not None:
+        _set_title(ax, title)
+    cax = artists.colorbar.ax if artists.colorbar is not None else None
+    ax.figure.set_layout_engine(InchLayout(main_with_colorbar(
+        ax, cax, **pair_grid_margins(query_tokens, key_tokens))))
+    artists.n_rows, artists.n_cols = n_rows, n_cols
+    artists.marker.set_visible(False)
+    return artists
 
 
 def mark_cell(artists: PairGridArtists, row: int | None, col: int | None) -> None:
@@ -143,6 +192,26 @@ def cell_at(artists: PairGridArtists, x: float | None, y: float | None) -> tuple
     if 0 <= row < artists.n_rows and 0 <= col < artists.n_cols:
         return row, col
     return None
+
+
+TICK_ROOM_PT = 2.0 + 1.5 + 3.0  # tick length, label pad, and a gap before the axis label
+
+
+def place_axis_labels(ax: Axes, query_tokens: Sequence[str], key_tokens: Sequence[str]) -> None:
+    """Put the axis labels just beyond the longest token labels (estimated, as the margins are).
+
+    Placed by hand, matplotlib does not measure every tick label at every draw to place them.
+    """
+    from matplotlib.transforms import offset_copy
+
+    q = max((len(style.token_label(t)) for t in query_tokens), default=1)
+    k = max((len(style.token_label(t)) for t in key_tokens), default=1)
+    down = text_width_in(k) * 72.0 + TICK_ROOM_PT
+    left = text_width_in(q) * 72.0 + TICK_ROOM_PT
+    ax.xaxis.set_label_coords(0.5, 0.0, transform=offset_copy(
+        ax.transAxes, fig=ax.figure, y=-down, units="points"))
+    ax.yaxis.set_label_coords(0.0, 0.5, transform=offset_copy(
+        ax.transAxes, fig=ax.figure, x=-left, units="points"))
 
 
 def pair_grid_margins(query_tokens: Sequence[str], key_tokens: Sequence[str]) -> dict[str, float]:

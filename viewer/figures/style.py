@@ -182,8 +182,13 @@ class TokenLocator(Locator):
         return self.tick_values(vmin, vmax)
 
 
-def set_token_axis(ax: Axes, which: str, tokens: Sequence[str], rotate: bool = False) -> None:
-    """Label ``ax``'s x or y axis with ``tokens`` through a ``TokenLocator``."""
+def set_token_axis(ax: Axes, which: str, tokens: Sequence[str], rotate: bool = False,
+                   restyle: bool = True) -> None:
+    """Label ``ax``'s x or y axis with ``tokens`` through a ``TokenLocator``.
+
+    ``restyle`` False keeps the tick style of an axis this function already set up (restyling
+    every tick is slow), changing only the labels.
+    """
     labels = token_labels(tokens)
 
     def name(value: float, _pos: int | None = None) -> str:
@@ -194,6 +199,8 @@ def set_token_axis(ax: Axes, which: str, tokens: Sequence[str], rotate: bool = F
     axis.set_major_locator(TokenLocator(len(labels)))
     axis.set_major_formatter(FuncFormatter(name))
     axis.set_minor_locator(mpl.ticker.NullLocator())
+    if not restyle:
+        return
     ax.tick_params(axis=which, labelsize=FONT_SIZE, length=2, pad=1.5)
     if which == "x" and rotate:
         ax.tick_params(axis="x", labelrotation=90)
