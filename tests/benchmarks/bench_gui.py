@@ -120,6 +120,11 @@ def median_time(fn: Callable[[], None], repeats: int, settle: float = 0.0) -> fl
 
 
 def bench_head_switch(window, repeats: int = 24) -> tuple[float, float]:
+    """(select a head → its pair grid painted, set_data → bare canvas painted), medians.
+
+    Both are timed to the end of the paint that shows the new values (``PaintProbe.last``),
+    with the event loop idle before each switch so the other panes have finished the last one.
+    """
     import numpy as np
     from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
     from matplotlib.figure import Figure
@@ -130,16 +135,16 @@ def bench_head_switch(window, repeats: int = 24) -> tuple[float, float]:
     heads = [(layer, head) for layer in range(s.n_layers) for head in range(s.n_heads)]
     k = [0]
 
-    def switch() -> None:
+    def switch() -> float:
         k[0] += 1
         before = probe.count
+        start = time.perf_counter()
         s.select_head(*heads[k[0] % len(heads)])
-        pump_until(lambda: probe.count > before and not pane._scheduled
-                   and not getattr(pane.canvas, "_draw_pending", False))
+        pump_until(lambda: probe.count > before and pane.idle)
+        return probe.last - start
 
     switch()
-    # one click at a time: the other panes finish the previous switch before the next one
-    ours = median_time(switch, repeats, settle=0.4)
+    ours = median_paint(switch, repeats)
 
     t = s.n_tokens
     fig = Figure(figsize=pane.figure.get_size_inches(), dpi=pane.figure.dpi)
@@ -153,18 +158,29 @@ def bench_head_switch(window, repeats: int = 24) -> tuple[float, float]:
     pump_until(lambda: bare_probe.count > 0)
     j = [0]
 
-    def bare() -> None:
+    def bare() -> float:
         j[0] += 1
         before = bare_probe.count
+        start = time.perf_counter()
         image.set_data(grids[j[0] % 4])
         canvas.draw_idle()
         pump_until(lambda: bare_probe.count > before
                    and not getattr(canvas, "_draw_pending", False))
+        return bare_probe.last - start
 
     bare()
-    reference = median_time(bare, repeats, settle=0.4)
+    reference = median_paint(bare, repeats)
     canvas.close()
     return ours, reference
+
+
+def median_paint(fn: Callable[[], float], repeats: int, settle: float = 0.4) -> float:
+    """Median of the times ``fn`` returns, the event loop idling ``settle`` s before each."""
+    times = []
+    for _ in range(repeats):
+        idle(settle)
+        times.append(fn())
+    return statistics.median(times)
 
 
 # -- 2. run to painted ---------------------------------------------------------------------------
@@ -196,7 +212,7 @@ def bench_run(window, loaded, text: str, repeats: int = 5) -> tuple[float, float
         pump_until(lambda: window.state.analysis is not old and grid.count > g0)
         grid_painted = grid.last
         pump_until(lambda: window.state.analysis.summarised and summarised_at[0] is not None
-                   and heads.count > summarised_at[0] and not window.head_map._scheduled,
+                   and heads.count > summarised_at[0] and window.head_map.idle,
                    timeout=60)
         window.state.events.analysis.disconnect(summary)
         first_paint.append(grid_painted - start)
@@ -275,7 +291,7 @@ def bench_gaps(window, text: str) -> tuple[float, int]:
     last[0] = clock.elapsed()
     window.run_current()
     pump_until(lambda: window.state.analysis is not old and probe.count > before
-               and not window.pair_grid._scheduled)
+               and window.pair_grid.idle)
     pump_until(lambda: window.state.analysis.summarised)
     idle(1.0)  # the other panes' draws
     timer.stop()

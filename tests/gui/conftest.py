@@ -81,11 +81,9 @@ def window(qtbot, tmp_path, tiny_dir):
 
 
 def settle(qtbot, pane) -> None:
-    """Let a pane's scheduled refresh and idle draw happen, then draw for exact positions."""
+    """Let a pane's scheduled refresh happen and its frame arrive from the render thread."""
     qtbot.wait(10)
-    qtbot.waitUntil(lambda: not pane._scheduled, timeout=5000)
-    if pane.canvas is not None:
-        pane.canvas.draw()
+    qtbot.waitUntil(lambda: pane.idle, timeout=WAIT_MS)
 
 
 def data_to_widget(pane, ax, x: float, y: float):

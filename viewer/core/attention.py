@@ -137,16 +137,20 @@ def _layer_errors(rec: Recording, layer: int) -> tuple[np.ndarray, np.ndarray]:
     return head_err, ctx.reshape(n_heads, -1).max(axis=1)
 
 
-def check_recording(rec: Recording, tolerance: float = DEFAULT_TOLERANCE) -> CheckResult:
+def check_recording(rec: Recording, tolerance: float = DEFAULT_TOLERANCE,
+                    threads: int | None = None) -> CheckResult:
     """Re-derive every layer's and head's probabilities from the recording's Q/K and compare.
 
     Also checks that each captured head output equals the model's probabilities times the
     captured values, which ties the values and the head-output capture to the same forward.
-    Layers are independent, so long texts are checked on two threads (numpy releases the GIL).
+    Layers are independent, so long texts are checked on up to ``threads`` threads (default: up
+    to four, one per core; numpy releases the GIL). The window passes 1 to leave a core for
+    drawing.
     """
     layers = range(rec.n_layers)
-    if rec.n_tokens >= 96 and rec.n_layers > 1:
-        with ThreadPoolExecutor(max_workers=min(4, os.cpu_count() or 1)) as pool:
+    workers = min(4, os.cpu_count() or 1) if threads is None else max(1, int(threads))
+    if rec.n_tokens >= 96 and rec.n_layers > 1 and workers > 1:
+        with ThreadPoolExecutor(max_workers=workers) as pool:
             parts = list(pool.map(lambda layer: _layer_errors(rec, layer), layers))
     else:
         parts = [_layer_errors(rec, layer) for layer in layers]

@@ -124,10 +124,13 @@ def analyse(rec: Recording, *, label: str | None = None, seconds: float = 0.0,
     return summarise(analysis) if summarised else analysis
 
 
-def summarise(analysis: TextAnalysis) -> TextAnalysis:
-    """The same analysis (same recording object) with the re-derivation check and head metrics."""
+def summarise(analysis: TextAnalysis, threads: int | None = None) -> TextAnalysis:
+    """The same analysis (same recording object) with the re-derivation check and head metrics.
+
+    ``threads`` is passed to the check (the window uses 1: the render thread needs the other
+    core to draw the new run while this runs)."""
     rec = analysis.recording
-    check = check_recording(rec)
+    check = check_recording(rec, threads=threads)
     stats = HeadStats(rec.n_layers, rec.n_heads)
     stats.add(rec.probs, rec.special, rec.causal)
     return replace(analysis, check=check, heads=stats.summary())

@@ -15,9 +15,18 @@ from PySide6.QtWidgets import QApplication
 
 from viewer.gui.window import MainWindow, app_icon
 
+GIL_SWITCH_S = 0.001  # Python's default is 0.005
+
 
 def application(argv: list[str] | None = None) -> QApplication:
-    """The running QApplication, created (with our name and icon) if there is none."""
+    """The running QApplication, created (with our name and icon) if there is none.
+
+    The worker and render threads run Python too; the GUI thread waits for the GIL each time
+    it handles an event in Python, up to one switch interval per wait, so a shorter interval
+    keeps clicks and repaints prompt while a pane is being drawn (measured in
+    ``tests/benchmarks/bench_gui.py``).
+    """
+    sys.setswitchinterval(GIL_SWITCH_S)
     app = QApplication.instance()
     if app is None:
         app = QApplication(argv if argv is not None else sys.argv[:1])

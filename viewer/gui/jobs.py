@@ -112,7 +112,7 @@ def summarise_run(ctx: JobContext, analysis: TextAnalysis) -> TextAnalysis:
     from viewer.gui.analysis import summarise
 
     ctx.progress(0, 0, "re-derivation check and head metrics…")
-    return summarise(analysis)
+    return summarise(analysis, threads=1)  # the other core draws the run meanwhile
 
 
 # -- text sets ------------------------------------------------------------------------------------

@@ -1,8 +1,9 @@
-"""The common frame of a figure pane: a header, a message page, and a matplotlib canvas.
+"""The common frame of a figure pane: a header, a message page, and a view of a matplotlib figure.
 
 A pane receives the shared ``Selection`` in its constructor, connects to the fields it draws,
 and writes user input back to the state only. Drawing goes through a builder of
-``viewer.figures`` onto the pane's own figure; the pane then calls ``draw_idle()``.
+``viewer.figures`` onto the pane's own figure, on the render thread of
+``viewer.gui.panes.render``; the view on screen paints the frames it sends back.
 
 matplotlib takes about a second to import, longer than the window may take to appear, so a pane
 starts with a message page and gets its canvas from ``attach_canvas`` once the window has loaded
@@ -71,22 +72,34 @@ class TableDock(StateListener, QWidget):
 
 
 class FigurePane(StateListener, QWidget):
-    """Base class: subclasses implement ``render`` (draw or return a message)."""
+    """Base class: subclasses implement ``render`` (a build function, or a message).
+
+    ``render`` runs on the GUI thread and must not touch the figure: it reads the selection,
+    sets the title and returns a function that creates or updates the artists; that function
+    runs on the render thread (``viewer.gui.panes.render``), where it may set ``self.fast``
+    when only the blitter's artists changed. Everything it needs from the selection it takes
+    from the enclosing ``render`` call, never from the state directly.
+    """
 
     title = "pane"
     waiting_text = "loading the drawing library…"
     schedule_delay_ms = 20  # the pair grid (0) repaints first after a selection change
-    draw_at_once = False  # draw in ``refresh`` instead of at the next idle moment
 
     def __init__(self, state: Selection, parent: QWidget | None = None) -> None:
         super().__init__(parent)
         self.state = state
         self.figure: Any = None
-        self.canvas: Any = None
+        self.agg: Any = None  # the figure's matplotlib (Agg) canvas, drawn on the render thread
+        self.canvas: Any = None  # the ``PaneView`` on screen
         self.hover_text = ""
         self.blitter: Any = None  # set by panes that redraw only a few artists on selection
-        self.fast = False  # set by ``render``: only the blitter's artists changed
+        self.fast = False  # set by a build: only the blitter's artists changed
+        self.size_px: tuple[int, int] = (500, 400)  # the view's size (GUI thread's copy)
+        self.draw_error: str | None = None
         self._scheduled = False
+        self._frames_due = 0  # frames requested from the render thread, not yet arrived
+        self._frames_held = 0  # requests held back while a view handled an event
+        self._want_figure = False  # False while a message is shown instead
 
         outer = QVBoxLayout(self)
         outer.setContentsMargins(4, 2, 4, 2)
@@ -118,23 +131,27 @@ class FigurePane(StateListener, QWidget):
 
     # -- canvas --------------------------------------------------------------------------------
     def attach_canvas(self) -> None:
-        """Create the figure and canvas (matplotlib must already be importable quickly)."""
+        """Create the figure and its view (matplotlib must already be importable quickly)."""
         if self.canvas is not None:
             return
-        from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
         from matplotlib.figure import Figure
 
+        from viewer.gui.panes.render import PaneView, figure_font_family
+
+        self.font_family = figure_font_family()  # Qt's fonts are registered on this thread
         self.figure = Figure(figsize=(5, 4), dpi=100)
-        self.canvas = FigureCanvasQTAgg(self.figure)
+        self.agg = FigureCanvasAgg(self.figure)
+        self.canvas = PaneView(self)
         self.canvas.setSizePolicy(QSizePolicy.Policy.Expanding, QSizePolicy.Policy.Expanding)
         self.canvas.setMinimumSize(120, 100)
         self.canvas.setFocusPolicy(Qt.FocusPolicy.ClickFocus)
         self.stack.addWidget(self.canvas)
-        self.canvas.mpl_connect("button_press_event", self._press)
-        self.canvas.mpl_connect("button_release_event", self._release)
-        self.canvas.mpl_connect("motion_notify_event", self._motion)
-        self.canvas.mpl_connect("scroll_event", self._scroll)
-        self.canvas.mpl_connect("figure_leave_event", lambda _e: self._set_hover(""))
+        self.agg.mpl_connect("button_press_event", self._press)
+        self.agg.mpl_connect("button_release_event", self._release)
+        self.agg.mpl_connect("motion_notify_event", self._motion)
+        self.agg.mpl_connect("scroll_event", self._scroll)
+        self.agg.mpl_connect("figure_leave_event", lambda _e: self._set_hover(""))
         self.canvas_attached()
         self.refresh()
 
@@ -145,6 +162,16 @@ class FigurePane(StateListener, QWidget):
     def ready(self) -> bool:
         return self.canvas is not None
 
+    @property
+    def drawing(self) -> bool:
+        """A frame is being drawn: the figure belongs to the render thread until it arrives."""
+        return self._frames_due > 0 or self._frames_held > 0
+
+    @property
+    def idle(self) -> bool:
+        """Nothing scheduled and nothing being drawn: the view shows the current selection."""
+        return not self._scheduled and not self.drawing
+
     def schedule(self) -> None:
         """Ask for a refresh on the next turn of the event loop (several changes, one redraw)."""
         if not self._scheduled:
@@ -152,31 +179,58 @@ class FigurePane(StateListener, QWidget):
             QTimer.singleShot(self.schedule_delay_ms, self._flush)
 
     def _flush(self) -> None:
-        self._scheduled = False
-        self.refresh()
+        if self._scheduled:
+            self.refresh()
 
     def refresh(self) -> None:
-        """Redraw now: ``render`` returns None after drawing, or a message to show instead."""
+        """Render now: ``render`` returns a build for the render thread, or a message."""
         self._scheduled = False
         if self.canvas is None:
             self.show_message(self.waiting_text)
             return
-        self.fast = False
-        message = self.render()
-        if message is not None:
-            self.show_message(message)
+        result = self.render()
+        if isinstance(result, str):
+            self.show_message(result)
             return
-        showing = self.stack.currentWidget() is self.canvas
-        self.stack.setCurrentWidget(self.canvas)
-        if self.fast and showing and self.blitter is not None and self.blitter.update():
+        self._want_figure = True
+        self.request_draw(result)
+
+    def request_draw(self, build=None, size=None) -> None:
+        """Have the render thread run ``build`` (if given) and draw a new frame."""
+        if self.canvas is None:
             return
-        if self.draw_at_once and showing:
-            self.canvas.draw()  # now, before the panes scheduled after this one
-            self.canvas.update()
+        from viewer.gui.panes.render import renderer
+
+        renderer().submit(self, build, size)
+
+    def resized(self, width: int, height: int, ratio: float) -> None:
+        """The view changed size (GUI thread): the figure follows on the render thread."""
+        self.size_px = (width, height)
+        self.request_draw(size=(float(width), float(height), float(ratio)))
+
+    @property
+    def size_inches(self) -> tuple[float, float]:
+        """The figure's size once the pending resize is applied (safe on the GUI thread)."""
+        dpi = self.figure.dpi if self.figure is not None else 100.0
+        return self.size_px[0] / dpi, self.size_px[1] / dpi
+
+    def frame_arrived(self, frame) -> None:
+        """A frame from the render thread (GUI thread)."""
+        self._frames_due -= 1
+        if frame.error is not None:
+            self.draw_error = frame.error
+            if not self.drawing:
+                self.show_message(frame.error)
         else:
-            self.canvas.draw_idle()
+            self.draw_error = None
+            self.canvas.show_frame(frame)
+            if self._want_figure and self.stack.currentWidget() is not self.canvas:
+                self.stack.setCurrentWidget(self.canvas)
+        if not self.drawing:
+            self.canvas.replay()
 
     def show_message(self, text: str) -> None:
+        self._want_figure = False
         self.message.setText(text)
         self.stack.setCurrentWidget(self.message)
 
@@ -184,7 +238,7 @@ class FigurePane(StateListener, QWidget):
     def showing_figure(self) -> bool:
         return self.canvas is not None and self.stack.currentWidget() is self.canvas
 
-    def render(self) -> str | None:  # pragma: no cover - abstract
+    def render(self) -> str | Callable[[], None]:  # pragma: no cover - abstract
         raise NotImplementedError
 
     def set_title(self, text: str) -> None:

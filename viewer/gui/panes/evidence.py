@@ -20,8 +20,8 @@ class EvidencePane(FigurePane):
         self.observe("analysis", "evidence", "source")
         self.message.setText("Run a text to see which tokens the prediction rests on.")
 
-    def render(self) -> str | None:
-        from viewer.figures.evidence import evidence_into, mark_token, prediction_line
+    def render(self):
+        from viewer.figures.evidence import prediction_line
 
         a = self.state.analysis
         if a is None:
@@ -34,15 +34,21 @@ class EvidencePane(FigurePane):
         self.set_title(f"evidence strip · {line}")
         if ev is None:
             return f"{line}\n\ncomputing the evidence for this prediction…"
-        self.artists = evidence_into(
-            self.figure, rec.tokens, ev.kinds, ev.values, ev.agreement, labels=rec.labels,
-            probabilities=probs if len(probs) else None, predicted=rec.predicted(),
-            gold=a.label, title=line,
-        )
-        n = rec.n_tokens
-        self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(ev.kinds) - 0.5))
-        mark_token(self.artists, self.state.source)
-        return None
+        source = self.state.source
+
+        def build() -> None:  # render thread
+            from viewer.figures.evidence import evidence_into, mark_token
+
+            self.artists = evidence_into(
+                self.figure, rec.tokens, ev.kinds, ev.values, ev.agreement, labels=rec.labels,
+                probabilities=probs if len(probs) else None, predicted=rec.predicted(),
+                gold=a.label, title=line,
+            )
+            n = rec.n_tokens
+            self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(ev.kinds) - 0.5))
+            mark_token(self.artists, source)
+
+        return build
 
     def _token(self, event) -> int | None:
         if self.artists is None or event.inaxes is not self.artists.ax or event.xdata is None:

@@ -52,8 +52,9 @@ class HeadMapPane(FigurePane):
         self._sync_controls()
         self.message.setText("Run a text (Ctrl+Enter) to see a metric for every head.")
 
-    def canvas_attached(self) -> None:
-        self.canvas.mpl_connect("resize_event", lambda _e: self.schedule())
+    def resized(self, width: int, height: int, ratio: float) -> None:
+        super().resized(width, height, ratio)
+        self.schedule()  # whether values fit into the cells depends on the size
 
     def _metric_chosen(self, index: int) -> None:
         self.state.set_metric(self.metric_box.itemData(index))
@@ -76,10 +77,7 @@ class HeadMapPane(FigurePane):
         self.diff_box.blockSignals(False)
         self.diff_box.setVisible(self.state.compare is not None)
 
-    def render(self) -> str | None:
-        import numpy as np
-
-        from viewer.figures.head_map import head_map_into, mark_head
+    def render(self):
         from viewer.gui.metrics import head_values
 
         result = head_values(self.state)
@@ -88,26 +86,33 @@ class HeadMapPane(FigurePane):
             self.set_title(self.title)
             return result
         selected = (self.state.layer, self.state.head)
-        width, height = self.figure.get_size_inches()
+        width, height = self.size_inches
         n_layers, n_heads = result.values.shape
         annotate = (n_layers * n_heads <= ANNOTATE_CELLS and (width - 1.6) / n_heads >= 0.36
                     and (height - 0.6) / n_layers >= 0.2)
         key = (result.label, result.diverging, annotate)
-        if (self.shown is not None and self.artists is not None and self._key == key
-                and np.array_equal(self.shown.values, result.values, equal_nan=True)):
-            mark_head(self.artists, selected)  # only the selection moved
-            self.fast = True
-            return None
-        self.shown = result
-        self._key = key
         self.set_title(f"head map · {result.title}")
-        if self.blitter is not None:
-            self.blitter.detach()
-        self.artists = head_map_into(self.figure, result.values, label=result.label,
-                                     diverging=result.diverging, selected=selected,
-                                     annotate=annotate)
-        self.blitter = Blitter(self.canvas, [self.artists.marker])
-        return None
+
+        def build() -> None:  # render thread
+            import numpy as np
+
+            from viewer.figures.head_map import head_map_into, mark_head
+
+            if (self.shown is not None and self.artists is not None and self._key == key
+                    and np.array_equal(self.shown.values, result.values, equal_nan=True)):
+                mark_head(self.artists, selected)  # only the selection moved
+                self.fast = True
+                return
+            self.shown = result
+            self._key = key
+            if self.blitter is not None:
+                self.blitter.detach()
+            self.artists = head_map_into(self.figure, result.values, label=result.label,
+                                         diverging=result.diverging, selected=selected,
+                                         annotate=annotate)
+            self.blitter = Blitter(self.agg, [self.artists.marker])
+
+        return build
 
     def displayed_values(self):
         return None if self.artists is None else self.artists.image.get_array()

@@ -43,20 +43,24 @@ class LinksPane(FigurePane):
         if result is not None:
             self.view_box.setCurrentIndex(1)
 
-    def render(self) -> str | None:
-        from viewer.figures.links import accuracy_into, links_into
+    def render(self):
         from viewer.gui.analysis import per_head_link, unit_links
 
-        self.scores = self.per_head = None
         pairs = self.state.link_pairs
         if pairs is not None and self.view_box.currentData() == "file":
             self.set_title(f"links · accuracy over {pairs.pairs} pairs")
-            self.artists = None
-            self.accuracy_artists = accuracy_into(
-                self.figure, pairs.accuracy, nearest_baseline=pairs.nearest_baseline,
-                pairs=pairs.pairs, selected=(self.state.layer, self.state.head))
-            return None
-        self.accuracy_artists = None
+            selected = (self.state.layer, self.state.head)
+
+            def build_accuracy() -> None:  # render thread
+                from viewer.figures.links import accuracy_into
+
+                self.scores = self.per_head = None
+                self.artists = None
+                self.accuracy_artists = accuracy_into(
+                    self.figure, pairs.accuracy, nearest_baseline=pairs.nearest_baseline,
+                    pairs=pairs.pairs, selected=selected)
+
+            return build_accuracy
         a = self.state.analysis
         if a is None:
             return "Run a text, then click a pair-grid cell to pick a source token."
@@ -67,21 +71,28 @@ class LinksPane(FigurePane):
                     "the target. Links show where the source's word attends.")
         layer, head = self.state.layer, self.state.head
         u = a.units
-        self.scores = unit_links(a, layer, head, s)
-        target_unit = None
+        scores = unit_links(a, layer, head, s)
+        per_head = target_unit = None
         if t is not None and t < n:
-            self.per_head = per_head_link(a, s, t)
+            per_head = per_head_link(a, s, t)
             target_unit = u.unit_of(t)
         head_title = f"layer {layer} · " + ("head mean" if head is None else f"head {head}")
         source_name = u.names[u.unit_of(s)]
         self.set_title(f"links · from '{source_name}'")
-        self.artists = links_into(
-            self.figure, u.names, self.scores, per_head_to_target=self.per_head,
-            target=target_unit, source_name=source_name,
-            target_name=u.names[target_unit] if target_unit is not None else None,
-            head_title=head_title, selected=(layer, head), exclude=None,
-        )
-        return None
+
+        def build() -> None:  # render thread
+            from viewer.figures.links import links_into
+
+            self.scores, self.per_head = scores, per_head
+            self.accuracy_artists = None
+            self.artists = links_into(
+                self.figure, u.names, scores, per_head_to_target=per_head,
+                target=target_unit, source_name=source_name,
+                target_name=u.names[target_unit] if target_unit is not None else None,
+                head_title=head_title, selected=(layer, head), exclude=None,
+            )
+
+        return build
 
     # -- mouse ------------------------------------------------------------------------------------
     def _map_head(self, event):

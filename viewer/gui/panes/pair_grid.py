@@ -21,7 +21,6 @@ def _head_name(layer: int, head: int | None) -> str:
 class PairGridPane(FigurePane):
     title = "pair grid"
     schedule_delay_ms = 0
-    draw_at_once = True
 
     def __init__(self, state, parent=None, *, slot: str = "analysis") -> None:
         super().__init__(state, parent)
@@ -63,9 +62,7 @@ class PairGridPane(FigurePane):
             self.state.select_head(self.state.layer, 0)
 
     def _fit(self) -> None:
-        self.zoom.reset()
-        if self.canvas is not None:
-            self.canvas.draw_idle()
+        self.request_draw(self.zoom.reset)
 
     # -- drawing --------------------------------------------------------------------------------
     def current_grid(self):
@@ -76,13 +73,10 @@ class PairGridPane(FigurePane):
             head = min(head, a.recording.n_heads - 1)
         return a.grid(layer, head), layer, head
 
-    def render(self) -> str | None:
-        from viewer.figures.pair_grid import mark_cell, pair_grid_into, update_pair_grid
-
+    def render(self):
         a = self.analysis
         if a is None:
             self.set_title(self.title)
-            self._drawn_for = None
             return self._empty_text()
         rec = a.recording
         grid, layer, head = self.current_grid()
@@ -91,28 +85,43 @@ class PairGridPane(FigurePane):
         who = "compared: " + (a.origin or "second text") if self.slot == "compare" else model
         title = f"{who} · {name}"
         self.set_title(f"pair grid · {name} · {rec.n_tokens} tokens")
-        visible = rec.key_mask() if rec.causal else None
-        if self._drawn_for is rec and self.artists is not None:
-            update_pair_grid(self.artists, grid, visible=visible, title=title)
-            self.fast = True  # same tokens: only image, title, colour bar and outline change
-        else:
-            if self.blitter is not None:
-                self.blitter.detach()
-            self.artists = pair_grid_into(self.figure, grid, rec.tokens, visible=visible,
-                                          title=title)
-            arts = self.artists
-            self.blitter = Blitter(self.canvas, [arts.image, arts.marker, arts.ax.title,
-                                                 arts.colorbar.ax if arts.colorbar else None])
-            n = rec.n_tokens
-            self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
-            self._drawn_for = rec
         source, target = self.state.source, self.state.target
-        if source is not None and source < rec.n_tokens:
-            mark_cell(self.artists, source,
-                      target if target is not None and target < rec.n_tokens else None)
-        else:
-            mark_cell(self.artists, None, None)
-        return None
+        if source is None or source >= rec.n_tokens:
+            source = target = None
+        elif target is not None and target >= rec.n_tokens:
+            target = None
+
+        def build() -> None:  # render thread
+            from viewer.figures.pair_grid import (
+                mark_cell,
+                pair_grid_into,
+                retoken_pair_grid,
+                update_pair_grid,
+            )
+
+            visible = rec.key_mask() if rec.causal else None
+            if self._drawn_for is rec and self.artists is not None:
+                update_pair_grid(self.artists, grid, visible=visible, title=title)
+                self.fast = True  # same tokens: only image, title, colour bar and outline
+            elif self.artists is not None and self.artists.ax.figure is self.figure:
+                retoken_pair_grid(self.artists, grid, rec.tokens, visible=visible, title=title)
+                n = rec.n_tokens
+                self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
+                self._drawn_for = rec
+            else:
+                if self.blitter is not None:
+                    self.blitter.detach()
+                self.artists = pair_grid_into(self.figure, grid, rec.tokens, visible=visible,
+                                              title=title)
+                arts = self.artists
+                self.blitter = Blitter(self.agg, [arts.image, arts.marker, arts.ax.title,
+                                                  arts.colorbar.ax if arts.colorbar else None])
+                n = rec.n_tokens
+                self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
+                self._drawn_for = rec
+            mark_cell(self.artists, source, target)
+
+        return build
 
     def displayed_values(self):
         """The values the image currently holds (masked array), for tests and export."""

@@ -1,0 +1,88 @@
+"""Panes are drawn on the render thread; the window must still show exactly the current numbers.
+
+References: the recording's own probabilities (``Recording.probs``), the token strings of
+``viewer.figures.style.visible_tick_labels`` (what matplotlib's locator chose for the axis), and
+the selection written by a click on a head-map cell.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+
+import numpy as np
+
+from tests.gui.conftest import WAIT_MS, click, data_to_widget, run_and_wait, settle
+from viewer.figures import style
+
+
+def _spy_builds(pane, threads: list) -> None:
+    render = pane.render
+
+    def spying():
+        result = render()
+        if callable(result):
+            def build():
+                threads.append(threading.current_thread())
+                result()
+            return build
+        return result
+
+    pane.render = spying
+
+
+def test_panes_are_built_off_the_gui_thread_and_show_the_new_text(qtbot, window):
+    threads: list = []
+    _spy_builds(window.pair_grid, threads)
+    first = run_and_wait(qtbot, window, evidence=False).recording
+    settle(qtbot, window.pair_grid)
+    second = run_and_wait(qtbot, window, "a short second text", evidence=False).recording
+    pane = window.pair_grid
+    settle(qtbot, pane)
+    assert threads and all(t is not threading.main_thread() for t in threads)
+    assert second.n_tokens != first.n_tokens
+    # the reused axes hold the second text: its values, its size, its token labels
+    np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), second.probs[0, 0])
+    assert (pane.artists.n_rows, pane.artists.n_cols) == (second.n_tokens, second.n_tokens)
+    labels = style.visible_tick_labels(pane.artists.ax, "x")
+    assert labels and set(labels) <= set(style.token_labels(second.tokens))
+    # the frame on screen is as large as the view, and its texts are the figure's labels
+    image = pane.canvas.image
+    ratio = pane.canvas.device_pixel_ratio
+    assert (image.width(), image.height()) == (round(pane.canvas.width() * ratio),
+                                               round(pane.canvas.height() * ratio))
+    painted = [t.text for t in pane.canvas.last_texts]
+    assert "key (attended to)" in painted and "query (attending)" in painted
+    assert set(labels) <= set(painted)
+
+
+def test_a_click_while_a_frame_is_drawn_is_kept_and_replayed(qtbot, window):
+    run_and_wait(qtbot, window, evidence=False)
+    pane = window.head_map
+    settle(qtbot, pane)
+    point = data_to_widget(pane, pane.artists.ax, 3, 1)  # head 3, layer 1
+    pane.request_draw(lambda: time.sleep(0.4))  # the render thread is busy with this pane
+    assert pane.drawing
+    click(qtbot, pane, point)
+    assert (window.state.layer, window.state.head) == (0, 0)  # not handled yet...
+    qtbot.waitUntil(lambda: (window.state.layer, window.state.head) == (1, 3), timeout=WAIT_MS)
+    settle(qtbot, pane)  # ... but not lost either
+
+
+def test_a_drawing_error_is_a_one_line_message_and_the_pane_recovers(qtbot, window):
+    run_and_wait(qtbot, window, evidence=False)
+    pane = window.pair_grid
+    settle(qtbot, pane)
+
+    def broken() -> None:
+        raise ValueError("a deliberately broken build")
+
+    pane.request_draw(broken)
+    settle(qtbot, pane)
+    assert not pane.showing_figure
+    assert pane.message.text() == "could not draw this pane: a deliberately broken build"
+    window.state.select_head(1, 2)
+    settle(qtbot, pane)
+    assert pane.showing_figure
+    rec = window.state.analysis.recording
+    np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), rec.probs[1, 2])
