@@ -90,3 +90,34 @@ def test_the_shortcut_report_matches_the_search_and_lists_a_words_texts(qtbot, w
     assert shown == [i for i, (t, _) in enumerate(TEXTS) if "portal" in word_spans(t)]
     window.textset_pane.clear_word.click()
     assert len(window.textset_pane.rows_shown) == len(TEXTS)
+
+
+def test_a_phrase_search_ranks_word_pairs_as_the_command_does(qtbot, window, textset_file):
+    # reference: ``shortcut_search(..., phrases=True).phrases`` (what ``headlight shortcuts``
+    # prints under "phrases") and ``phrase_spans`` for which texts hold a phrase
+    from viewer.core.shortcuts import phrase_spans
+    from viewer.model.loader import open_model
+    from viewer.reports.shortcuts import shortcut_search
+    from viewer.reports.textsets import load_text_set
+
+    open_set(qtbot, window, textset_file)
+    pane = window.shortcut_pane
+    pane.phrases_box.setChecked(True)
+    window.search_shortcuts()
+    qtbot.waitUntil(lambda: window.state.shortcuts is not None, timeout=WAIT_MS)
+    reference = shortcut_search(open_model(window.state.model.folder),
+                                load_text_set(textset_file), phrases=True).phrases.ranking()
+    assert pane.view_box.isVisibleTo(pane)
+    pane.view_box.setCurrentIndex(pane.view_box.findData("phrases"))
+    assert pane.table.horizontalHeaderItem(0).text() == "phrase"
+    assert pane.words == [row["token"] for row in reference] and reference
+    for r, row in enumerate(reference):
+        assert float(pane.table.item(r, 2).text()) == pytest.approx(row["flip_rate"], abs=5e-4)
+    phrase = "via portal" if "via portal" in pane.words else pane.words[0]
+    pane.table.selectRow(pane.words.index(phrase))
+    assert window.state.word == phrase
+    assert window.textset_pane.rows_shown == [
+        i for i, (t, _) in enumerate(TEXTS) if phrase in phrase_spans(t)]
+    pane.view_box.setCurrentIndex(pane.view_box.findData("words"))
+    assert pane.table.horizontalHeaderItem(0).text() == "word"
+    assert "portal" in pane.words

@@ -148,3 +148,32 @@ def test_compare_mode_shows_the_metric_difference(qtbot, window, tiny_dir_b):
     window.clear_compare()
     settle(qtbot, pane)
     assert not pane.artists.diverging
+
+
+def test_compare_with_a_second_text_shows_it_beside_the_first(qtbot, window):
+    # reference: the second text's own recording and the core's per-text head metrics
+    current = run_and_wait(qtbot, window, evidence=False)
+    second_text = "the rider paid the invoice for the new chain"
+    window.compare_pane.text_radio.setChecked(True)
+    window.compare_pane.text_edit.setText(second_text)
+    assert window.state.compare_target == ("text", second_text)
+    window.run_compare()
+    qtbot.waitUntil(lambda: window.state.compare is not None, timeout=60_000)
+    other = window.state.compare
+    assert other.recording.text == second_text
+    assert other.recording.model_name == current.recording.model_name
+    grid = window.compare_pane.grid
+    window.state.select_head(1, 0)
+    settle(qtbot, grid)
+    np.testing.assert_array_equal(np.ma.getdata(grid.displayed_values()), other.recording.probs[1, 0])
+    assert grid.artists.n_rows == other.recording.n_tokens != current.recording.n_tokens
+    stats = HeadStats(other.recording.n_layers, other.recording.n_heads)
+    stats.add(other.recording.probs, other.recording.special, other.recording.causal)
+    pane = window.head_map
+    settle(qtbot, pane)
+    np.testing.assert_allclose(np.ma.getdata(pane.displayed_values()),
+                               stats.summary().entropy - current.heads.entropy)
+    # the main pair grid still shows the first text
+    settle(qtbot, window.pair_grid)
+    np.testing.assert_array_equal(np.ma.getdata(window.pair_grid.displayed_values()),
+                                  current.recording.probs[1, 0])

@@ -9,7 +9,9 @@ from viewer.gui.jobs import JobContext, TextSetResult
 from viewer.gui.shortcut_source import ShortcutResult
 
 
-def run(ctx: JobContext, loaded: Any, textset: TextSetResult) -> ShortcutResult:
+def run(ctx: JobContext, loaded: Any, textset: TextSetResult,
+        phrases: bool = False) -> ShortcutResult:
+    """Word knockout (and with ``phrases`` two-word phrase knockout) over the text set."""
     from viewer.reports.shortcuts import shortcut_search
     from viewer.reports.textsets import TextItem
 
@@ -21,7 +23,10 @@ def run(ctx: JobContext, loaded: Any, textset: TextSetResult) -> ShortcutResult:
         ctx.progress(done[0], len(items), f"shortcut search: {done[0]} of {len(items)} texts")
         ctx.check()
 
-    ctx.progress(0, len(items), "shortcut search: knocking out every word…")
-    report = shortcut_search(loaded, items, progress=tick, phrases=False)
+    what = "word and two-word phrase" if phrases else "word"
+    ctx.progress(0, len(items), f"shortcut search: knocking out every {what}…")
+    report = shortcut_search(loaded, items, progress=tick, phrases=phrases)
     return ShortcutResult(texts=report.texts, min_count=MIN_TEXTS,
-                          rows=tuple(report.words.ranking()))
+                          rows=tuple(report.words.ranking()),
+                          phrase_rows=tuple(report.phrases.ranking()) if phrases else (),
+                          phrases=phrases)

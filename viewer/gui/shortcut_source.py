@@ -20,15 +20,18 @@ class ShortcutResult:
     texts: int
     min_count: int
     rows: tuple[dict[str, Any], ...]  # {token, count, flip_rate, flip_low, mean_drop, focus}
+    phrase_rows: tuple[dict[str, Any], ...] = ()  # the same for two-word phrases, if searched
+    phrases: bool = False  # whether phrases were searched
 
 
 def available() -> bool:
     return importlib.util.find_spec("viewer.reports.shortcuts") is not None
 
 
-def run(ctx: JobContext, slot: str, textset: TextSetResult) -> ShortcutResult:
+def run(ctx: JobContext, slot: str, textset: TextSetResult,
+        phrases: bool = False) -> ShortcutResult:
     if not available():
         raise HeadlightError("the shortcut search is not part of this build yet")
     from viewer.gui import shortcut_reports
 
-    return shortcut_reports.run(ctx, ctx.model(slot), textset)
+    return shortcut_reports.run(ctx, ctx.model(slot), textset, phrases=phrases)

@@ -551,12 +551,14 @@ class MainWindow(QMainWindow):
             return
         from viewer.gui import shortcut_source
 
-        self.worker.submit("shortcuts", shortcut_source.run, "main", ts)
+        self.worker.submit("shortcuts", shortcut_source.run, "main", ts,
+                           self.shortcut_pane.phrases_box.isChecked())
         self.shortcut_dock.raise_()
 
     def _done_shortcuts(self, result) -> None:
         self.state.set_shortcuts(result)
-        self.set_status(f"shortcut report: {len(result.rows)} words")
+        phrases = f" and {len(result.phrase_rows)} phrases" if result.phrases else ""
+        self.set_status(f"shortcut report: {len(result.rows)} words{phrases}")
 
     # -- compare
     def run_compare(self) -> None:

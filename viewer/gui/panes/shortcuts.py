@@ -3,12 +3,16 @@
 Columns follow DESIGN.md ("Word knockout"): texts containing the word, flip rate, the lower end
 of its 95% Wilson interval (the ranking key), mean drop in the predicted class's probability,
 and focus (summary-token attention share). Clicking a word lists the texts that contain it.
+With "two-word phrases" ticked before a search, the report also ranks adjacent word pairs
+knocked out together (a shortcut such as a footer is often a phrase), shown by "phrases".
 """
 
 from __future__ import annotations
 
 from PySide6.QtGui import QAction
 from PySide6.QtWidgets import (
+    QCheckBox,
+    QComboBox,
     QHBoxLayout,
     QHeaderView,
     QLabel,
@@ -40,6 +44,16 @@ class ShortcutPane(TableDock):
             button = QToolButton()
             button.setDefaultAction(search_action)
             top.addWidget(button)
+        self.phrases_box = QCheckBox("two-word phrases")
+        self.phrases_box.setToolTip("also knock out every pair of adjacent words (about twice "
+                                    "the work); takes effect at the next search")
+        top.addWidget(self.phrases_box)
+        self.view_box = QComboBox()
+        self.view_box.addItem("words", "words")
+        self.view_box.addItem("phrases", "phrases")
+        self.view_box.setToolTip("rank single words or two-word phrases")
+        self.view_box.currentIndexChanged.connect(lambda _i: self.refresh())
+        top.addWidget(self.view_box)
         self.summary = QLabel("")
         self.summary.setWordWrap(True)
         top.addWidget(self.summary, 1)
@@ -55,6 +69,10 @@ class ShortcutPane(TableDock):
 
     def refresh(self) -> None:
         result = self.state.shortcuts
+        has_phrases = result is not None and result.phrases
+        self.view_box.setVisible(has_phrases)
+        phrases = has_phrases and self.view_box.currentData() == "phrases"
+        self.table.setHorizontalHeaderItem(0, QTableWidgetItem("phrase" if phrases else "word"))
         self.table.blockSignals(True)
         self.table.setRowCount(0)
         self.words = []
@@ -66,8 +84,9 @@ class ShortcutPane(TableDock):
                                      "depends on too much (word knockout).")
             self.table.blockSignals(False)
             return
-        rows = list(result.rows)
-        self.summary.setText(f"{len(rows)} words seen in at least {result.min_count} of "
+        rows = list(result.phrase_rows if phrases else result.rows)
+        what = "phrases" if phrases else "words"
+        self.summary.setText(f"{len(rows)} {what} seen in at least {result.min_count} of "
                              f"{result.texts} texts, ranked by flip low (Wilson 95%)")
         self.table.setRowCount(len(rows))
         for r, row in enumerate(rows):

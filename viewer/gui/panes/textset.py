@@ -77,9 +77,9 @@ class TextSetPane(TableDock):
             return True
         keys = self._words.get(row.index)
         if keys is None:
-            from viewer.core.shortcuts import word_spans
+            from viewer.core.shortcuts import phrase_spans, word_spans
 
-            keys = set(word_spans(row.text))
+            keys = set(word_spans(row.text)) | set(phrase_spans(row.text))
             self._words[row.index] = keys
         return word in keys
 
