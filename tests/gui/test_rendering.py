@@ -86,3 +86,22 @@ def test_a_drawing_error_is_a_one_line_message_and_the_pane_recovers(qtbot, wind
     assert pane.showing_figure
     rec = window.state.analysis.recording
     np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), rec.probs[1, 2])
+
+
+def test_merged_builds_take_the_fast_path_only_if_every_build_allows_it():
+    from types import SimpleNamespace
+
+    from viewer.gui.panes.render import _chain
+
+    def build(fast: bool):
+        def run():
+            order.append(fast)
+            if fast:
+                pane.fast = True
+        return run
+
+    for first, then, expected in ((True, False, False), (False, True, False),
+                                  (True, True, True), (False, False, False)):
+        pane, order = SimpleNamespace(fast=False), []
+        _chain(pane, build(first), build(then))()
+        assert order == [first, then] and pane.fast is expected

@@ -92,36 +92,36 @@ class PairGridPane(FigurePane):
             target = None
 
         def build() -> None:  # render thread
-            from viewer.figures.pair_grid import (
-                mark_cell,
-                pair_grid_into,
-                retoken_pair_grid,
-                update_pair_grid,
-            )
+            from viewer.figures.pair_grid import mark_cell, update_pair_grid
 
             visible = rec.key_mask() if rec.causal else None
-            if self._drawn_for is rec and self.artists is not None:
+            if self.artists is not None and self._drawn_for is rec:
+                # same tokens: only image, title, colour bar and outline change
                 update_pair_grid(self.artists, grid, visible=visible, title=title)
-                self.fast = True  # same tokens: only image, title, colour bar and outline
-            elif self.artists is not None and self.artists.ax.figure is self.figure:
-                retoken_pair_grid(self.artists, grid, rec.tokens, visible=visible, title=title)
-                n = rec.n_tokens
-                self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
-                self._drawn_for = rec
+                self.fast = True
             else:
-                if self.blitter is not None:
-                    self.blitter.detach()
-                self.artists = pair_grid_into(self.figure, grid, rec.tokens, visible=visible,
-                                              title=title)
-                arts = self.artists
-                self.blitter = Blitter(self.agg, [arts.image, arts.marker, arts.ax.title,
-                                                  arts.colorbar.ax if arts.colorbar else None])
-                n = rec.n_tokens
-                self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
-                self._drawn_for = rec
+                self._lay_out(rec.tokens, grid, visible, title)
+            self._drawn_for = rec
             mark_cell(self.artists, source, target)
 
         return build
+
+    def _lay_out(self, tokens, grid, visible, title) -> None:
+        """Put ``tokens`` on the axes (render thread): reuse the axes when there are some."""
+        from viewer.figures.pair_grid import pair_grid_into, retoken_pair_grid
+
+        if self.artists is not None and self.artists.ax.figure is self.figure:
+            retoken_pair_grid(self.artists, grid, tokens, visible=visible, title=title)
+        else:
+            if self.blitter is not None:
+                self.blitter.detach()
+            self.artists = pair_grid_into(self.figure, grid, tokens, visible=visible,
+                                          title=title)
+            arts = self.artists
+            self.blitter = Blitter(self.agg, [arts.image, arts.marker, arts.ax.title,
+                                              arts.colorbar.ax if arts.colorbar else None])
+        n = len(tokens)
+        self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
 
     def displayed_values(self):
         """The values the image currently holds (masked array), for tests and export."""
