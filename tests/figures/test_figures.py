@@ -18,7 +18,12 @@ from matplotlib.figure import Figure  # noqa: E402
 
 from viewer.figures import style  # noqa: E402
 from viewer.figures.evidence import evidence_figure, normalise_rows  # noqa: E402
-from viewer.figures.head_map import head_at, head_map_figure  # noqa: E402
+from viewer.figures.head_map import (  # noqa: E402
+    head_at,
+    head_map_figure,
+    head_map_into,
+    update_head_map,
+)
 from viewer.figures.links import links_into, top_links  # noqa: E402
 from viewer.figures.pair_grid import (  # noqa: E402
     cell_at,
@@ -101,6 +106,29 @@ def test_retokened_pair_grid_draws_the_same_pixels_as_a_fresh_one(causal):
     np.testing.assert_array_equal(pixels[0], pixels[1])
     assert (artists.n_rows, artists.n_cols) == (23, 23)
     assert cell_at(artists, 22.0, 22.0) == (22, 22) and cell_at(artists, 23.0, 0) is None
+
+
+@pytest.mark.parametrize("diverging", [False, True])
+def test_updated_head_map_draws_the_same_pixels_as_a_fresh_one(diverging):
+    # reference: a fresh ``head_map_into`` of the new values on its own figure
+    rng = np.random.default_rng(5)
+    first, second = rng.random((4, 4)), rng.random((4, 4)) * 0.5
+    if diverging:
+        first, second = first - 0.5, second - 0.1
+    second[2, 1] = np.nan  # an undefined head stays masked
+    reused, fresh = Figure(figsize=(6, 4), dpi=80), Figure(figsize=(6, 4), dpi=80)
+    artists = head_map_into(reused, first, label="metric", diverging=diverging, annotate=True)
+    FigureCanvasAgg(reused).draw()
+    update_head_map(artists, second)
+    head_map_into(fresh, second, label="metric", diverging=diverging, annotate=True)
+    pixels = []
+    for fig in (reused, fresh):
+        canvas = FigureCanvasAgg(fig)
+        canvas.draw()
+        pixels.append(np.asarray(canvas.buffer_rgba()).copy())
+    np.testing.assert_array_equal(pixels[0], pixels[1])
+    with pytest.raises(ValueError):
+        update_head_map(artists, np.zeros((3, 4)))
 
 
 @pytest.mark.parametrize("n_tokens", [512])

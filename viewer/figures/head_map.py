@@ -7,7 +7,7 @@ two runs (compare mode) is drawn with the diverging map centred on zero.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from matplotlib.axes import Axes
@@ -31,6 +31,7 @@ class HeadMapArtists:
     n_layers: int
     n_heads: int
     diverging: bool
+    cell_texts: list = field(default_factory=list)  # the values written into cells, if any
 
 
 def format_value(value: float) -> str:
@@ -64,18 +65,8 @@ def draw_head_map(
     (the head mean). ``annotate`` writes each value into its cell (default: when the grid is
     small enough to read).
     """
-    data = np.asarray(values, dtype=np.float64)
-    if data.ndim != 2:
-        raise ValueError(f"a head map needs (layers, heads) values, got shape {data.shape}")
+    data, grid, cmap, norm = _scaled(values, diverging)
     n_layers, n_heads = data.shape
-    grid = np.ma.masked_invalid(data)
-    shown = grid.compressed()
-    if diverging:
-        cmap, norm = style.diverging_cmap(), style.diverging_norm(shown)
-    else:
-        cmap, norm = style.sequential_cmap(), style.sequential_norm(shown, vmin=None)
-        if shown.size and shown.min() >= 0 and shown.max() <= 1:
-            norm = style.sequential_norm(np.array([0.0, max(shown.max(), 1e-12)]))
     extent = (-0.5, n_heads - 0.5, n_layers - 0.5, -0.5)
     style.mask_background(ax, extent)
     image = ax.imshow(grid, cmap=cmap, norm=norm, interpolation="nearest", aspect="auto",
@@ -95,14 +86,15 @@ def draw_head_map(
         ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left", pad=18)
     if annotate is None:
         annotate = n_layers * n_heads <= ANNOTATE_MAX_CELLS
+    cell_texts = []
     if annotate:
         font = style.FONT_SIZE - (1.5 if n_heads > 8 else 0.5)
         for layer in range(n_layers):
             for head in range(n_heads):
                 v = data[layer, head]
-                colour = style.text_colour_for(cmap(norm(v))) if np.isfinite(v) else "black"
-                ax.text(head, layer, format_value(v), ha="center", va="center", fontsize=font,
-                        color=colour, zorder=2)
+                cell_texts.append(ax.text(head, layer, format_value(v), ha="center",
+                                          va="center", fontsize=font,
+                                          color=_text_colour(cmap, norm, v), zorder=2))
     marker = Rectangle((0, 0), 1, 1, fill=False, edgecolor=style.SELECTION, linewidth=2.2,
                        visible=False, zorder=3)
     ax.add_patch(marker)
@@ -110,9 +102,44 @@ def draw_head_map(
     if cax is not None:
         colorbar = ax.figure.colorbar(image, cax=cax)
         style.style_colorbar(colorbar, label)
-    artists = HeadMapArtists(ax, image, colorbar, marker, n_layers, n_heads, diverging)
+    artists = HeadMapArtists(ax, image, colorbar, marker, n_layers, n_heads, diverging,
+                             cell_texts)
     mark_head(artists, selected)
     return artists
+
+
+def _scaled(values: np.ndarray, diverging: bool):
+    """(data, masked grid, colour map, norm) of (L, H) values, as ``draw_head_map`` uses them."""
+    data = np.asarray(values, dtype=np.float64)
+    if data.ndim != 2:
+        raise ValueError(f"a head map needs (layers, heads) values, got shape {data.shape}")
+    grid = np.ma.masked_invalid(data)
+    shown = grid.compressed()
+    if diverging:
+        cmap, norm = style.diverging_cmap(), style.diverging_norm(shown)
+    else:
+        cmap, norm = style.sequential_cmap(), style.sequential_norm(shown, vmin=None)
+        if shown.size and shown.min() >= 0 and shown.max() <= 1:
+            norm = style.sequential_norm(np.array([0.0, max(shown.max(), 1e-12)]))
+    return data, grid, cmap, norm
+
+
+def _text_colour(cmap, norm, value: float) -> str:
+    return style.text_colour_for(cmap(norm(value))) if np.isfinite(value) else "black"
+
+
+def update_head_map(artists: HeadMapArtists, values: np.ndarray) -> None:
+    """New values of the same shape and kind in place: the figure a fresh ``draw_head_map``
+    would draw, without rebuilding axes, ticks and colour bar."""
+    data, grid, cmap, norm = _scaled(values, artists.diverging)
+    if data.shape != (artists.n_layers, artists.n_heads):
+        raise ValueError(f"values {data.shape} do not fit the drawn "
+                         f"{artists.n_layers}×{artists.n_heads} head map")
+    artists.image.set_data(grid)
+    artists.image.set_clim(norm.vmin, norm.vmax)
+    for text, v in zip(artists.cell_texts, data.ravel(), strict=False):
+        text.set_text(format_value(v))
+        text.set_color(_text_colour(cmap, artists.image.norm, v))
 
 
 def mark_head(artists: HeadMapArtists, selected: tuple[int, int | None] | None) -> None:

@@ -82,7 +82,7 @@ class HeadMapPane(FigurePane):
 
         result = head_values(self.state)
         if isinstance(result, str):
-            self.shown = None
+            # the figure keeps its artists (and ``shown``) for the next values of this kind
             self.set_title(self.title)
             return result
         selected = (self.state.layer, self.state.head)
@@ -96,14 +96,19 @@ class HeadMapPane(FigurePane):
         def build() -> None:  # render thread
             import numpy as np
 
-            from viewer.figures.head_map import head_map_into, mark_head
+            from viewer.figures.head_map import head_map_into, mark_head, update_head_map
 
-            if (self.shown is not None and self.artists is not None and self._key == key
-                    and np.array_equal(self.shown.values, result.values, equal_nan=True)):
+            same_kind = (self.shown is not None and self.artists is not None
+                         and self._key == key and self.shown.values.shape == result.values.shape)
+            if same_kind and np.array_equal(self.shown.values, result.values, equal_nan=True):
                 mark_head(self.artists, selected)  # only the selection moved
                 self.fast = True
                 return
             self.shown = result
+            if same_kind:  # another text or metric of the same kind: new values in place
+                update_head_map(self.artists, result.values)
+                mark_head(self.artists, selected)
+                return
             self._key = key
             if self.blitter is not None:
                 self.blitter.detach()
