@@ -55,9 +55,7 @@ def settle(window: MainWindow, seconds: float = 0.6) -> None:
     while time.monotonic() < end:
         QApplication.processEvents()
         time.sleep(0.02)
-    for pane in window.figure_panes:
-        if pane.canvas is not None and pane.showing_figure:
-            pane.canvas.draw()
+    wait(lambda: all(pane.idle for pane in window.figure_panes), what="the panes' frames")
     QApplication.processEvents()
 
 
