@@ -42,6 +42,13 @@ def random_attention(t: int, causal: bool, seed: int = 0) -> np.ndarray:
     return a / a.sum(axis=1, keepdims=True)
 
 
+def pixels(fig: Figure) -> np.ndarray:
+    """The RGBA pixels of ``fig`` drawn by Agg."""
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    return np.asarray(canvas.buffer_rgba()).copy()
+
+
 def drawn(fig: Figure) -> Figure:
     FigureCanvasAgg(fig).draw()
     return fig
@@ -98,12 +105,7 @@ def test_retokened_pair_grid_draws_the_same_pixels_as_a_fresh_one(causal):
     FigureCanvasAgg(reused).draw()
     retoken_pair_grid(artists, second, tokens, visible=visible, title="second")
     pair_grid_into(fresh, second, tokens, visible=visible, title="second")
-    pixels = []
-    for fig in (reused, fresh):
-        canvas = FigureCanvasAgg(fig)
-        canvas.draw()
-        pixels.append(np.asarray(canvas.buffer_rgba()).copy())
-    np.testing.assert_array_equal(pixels[0], pixels[1])
+    np.testing.assert_array_equal(pixels(reused), pixels(fresh))
     assert (artists.n_rows, artists.n_cols) == (23, 23)
     assert cell_at(artists, 22.0, 22.0) == (22, 22) and cell_at(artists, 23.0, 0) is None
 
@@ -121,12 +123,7 @@ def test_updated_head_map_draws_the_same_pixels_as_a_fresh_one(diverging):
     FigureCanvasAgg(reused).draw()
     update_head_map(artists, second)
     head_map_into(fresh, second, label="metric", diverging=diverging, annotate=True)
-    pixels = []
-    for fig in (reused, fresh):
-        canvas = FigureCanvasAgg(fig)
-        canvas.draw()
-        pixels.append(np.asarray(canvas.buffer_rgba()).copy())
-    np.testing.assert_array_equal(pixels[0], pixels[1])
+    np.testing.assert_array_equal(pixels(reused), pixels(fresh))
     with pytest.raises(ValueError):
         update_head_map(artists, np.zeros((3, 4)))
 

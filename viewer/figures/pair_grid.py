@@ -58,6 +58,17 @@ def _set_title(ax: Axes, title: str) -> None:
     ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left", y=1.0)
 
 
+def _token_grid(probs, visible, query_tokens, key_tokens):
+    """(masked grid, key tokens) after checking that the tokens fit the grid."""
+    key_tokens = query_tokens if key_tokens is None else key_tokens
+    grid = masked_grid(probs, visible)
+    if len(query_tokens) != grid.shape[0] or len(key_tokens) != grid.shape[1]:
+        raise ValueError(
+            f"{len(query_tokens)} query and {len(key_tokens)} key tokens for a grid {grid.shape}"
+        )
+    return grid, key_tokens
+
+
 def _norm(grid: np.ma.MaskedArray):
     shown = grid.compressed()
     return style.sequential_norm(shown if shown.size else np.zeros(1))
@@ -79,13 +90,8 @@ def draw_pair_grid(
     ``visible`` (T_q, T_k) bool marks the cells a query may see; the rest are drawn as masked.
     The colour scale runs from 0 to the largest visible value, labelled with ``units``.
     """
-    key_tokens = query_tokens if key_tokens is None else key_tokens
-    grid = masked_grid(probs, visible)
+    grid, key_tokens = _token_grid(probs, visible, query_tokens, key_tokens)
     n_rows, n_cols = grid.shape
-    if len(query_tokens) != n_rows or len(key_tokens) != n_cols:
-        raise ValueError(
-            f"{len(query_tokens)} query and {len(key_tokens)} key tokens for a grid {grid.shape}"
-        )
     extent = (-0.5, n_cols - 0.5, n_rows - 0.5, -0.5)
     background = style.mask_background(ax, extent)
     image = ax.imshow(
@@ -142,13 +148,8 @@ def retoken_pair_grid(
 ) -> PairGridArtists:
     """``artists`` (from ``pair_grid_into``) showing another text: the same figure as a fresh
     ``pair_grid_into`` would draw, built by changing the existing artists."""
-    key_tokens = query_tokens if key_tokens is None else key_tokens
-    grid = masked_grid(probs, visible)
+    grid, key_tokens = _token_grid(probs, visible, query_tokens, key_tokens)
     n_rows, n_cols = grid.shape
-    if len(query_tokens) != n_rows or len(key_tokens) != n_cols:
-        raise ValueError(
-            f"{len(query_tokens)} query and {len(key_tokens)} key tokens for a grid {grid.shape}"
-        )
     ax = artists.ax
     extent = (-0.5, n_cols - 0.5, n_rows - 0.5, -0.5)
     artists.background.set_bounds(-0.5, -0.5, n_cols, n_rows)
