@@ -44,6 +44,8 @@ LABEL_SIZE = 8.5  # axis labels, colour-bar labels
 TITLE_SIZE = 9.5
 LABEL_SPACING = 1.6  # a token label needs this many font heights of room along its axis
 MAX_TOKEN_CHARS = 14
+TICK_LENGTH_PT = 2.0  # token axes: tick length and the gap between tick and label
+TICK_PAD_PT = 1.5
 
 ATTENTION_UNITS = "attention probability"
 
@@ -201,7 +203,7 @@ def set_token_axis(ax: Axes, which: str, tokens: Sequence[str], rotate: bool = F
     axis.set_minor_locator(mpl.ticker.NullLocator())
     if not restyle:
         return
-    ax.tick_params(axis=which, labelsize=FONT_SIZE, length=2, pad=1.5)
+    ax.tick_params(axis=which, labelsize=FONT_SIZE, length=TICK_LENGTH_PT, pad=TICK_PAD_PT)
     if which == "x" and rotate:
         ax.tick_params(axis="x", labelrotation=90)
 

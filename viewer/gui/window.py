@@ -47,6 +47,9 @@ DEMO_TEXT = ("Hi, the rear derailleur on my cargo bike keeps slipping and the ch
              "when I climb. Could someone at the Oldmere depot look at it on Tuesday? "
              "Thanks, Wren. [via portal]")
 RECENT_MAX = 8
+# The check, head metrics and evidence of a run start once the pair grid has painted it (numpy
+# work on the worker would take the render thread's core and GIL meanwhile), or after this long.
+FOLLOW_UP_MS = 400
 ICON = Path(__file__).parent / "icons" / "headlight.svg"
 STYLE = """
 QLabel#paneTitle { font-weight: bold; color: #1d2b36; }
@@ -84,6 +87,7 @@ class MainWindow(QMainWindow):
         self._pending_selection: dict[str, Any] | None = None
         self._pending_item: int | None = None
         self._after_open: list[Any] = []
+        self._follow_up: Any = None  # a run whose check and evidence wait for its first paint
         self.setWindowTitle("Headlight")
         self.setWindowIcon(app_icon())
         self.setStyleSheet(STYLE)
@@ -177,6 +181,7 @@ class MainWindow(QMainWindow):
         self.head_map = HeadMapPane(self.state)
         self.links = LinksPane(self.state)
         self.pair_grid = PairGridPane(self.state)
+        self.pair_grid.painted.connect(self._grid_painted)
         self.evidence = EvidencePane(self.state)
         left_split = QSplitter(Qt.Orientation.Vertical)
         left_split.addWidget(self.head_map)
@@ -457,7 +462,8 @@ class MainWindow(QMainWindow):
 
     def _done_run(self, analysis) -> None:
         self.state.set_analysis(analysis)
-        self.worker.submit("summary", jobs.summarise_run, analysis)
+        self._follow_up = analysis
+        QTimer.singleShot(FOLLOW_UP_MS, self, lambda: self._start_follow_up(analysis))
         pending, self._pending_selection = self._pending_selection, None
         if pending:
             self._apply_selection(pending)
@@ -467,6 +473,18 @@ class MainWindow(QMainWindow):
         rec = analysis.recording
         note = f" · {rec.notes[-1]}" if rec.notes else ""
         self.set_status(f"recorded {rec.n_tokens} tokens in {analysis.seconds:.2f} s{note}")
+
+    def _grid_painted(self) -> None:
+        a = self._follow_up
+        if a is not None and self.pair_grid._drawn_for is a.recording:
+            self._start_follow_up(a)
+
+    def _start_follow_up(self, analysis) -> None:
+        """The second step of a run: check and head metrics, then (if on) the evidence."""
+        if self._follow_up is not analysis:
+            return  # started already, or a newer run replaced it
+        self._follow_up = None
+        self.worker.submit("summary", jobs.summarise_run, analysis)
         if self.evidence_action.isChecked():
             self.run_evidence()
 
@@ -696,6 +714,7 @@ class MainWindow(QMainWindow):
             except Exception:  # noqa: BLE001 - never block closing
                 pass
         self.settings.sync()
+        self._follow_up = None
         self.worker.shutdown()
         for pane in self.figure_panes:
             pane.detach()

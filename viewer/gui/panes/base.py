@@ -16,7 +16,7 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from typing import Any
 
-from PySide6.QtCore import QSize, Qt, QTimer
+from PySide6.QtCore import QSize, Qt, QTimer, Signal
 from PySide6.QtGui import QCursor
 from PySide6.QtWidgets import (
     QAbstractItemView,
@@ -80,6 +80,8 @@ class FigurePane(StateListener, QWidget):
     when only the blitter's artists changed. Everything it needs from the selection it takes
     from the enclosing ``render`` call, never from the state directly.
     """
+
+    painted = Signal()  # a frame arrived and nothing else is being drawn for this pane
 
     title = "pane"
     waiting_text = "loading the drawing library…"
@@ -158,6 +160,11 @@ class FigurePane(StateListener, QWidget):
     def canvas_attached(self) -> None:
         """Hook for subclasses that need the figure once (e.g. to keep artists)."""
 
+    def overlay_texts(self) -> list:
+        """Texts to paint over the drawn figure (render thread, after the draw): labels the
+        pane paints itself instead of letting matplotlib lay them out."""
+        return []
+
     @property
     def ready(self) -> bool:
         return self.canvas is not None
@@ -228,6 +235,8 @@ class FigurePane(StateListener, QWidget):
                 self.stack.setCurrentWidget(self.canvas)
         if not self.drawing:
             self.canvas.replay()
+            if frame.image is not None:
+                self.painted.emit()
 
     def show_message(self, text: str) -> None:
         self._want_figure = False

@@ -117,11 +117,25 @@ class PairGridPane(FigurePane):
                 self.blitter.detach()
             self.artists = pair_grid_into(self.figure, grid, tokens, visible=visible,
                                           title=title)
+            # token labels are painted by ``overlay_texts``: the same labels, in a fraction of
+            # the time matplotlib takes to lay out and draw tick labels
+            self.artists.ax.tick_params(labelbottom=False, labelleft=False)
             arts = self.artists
             self.blitter = Blitter(self.agg, [arts.image, arts.marker, arts.ax.title,
                                               arts.colorbar.ax if arts.colorbar else None])
         n = len(tokens)
         self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
+
+    def overlay_texts(self) -> list:
+        from viewer.figures import style
+        from viewer.gui.panes.render import token_label_items
+
+        if self.artists is None or self.artists.ax.figure is not self.figure:
+            return []
+        pad = style.TICK_LENGTH_PT + style.TICK_PAD_PT
+        ax = self.artists.ax
+        return (token_label_items(ax, "x", pad, style.FONT_SIZE)
+                + token_label_items(ax, "y", pad, style.FONT_SIZE))
 
     def displayed_values(self):
         """The values the image currently holds (masked array), for tests and export."""

@@ -42,7 +42,7 @@ from pathlib import Path
 from typing import Any
 
 from PySide6.QtCore import QEvent, QObject, QPointF, QRectF, Qt, Signal
-from PySide6.QtGui import QColor, QFont, QFontDatabase, QImage, QPainter
+from PySide6.QtGui import QColor, QFont, QFontDatabase, QFontMetricsF, QImage, QPainter
 from PySide6.QtWidgets import QWidget
 
 BUTTONS = {Qt.MouseButton.LeftButton: 1, Qt.MouseButton.MiddleButton: 2,
@@ -60,15 +60,17 @@ class RenderJob:
 class TextItem:
     """One line of text as matplotlib laid it out, in the frame's pixels (y downwards)."""
 
-    x: float  # left end of the baseline
+    x: float  # the anchor: left end of the baseline unless ``ha``/``va`` say otherwise
     y: float
     text: str
     size_px: float  # font size in the frame's pixels
-    angle: float  # degrees, counter-clockwise
+    angle: float  # degrees, counter-clockwise, about the anchor
     rgba: tuple[float, float, float, float]
     bold: bool
     italic: bool
     clip: tuple[float, float, float, float] | None  # (x0, y0, x1, y1), y downwards
+    ha: str = "left"  # which end of the (unrotated) line is at the anchor
+    va: str = "baseline"  # "baseline" or "center" (half-way between ascent and descent)
 
 
 @dataclass
@@ -235,10 +237,11 @@ class Renderer(QObject):
             # the GUI thread a plain copy of pixels when it paints
             image = QImage(pixels, width, height, width * 4, QImage.Format.Format_RGBA8888)
             image = image.convertToFormat(QImage.Format.Format_ARGB32_Premultiplied)
+            texts = list(renderer.texts) + pane.overlay_texts()
             painter = QPainter(image)
-            paint_texts(painter, renderer.texts, pane.font_family)
+            paint_texts(painter, texts, pane.font_family)
             painter.end()
-            return Frame(pane, image, float(agg.device_pixel_ratio), texts=list(renderer.texts))
+            return Frame(pane, image, float(agg.device_pixel_ratio), texts=texts)
         except Exception as exc:  # noqa: BLE001 - a drawing bug must not kill the thread
             traceback.print_exc(file=sys.stderr)
             return Frame(pane, None, error=f"could not draw this pane: {exc}")
@@ -307,8 +310,47 @@ def paint_texts(painter: QPainter, texts: list[TextItem], family: str) -> None:
         painter.translate(item.x, item.y)
         if item.angle:
             painter.rotate(-item.angle)
-        painter.drawText(QPointF(0.0, 0.0), item.text)
+        dx = dy = 0.0
+        if item.ha != "left" or item.va != "baseline":
+            metrics = QFontMetricsF(font)
+            width = metrics.horizontalAdvance(item.text)
+            dx = -width if item.ha == "right" else (-width / 2 if item.ha == "center" else 0.0)
+            if item.va == "center":
+                dy = (metrics.ascent() - metrics.descent()) / 2
+        painter.drawText(QPointF(dx, dy), item.text)
         painter.restore()
+
+
+def token_label_items(ax, which: str, pad_pt: float, size_pt: float) -> list[TextItem]:
+    """The token labels of ``ax``'s x or y axis (``viewer.figures.style.TokenLocator`` and its
+    formatter decide which and what) as texts beside the axes, for ``paint_texts``.
+
+    x labels read upwards and end ``pad_pt`` below the axes, centred on their tick; y labels end
+    ``pad_pt`` left of the axes, centred on their tick: where matplotlib puts tick labels."""
+    axis = ax.xaxis if which == "x" else ax.yaxis
+    lo, hi = sorted(axis.get_view_interval())
+    ticks = [t for t in axis.get_major_locator()() if lo <= t <= hi]
+    fmt = axis.get_major_formatter()
+    figure = ax.figure
+    height = figure.bbox.height
+    pad = pad_pt * figure.dpi / 72.0
+    size = size_pt * figure.dpi / 72.0
+    box = ax.get_window_extent()
+    items = []
+    for tick in ticks:
+        label = fmt(tick)
+        if not label:
+            continue
+        label = label.replace("\\$", "$")
+        if which == "x":
+            x, _ = ax.transData.transform((tick, 0.0))
+            items.append(TextItem(float(x), float(height - box.y0 + pad), label, size, 90.0,
+                                  (0.0, 0.0, 0.0, 1.0), False, False, None, "right", "center"))
+        else:
+            _, y = ax.transData.transform((0.0, tick))
+            items.append(TextItem(float(box.x0 - pad), float(height - y), label, size, 0.0,
+                                  (0.0, 0.0, 0.0, 1.0), False, False, None, "right", "center"))
+    return items
 
 
 class PaneView(QWidget):
