@@ -105,3 +105,16 @@ def test_merged_builds_take_the_fast_path_only_if_every_build_allows_it():
         pane, order = SimpleNamespace(fast=False), []
         _chain(pane, build(first), build(then))()
         assert order == [first, then] and pane.fast is expected
+
+
+def test_a_new_source_token_moves_the_evidence_marker_without_a_rebuild(qtbot, window):
+    run_and_wait(qtbot, window, evidence=True)
+    pane = window.evidence
+    settle(qtbot, pane)
+    artists, zoomed = pane.artists, pane.artists.ax.get_xlim()
+    window.state.select_tokens(3, None)
+    settle(qtbot, pane)
+    assert pane.artists is artists  # same figure: a zoomed view stays as it is
+    assert pane.artists.ax.get_xlim() == zoomed
+    assert pane.artists.marker.get_visible() and pane.artists.marker.get_x() == 2.5
+    assert pane.showing_figure

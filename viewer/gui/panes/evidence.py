@@ -7,6 +7,7 @@ knockout. Click a token to make it the source token; wheel to zoom along the tex
 from __future__ import annotations
 
 from viewer.gui.panes.base import FigurePane
+from viewer.gui.panes.blit import Blitter
 from viewer.gui.panes.zoom import Extent, ZoomPan
 
 
@@ -16,6 +17,7 @@ class EvidencePane(FigurePane):
     def __init__(self, state, parent=None) -> None:
         super().__init__(state, parent)
         self.artists = None
+        self._drawn_for = None  # the evidence the figure was built for
         self.zoom = ZoomPan(both=False)
         self.observe("analysis", "evidence", "source")
         self.message.setText("Run a text to see which tokens the prediction rests on.")
@@ -39,6 +41,12 @@ class EvidencePane(FigurePane):
         def build() -> None:  # render thread
             from viewer.figures.evidence import evidence_into, mark_token
 
+            if self.artists is not None and self._drawn_for is ev:
+                mark_token(self.artists, source)  # only the source token moved
+                self.fast = True
+                return
+            if self.blitter is not None:
+                self.blitter.detach()
             self.artists = evidence_into(
                 self.figure, rec.tokens, ev.kinds, ev.values, ev.agreement, labels=rec.labels,
                 probabilities=probs if len(probs) else None, predicted=rec.predicted(),
@@ -46,6 +54,8 @@ class EvidencePane(FigurePane):
             )
             n = rec.n_tokens
             self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(ev.kinds) - 0.5))
+            self.blitter = Blitter(self.agg, [self.artists.marker])
+            self._drawn_for = ev
             mark_token(self.artists, source)
 
         return build
