@@ -311,11 +311,12 @@ def main(argv: list[str] | None = None) -> int:
 
         args.model = str(minilm_folder())
 
-    from viewer.gui.app import application
+    from viewer.gui.app import application, tune_collector
     from viewer.gui.window import MainWindow
     from viewer.model.loader import open_model
 
     application()
+    tune_collector()  # as ``headlight`` does
     tmp = Path(tempfile.mkdtemp(prefix="headlight-bench-"))
     window = MainWindow(settings=QSettings(str(tmp / "s.ini"), QSettings.Format.IniFormat),
                         config_dir=tmp, restore_geometry=False)

@@ -118,3 +118,38 @@ def test_a_new_source_token_moves_the_evidence_marker_without_a_rebuild(qtbot, w
     assert pane.artists.ax.get_xlim() == zoomed
     assert pane.artists.marker.get_visible() and pane.artists.marker.get_x() == 2.5
     assert pane.showing_figure
+
+
+def test_full_garbage_collections_wait_for_an_idle_window(qtbot, window):
+    # reference: the interpreter's own collector (``gc``) and a weak reference to a cycle
+    import gc
+    import weakref
+
+    from viewer.gui.app import tune_collector
+
+    class Node:
+        pass
+
+    run_and_wait(qtbot, window, evidence=False)
+    settle(qtbot, window.pair_grid)
+    thresholds = gc.get_threshold()
+    tune_collector()  # as ``headlight`` does: no automatic full collections
+    try:
+        a, b = Node(), Node()
+        a.other, b.other = b, a
+        probe = weakref.ref(a)
+        gc.collect(1)  # alive: the cycle moves to the oldest generation ...
+        del a, b  # ... and only then becomes garbage, which a young collection cannot free
+        gc.collect(1)
+        assert probe() is not None
+        window._busy_at = time.monotonic()
+        assert not window.collect_when_idle() and probe() is not None  # busy just now
+        window._done_hold = lambda _result: None
+        window.worker.submit("hold", lambda ctx: time.sleep(0.3))
+        window._busy_at -= 60
+        assert not window.collect_when_idle() and probe() is not None  # model work running
+        qtbot.waitUntil(lambda: not window.worker.busy, timeout=WAIT_MS)
+        window._busy_at -= 60
+        assert window.collect_when_idle() and probe() is None
+    finally:
+        gc.set_threshold(*thresholds)

@@ -23,7 +23,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 from PySide6.QtCore import QEvent, QObject, QPoint, Qt
 from PySide6.QtGui import QImage
 from PySide6.QtWidgets import (
@@ -71,6 +70,8 @@ def shorten(text: str, max_chars: int = TEXT_CHARS) -> str:
 
 def plain(value: Any) -> Any:
     """numpy values and arrays as JSON-ready Python values (NaN and ±inf become None)."""
+    import numpy as np  # not at import time: the window appears before numpy loads
+
     if isinstance(value, np.ndarray):
         return [plain(v) for v in value.tolist()] if value.ndim else plain(value.item())
     if isinstance(value, (list, tuple)):
@@ -144,6 +145,8 @@ def _base_data(pane: str, model: str, text: str, state) -> dict:
 
 def pair_grid_export(state, analysis, *, pane: str = "pair grid") -> PaneExport:
     """The selected head's (or head mean's) attention as the pair grid draws it."""
+    import numpy as np  # not at import time: the window appears before numpy loads
+
     from viewer.figures.pair_grid import mark_cell, pair_grid_into
     from viewer.figures.style import ATTENTION_UNITS, head_name
 
@@ -181,6 +184,8 @@ def pair_grid_export(state, analysis, *, pane: str = "pair grid") -> PaneExport:
 
 def head_map_export(state) -> PaneExport:
     """The head map's metric, exactly the (L, H) values the pane shows."""
+    import numpy as np  # not at import time: the window appears before numpy loads
+
     from viewer.figures.export import grid_rows
     from viewer.figures.head_map import head_map_into
     from viewer.figures.style import head_name
@@ -216,6 +221,8 @@ def head_map_export(state) -> PaneExport:
 
 def links_export(state, *, view: str = "text") -> PaneExport:
     """Link scores from the source word (bars + per-head map), or link-pairs accuracy."""
+    import numpy as np  # not at import time: the window appears before numpy loads
+
     from viewer.figures.export import grid_rows
     from viewer.figures.links import LINK_UNITS, accuracy_into, links_into
     from viewer.figures.style import head_name
@@ -282,6 +289,8 @@ def links_export(state, *, view: str = "text") -> PaneExport:
 
 def evidence_export(state) -> PaneExport:
     """The evidence strip: every kind of per-token evidence, with the class probabilities."""
+    import numpy as np  # not at import time: the window appears before numpy loads
+
     from viewer.figures.evidence import ROW_UNITS, evidence_into, mark_token, prediction_line
 
     a = state.analysis

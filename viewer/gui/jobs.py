@@ -58,6 +58,21 @@ def demo_folder() -> Path:
 # -- opening and recording ------------------------------------------------------------------------
 
 
+def settle_imports() -> None:
+    """Move everything alive now (after the heavy imports) out of the garbage collector's view.
+
+    The collector's full passes stop every thread for as long as it takes to traverse every
+    tracked object: with torch, transformers and matplotlib loaded that was up to 0.57 s
+    (measured in ``tests/benchmarks/bench_gui.py``), far over the 100 ms the window may stall.
+    Modules, classes and functions never become garbage, so ``gc.freeze`` (made for this) loses
+    nothing; objects created later (models, figures, recordings) are collected as usual.
+    """
+    import gc
+
+    gc.freeze()
+
+
+
 DEMO_NAME = "Northgate demo router"
 
 
@@ -76,6 +91,7 @@ def open_model(ctx: JobContext, slot: str, folder: str) -> ModelInfo:
     ctx.progress(0, 0, "loading torch and transformers…")
     from viewer.model.loader import open_model as open_folder
 
+    settle_imports()
     ctx.check()
     ctx.progress(0, 0, f"opening {Path(folder).name}…")
     loaded = open_folder(folder)

@@ -33,4 +33,7 @@ def load_figures(ctx: Any) -> float:
     ctx.progress(0, 0, "loading the drawing library…")
     for name in MODULES:
         importlib.import_module(name)
+    from viewer.gui.jobs import settle_imports
+
+    settle_imports()
     return time.perf_counter() - start

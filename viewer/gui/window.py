@@ -7,6 +7,7 @@ needing evidence) and stores the worker's results back into the state on the GUI
 
 from __future__ import annotations
 
+import time
 from pathlib import Path
 from typing import Any
 
@@ -50,6 +51,8 @@ RECENT_MAX = 8
 # The check, head metrics and evidence of a run start once the pair grid has painted it (numpy
 # work on the worker would take the render thread's core and GIL meanwhile), or after this long.
 FOLLOW_UP_MS = 400
+IDLE_COLLECT_S = 1.5  # no drawing or model work for this long: time for a full collection
+IDLE_CHECK_MS = 1000
 ICON = Path(__file__).parent / "icons" / "headlight.svg"
 STYLE = """
 QLabel#paneTitle { font-weight: bold; color: #1d2b36; }
@@ -100,6 +103,11 @@ class MainWindow(QMainWindow):
         self._build_keys()
         self._wire_worker()
         self._wire_state()
+        self._busy_at = time.monotonic()
+        self.collector = QTimer(self)
+        self.collector.setInterval(IDLE_CHECK_MS)
+        self.collector.timeout.connect(self.collect_when_idle)
+        self.collector.start()
         self.resize(1440, 900)
         if restore_geometry:
             geometry = self.settings.value("window/geometry")
@@ -473,6 +481,23 @@ class MainWindow(QMainWindow):
         rec = analysis.recording
         note = f" · {rec.notes[-1]}" if rec.notes else ""
         self.set_status(f"recorded {rec.n_tokens} tokens in {analysis.seconds:.2f} s{note}")
+
+    def collect_when_idle(self) -> bool:
+        """Run a full garbage collection if nothing has been drawn or computed for a while.
+
+        With ``viewer.gui.app.tune_collector`` the collector leaves full passes to this; a
+        pass costs a pause, which an idle window does not show. True when it collected."""
+        import gc
+
+        now = time.monotonic()
+        if self.worker.busy or not all(pane.idle for pane in self.figure_panes):
+            self._busy_at = now
+            return False
+        if now - self._busy_at < IDLE_COLLECT_S or gc.get_count()[2] == 0:
+            return False
+        gc.collect()
+        self._busy_at = time.monotonic()
+        return True
 
     def _grid_painted(self) -> None:
         a = self._follow_up
