@@ -195,7 +195,15 @@ def cell_at(artists: PairGridArtists, x: float | None, y: float | None) -> tuple
     return None
 
 
-TICK_ROOM_PT = 2.0 + 1.5 + 3.0  # tick length, label pad, and a gap before the axis label
+# tick length, label pad, and a gap before the axis label
+TICK_ROOM_PT = style.TICK_LENGTH_PT + style.TICK_PAD_PT + 3.0
+
+
+def _longest_labels(query_tokens: Sequence[str], key_tokens: Sequence[str]) -> tuple[int, int]:
+    """Characters in the longest query and key token labels."""
+    q = max((len(style.token_label(t)) for t in query_tokens), default=1)
+    k = max((len(style.token_label(t)) for t in key_tokens), default=1)
+    return q, k
 
 
 def place_axis_labels(ax: Axes, query_tokens: Sequence[str], key_tokens: Sequence[str]) -> None:
@@ -205,8 +213,7 @@ def place_axis_labels(ax: Axes, query_tokens: Sequence[str], key_tokens: Sequenc
     """
     from matplotlib.transforms import offset_copy
 
-    q = max((len(style.token_label(t)) for t in query_tokens), default=1)
-    k = max((len(style.token_label(t)) for t in key_tokens), default=1)
+    q, k = _longest_labels(query_tokens, key_tokens)
     down = text_width_in(k) * 72.0 + TICK_ROOM_PT
     left = text_width_in(q) * 72.0 + TICK_ROOM_PT
     ax.xaxis.set_label_coords(0.5, 0.0, transform=offset_copy(
@@ -217,8 +224,7 @@ def place_axis_labels(ax: Axes, query_tokens: Sequence[str], key_tokens: Sequenc
 
 def pair_grid_margins(query_tokens: Sequence[str], key_tokens: Sequence[str]) -> dict[str, float]:
     """Margins in inches that fit the longest token labels, the axis labels and a title."""
-    q = max((len(style.token_label(t)) for t in query_tokens), default=1)
-    k = max((len(style.token_label(t)) for t in key_tokens), default=1)
+    q, k = _longest_labels(query_tokens, key_tokens)
     return {
         "left": text_width_in(q) + line_height_in(style.LABEL_SIZE) + 0.15,
         "bottom": text_width_in(k) + line_height_in(style.LABEL_SIZE) + 0.15,

@@ -501,7 +501,7 @@ class MainWindow(QMainWindow):
 
     def _grid_painted(self) -> None:
         a = self._follow_up
-        if a is not None and self.pair_grid._drawn_for is a.recording:
+        if a is not None and self.pair_grid.drawn_recording is a.recording:
             self._start_follow_up(a)
 
     def _start_follow_up(self, analysis) -> None:

@@ -97,7 +97,6 @@ class FigurePane(StateListener, QWidget):
         self.blitter: Any = None  # set by panes that redraw only a few artists on selection
         self.fast = False  # set by a build: only the blitter's artists changed
         self.size_px: tuple[int, int] = (500, 400)  # the view's size (GUI thread's copy)
-        self.draw_error: str | None = None
         self._scheduled = False
         self._frames_due = 0  # frames requested from the render thread, not yet arrived
         self._frames_held = 0  # requests held back while a view handled an event
@@ -225,11 +224,9 @@ class FigurePane(StateListener, QWidget):
         """A frame from the render thread (GUI thread)."""
         self._frames_due -= 1
         if frame.error is not None:
-            self.draw_error = frame.error
             if not self.drawing:
                 self.show_message(frame.error)
         else:
-            self.draw_error = None
             self.canvas.show_frame(frame)
             if self._want_figure and self.stack.currentWidget() is not self.canvas:
                 self.stack.setCurrentWidget(self.canvas)

@@ -110,7 +110,7 @@ class PairGridPane(FigurePane):
         """Put ``tokens`` on the axes (render thread): reuse the axes when there are some."""
         from viewer.figures.pair_grid import pair_grid_into, retoken_pair_grid
 
-        if self.artists is not None and self.artists.ax.figure is self.figure:
+        if self.artists is not None:  # laid out on this pane's one figure before
             retoken_pair_grid(self.artists, grid, tokens, visible=visible, title=title)
         else:
             if self.blitter is not None:
@@ -130,12 +130,17 @@ class PairGridPane(FigurePane):
         from viewer.figures import style
         from viewer.gui.panes.render import token_label_items
 
-        if self.artists is None or self.artists.ax.figure is not self.figure:
+        if self.artists is None:
             return []
         pad = style.TICK_LENGTH_PT + style.TICK_PAD_PT
         ax = self.artists.ax
         return (token_label_items(ax, "x", pad, style.FONT_SIZE)
                 + token_label_items(ax, "y", pad, style.FONT_SIZE))
+
+    @property
+    def drawn_recording(self):
+        """The recording the figure shows (read on the GUI thread once the pane is idle)."""
+        return self._drawn_for
 
     def displayed_values(self):
         """The values the image currently holds (masked array), for tests and export."""
