@@ -36,7 +36,7 @@ def test_panes_are_built_off_the_gui_thread_and_show_the_new_text(qtbot, window)
     _spy_builds(window.pair_grid, threads)
     first = run_and_wait(qtbot, window, evidence=False).recording
     settle(qtbot, window.pair_grid)
-    second = run_and_wait(qtbot, window, "a short second text", evidence=False).recording
+    second = run_and_wait(qtbot, window, "a short text", evidence=False).recording  # fewer tokens
     pane = window.pair_grid
     settle(qtbot, pane)
     assert threads and all(t is not threading.main_thread() for t in threads)
@@ -130,8 +130,12 @@ def test_full_garbage_collections_wait_for_an_idle_window(qtbot, window):
     class Node:
         pass
 
+    def quiet() -> bool:  # no model work and no pane with a frame due
+        return not window.worker.busy and all(pane.idle for pane in window.figure_panes)
+
+    window.collector.stop()  # the test calls the idle check itself
     run_and_wait(qtbot, window, evidence=False)
-    settle(qtbot, window.pair_grid)
+    qtbot.waitUntil(quiet, timeout=WAIT_MS)  # the run's check and the panes' redraws are done
     thresholds = gc.get_threshold()
     tune_collector()  # as ``headlight`` does: no automatic full collections
     try:
@@ -148,7 +152,7 @@ def test_full_garbage_collections_wait_for_an_idle_window(qtbot, window):
         window.worker.submit("hold", lambda ctx: time.sleep(0.3))
         window._busy_at -= 60
         assert not window.collect_when_idle() and probe() is not None  # model work running
-        qtbot.waitUntil(lambda: not window.worker.busy, timeout=WAIT_MS)
+        qtbot.waitUntil(quiet, timeout=WAIT_MS)
         window._busy_at -= 60
         assert window.collect_when_idle() and probe() is None
     finally:
