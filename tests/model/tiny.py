@@ -10,7 +10,6 @@ from __future__ import annotations
 from pathlib import Path
 
 import torch
-from tokenizers import Tokenizer, models, normalizers, pre_tokenizers, processors, trainers
 from transformers import (
     AlbertConfig,
     AlbertForSequenceClassification,
@@ -29,6 +28,8 @@ from transformers import (
     RobertaConfig,
     RobertaForSequenceClassification,
 )
+
+from viewer.demo.tokenizer import train_wordpiece
 
 CORPUS = [
     "the mechanic trued the wheel and she replaced the chain",
@@ -50,20 +51,15 @@ SPECIALS = ["[PAD]", "[UNK]", "[CLS]", "[SEP]", "[MASK]"]
 
 
 def tokenizer(encoder: bool) -> PreTrainedTokenizerFast:
-    tok = Tokenizer(models.WordPiece(unk_token="[UNK]"))
-    tok.normalizer = normalizers.BertNormalizer(lowercase=True)
-    tok.pre_tokenizer = pre_tokenizers.BertPreTokenizer()
-    tok.train_from_iterator(CORPUS, trainers.WordPieceTrainer(vocab_size=200, special_tokens=SPECIALS))
+    # the demo's trainer: the ``tokenizers`` WordPiece trainer alone is not deterministic, and
+    # tests here compare token counts and positions across processes
+    tok = train_wordpiece(CORPUS, vocab_size=200, min_frequency=0)
     if encoder:
-        cls, sep = tok.token_to_id("[CLS]"), tok.token_to_id("[SEP]")
-        tok.post_processor = processors.TemplateProcessing(
-            single="[CLS] $A [SEP]", pair="[CLS] $A [SEP] $B [SEP]",
-            special_tokens=[("[CLS]", cls), ("[SEP]", sep)],
-        )
         return PreTrainedTokenizerFast(
             tokenizer_object=tok, unk_token="[UNK]", pad_token="[PAD]", cls_token="[CLS]",
             sep_token="[SEP]", mask_token="[MASK]",
         )
+    tok.post_processor = None  # a decoder's text is not wrapped in [CLS] ... [SEP]
     return PreTrainedTokenizerFast(tokenizer_object=tok, unk_token="[UNK]", pad_token="[PAD]",
                                    eos_token="[SEP]", bos_token="[CLS]")
 
