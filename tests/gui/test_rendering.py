@@ -11,9 +11,11 @@ import threading
 import time
 
 import numpy as np
+import pytest
 
 from tests.gui.conftest import WAIT_MS, click, data_to_widget, run_and_wait, settle
 from viewer.figures import style
+from viewer.gui.panes.render import MarkItem, TextItem
 
 
 def _spy_builds(pane, threads: list) -> None:
@@ -51,9 +53,22 @@ def test_panes_are_built_off_the_gui_thread_and_show_the_new_text(qtbot, window)
     ratio = pane.canvas.device_pixel_ratio
     assert (image.width(), image.height()) == (round(pane.canvas.width() * ratio),
                                                round(pane.canvas.height() * ratio))
-    painted = [t.text for t in pane.canvas.last_texts]
+    painted = [t.text for t in pane.canvas.last_texts if isinstance(t, TextItem)]
     assert "key (attended to)" in painted and "query (attending)" in painted
     assert set(labels) <= set(painted)
+    # one tick mark per labelled token, below the grid, as long as the style's ticks, and
+    # really painted: dark pixels where matplotlib would have drawn its own tick
+    marks = [m for m in pane.canvas.last_texts if isinstance(m, MarkItem)]
+    x_marks = [m for m in marks if m.x0 == m.x1]
+    assert len(x_marks) == len(labels)
+    scale = pane.figure.dpi / 72.0
+    assert all(m.y1 - m.y0 == pytest.approx(style.TICK_LENGTH_PT * scale) for m in x_marks)
+    ax = pane.artists.ax
+    bottom = pane.figure.bbox.height - ax.get_window_extent().y0
+    assert all(m.y0 == pytest.approx(bottom) for m in x_marks)
+    mark = x_marks[len(x_marks) // 2]
+    pixel = image.pixelColor(int(mark.x0), int(mark.y0 + (mark.y1 - mark.y0) / 2))
+    assert pixel.lightness() < 128
 
 
 def test_a_click_while_a_frame_is_drawn_is_kept_and_replayed(qtbot, window):

@@ -17,6 +17,7 @@ from matplotlib.image import AxesImage
 from matplotlib.patches import Rectangle
 
 from viewer.figures import style
+from viewer.figures.cells import cell_image
 from viewer.figures.layout import InchLayout, line_height_in, main_with_colorbar, text_width_in
 
 ANNOTATE_MAX_CELLS = 160  # write values into cells only when there are this few
@@ -69,8 +70,8 @@ def draw_head_map(
     n_layers, n_heads = data.shape
     extent = (-0.5, n_heads - 0.5, n_layers - 0.5, -0.5)
     style.mask_background(ax, extent)
-    image = ax.imshow(grid, cmap=cmap, norm=norm, interpolation="nearest", aspect="auto",
-                      extent=extent, origin="upper", zorder=1)
+    image = cell_image(ax, grid, cmap=cmap, norm=norm, interpolation="nearest", aspect="auto",
+                       extent=extent, origin="upper", zorder=1)
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
     style.style_axes(ax)

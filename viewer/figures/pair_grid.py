@@ -25,6 +25,7 @@ from matplotlib.image import AxesImage
 from matplotlib.patches import Rectangle
 
 from viewer.figures import style
+from viewer.figures.cells import cell_image
 from viewer.figures.layout import InchLayout, line_height_in, main_with_colorbar, text_width_in
 
 
@@ -69,6 +70,12 @@ def _token_grid(probs, visible, query_tokens, key_tokens):
     return grid, key_tokens
 
 
+def _hatch_if_masked(background: Rectangle, grid: np.ma.MaskedArray) -> None:
+    # the opaque image hides the hatching except under masked cells; with none, skipping it
+    # saves Agg a hatch fill of the whole grid on every draw
+    background.set_visible(bool(np.ma.getmaskarray(grid).any()))
+
+
 def _norm(grid: np.ma.MaskedArray):
     shown = grid.compressed()
     return style.sequential_norm(shown if shown.size else np.zeros(1))
@@ -94,8 +101,9 @@ def draw_pair_grid(
     n_rows, n_cols = grid.shape
     extent = (-0.5, n_cols - 0.5, n_rows - 0.5, -0.5)
     background = style.mask_background(ax, extent)
-    image = ax.imshow(
-        grid, cmap=style.sequential_cmap(), norm=_norm(grid), interpolation="nearest",
+    _hatch_if_masked(background, grid)
+    image = cell_image(
+        ax, grid, cmap=style.sequential_cmap(), norm=_norm(grid), interpolation="nearest",
         aspect="auto", extent=extent, origin="upper", zorder=1,
     )
     ax.set_xlim(extent[0], extent[1])
@@ -131,6 +139,7 @@ def update_pair_grid(
         raise ValueError(
             f"grid {grid.shape} does not fit the drawn {artists.n_rows}×{artists.n_cols}")
     artists.image.set_data(grid)
+    _hatch_if_masked(artists.background, grid)
     norm = _norm(grid)
     artists.image.set_clim(norm.vmin, norm.vmax)
     if title is not None:
@@ -153,6 +162,7 @@ def retoken_pair_grid(
     ax = artists.ax
     extent = (-0.5, n_cols - 0.5, n_rows - 0.5, -0.5)
     artists.background.set_bounds(-0.5, -0.5, n_cols, n_rows)
+    _hatch_if_masked(artists.background, grid)
     artists.image.set_data(grid)
     artists.image.set_extent(extent)
     norm = _norm(grid)

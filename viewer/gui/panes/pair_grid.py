@@ -117,9 +117,10 @@ class PairGridPane(FigurePane):
                 self.blitter.detach()
             self.artists = pair_grid_into(self.figure, grid, tokens, visible=visible,
                                           title=title)
-            # token labels are painted by ``overlay_texts``: the same labels, in a fraction of
-            # the time matplotlib takes to lay out and draw tick labels
-            self.artists.ax.tick_params(labelbottom=False, labelleft=False)
+            # token labels and tick marks are painted by ``overlay_texts``: the same labels
+            # and marks, in a fraction of the time matplotlib takes to lay out and draw ticks
+            self.artists.ax.tick_params(labelbottom=False, labelleft=False, bottom=False,
+                                        left=False)
             arts = self.artists
             self.blitter = Blitter(self.agg, [arts.image, arts.marker, arts.ax.title,
                                               arts.colorbar.ax if arts.colorbar else None])
@@ -128,14 +129,14 @@ class PairGridPane(FigurePane):
 
     def overlay_texts(self) -> list:
         from viewer.figures import style
-        from viewer.gui.panes.render import token_label_items
+        from viewer.gui.panes.render import token_axis_items
 
         if self.artists is None:
             return []
         pad = style.TICK_LENGTH_PT + style.TICK_PAD_PT
         ax = self.artists.ax
-        return (token_label_items(ax, "x", pad, style.FONT_SIZE)
-                + token_label_items(ax, "y", pad, style.FONT_SIZE))
+        return (token_axis_items(ax, "x", pad, style.FONT_SIZE)
+                + token_axis_items(ax, "y", pad, style.FONT_SIZE))
 
     @property
     def drawn_recording(self):

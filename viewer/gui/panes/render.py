@@ -41,8 +41,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from PySide6.QtCore import QEvent, QObject, QPointF, QRectF, Qt, Signal
-from PySide6.QtGui import QColor, QFont, QFontDatabase, QFontMetricsF, QImage, QPainter
+from PySide6.QtCore import QEvent, QLineF, QObject, QPointF, QRectF, Qt, Signal
+from PySide6.QtGui import QColor, QFont, QFontDatabase, QFontMetricsF, QImage, QPainter, QPen
 from PySide6.QtWidgets import QWidget
 
 BUTTONS = {Qt.MouseButton.LeftButton: 1, Qt.MouseButton.MiddleButton: 2,
@@ -73,13 +73,25 @@ class TextItem:
     va: str = "baseline"  # "baseline" or "center" (half-way between ascent and descent)
 
 
+@dataclass(frozen=True)
+class MarkItem:
+    """A straight tick mark in the frame's pixels (y downwards)."""
+
+    x0: float
+    y0: float
+    x1: float
+    y1: float
+    width_px: float
+    rgba: tuple[float, float, float, float]
+
+
 @dataclass
 class Frame:
     pane: Any
     image: QImage | None  # premultiplied ARGB32 with the texts painted in
     ratio: float = 1.0
     error: str | None = None
-    texts: list[TextItem] = field(default_factory=list)  # what was painted, for tests
+    texts: list[TextItem | MarkItem] = field(default_factory=list)  # what was painted (tests)
 
 
 def _capture_text(renderer, draw_text, gc, x, y, s, prop, angle, ismath=False, mtext=None):
@@ -292,6 +304,9 @@ def paint_texts(painter: QPainter, texts: list[TextItem], family: str) -> None:
     painter.setRenderHint(QPainter.RenderHint.TextAntialiasing, True)
     fonts: dict[tuple[float, bool, bool], QFont] = {}
     for item in texts:
+        if isinstance(item, MarkItem):
+            _paint_mark(painter, item)
+            continue
         key = (item.size_px, item.bold, item.italic)
         font = fonts.get(key)
         if font is None:
@@ -321,36 +336,65 @@ def paint_texts(painter: QPainter, texts: list[TextItem], family: str) -> None:
         painter.restore()
 
 
-def token_label_items(ax, which: str, pad_pt: float, size_pt: float) -> list[TextItem]:
-    """The token labels of ``ax``'s x or y axis (``viewer.figures.style.TokenLocator`` and its
-    formatter decide which and what) as texts beside the axes, for ``paint_texts``.
+def _paint_mark(painter: QPainter, item: MarkItem) -> None:
+    pen = QPen(QColor.fromRgbF(*item.rgba))
+    pen.setWidthF(item.width_px)
+    pen.setCapStyle(Qt.PenCapStyle.FlatCap)
+    painter.setPen(pen)
+    painter.drawLine(QLineF(item.x0, item.y0, item.x1, item.y1))
+
+
+def token_axis_items(ax, which: str, pad_pt: float, size_pt: float) -> list[TextItem | MarkItem]:
+    """The tick marks and token labels of ``ax``'s bottom (x) or left (y) axis, for
+    ``paint_texts``: the ticks ``viewer.figures.style.TokenLocator`` puts in view, labelled by
+    the axis' formatter, marked in the length, width and colour the axis' own ticks are styled
+    with (a pane that paints them switches matplotlib's ticks off: a ``Line2D`` draw and a text
+    layout per tick were most of a pair grid's draw).
 
     x labels read upwards and end ``pad_pt`` below the axes, centred on their tick; y labels end
     ``pad_pt`` left of the axes, centred on their tick: where matplotlib puts tick labels."""
+    import numpy as np
+    from matplotlib.colors import to_rgba
+
     axis = ax.xaxis if which == "x" else ax.yaxis
     lo, hi = sorted(axis.get_view_interval())
     ticks = [t for t in axis.get_major_locator()() if lo <= t <= hi]
-    fmt = axis.get_major_formatter()
+    if not ticks:
+        return []
     figure = ax.figure
     height = figure.bbox.height
-    pad = pad_pt * figure.dpi / 72.0
-    size = size_pt * figure.dpi / 72.0
+    scale = figure.dpi / 72.0
     box = ax.get_window_extent()
-    items = []
-    for tick in ticks:
-        label = fmt(tick)
-        if not label:
-            continue
-        label = label.replace("\\$", "$")
+    line = axis.get_major_ticks(1)[0].tick1line
+    length = float(line.get_markersize()) * scale
+    width = float(line.get_markeredgewidth()) * scale
+    colour = tuple(float(c) for c in to_rgba(line.get_markeredgecolor()))
+    pad, size = pad_pt * scale, size_pt * scale
+    values = np.asarray(ticks, dtype=float)
+    if which == "x":
+        along = ax.transData.transform(np.column_stack([values, np.zeros_like(values)]))[:, 0]
+    else:
+        along = height - ax.transData.transform(
+            np.column_stack([np.zeros_like(values), values]))[:, 1]
+    fmt = axis.get_major_formatter()
+    black = (0.0, 0.0, 0.0, 1.0)
+    marks: list[TextItem | MarkItem] = []
+    labels: list[TextItem | MarkItem] = []
+    for tick, at in zip(ticks, along.tolist(), strict=True):
+        label = fmt(tick).replace("\\$", "$")
         if which == "x":
-            x, _ = ax.transData.transform((tick, 0.0))
-            items.append(TextItem(float(x), float(height - box.y0 + pad), label, size, 90.0,
-                                  (0.0, 0.0, 0.0, 1.0), False, False, None, "right", "center"))
+            y = float(height - box.y0)
+            marks.append(MarkItem(at, y, at, y + length, width, colour))
+            if label:
+                labels.append(TextItem(at, y + pad, label, size, 90.0, black, False, False,
+                                       None, "right", "center"))
         else:
-            _, y = ax.transData.transform((0.0, tick))
-            items.append(TextItem(float(box.x0 - pad), float(height - y), label, size, 0.0,
-                                  (0.0, 0.0, 0.0, 1.0), False, False, None, "right", "center"))
-    return items
+            x = float(box.x0)
+            marks.append(MarkItem(x, at, x - length, at, width, colour))
+            if label:
+                labels.append(TextItem(x - pad, at, label, size, 0.0, black, False, False,
+                                       None, "right", "center"))
+    return marks + labels
 
 
 class PaneView(QWidget):
