@@ -172,3 +172,17 @@ def test_full_garbage_collections_wait_for_an_idle_window(qtbot, window):
         assert window.collect_when_idle() and probe() is None
     finally:
         gc.set_threshold(*thresholds)
+
+
+def test_a_pane_title_too_long_for_its_header_ends_in_an_ellipsis(qtbot, window):
+    pane = window.head_map
+    label = pane.title_label
+    long_title = "head map · entropy: compared − current · " + "a rather long model name " * 12
+    pane.set_title(long_title)
+    qtbot.wait(10)
+    shown = label.shown_text()
+    assert label.width() > 0 and shown.endswith("…") and len(shown) < len(long_title)
+    assert long_title.startswith(shown[:-1])
+    assert label.toolTip() == long_title  # the whole title on hover
+    pane.set_title("head map")
+    assert label.shown_text() == "head map"

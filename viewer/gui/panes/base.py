@@ -17,7 +17,7 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 from PySide6.QtCore import QSize, Qt, QTimer, Signal
-from PySide6.QtGui import QCursor
+from PySide6.QtGui import QCursor, QPainter, QPalette
 from PySide6.QtWidgets import (
     QAbstractItemView,
     QHBoxLayout,
@@ -52,6 +52,24 @@ class StateListener:
     def closeEvent(self, event) -> None:  # noqa: N802 - Qt name
         self.detach()
         super().closeEvent(event)
+
+
+class ElidedLabel(QLabel):
+    """A one-line label that ends in "…" when it is too narrow for its text (the tooltip keeps
+    the whole text), instead of cutting it off mid-word."""
+
+    def shown_text(self) -> str:
+        """The text as painted at the label's current width."""
+        return self.fontMetrics().elidedText(self.text(), Qt.TextElideMode.ElideRight,
+                                             max(0, self.contentsRect().width()))
+
+    def paintEvent(self, event) -> None:  # noqa: N802 - Qt name
+        painter = QPainter(self)
+        align = self.alignment() | Qt.AlignmentFlag.AlignVCenter
+        self.style().drawItemText(painter, self.contentsRect(), int(align), self.palette(),
+                                  self.isEnabled(), self.shown_text(),
+                                  QPalette.ColorRole.WindowText)
+        painter.end()
 
 
 class TableDock(StateListener, QWidget):
@@ -107,7 +125,7 @@ class FigurePane(StateListener, QWidget):
         outer.setSpacing(2)
         self.header = QHBoxLayout()
         self.header.setSpacing(6)
-        self.title_label = QLabel(self.title)
+        self.title_label = ElidedLabel(self.title)
         self.title_label.setObjectName("paneTitle")
         self.title_label.setTextFormat(Qt.TextFormat.PlainText)
         self.title_label.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
