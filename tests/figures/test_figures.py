@@ -24,7 +24,7 @@ from viewer.figures.head_map import (  # noqa: E402
     head_map_into,
     update_head_map,
 )
-from viewer.figures.links import links_into, top_links  # noqa: E402
+from viewer.figures.links import links_into, relink, top_links  # noqa: E402
 from viewer.figures.pair_grid import (  # noqa: E402
     cell_at,
     pair_grid_figure,
@@ -228,3 +228,26 @@ def test_link_bars_show_the_top_scores_and_keep_the_target():
     assert 4 in arts.shown  # the selected target is always among the bars
     widths = [p.get_width() for p in arts.bars_ax.patches]
     np.testing.assert_allclose(widths, scores[list(arts.shown)])
+
+
+@pytest.mark.parametrize("fewer, with_target", [(False, True), (True, True), (False, False)])
+def test_relinked_bars_draw_the_same_pixels_as_a_fresh_figure(fewer, with_target):
+    # reference: a fresh ``links_into`` of the second head on its own figure
+    rng = np.random.default_rng(5)
+    names = [f"word{i}" for i in range(5 if fewer else 30)]
+    per_head = rng.random((3, 4)) if with_target else None
+    target = 2 if with_target else None
+    first, second = rng.random(len(names)), rng.random(len(names))
+    common = dict(per_head_to_target=per_head, target=target, source_name="word0")
+    reused, fresh = Figure(figsize=(7, 3), dpi=80), Figure(figsize=(7, 3), dpi=80)
+    target_name = "word2" if with_target else None
+    arts = links_into(reused, names, first, target_name=target_name,
+                      head_title="layer 0 · head 0", selected=(0, 0), **common)
+    FigureCanvasAgg(reused).draw()
+    relink(arts, names, second, head_title="layer 2 · head 3", selected=(2, 3), **common)
+    ref = links_into(fresh, names, second, target_name=target_name,
+                     head_title="layer 2 · head 3", selected=(2, 3), **common)
+    np.testing.assert_array_equal(pixels(reused), pixels(fresh))
+    assert arts.shown == ref.shown and (not with_target or 2 in arts.shown)
+    widths = [p.get_width() for p in arts.bars_ax.patches]
+    np.testing.assert_allclose(widths, second[list(arts.shown)])

@@ -8,6 +8,7 @@ scores (``viewer.core.links.link_scores`` on sub-tokens found with ``find_word``
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from PySide6.QtCore import Qt
 
 from tests.gui.conftest import (
@@ -98,6 +99,16 @@ def test_a_clicked_source_gives_the_cores_link_scores(qtbot, window):
     target_unit = units.unit_of(int(mechanic[0]))
     layer, head = window.state.layer, window.state.head
     assert window.links.scores[target_unit] == expected[layer, head]
+    # another head: the same figure with that head's bars (the core's score for each bar)
+    drawn = window.links.artists
+    window.state.select_head(1, 2)
+    settle(qtbot, window.links)
+    assert window.links.artists is drawn
+    bars = drawn.bar_artists[0]
+    for bar, unit in zip(bars, drawn.shown, strict=True):
+        score = link_scores(rec.probs, PairTokens(source=she, candidates=(units.tokens[unit],)))
+        assert bar.get_width() == pytest.approx(score[0][1, 2], abs=1e-7)
+    assert target_unit in drawn.shown
     # and the head map's "link score" metric is the same (L, H) grid
     window.head_map.metric_box.setCurrentIndex(window.head_map.metric_box.findData("link"))
     settle(qtbot, window.head_map)

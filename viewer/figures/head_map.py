@@ -83,6 +83,7 @@ def draw_head_map(
     ax.xaxis.set_label_position("top")
     if n_heads > 8:
         ax.set_xlabel("head", fontsize=style.LABEL_SIZE)
+    style.pin_empty_axis_labels(ax)
     if title:
         ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left", pad=18)
     if annotate is None:

@@ -14,14 +14,14 @@ marked on the colour bar.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
 from viewer.figures import style
-from viewer.figures.head_map import HeadMapArtists, draw_head_map
+from viewer.figures.head_map import HeadMapArtists, draw_head_map, mark_head
 from viewer.figures.layout import Box, InchLayout, line_height_in, text_width_in
 
 LINK_UNITS = "link score (attention probability)"
@@ -32,6 +32,7 @@ class LinksArtists:
     bars_ax: Axes
     map_artists: HeadMapArtists | None
     shown: tuple[int, ...]  # candidate indices drawn as bars, top first
+    bar_artists: list = field(default_factory=list)  # the bars and their value texts
 
 
 def top_links(scores: np.ndarray, k: int, exclude: int | None = None) -> np.ndarray:
@@ -52,15 +53,18 @@ def draw_link_bars(
     top: int = 8,
     exclude: int | None = None,
     title: str | None = None,
+    drawn: list | None = None,
 ) -> tuple[int, ...]:
-    """Horizontal bars of the ``top`` best-scoring candidates; ``highlight`` always shown."""
+    """Horizontal bars of the ``top`` best-scoring candidates; ``highlight`` always shown.
+
+    The bars and value texts are appended to ``drawn`` when given (``relink`` removes them)."""
     s = np.asarray(scores, dtype=np.float64)
     chosen = list(top_links(s, top, exclude))
     if highlight is not None and highlight not in chosen and 0 <= highlight < s.size:
         chosen = chosen[: max(top - 1, 0)] + [highlight]
     n = len(chosen)
     colours = [style.SELECTION if i == highlight else style.ACCENT for i in chosen]
-    ax.barh(range(n), s[chosen], color=colours, height=0.66, zorder=2)
+    bars = ax.barh(range(n), s[chosen], color=colours, height=0.66, zorder=2)
     ax.set_yticks(range(n), [style.token_label(names[i]) for i in chosen])
     ax.set_ylim(n - 0.5, -0.5)
     peak = float(s[chosen].max()) if n else 1.0
@@ -68,11 +72,16 @@ def draw_link_bars(
     style.style_axes(ax)
     ax.tick_params(axis="y", length=0)
     ax.set_xlabel(LINK_UNITS, fontsize=style.LABEL_SIZE)
-    for row, i in enumerate(chosen):
-        ax.text(s[i] + peak * 0.02, row, f"{s[i]:.3f}", va="center", ha="left",
-                fontsize=style.FONT_SIZE - 0.5, color="#222222", zorder=3)
+    values = [ax.text(s[i] + peak * 0.02, row, f"{s[i]:.3f}", va="center", ha="left",
+                      fontsize=style.FONT_SIZE - 0.5, color="#222222", zorder=3)
+              for row, i in enumerate(chosen)]
+    style.pin_empty_axis_labels(ax)
     if title:
-        ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left")
+        # y given: no ticks on top, so where matplotlib would put it anyway, without measuring
+        ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left", y=1.0)
+    if drawn is not None:
+        drawn.append(bars)
+        drawn.extend(values)
     return tuple(int(i) for i in chosen)
 
 
@@ -118,17 +127,57 @@ def links_into(
         }
 
     fig.set_layout_engine(InchLayout(place))
+    drawn: list = []
     shown = draw_link_bars(bars, names, head_scores, highlight=target, exclude=exclude,
-                           title=f"from '{style.token_label(source_name)}' · {head_title}")
+                           title=_bars_title(source_name, head_title), drawn=drawn)
     map_artists = None
     if has_map:
         map_artists = draw_head_map(
             hax, per_head_to_target, label="link score", selected=selected, cax=cax,
-            annotate=False,
-            title=f"'{style.token_label(source_name)}' → '{style.token_label(target_name or '')}'"
-                  " in every head",
+            annotate=False, title=_map_title(source_name, target_name),
         )
-    return LinksArtists(bars, map_artists, shown)
+    return LinksArtists(bars, map_artists, shown, drawn)
+
+
+def _bars_title(source_name: str, head_title: str) -> str:
+    return f"from '{style.token_label(source_name)}' · {head_title}"
+
+
+def _map_title(source_name: str, target_name: str | None) -> str:
+    return (f"'{style.token_label(source_name)}' → '{style.token_label(target_name or '')}'"
+            " in every head")
+
+
+def relink(
+    artists: LinksArtists,
+    names: Sequence[str],
+    head_scores: np.ndarray,
+    *,
+    per_head_to_target: np.ndarray | None,
+    target: int | None,
+    source_name: str,
+    head_title: str,
+    selected: tuple[int, int | None] | None = None,
+    exclude: int | None = None,
+) -> LinksArtists:
+    """``artists`` (from ``links_into`` with the same names, source and target) showing another
+    head: the figure a fresh ``links_into`` would draw, without rebuilding its axes and ticks.
+
+    The bars are drawn anew (they change with the head); the per-head map, if there is one,
+    keeps its values (the source→target score in every head does not depend on the selected
+    head) and only moves its outline."""
+    if (artists.map_artists is None) != (per_head_to_target is None):
+        raise ValueError("relink keeps the figure's layout: a per-head map for both or neither")
+    ax = artists.bars_ax
+    for artist in artists.bar_artists:
+        artist.remove()
+    artists.bar_artists.clear()
+    artists.shown = draw_link_bars(ax, names, head_scores, highlight=target, exclude=exclude,
+                                   title=_bars_title(source_name, head_title),
+                                   drawn=artists.bar_artists)
+    if artists.map_artists is not None:
+        mark_head(artists.map_artists, selected)
+    return artists
 
 
 def accuracy_into(

@@ -245,16 +245,23 @@ def style_colorbar(cbar, label: str) -> None:
     cbar.update_ticks()
     cbar.ax.tick_params(labelsize=FONT_SIZE, width=0.6, length=2)
     cbar.outline.set_linewidth(0.6)
-    # the bar's own axis labels stay empty; placed by hand, they spare matplotlib measuring the
-    # bar's tick labels at every draw to place them
-    cbar.ax.xaxis.set_label_coords(0.5, 0.0)
-    cbar.ax.yaxis.set_label_coords(1.0, 0.5)
+    pin_empty_axis_labels(cbar.ax)
     place = offset_copy(cbar.ax.transAxes, fig=cbar.ax.figure, x=COLORBAR_LABEL_GAP,
                         units="points")
     # rotated a quarter turn: the glyph tops face the bar, so "top" is the side at the anchor
     cbar.units = cbar.ax.text(1.0, 0.5, label, transform=place, rotation=90, ha="center",
                               va="top", fontsize=LABEL_SIZE, rotation_mode="anchor",
                               multialignment="center")
+
+
+def pin_empty_axis_labels(ax: Axes) -> None:
+    """Give ``ax``'s empty axis labels a fixed place: matplotlib otherwise measures every tick
+    label at every draw to place a label that shows nothing (a good part of a small figure's
+    draw). A label set later must be placed again (``set_label_coords``)."""
+    if not ax.xaxis.label.get_text():
+        ax.xaxis.set_label_coords(0.5, 0.0)
+    if not ax.yaxis.label.get_text():
+        ax.yaxis.set_label_coords(0.0, 0.5)
 
 
 def colorbar_units(cbar) -> str:

@@ -24,6 +24,7 @@ class LinksPane(FigurePane):
     def __init__(self, state, parent=None) -> None:
         super().__init__(state, parent)
         self.artists = None
+        self._drawn_for = None  # (recording, source unit, target unit) the figure shows
         self.accuracy_artists = None
         self.scores: np.ndarray | None = None  # (K units,) bars' data for the selected head
         self.per_head: np.ndarray | None = None  # (L, H) link score source → target
@@ -55,7 +56,7 @@ class LinksPane(FigurePane):
                 from viewer.figures.links import accuracy_into
 
                 self.scores = self.per_head = None
-                self.artists = None
+                self.artists = self._drawn_for = None
                 self.accuracy_artists = accuracy_into(
                     self.figure, pairs.accuracy, nearest_baseline=pairs.nearest_baseline,
                     pairs=pairs.pairs, selected=selected)
@@ -80,17 +81,27 @@ class LinksPane(FigurePane):
         source_name = u.names[u.unit_of(s)]
         self.set_title(f"links · from '{source_name}'")
 
-        def build() -> None:  # render thread
-            from viewer.figures.links import links_into
+        # what the figure's layout and per-head map depend on: the same for another head
+        drawn_for = (a.recording, u.unit_of(s), target_unit)
 
+        def build() -> None:  # render thread
+            from viewer.figures.links import links_into, relink
+
+            same = self.artists is not None and self._drawn_for == drawn_for
             self.scores, self.per_head = scores, per_head
             self.accuracy_artists = None
-            self.artists = links_into(
-                self.figure, u.names, scores, per_head_to_target=per_head,
-                target=target_unit, source_name=source_name,
-                target_name=u.names[target_unit] if target_unit is not None else None,
-                head_title=head_title, selected=(layer, head), exclude=None,
-            )
+            if same:  # another head: new bars and outline, the axes and ticks stay
+                relink(self.artists, u.names, scores, per_head_to_target=per_head,
+                       target=target_unit, source_name=source_name, head_title=head_title,
+                       selected=(layer, head), exclude=None)
+            else:
+                self.artists = links_into(
+                    self.figure, u.names, scores, per_head_to_target=per_head,
+                    target=target_unit, source_name=source_name,
+                    target_name=u.names[target_unit] if target_unit is not None else None,
+                    head_title=head_title, selected=(layer, head), exclude=None,
+                )
+            self._drawn_for = drawn_for
 
         return build
 
