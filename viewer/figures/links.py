@@ -134,18 +134,15 @@ def links_into(
     if has_map:
         map_artists = draw_head_map(
             hax, per_head_to_target, label="link score", selected=selected, cax=cax,
-            annotate=False, title=_map_title(source_name, target_name),
+            annotate=False,
+            title=f"'{style.token_label(source_name)}' → '{style.token_label(target_name or '')}'"
+                  " in every head",
         )
     return LinksArtists(bars, map_artists, shown, drawn)
 
 
 def _bars_title(source_name: str, head_title: str) -> str:
     return f"from '{style.token_label(source_name)}' · {head_title}"
-
-
-def _map_title(source_name: str, target_name: str | None) -> str:
-    return (f"'{style.token_label(source_name)}' → '{style.token_label(target_name or '')}'"
-            " in every head")
 
 
 def relink(

@@ -178,8 +178,8 @@ class FigurePane(StateListener, QWidget):
         """Hook for subclasses that need the figure once (e.g. to keep artists)."""
 
     def overlay_texts(self) -> list:
-        """Texts to paint over the drawn figure (render thread, after the draw): labels the
-        pane paints itself instead of letting matplotlib lay them out."""
+        """Texts and marks to paint over the drawn figure (render thread, after the draw):
+        labels and ticks the pane paints itself instead of letting matplotlib draw them."""
         return []
 
     @property

@@ -128,15 +128,11 @@ class PairGridPane(FigurePane):
         self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
 
     def overlay_texts(self) -> list:
-        from viewer.figures import style
         from viewer.gui.panes.render import token_axis_items
 
         if self.artists is None:
             return []
-        pad = style.TICK_LENGTH_PT + style.TICK_PAD_PT
-        ax = self.artists.ax
-        return (token_axis_items(ax, "x", pad, style.FONT_SIZE)
-                + token_axis_items(ax, "y", pad, style.FONT_SIZE))
+        return token_axis_items(self.artists.ax, "x") + token_axis_items(self.artists.ax, "y")
 
     @property
     def drawn_recording(self):

@@ -296,7 +296,7 @@ def figure_font_family() -> str:
     return _FONTS_LOADED[0]
 
 
-def paint_texts(painter: QPainter, texts: list[TextItem], family: str) -> None:
+def paint_texts(painter: QPainter, texts: list[TextItem | MarkItem], family: str) -> None:
     """Paint recorded texts onto the frame's image (its pixels, no device pixel ratio yet)."""
     if not texts:
         return
@@ -344,15 +344,15 @@ def _paint_mark(painter: QPainter, item: MarkItem) -> None:
     painter.drawLine(QLineF(item.x0, item.y0, item.x1, item.y1))
 
 
-def token_axis_items(ax, which: str, pad_pt: float, size_pt: float) -> list[TextItem | MarkItem]:
+def token_axis_items(ax, which: str) -> list[TextItem | MarkItem]:
     """The tick marks and token labels of ``ax``'s bottom (x) or left (y) axis, for
     ``paint_texts``: the ticks ``viewer.figures.style.TokenLocator`` puts in view, labelled by
-    the axis' formatter, marked in the length, width and colour the axis' own ticks are styled
-    with (a pane that paints them switches matplotlib's ticks off: a ``Line2D`` draw and a text
-    layout per tick were most of a pair grid's draw).
+    the axis' formatter, in the tick length, width, pad, label size and colours the axis' own
+    ticks are styled with (a pane that paints them switches matplotlib's ticks off: a ``Line2D``
+    draw and a text layout per tick were most of a pair grid's draw).
 
-    x labels read upwards and end ``pad_pt`` below the axes, centred on their tick; y labels end
-    ``pad_pt`` left of the axes, centred on their tick: where matplotlib puts tick labels."""
+    x labels read upwards and end one tick length and pad below the axes, centred on their
+    tick; y labels end as far left of the axes: where matplotlib puts tick labels."""
     import numpy as np
     from matplotlib.colors import to_rgba
 
@@ -365,11 +365,14 @@ def token_axis_items(ax, which: str, pad_pt: float, size_pt: float) -> list[Text
     height = figure.bbox.height
     scale = figure.dpi / 72.0
     box = ax.get_window_extent()
-    line = axis.get_major_ticks(1)[0].tick1line
+    tick = axis.get_major_ticks(1)[0]
+    line, text = tick.tick1line, tick.label1
     length = float(line.get_markersize()) * scale
     width = float(line.get_markeredgewidth()) * scale
     colour = tuple(float(c) for c in to_rgba(line.get_markeredgecolor()))
-    pad, size = pad_pt * scale, size_pt * scale
+    pad = length + float(tick.get_pad()) * scale
+    size = float(text.get_fontsize()) * scale
+    ink = tuple(float(c) for c in to_rgba(text.get_color()))
     values = np.asarray(ticks, dtype=float)
     if which == "x":
         along = ax.transData.transform(np.column_stack([values, np.zeros_like(values)]))[:, 0]
@@ -377,7 +380,6 @@ def token_axis_items(ax, which: str, pad_pt: float, size_pt: float) -> list[Text
         along = height - ax.transData.transform(
             np.column_stack([np.zeros_like(values), values]))[:, 1]
     fmt = axis.get_major_formatter()
-    black = (0.0, 0.0, 0.0, 1.0)
     marks: list[TextItem | MarkItem] = []
     labels: list[TextItem | MarkItem] = []
     for tick, at in zip(ticks, along.tolist(), strict=True):
@@ -386,13 +388,13 @@ def token_axis_items(ax, which: str, pad_pt: float, size_pt: float) -> list[Text
             y = float(height - box.y0)
             marks.append(MarkItem(at, y, at, y + length, width, colour))
             if label:
-                labels.append(TextItem(at, y + pad, label, size, 90.0, black, False, False,
+                labels.append(TextItem(at, y + pad, label, size, 90.0, ink, False, False,
                                        None, "right", "center"))
         else:
             x = float(box.x0)
             marks.append(MarkItem(x, at, x - length, at, width, colour))
             if label:
-                labels.append(TextItem(x - pad, at, label, size, 0.0, black, False, False,
+                labels.append(TextItem(x - pad, at, label, size, 0.0, ink, False, False,
                                        None, "right", "center"))
     return marks + labels
 
@@ -405,7 +407,7 @@ class PaneView(QWidget):
         self.pane = pane
         self.figure = pane.figure
         self.image: QImage | None = None
-        self.last_texts: list[TextItem] = []  # the texts painted into the current frame
+        self.last_texts: list[TextItem | MarkItem] = []  # what the current frame has painted
         self._deferred: list[tuple[QEvent.Type, Any]] = []
         self.setMouseTracking(True)
         self.setAttribute(Qt.WidgetAttribute.WA_OpaquePaintEvent)
