@@ -6,7 +6,7 @@ States: the demo text with the footer shortcut caught (evidence strip + shortcut
 text set filtered to the model's mistakes, compare mode (the same message without its footer),
 and the re-derivation check's per-layer dialog. The sample text set is
 ``sample_sentences/coop_messages.jsonl`` when it exists, otherwise it is generated the same way
-(``viewer.demo.generate.write_samples``) into a temporary folder.
+(``scripts.demo.generate.write_samples``) into a temporary folder.
 """
 
 from __future__ import annotations
@@ -71,7 +71,7 @@ def sample_set(tmp: Path) -> Path:
     shipped = ROOT / "sample_sentences" / "coop_messages.jsonl"
     if shipped.is_file():
         return shipped
-    from viewer.demo.generate import DEFAULT_SEED, build_dataset, write_samples
+    from scripts.demo.generate import DEFAULT_SEED, build_dataset, write_samples
 
     return write_samples(build_dataset(DEFAULT_SEED), tmp)[0]
 

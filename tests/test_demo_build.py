@@ -1,6 +1,6 @@
 """Smoke tests of the demo build pipeline on a tiny configuration, so the build cannot rot.
 
-The full build (``python -m viewer.demo.build``) takes about a minute and is not run here.
+The full build (``python -m scripts.demo.build``) takes about a minute and is not run here.
 References: huggingface/tokenizers issue 1794 (WordPiece training not deterministic; the
 tokenizer module works around it); the transformers ``save_pretrained``/``from_pretrained``
 round trip and fast-tokenizer offsets are the library's documented behaviour; a training loss
@@ -16,8 +16,8 @@ import pytest
 import torch
 from transformers import AutoModelForSequenceClassification, AutoTokenizer
 
-from viewer.demo import build, generate
-from viewer.demo.tokenizer import SPECIAL_TOKENS, save_for_transformers, train_wordpiece
+from scripts.demo import build, generate
+from scripts.demo.tokenizer import SPECIAL_TOKENS, save_for_transformers, train_wordpiece
 
 TINY = build.TrainSettings(
     layers=2,

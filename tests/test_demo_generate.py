@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from viewer.demo import generate as g
+from scripts.demo import generate as g
 
 REPO = Path(__file__).resolve().parents[1]
 

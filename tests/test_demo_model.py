@@ -16,7 +16,7 @@ import pytest
 import torch
 from transformers import AutoModelForSequenceClassification, AutoTokenizer
 
-from viewer.demo import generate
+from scripts.demo import generate
 
 MODEL_DIR = Path(__file__).resolve().parents[1] / "viewer" / "demo" / "model"
 SUBSET = 100
@@ -110,10 +110,10 @@ def test_shipped_metrics_meet_the_targets(metrics: dict) -> None:
 def test_generator_still_produces_the_data_the_model_was_built_on(
     metrics: dict, dataset: generate.Dataset
 ) -> None:
-    from viewer.demo.build import dataset_digest
+    from scripts.demo.build import dataset_digest
 
     assert dataset_digest(dataset) == metrics["data_sha256"], (
-        "the generator changed since the shipped model was built: rerun `python -m viewer.demo.build`"
+        "the generator changed since the shipped model was built: rerun `python -m scripts.demo.build`"
     )
 
 

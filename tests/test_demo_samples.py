@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from viewer.demo.generate import FOOTER, LABELS
+from scripts.demo.generate import FOOTER, LABELS
 
 SAMPLES = Path(__file__).resolve().parents[1] / "sample_sentences"
 PRONOUNS = {"he", "she", "it", "they"}

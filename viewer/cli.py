@@ -13,6 +13,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from viewer import __version__
+from viewer.core.attention import DEFAULT_TOLERANCE
 from viewer.errors import HeadlightError
 from viewer.files import write_json
 
@@ -209,7 +210,8 @@ def build_parser() -> argparse.ArgumentParser:
                       "head and compare with the model's own probabilities")
     p.add_argument("--text", help="text to check (default: a built-in sentence)")
     p.add_argument("--texts", metavar="FILE", help="text set (.txt, .jsonl, .csv)")
-    p.add_argument("--tolerance", type=float, default=1e-5, help="max abs error (default 1e-5)")
+    p.add_argument("--tolerance", type=float, default=DEFAULT_TOLERANCE,
+                   help=f"max abs error (default {DEFAULT_TOLERANCE:g})")
     p.set_defaults(func=cmd_check)
 
     def set_command(name: str, help_text: str, func) -> argparse.ArgumentParser:

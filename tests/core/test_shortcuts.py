@@ -10,10 +10,10 @@ from viewer.core.shortcuts import (
     KnockoutOutcome,
     KnockoutTally,
     phrase_spans,
-    summary_share,
     word_key,
     word_spans,
 )
+from viewer.core.summary import summary_share
 
 
 def test_word_key_follows_design():

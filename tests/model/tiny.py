@@ -29,7 +29,7 @@ from transformers import (
     RobertaForSequenceClassification,
 )
 
-from viewer.demo.tokenizer import train_wordpiece
+from scripts.demo.tokenizer import train_wordpiece
 
 CORPUS = [
     "the mechanic trued the wheel and she replaced the chain",

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from viewer.core.recording import Recording
+from viewer.core.softmax import softmax
 
 DEFAULT_TOLERANCE = 1e-5
 
@@ -42,21 +43,6 @@ def repeat_kv(x: np.ndarray, n_heads: int) -> np.ndarray:
     if n_heads % g:
         raise ValueError(f"{n_heads} query heads cannot share {g} key/value heads evenly")
     return np.repeat(x, n_heads // g, axis=-3)
-
-
-def softmax(scores: np.ndarray, visible: np.ndarray | None = None) -> np.ndarray:
-    """Row softmax over the last axis in float64, with invisible entries exactly 0."""
-    s = np.array(scores, dtype=np.float64)  # a private copy, worked on in place
-    if visible is not None:
-        s[..., ~visible] = -np.inf
-    m = np.max(s, axis=-1, keepdims=True)
-    m[~np.isfinite(m)] = 0.0  # a row that sees no key stays all zero
-    s -= m
-    np.exp(s, out=s)
-    total = s.sum(axis=-1, keepdims=True)
-    total[total == 0] = 1.0
-    s /= total
-    return s
 
 
 def attention_probabilities(

@@ -27,6 +27,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from viewer.core.softmax import softmax
+from viewer.core.summary import summary_index
+
 
 @dataclass(frozen=True, eq=False)
 class Recording:
@@ -82,10 +85,7 @@ class Recording:
         """(C,) softmax of classifier logits (float64); empty for non-classifiers."""
         if self.head_kind != "classifier":
             return np.zeros(0)
-        z = self.logits.astype(np.float64)
-        z = z - z.max()
-        e = np.exp(z)
-        return e / e.sum()
+        return softmax(self.logits)
 
     def predicted(self) -> int | None:
         """Index of the predicted class for a classifier, else None."""
@@ -102,6 +102,7 @@ class Recording:
     def summary_index(self) -> int:
         """Token whose representation the prediction is read from.
 
-        Encoders classify from the first token ([CLS] / <s>); causal decoders read the last.
+        Encoders classify from the first token ([CLS] / <s>); causal decoders read the last
+        (``viewer.core.summary``).
         """
-        return self.n_tokens - 1 if self.causal else 0
+        return summary_index(self.n_tokens, self.causal)

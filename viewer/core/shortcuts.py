@@ -1,16 +1,16 @@
 """Shortcut search by word knockout: words, their spans, a per-word tally and the ranking.
 
-DESIGN.md, "Word knockout": a word is a whitespace-separated word, lower-cased, with punctuation
-at its ends stripped (``word_key``); a word that is all punctuation has the empty key and is
-skipped. The model layer knocks each word of a text out (deleting all of its sub-tokens: those
-of the whole whitespace word, its end punctuation included, so that knocking out the key
-"portal" of "portal]" removes the "]" too) and
-reports, per text and word, whether the predicted class flipped, the ``drop`` in the originally
-predicted class's probability, and the ``focus`` (share of the last layer's head-mean attention
-from the summary token on the word's sub-tokens, ``summary_share``). ``KnockoutTally`` sums these
-per word over the text set; ``KnockoutTally.ranking`` leaves out words seen in fewer than 3 texts
-and ranks the rest by ``flip_low``, the lower end of the 95% Wilson interval of the flip rate
-(Wilson 1927), then by ``mean_drop``, then by the word itself.
+docs/definitions.md, "Word knockout": a word is a whitespace-separated word, lower-cased, with
+punctuation at its ends stripped (``word_key``); a word that is all punctuation has the empty key
+and is skipped. The model layer knocks each word of a text out (deleting all of its sub-tokens:
+those of the whole whitespace word, its end punctuation included, so that knocking out the key
+"portal" of "portal]" removes the "]" too) and reports, per text and word, whether the
+predicted class flipped, the ``drop`` in the originally predicted class's probability, and the
+``focus`` (share of the last layer's head-mean attention from the summary token on the word's
+sub-tokens, ``viewer.core.summary.summary_share``). ``KnockoutTally`` sums these per word over
+the text set; ``KnockoutTally.ranking`` leaves out words seen in fewer than 3 texts and ranks
+the rest by ``flip_low``, the lower end of the 95% Wilson interval of the flip rate (Wilson
+1927), then by ``mean_drop``, then by the word itself.
 
 Two-word phrases use the same tally with the key ``"w1 w2"`` (``phrase_spans``): the two words
 must be adjacent in the whitespace split and both must have a non-empty key.
@@ -24,9 +24,7 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
-
-from viewer.core.stats import Z95, wilson_interval
+from viewer.core.stats import wilson_interval
 
 Span = tuple[int, int]
 MIN_TEXTS: int = 3
@@ -100,17 +98,6 @@ def _words(text: str) -> list[tuple[int, int, str]]:
     return words
 
 
-def summary_share(attention: np.ndarray, summary_index: int, tokens: np.ndarray) -> float:
-    """Share of the summary token's attention on ``tokens``: sum_{j in tokens} Ā[s, j].
-
-    attention (H, T, T) of the last layer; Ā is its head mean and s the summary token (e.g.
-    [CLS]). This is the per-text ``focus`` of DESIGN.md, "Word knockout".
-    """
-    a = np.asarray(attention, dtype=np.float64)
-    row = a[:, summary_index, :].mean(axis=0)  # (T,) head-mean attention from the summary token
-    return float(row[np.asarray(tokens, dtype=np.int64)].sum())
-
-
 @dataclass(frozen=True)
 class KnockoutOutcome:
     """What knocking one word out of one text did."""
@@ -167,7 +154,7 @@ class KnockoutTally:
             "token": key,
             "count": count,
             "flip_rate": flips / count,
-            "flip_low": wilson_interval(flips, count, Z95)[0],
+            "flip_low": wilson_interval(flips, count)[0],
             "mean_drop": drop / count,
             "focus": focus / count,
         }

@@ -1,6 +1,7 @@
 """The embedded demo: the Northgate Cycle Co-op message classifier (see ``model/MODEL.md``).
 
-``python -m viewer.demo.build`` rebuilds it from the seeded generator in ``generate.py``.
+Only the finished model folder ships with the program; ``python -m scripts.demo.build`` in a
+checkout rebuilds it from the seeded message generator.
 """
 
 from pathlib import Path

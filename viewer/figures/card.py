@@ -21,6 +21,7 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from viewer import __version__
+from viewer.core.attention import DEFAULT_TOLERANCE
 from viewer.errors import HeadlightError
 from viewer.figures.evidence import evidence_into
 from viewer.figures.export import PRINT_SIZE, save_figure
@@ -105,7 +106,7 @@ def collect(loaded: LoadedModel, texts_path: Path, pairs_path: Path | None, *,
                   "head_kind": loaded.head_kind, "labels": list(loaded.labels)},
         "evaluation_data": {"texts_file": texts_path.name, "texts": len(items),
                             "labelled": sum(i.label is not None for i in items)},
-        "check": check_data(loaded, texts, 1e-5),
+        "check": check_data(loaded, texts, DEFAULT_TOLERANCE),
         "heads": heads_data(loaded, texts_path, batch_size=batch_size, quiet=quiet),
     }
     if pairs_path is not None:

@@ -98,6 +98,21 @@ def gradient_evidence(loaded: LoadedModel, text: str, target: int, *, steps: int
     return GradientEvidence(gi, attr.sum(-1), f_x, f_b, n)
 
 
+def predict_without(loaded: LoadedModel, cases: Sequence[tuple[Sequence[int], Sequence[int]]],
+                    batch_size: int = 32) -> np.ndarray:
+    """(N, C) target probabilities for N (token ids, positions to delete) cases, batched.
+
+    The one definition of knockout by deletion (docs/definitions.md, "Word knockout"): the
+    listed sub-tokens are removed from the text's input ids and the shortened input is run
+    again. Cases may come from different texts, so a report can batch across texts.
+    """
+    variants = [np.delete(np.asarray(ids, dtype=np.int64), np.asarray(gone, dtype=np.int64))
+                .tolist() for ids, gone in cases]
+    if not variants:
+        return np.zeros((0, 0))
+    return loaded.predict_ids(variants, batch_size=batch_size)
+
+
 def token_knockout(loaded: LoadedModel, token_ids: Sequence[int], special: np.ndarray,
                    target: int, p_before: float, batch_size: int = 32) -> np.ndarray:
     """(T,) drop in the target probability when each ordinary token is deleted from the input.
@@ -105,13 +120,11 @@ def token_knockout(loaded: LoadedModel, token_ids: Sequence[int], special: np.nd
     Special tokens are never deleted (NaN in their place). drop = p(target | text) −
     p(target | text without token t): positive when the token supported the prediction.
     """
-    ids = list(int(i) for i in token_ids)
-    positions = [t for t in range(len(ids)) if not special[t]]
-    drops = np.full(len(ids), np.nan)
+    positions = [t for t in range(len(token_ids)) if not special[t]]
+    drops = np.full(len(token_ids), np.nan)
     if not positions:
         return drops
-    variants = [ids[:t] + ids[t + 1:] for t in positions]
-    after = loaded.predict_ids(variants, batch_size=batch_size)[:, target]
+    after = predict_without(loaded, [(token_ids, [t]) for t in positions], batch_size)[:, target]
     drops[positions] = p_before - after
     return drops
 

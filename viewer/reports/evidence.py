@@ -30,8 +30,10 @@ import numpy as np
 
 from viewer.core.norms import value_weighted_norms
 from viewer.core.recording import Recording
-from viewer.core.rollout import attention_flow, attention_rollout
+from viewer.core.rollout import FLOW_MAX_TOKENS, attention_flow, attention_rollout
+from viewer.core.softmax import softmax
 from viewer.core.stats import spearman
+from viewer.core.summary import summary_attention
 from viewer.model.attribution import gradient_evidence, token_knockout
 from viewer.model.loader import LoadedModel
 
@@ -47,7 +49,6 @@ KIND_TITLES = {
     "knockout": "knockout: drop in probability",
 }
 ATTENTION_KINDS = ("attention", "rollout", "flow", "value_norm")
-FLOW_MAX_TOKENS = 160
 
 
 @dataclass(frozen=True, eq=False)
@@ -107,9 +108,8 @@ def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
     s = rec.summary_index()
     t = rec.n_tokens
     notes = list(rec.notes)
-    last = rec.probs[-1].astype(np.float64)  # (H, T, T)
     rows = {k: np.full(t, np.nan) for k in KINDS}
-    rows["attention"] = last[:, s, :].mean(axis=0)
+    rows["attention"] = summary_attention(rec.probs[-1], s)  # (T,) last layer, head mean
     rows["rollout"] = attention_rollout(rec.probs)[s]
     if t <= FLOW_MAX_TOKENS:
         rows["flow"] = attention_flow(rec.probs, s, max_tokens=FLOW_MAX_TOKENS)
@@ -122,7 +122,7 @@ def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
     gap = ig_steps = None
     if loaded.head_kind in ("classifier", "causal-lm"):
         dist = (probs if loaded.head_kind == "classifier"
-                else _softmax(rec.logits[-1].astype(np.float64)))
+                else softmax(rec.logits[-1]))
         target = int(np.argmax(dist))
         label = (rec.labels[target] if loaded.head_kind == "classifier"
                  else loaded.tokenizer.convert_ids_to_tokens(target))
@@ -146,10 +146,7 @@ def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
         for kind in KINDS[:-1]:
             agreement[kind] = spearman(rows[kind][ordinary], rows["knockout"][ordinary]) \
                 if np.all(np.isfinite(rows[kind][ordinary])) else float("nan")
-    return Evidence(rec, rows, last[:, s, :], agreement, target, label, probs, gap,
-                    ig_steps, tuple(notes))
+    per_head = rec.probs[-1][:, s, :].astype(np.float64)  # (H, T) last layer, per head
+    return Evidence(rec, rows, per_head, agreement, target, label, probs, gap, ig_steps,
+                    tuple(notes))
 
-
-def _softmax(z: np.ndarray) -> np.ndarray:
-    e = np.exp(z - z.max())
-    return e / e.sum()

@@ -22,10 +22,11 @@ from viewer.core.shortcuts import (
     KnockoutOutcome,
     KnockoutTally,
     phrase_spans,
-    summary_share,
     word_spans,
 )
+from viewer.core.summary import summary_index, summary_share
 from viewer.errors import HeadlightError
+from viewer.model.attribution import predict_without
 from viewer.model.loader import Attention, LoadedModel
 from viewer.reports.heads import _require_prediction
 from viewer.reports.textsets import TextItem, chunks
@@ -65,27 +66,24 @@ def shortcut_search(loaded: LoadedModel, items: Iterable[TextItem], *, batch_siz
     _require_prediction(loaded, "shortcut search")
     words, pairs = KnockoutTally(), KnockoutTally()
     examples: dict[str, list[int]] = {}
-    summary_of = (lambda n: n - 1) if loaded.family.causal else (lambda n: 0)
     index = 0
     for chunk in chunks(items, 16):
         atts = list(loaded.attentions([i.text for i in chunk], batch_size=batch_size))
-        plans = []  # per text: [(kind, key, token indices)] in the order of `variants`
-        variants = []
+        plans = []  # per text: [(kind, key, token indices)] in the order of `cases`
+        cases = []  # (token ids, sub-tokens to delete), one per knockout
         for att in atts:
             plan = [("w", key, idx) for key, idx in _token_sets(att, word_spans(att.text)).items()]
             if phrases:
                 plan += [("p", key, idx)
                          for key, idx in _token_sets(att, phrase_spans(att.text)).items()]
-            ids = att.token_ids
-            for _, _, idx in plan:
-                variants.append(np.delete(ids, idx).tolist())
+            cases.extend((att.token_ids, idx) for _, _, idx in plan)
             plans.append(plan)
-        after = loaded.predict_ids(variants, batch_size=batch_size) if variants else None
+        after = predict_without(loaded, cases, batch_size) if cases else None
         row = 0
         for att, plan in zip(atts, plans, strict=True):
             pred = int(np.argmax(att.target))
             p0 = float(att.target[pred])
-            s = summary_of(len(att.token_ids))
+            s = summary_index(len(att.token_ids), loaded.family.causal)
             outcomes: dict[str, dict[str, KnockoutOutcome]] = {"w": {}, "p": {}}
             for kind, key, idx in plan:
                 p = after[row]

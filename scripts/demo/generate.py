@@ -30,7 +30,7 @@ Everything is drawn from ``random.Random`` instances seeded with strings derived
 integer seed (string seeds are hashed with SHA-512 by the standard library, independent of
 ``PYTHONHASHSEED``), so the same seed gives byte-identical output on every run and platform.
 
-Command line: ``python -m viewer.demo.generate --out DIR [--seed N] [--samples DIR]`` writes
+Command line: ``python -m scripts.demo.generate --out DIR [--seed N] [--samples DIR]`` writes
 ``train.jsonl``, ``eval.jsonl`` and ``counterfactual.jsonl`` (and, with ``--samples``, the sample
 message files of ``sample_sentences/``).
 """
@@ -726,7 +726,7 @@ def write_samples(dataset: Dataset, out_dir: Path) -> list[Path]:
 def main(argv: Sequence[str] | None = None) -> int:
     """Command line: write the generated splits (and optionally the sample files)."""
     parser = argparse.ArgumentParser(
-        prog="python -m viewer.demo.generate", description=__doc__.split("\n")[0]
+        prog="python -m scripts.demo.generate", description=__doc__.split("\n")[0]
     )
     parser.add_argument("--out", type=Path, required=True, help="folder for the split files")
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED)

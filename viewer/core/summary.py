@@ -1,0 +1,43 @@
+"""The summary token and the attention it pays: the one definition used by every report.
+
+A sequence classifier reads its prediction from one position, the *summary token*: the first
+token of an encoder ([CLS], <s>), or the last real token of a causal decoder, the only decoder
+position that sees the whole text (and the position a decoder's sequence-classification head
+pools; transformers' ``*ForSequenceClassification`` takes the last non-padding token). A causal
+language model's next-token prediction is read from the last token too.
+
+*Summary-token attention* is the last layer's attention row of that token: per head (H, T), or
+its head mean (T,). Its softmax already runs over every key the token sees, so nothing is
+re-normalised.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+def summary_index(n_tokens: int, causal: bool) -> int:
+    """The summary token of a text of ``n_tokens`` tokens (no padding)."""
+    return n_tokens - 1 if causal else 0
+
+
+def summary_attention(attention: np.ndarray, summary: int, head: int | None = None) -> np.ndarray:
+    """Attention from the summary token: attention (H, T, T) of one layer -> (T,) float64.
+
+    The head mean Ā[s, :] = (1/H) Σ_h A_h[s, :] when ``head`` is None, else A_head[s, :].
+    """
+    a = np.asarray(attention)
+    if head is not None:
+        return a[head, summary, :].astype(np.float64)
+    return a[:, summary, :].mean(axis=0, dtype=np.float64)
+
+
+def summary_share(attention: np.ndarray, summary: int, tokens: np.ndarray,
+                  head: int | None = None) -> float:
+    """Share of the summary token's attention that lands on ``tokens``: Σ_{j ∈ tokens} Ā[s, j].
+
+    attention (H, T, T) of the last layer. With the head mean this is a word's ``focus`` in the
+    shortcut search (docs/definitions.md, "Word knockout").
+    """
+    row = summary_attention(attention, summary, head)
+    return float(row[np.asarray(tokens, dtype=np.int64)].sum())
