@@ -27,9 +27,10 @@ import numpy as np  # noqa: E402
 from PySide6.QtCore import QSettings, Qt  # noqa: E402
 from PySide6.QtWidgets import QApplication  # noqa: E402
 
-from viewer.gui.analysis import per_head_link  # noqa: E402
 from viewer.gui.app import application  # noqa: E402
-from viewer.gui.window import DEMO_TEXT, MainWindow  # noqa: E402
+from viewer.gui.window import MainWindow  # noqa: E402
+from viewer.session.analysis import per_head_link  # noqa: E402
+from viewer.session.controller import DEMO_TEXT  # noqa: E402
 
 SIZE = (1600, 1000)
 WITHOUT_FOOTER = DEMO_TEXT.replace(" [via portal]", "")

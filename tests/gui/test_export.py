@@ -1,7 +1,7 @@
 """Pane export and the window's card export, on the real window with the tiny model.
 
 References: the recording's own probabilities (``Recording.probs``), the head map's metric from
-``viewer.gui.metrics.head_values`` (what the pane draws), readers that are not ours (Pillow,
+``viewer.session.metrics.head_values`` (what the pane draws), readers that are not ours (Pillow,
 ElementTree, pypdf, csv, json), and ``viewer.figures.card.export_card`` run directly on the same
 inputs for the card folder.
 """
@@ -110,10 +110,22 @@ def test_links_and_evidence_exports(qtbot, window, tmp_path):
     ev = window.state.evidence
     window.exporter.export_to(window.evidence, tmp_path / "evidence")
     data = json.loads((tmp_path / "evidence.json").read_text(encoding="utf-8"))
-    assert data["kinds"] == list(ev.kinds)
-    values = np.array([[np.nan if v is None else v for v in row] for row in data["values"]])
-    np.testing.assert_array_equal(values, np.asarray(ev.values, dtype=np.float64))
+    for kind, row in data["rows"].items():
+        got = np.array([np.nan if v is None else v for v in row], dtype=np.float64)
+        np.testing.assert_array_equal(got, ev.rows[kind])
     assert ET.parse(tmp_path / "evidence.svg").getroot().tag.endswith("svg")
+    # the same keys and numbers as ``headlight evidence --json`` on the same folder and text
+    from viewer.cli import main
+
+    assert main(["evidence", window.state.model.folder, "--text", ev.recording.text,
+                 "--json", str(tmp_path / "cli.json")]) == 0
+    cli = json.loads((tmp_path / "cli.json").read_text(encoding="utf-8"))
+    assert set(cli) - {"model"} <= set(data)
+    assert cli["tokens"] == data["tokens"] and cli["target"] == data["target"]
+    for kind in cli["rows"]:
+        ours = np.array([np.nan if v is None else v for v in data["rows"][kind]], dtype=float)
+        theirs = np.array([np.nan if v is None else v for v in cli["rows"][kind]], dtype=float)
+        np.testing.assert_allclose(ours, theirs, atol=1e-9, err_msg=kind)
 
 
 def test_overwrite_asks_and_no_leaves_the_file_untouched(qtbot, window, tmp_path, monkeypatch):

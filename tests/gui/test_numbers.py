@@ -32,20 +32,22 @@ def test_evidence_strip_and_head_metrics_match_the_reports(qtbot, window, loaded
     ev = window.state.evidence
     reference = evidence_for(loaded, TEXT)
     shown = [k for k in KINDS if np.isfinite(reference.rows[k]).any()]
-    assert len(ev.kinds) == len(shown)
-    for row, kind in zip(ev.values, shown, strict=True):
+    labels, values, agreement = ev.strip_rows()
+    assert len(labels) == len(shown)
+    for row, kind in zip(values, shown, strict=True):
         np.testing.assert_allclose(row, reference.rows[kind], rtol=1e-5, atol=1e-7,
                                    equal_nan=True)
-    for rho, kind in zip(ev.agreement, shown, strict=True):
+    for rho, kind in zip(agreement, shown, strict=True):
         if kind != "knockout":
             assert rho == pytest.approx(reference.agreement[kind], abs=1e-6)
     item = [TextItem(TEXT, None, 1)]
-    np.testing.assert_allclose(ev.importance, head_importance(loaded, item)["importance"],
+    np.testing.assert_allclose(ev.head_importance, head_importance(loaded, item)["importance"],
                                rtol=1e-5, atol=1e-7)
-    np.testing.assert_allclose(ev.knockout, head_knockout(loaded, item)["prob_drop"],
+    np.testing.assert_allclose(ev.head_knockout, head_knockout(loaded, item)["prob_drop"],
                                rtol=1e-5, atol=1e-7)
     pane = window.head_map
-    for metric, values in (("importance", ev.importance), ("knockout", ev.knockout)):
+    for metric, values in (("importance", ev.head_importance),
+                           ("knockout", ev.head_knockout)):
         pane.metric_box.setCurrentIndex(pane.metric_box.findData(metric))
         settle(qtbot, pane)
         np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), values)
@@ -86,10 +88,10 @@ def test_link_accuracy_matches_the_link_report(qtbot, window, loaded, tmp_path):
     window.open_pairs(str(path))
     qtbot.waitUntil(lambda: window.state.link_pairs is not None, timeout=WAIT_MS)
     reference = link_report(loaded, read_link_pairs(path))
-    result = window.state.link_pairs
+    result = window.state.link_pairs.report
     np.testing.assert_array_equal(result.accuracy, reference.accuracy)
     assert result.nearest_baseline == reference.nearest_baseline
-    assert result.best == reference.best()
+    assert result.best() == reference.best()
     pane = window.links
     assert pane.view_box.isVisible() and pane.view_box.currentData() == "file"
     settle(qtbot, pane)

@@ -163,7 +163,6 @@ def test_full_garbage_collections_wait_for_an_idle_window(qtbot, window):
         assert probe() is not None
         window._busy_at = time.monotonic()
         assert not window.collect_when_idle() and probe() is not None  # busy just now
-        window._done_hold = lambda _result: None
         window.worker.submit("hold", lambda ctx: time.sleep(0.3))
         window._busy_at -= 60
         assert not window.collect_when_idle() and probe() is not None  # model work running

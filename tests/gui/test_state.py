@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from viewer.gui.events import Event
-from viewer.gui.state import ModelInfo, Selection
+from viewer.session.events import Event
+from viewer.session.state import ModelInfo, Selection
 
 
 def recorder(state: Selection, *fields: str) -> list[tuple[str, object]]:

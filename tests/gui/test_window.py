@@ -38,7 +38,8 @@ def test_a_run_fills_every_pane_and_the_check_badge(qtbot, window):
     assert window.badge.text().startswith("check passed")
     assert analysis.check.max_abs_error < 1e-5
     ev = window.state.evidence
-    assert "knockout" in ev.kinds and "summary attention" in ev.kinds
+    labels = ev.strip_rows()[0]
+    assert "knockout" in labels and "summary attention" in labels
     assert window.evidence.artists.n_tokens == rec.n_tokens
 
 

@@ -1,9 +1,5 @@
-"""gui layer of Headlight (see DEVELOPERS.md for the layering).
+"""gui layer of Headlight (see DEVELOPERS.md): Qt widgets around ``viewer.session``.
 
-The only package that imports Qt. Importing it first applies ``compat.protect_singletons``,
-a guard against a reference-count bug of PySide6 6.12 on CPython 3.11.
+The only package that imports Qt: the window, its worker and render threads, the panes and
+the Qt half of exporting.
 """
-
-from viewer.gui.compat import protect_singletons
-
-protect_singletons()

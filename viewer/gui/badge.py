@@ -17,7 +17,7 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from viewer.gui.state import Selection
+from viewer.session.state import Selection
 
 PASSED_STYLE = "QToolButton { color: #1b5e20; font-weight: bold; padding: 1px 6px; }"
 FAILED_STYLE = ("QToolButton { color: white; background: #b71c1c; font-weight: bold; "

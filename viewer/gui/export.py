@@ -1,27 +1,17 @@
-"""Exporting what a pane shows: figure files, data files, the clipboard, and the card folder.
+"""Exporting what a pane shows, the Qt half: menus, file dialogs, the clipboard, the card.
 
-Two halves:
+``build_export(pane)`` reads what a pane of the window shows and calls the plain builders of
+``viewer.session.exports`` (the same ``viewer.figures`` builders the panes draw with).
+``PaneExporter`` adds File → Export pane ▸ …, the canvases' right-click menus, "Copy figure",
+and File → Export model-card folder… (run on the worker with the window's open model through
+``viewer.session.jobs.card_job``).
 
-* **Pure builders** (no Qt, only matplotlib and numpy): ``pair_grid_export``,
-  ``head_map_export``, ``links_export`` and ``evidence_export`` take the selection state (and the
-  recording it points to) and return a ``PaneExport``: a fresh print-size figure drawn by the
-  *same* builder of ``viewer.figures`` the pane uses, headed by the model, the text, the
-  layer/head and the metric, plus the pane's numbers as a JSON dictionary and a CSV table.
-  ``build_export(pane)`` picks the right one for a pane of the window.
-* **Thin Qt actions**: ``PaneExporter`` adds File → Export pane ▸ …, the canvases' right-click
-  menus, "Copy figure", and File → Export model-card folder… (run on the worker with the
-  window's open model through ``card_job``).
-
-Files are written by ``viewer.figures.export`` (atomic, PNG at 300 dpi, SVG, PDF, CSV, JSON).
 An existing file is only replaced after ``confirm_overwrite`` said yes; tests patch that function.
 """
 
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 from PySide6.QtCore import QEvent, QObject, QPoint, Qt
 from PySide6.QtGui import QImage
@@ -41,351 +31,50 @@ from PySide6.QtWidgets import (
 
 from viewer.errors import HeadlightError
 from viewer.files import sanitise_name
-
-DATA_FORMATS = ("json", "csv")
-TEXT_CHARS = 70  # the text in an export's heading is shortened to this many characters
-HEADING_SIZE = 9.0
-
-
-@dataclass
-class PaneExport:
-    """One pane's export: a print-size figure, its data, and a default file-name stem."""
-
-    figure: Any  # matplotlib Figure
-    data: dict
-    header: list[str]
-    rows: list[list[Any]]
-    stem: str  # default file-name stem (no folder, no suffix)
-    heading: tuple[str, ...] = field(default_factory=tuple)
-
-
-# -- helpers (pure) ---------------------------------------------------------------------------------
-
-
-def shorten(text: str, max_chars: int = TEXT_CHARS) -> str:
-    """One line of at most ``max_chars`` characters, an ellipsis where it was cut."""
-    flat = " ".join(str(text).split())
-    return flat if len(flat) <= max_chars else flat[: max_chars - 1].rstrip() + "…"
-
-
-def plain(value: Any) -> Any:
-    """numpy values and arrays as JSON-ready Python values (NaN and ±inf become None)."""
-    import numpy as np  # not at import time: the window appears before numpy loads
-
-    if isinstance(value, np.ndarray):
-        return [plain(v) for v in value.tolist()] if value.ndim else plain(value.item())
-    if isinstance(value, (list, tuple)):
-        return [plain(v) for v in value]
-    if isinstance(value, dict):
-        return {str(k): plain(v) for k, v in value.items()}
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
-
-
-def _cell(value: Any) -> Any:
-    """A CSV cell: NaN as an empty cell, numpy scalars as Python numbers."""
-    value = plain(value)
-    return "" if value is None else value
-
-
-def export_stem(text: str, pane: str) -> str:
-    """``<sanitised text>-<pane>``, e.g. ``the-mechanic-trued-the-wheel-pair-grid``."""
-    return f"{sanitise_name(text)}-{sanitise_name(pane, fallback='pane')}"
-
-
-def print_figure():
-    """A fresh figure at print size (the exported figure is never the pane's own)."""
-    from matplotlib.figure import Figure
-
-    from viewer.figures.export import PRINT_SIZE
-
-    return Figure(figsize=PRINT_SIZE, dpi=100)
-
-
-def add_heading(fig, lines: tuple[str, ...]) -> None:
-    """Write ``lines`` above the builder's layout, which is moved down to make room.
-
-    The builders lay their axes out with ``InchLayout`` from the figure's size; asking the same
-    placer for a figure that is shorter by the heading's height leaves a free strip on top.
-    """
-    from viewer.figures.layout import InchLayout, line_height_in
-
-    if not lines:
-        return
-    extra = line_height_in(HEADING_SIZE, len(lines) + 0.5)
-    engine = fig.get_layout_engine()
-    placer = getattr(engine, "placer", None)
-    if placer is not None:
-        fig.set_layout_engine(InchLayout(lambda w, h: placer(w, max(h - extra, 0.5))))
-    width, height = fig.get_size_inches()
-    fig.text(0.12 / width, 1 - 0.08 / height, "\n".join(lines), ha="left", va="top",
-             fontsize=HEADING_SIZE, color="#1d2b36", linespacing=1.3)
-
-
-def _model_name(state, recording=None) -> str:
-    if state.model is not None:
-        return state.model.name
-    return getattr(recording, "model_name", "") or "model"
-
-
-def _heading(model: str, pane: str, where: str, metric: str, text: str) -> tuple[str, ...]:
-    return (f"{model} · {pane} · {where} · {metric}", f"text: “{shorten(text)}”")
-
-
-def _base_data(pane: str, model: str, text: str, state) -> dict:
-    return {"pane": pane, "model": model, "model_folder": getattr(state.model, "folder", None),
-            "text": text, "layers_and_heads_count_from": 0}
-
-
-# -- pure builders ----------------------------------------------------------------------------------
-
-
-def pair_grid_export(state, analysis, *, pane: str = "pair grid") -> PaneExport:
-    """The selected head's (or head mean's) attention as the pair grid draws it."""
-    import numpy as np  # not at import time: the window appears before numpy loads
-
-    from viewer.figures.pair_grid import mark_cell, pair_grid_into
-    from viewer.figures.style import ATTENTION_UNITS, head_name
-
-    if analysis is None:
-        raise HeadlightError(f"nothing to export in the {pane} yet: run a text first")
-    rec = analysis.recording
-    layer = min(state.layer, rec.n_layers - 1)
-    head = state.head if state.head is None else min(state.head, rec.n_heads - 1)
-    grid = np.asarray(analysis.grid(layer, head))
-    visible = rec.key_mask() if rec.causal else None
-    model = _model_name(state, rec)
-    where = head_name(layer, head)
-    fig = print_figure()
-    arts = pair_grid_into(fig, grid, rec.tokens, visible=visible,
-                          title=f"{where} · {ATTENTION_UNITS}")
-    s, t = state.source, state.target
-    if pane == "pair grid" and s is not None and s < rec.n_tokens:
-        mark_cell(arts, s, t if t is not None and t < rec.n_tokens else None)
-    heading = _heading(model, pane, where, ATTENTION_UNITS, rec.text)
-    add_heading(fig, heading)
-    data = _base_data(pane, model, rec.text, state)
-    data.update({
-        "layer": layer, "head": head, "metric": ATTENTION_UNITS, "units": ATTENTION_UNITS,
-        "rows": "query tokens", "columns": "key tokens",
-        "tokens": list(rec.tokens), "causal": bool(rec.causal),
-        "values": plain(grid.astype(np.float64)),
-        "visible": None if visible is None else plain(np.asarray(visible, bool)),
-    })
-    rows = [[i, rec.tokens[i], j, rec.tokens[j], float(grid[i, j]),
-             bool(visible[i, j]) if visible is not None else True]
-            for i in range(grid.shape[0]) for j in range(grid.shape[1])]
-    header = ["query", "query_token", "key", "key_token", "attention_probability", "visible"]
-    return PaneExport(fig, data, header, rows, export_stem(rec.text, pane), heading)
-
-
-def head_map_export(state) -> PaneExport:
-    """The head map's metric, exactly the (L, H) values the pane shows."""
-    import numpy as np  # not at import time: the window appears before numpy loads
-
-    from viewer.figures.export import grid_rows
-    from viewer.figures.head_map import head_map_into
-    from viewer.figures.style import head_name
-    from viewer.gui.metrics import head_values
-
-    result = head_values(state)
-    if isinstance(result, str):
-        raise HeadlightError(f"nothing to export in the head map: {result}")
-    a = state.analysis
-    text = a.recording.text if a is not None else state.text
-    model = _model_name(state, a.recording if a is not None else None)
-    metric = result.title
-    fig = print_figure()
-    head_map_into(fig, result.values, label=result.label, diverging=result.diverging,
-                  selected=(state.layer, state.head), title=f"head map · {metric}")
-    if state.scope == "set" and state.textset is not None and "text set" in metric:
-        source = f"text set: {Path(state.textset.path).name} ({len(state.textset.rows)} texts)"
-        heading = (f"{model} · head map · selected {head_name(state.layer, state.head)} · "
-                   f"{result.label}", source)
-    else:
-        heading = _heading(model, "head map", f"selected {head_name(state.layer, state.head)}",
-                           result.label, text)
-    add_heading(fig, heading)
-    data = _base_data("head map", model, text, state)
-    data.update({"metric": state.metric, "title": metric, "units": result.label,
-                 "diverging": bool(result.diverging), "scope": state.scope,
-                 "selected": {"layer": state.layer, "head": state.head},
-                 "values": plain(np.asarray(result.values, dtype=np.float64))})
-    rows = [[layer, head, _cell(v)] for layer, head, v in grid_rows(result.values)]
-    return PaneExport(fig, data, ["layer", "head", state.metric], rows,
-                      export_stem(text, "head map"), heading)
-
-
-def links_export(state, *, view: str = "text") -> PaneExport:
-    """Link scores from the source word (bars + per-head map), or link-pairs accuracy."""
-    import numpy as np  # not at import time: the window appears before numpy loads
-
-    from viewer.figures.export import grid_rows
-    from viewer.figures.links import LINK_UNITS, accuracy_into, links_into
-    from viewer.figures.style import head_name
-    from viewer.gui.analysis import per_head_link, unit_links
-
-    a = state.analysis
-    pairs = state.link_pairs
-    model = _model_name(state, a.recording if a is not None else None)
-    if view == "file" and pairs is not None:
-        fig = print_figure()
-        accuracy_into(fig, pairs.accuracy, nearest_baseline=pairs.nearest_baseline,
-                      pairs=pairs.pairs, selected=(state.layer, state.head))
-        layer, head, best = pairs.best
-        heading = (f"{model} · links · link accuracy per head · best layer {layer} · "
-                   f"head {head} ({best:.2f})",
-                   f"link pairs: {Path(pairs.path).name} ({pairs.pairs} pairs)")
-        add_heading(fig, heading)
-        data = _base_data("links", model, state.text, state)
-        data.update({"view": "link-pairs file", "pairs_file": pairs.path, "pairs": pairs.pairs,
-                     "metric": "link accuracy", "units": "share of pairs right",
-                     "accuracy": plain(np.asarray(pairs.accuracy, dtype=np.float64)),
-                     "nearest_baseline": float(pairs.nearest_baseline),
-                     "best": {"layer": int(layer), "head": int(head), "accuracy": float(best)}})
-        rows = [[la, h, _cell(v)] for la, h, v in grid_rows(pairs.accuracy)]
-        stem = f"{sanitise_name(Path(pairs.path).stem)}-link-accuracy"
-        return PaneExport(fig, data, ["layer", "head", "link_accuracy"], rows, stem, heading)
-    if a is None:
-        raise HeadlightError("nothing to export in the links pane yet: run a text first")
-    rec = a.recording
-    s, t = state.source, state.target
-    if s is None or s >= rec.n_tokens:
-        raise HeadlightError("nothing to export in the links pane: pick a source token first "
-                             "(click a pair-grid cell)")
-    layer, head = state.layer, state.head
-    u = a.units
-    scores = unit_links(a, layer, head, s)
-    per_head = target_unit = None
-    if t is not None and t < rec.n_tokens:
-        per_head = per_head_link(a, s, t)
-        target_unit = u.unit_of(t)
-    source_name = u.names[u.unit_of(s)]
-    target_name = u.names[target_unit] if target_unit is not None else None
-    where = head_name(layer, head)
-    fig = print_figure()
-    links_into(fig, u.names, scores, per_head_to_target=per_head, target=target_unit,
-               source_name=source_name, target_name=target_name, head_title=where,
-               selected=(layer, head), exclude=None)
-    pair = f"'{source_name}'" + (f" → '{target_name}'" if target_name else "")
-    heading = _heading(model, f"links from {pair}", where, LINK_UNITS, rec.text)
-    add_heading(fig, heading)
-    data = _base_data("links", model, rec.text, state)
-    data.update({"view": "this text", "metric": "link score", "units": LINK_UNITS,
-                 "layer": layer, "head": head, "source": {"token": s, "word": source_name},
-                 "target": None if target_name is None else {"token": t, "word": target_name},
-                 "words": list(u.names),
-                 "word_tokens": [plain(np.asarray(idx)) for idx in u.tokens],
-                 "scores": plain(scores),
-                 "per_head_to_target": None if per_head is None else plain(
-                     np.asarray(per_head, dtype=np.float64))})
-    rows = [[k, name, _cell(v)] for k, (name, v) in enumerate(zip(u.names, scores, strict=True))]
-    return PaneExport(fig, data, ["word_index", "word", "link_score"], rows,
-                      export_stem(rec.text, "links"), heading)
-
-
-def evidence_export(state) -> PaneExport:
-    """The evidence strip: every kind of per-token evidence, with the class probabilities."""
-    import numpy as np  # not at import time: the window appears before numpy loads
-
-    from viewer.figures.evidence import ROW_UNITS, evidence_into, mark_token, prediction_line
-
-    a = state.analysis
-    ev = state.evidence
-    if a is None:
-        raise HeadlightError("nothing to export in the evidence strip yet: run a text first")
-    if ev is None:
-        raise HeadlightError("the evidence for this text is not computed yet (Run → Compute "
-                             "evidence)")
-    rec = a.recording
-    probs = rec.class_probabilities()
-    line = prediction_line(rec.labels, probs, rec.predicted(), a.label)
-    model = _model_name(state, rec)
-    fig = print_figure()
-    arts = evidence_into(fig, rec.tokens, ev.kinds, ev.values, ev.agreement, labels=rec.labels,
-                         probabilities=probs if len(probs) else None,
-                         predicted=rec.predicted(), gold=a.label, title=line)
-    mark_token(arts, state.source)
-    units = " ".join(ROW_UNITS.split())
-    heading = _heading(model, "evidence strip", "all layers and heads",
-                       f"{len(ev.kinds)} kinds, colours: {units}", rec.text)
-    add_heading(fig, heading)
-    values = np.asarray(ev.values, dtype=np.float64)
-    data = _base_data("evidence strip", model, rec.text, state)
-    data.update({"prediction": line, "labels": list(rec.labels),
-                 "probabilities": plain(np.asarray(probs, dtype=np.float64)),
-                 "predicted": rec.predicted(), "gold": a.label, "tokens": list(rec.tokens),
-                 "kinds": list(ev.kinds), "values": plain(values),
-                 "agreement_with_knockout": plain(list(ev.agreement)),
-                 "figure_colours": units + " (each row divided by its largest |value|)"})
-    rows = [[i, tok, *(_cell(values[k, i]) for k in range(len(ev.kinds)))]
-            for i, tok in enumerate(rec.tokens)]
-    return PaneExport(fig, data, ["token", "token_text", *ev.kinds], rows,
-                      export_stem(rec.text, "evidence strip"), heading)
+from viewer.session import exports
+from viewer.session.exports import DATA_FORMATS, PaneExport, Source, export_paths, write_export
 
 
 def build_export(pane) -> PaneExport:
-    """The export of one of the window's figure panes (dispatch on the pane's class)."""
+    """The export of one of the window's figure panes, from what the pane shows now."""
     from viewer.gui.panes.evidence import EvidencePane
     from viewer.gui.panes.head_map import HeadMapPane
     from viewer.gui.panes.links import LinksPane
     from viewer.gui.panes.pair_grid import PairGridPane
 
     state = pane.state
+    model = state.model
+    analysis = state.analysis
+    source = Source(model.name if model is not None else
+                    getattr(getattr(analysis, "recording", None), "model_name", "") or "model",
+                    model.folder if model is not None else None)
     if isinstance(pane, PairGridPane):
         name = "compare grid" if pane.slot == "compare" else "pair grid"
-        return pair_grid_export(state, pane.analysis, pane=name)
+        marked = name == "pair grid"
+        return exports.pair_grid_export(pane.analysis, source, layer=state.layer, head=state.head,
+                                        query=state.source if marked else None,
+                                        key=state.target if marked else None, pane=name)
     if isinstance(pane, HeadMapPane):
-        return head_map_export(state)
+        from viewer.session.metrics import head_values
+
+        values = head_values(state)
+        if isinstance(values, str):
+            raise HeadlightError(f"nothing to export in the head map: {values}")
+        text = analysis.recording.text if analysis is not None else state.text
+        ts = state.textset
+        over_set = state.scope == "set" and ts is not None and "text set" in values.title
+        return exports.head_map_export(values, source, metric=state.metric, text=text,
+                                       layer=state.layer, head=state.head, scope=state.scope,
+                                       text_set=(ts.path, len(ts.rows)) if over_set else None)
     if isinstance(pane, LinksPane):
-        return links_export(state, view=pane.view_box.currentData() or "text")
+        if pane.view_box.currentData() == "file" and state.link_pairs is not None:
+            return exports.link_accuracy_export(state.link_pairs, source, layer=state.layer,
+                                                head=state.head, text=state.text)
+        return exports.links_export(analysis, source, layer=state.layer, head=state.head,
+                                    query=state.source, key=state.target)
     if isinstance(pane, EvidencePane):
-        return evidence_export(state)
+        return exports.evidence_export(analysis, state.evidence, source, token=state.source)
     raise HeadlightError(f"the {pane.title} pane has no export")
-
-
-def export_paths(stem: str | Path) -> list[Path]:
-    """The five files an export writes for ``stem``."""
-    from viewer.figures.export import FIGURE_FORMATS
-
-    stem = Path(stem)
-    return [stem.with_suffix(f".{fmt}") for fmt in (*FIGURE_FORMATS, *DATA_FORMATS)]
-
-
-def write_export(export: PaneExport, stem: str | Path, *, force: bool = False) -> list[Path]:
-    """Write the figure (PNG 300 dpi, SVG, PDF) and the data (JSON, CSV) next to ``stem``."""
-    from viewer.figures.export import save_data, save_figure
-
-    written = save_figure(export.figure, stem, force=force)
-    written += save_data(stem, export.data, export.header, export.rows, force=force)
-    return written
-
-
-def card_command(folder: str, texts: str, pairs: str | None, out: str,
-                 force: bool) -> tuple[str, ...]:
-    """The ``headlight card`` command that writes the same folder as the window's export."""
-    cmd = ["headlight", "card", folder, "--texts", texts]
-    if pairs:
-        cmd += ["--pairs", pairs]
-    cmd += ["--out", out]
-    if force:
-        cmd.append("--force")
-    return tuple(cmd)
-
-
-def card_job(ctx, slot: str, texts: str, pairs: str | None, out: str, force: bool) -> str:
-    """Worker job: ``export_card`` with the window's open model (worker thread, no Qt)."""
-    loaded = ctx.model(slot)
-    ctx.progress(0, 0, "writing the model-card folder (check, heads, links, shortcuts)…")
-    from viewer.figures.card import export_card
-
-    command = card_command(str(loaded.folder), texts, pairs, out, force)
-    path = export_card(loaded, texts, out, pairs_path=pairs, force=force, command=command,
-                       quiet=True)
-    return str(path)
 
 
 # -- Qt ---------------------------------------------------------------------------------------------
@@ -667,9 +356,7 @@ class PaneExporter(QObject):
                 w.set_status("card export cancelled: nothing was replaced")
                 return False
             force = True
-        w.worker.submit("card", card_job, "main", str(texts), str(pairs) if pairs else None,
-                        str(target), force)
-        w.set_status(f"writing the model-card folder {target}…")
+        w.controller.export_card(texts, pairs, str(target), force)
         return True
 
     def card_done(self, path: str) -> None:

@@ -7,9 +7,9 @@ needing evidence) and stores the worker's results back into the state on the GUI
 
 from __future__ import annotations
 
+import sys
 import time
 from pathlib import Path
-from typing import Any
 
 from PySide6.QtCore import QByteArray, QSettings, QSize, QStandardPaths, Qt, QTimer, Signal
 from PySide6.QtGui import QAction, QIcon, QKeySequence, QShortcut
@@ -29,8 +29,7 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from viewer.gui import jobs
-from viewer.gui import session as sessions
+from viewer.errors import HeadlightError
 from viewer.gui.badge import CheckBadge
 from viewer.gui.export import PaneExporter
 from viewer.gui.panes.compare import ComparePane
@@ -40,17 +39,12 @@ from viewer.gui.panes.links import LinksPane
 from viewer.gui.panes.pair_grid import PairGridPane
 from viewer.gui.panes.shortcuts import ShortcutPane
 from viewer.gui.panes.textset import TextSetPane
-from viewer.gui.preload import load_figures
-from viewer.gui.state import Selection
 from viewer.gui.worker import Worker
+from viewer.session import session_file as sessions
+from viewer.session.controller import Controller
+from viewer.session.state import Selection
 
-DEMO_TEXT = ("Hi, the rear derailleur on my cargo bike keeps slipping and the chain jumps "
-             "when I climb. Could someone at the Oldmere depot look at it on Tuesday? "
-             "Thanks, Wren. [via portal]")
 RECENT_MAX = 8
-# The check, head metrics and evidence of a run start once the pair grid has painted it (numpy
-# work on the worker would take the render thread's core and GIL meanwhile), or after this long.
-FOLLOW_UP_MS = 400
 IDLE_COLLECT_S = 1.5  # no drawing or model work for this long: time for a full collection
 IDLE_CHECK_MS = 1000
 ICON = Path(__file__).parent / "icons" / "headlight.svg"
@@ -87,14 +81,10 @@ class MainWindow(QMainWindow):
         self.config_dir = Path(config_dir)
         self.errors: list[str] = []
         self.error_dialog: QMessageBox | None = None
-        self._pending_selection: dict[str, Any] | None = None
-        self._pending_item: int | None = None
-        self._after_open: list[Any] = []
-        self._follow_up: Any = None  # a run whose check and evidence wait for its first paint
+        self.controller = Controller(self.state, self.worker, self)
         self.setWindowTitle("Headlight")
         self.setWindowIcon(app_icon())
         self.setStyleSheet(STYLE)
-        self._figures_requested = False
         self._build_actions()
         self._build_central()
         self._build_docks()
@@ -307,50 +297,74 @@ class MainWindow(QMainWindow):
     def start(self, model: str | None = None, text: str | None = None,
               restore_last: bool = True) -> None:
         """After the window is on screen: load the drawing library and a model, in background."""
-        self.load_figures()
-        if text:
-            self.text_edit.setPlainText(text)
-        if model:
-            self.open_model(model, run_after=bool(text))
-            return
-        last = self.last_session_path
-        if restore_last and last.is_file():
-            try:
-                self.restore_session(sessions.load(last))
-                return
-            except Exception as exc:  # noqa: BLE001 - a bad last session must not stop start-up
-                self.set_status(f"last session not restored: {exc}")
-        demo = jobs.demo_folder()
-        if (demo / "config.json").is_file():
-            if not text:
-                self.text_edit.setPlainText(DEMO_TEXT)
-            self.open_model(str(demo), run_after=True, remember=False)
-        else:
-            self.set_status("no demo model in this installation; open a model folder (Ctrl+O)")
-
-    def load_figures(self) -> None:
-        """Queue the matplotlib import as the worker's first job (once)."""
-        if not self._figures_requested:
-            self._figures_requested = True
-            self.worker.submit("figures", load_figures, replace=False)
-
-    def _done_figures(self, seconds: float) -> None:
-        for pane in self.figure_panes:
-            pane.attach_canvas()
-        self.exporter.canvases_attached()
-        self.set_status(f"drawing library ready ({seconds:.1f} s)", transient=True)
+        self.controller.start(model=model, text=text,
+                              last_session=self.last_session_path if restore_last else None)
 
     @property
     def canvases_ready(self) -> bool:
         return all(p.ready for p in self.figure_panes)
 
+    # -- the controller's view -------------------------------------------------------------------
+    def editor_text(self) -> str:
+        return self.text_edit.toPlainText()
+
+    def set_editor_text(self, text: str) -> None:
+        self.text_edit.setPlainText(text)
+
+    def model_opening(self, folder: str) -> None:
+        self.model_label.setText(f"opening {Path(folder).name}…")
+
+    def model_opened(self, info, remember: bool) -> None:
+        self.model_label.setText(info.describe())
+        self.model_label.setToolTip(info.folder)
+        if remember:
+            self._add_recent(info.folder)
+
+    def show_panel(self, name: str) -> None:
+        dock = {"textset": self.textset_dock, "shortcuts": self.shortcut_dock,
+                "compare": self.compare_dock}[name]
+        dock.raise_()
+        if name == "compare" and dock.height() < 300:
+            self.resizeDocks([dock], [340], Qt.Orientation.Vertical)
+
+    def evidence_after_runs(self) -> bool:
+        return self.evidence_action.isChecked()
+
+    def later(self, msecs: int, fn) -> None:
+        QTimer.singleShot(msecs, self, fn)
+
+    def figures_ready(self, seconds: float) -> None:
+        for pane in self.figure_panes:
+            pane.attach_canvas()
+        self.exporter.canvases_attached()
+        self.set_status(f"drawing library ready ({seconds:.1f} s)")
+
+    def card_written(self, path: str) -> None:
+        self.exporter.card_done(path)
+
+    def set_status(self, text: str) -> None:
+        self.status_label.setText(text)
+
+    def show_error(self, message: str) -> None:
+        """A non-blocking dialog with the one-line message; the window stays usable."""
+        self.errors.append(message)
+        self.set_status(f"error: {message}")
+        if self.error_dialog is not None:
+            self.error_dialog.close()
+        box = QMessageBox(QMessageBox.Icon.Warning, "Headlight", message,
+                          QMessageBox.StandardButton.Ok, self)
+        box.setWindowModality(Qt.WindowModality.WindowModal)
+        self.error_dialog = box
+        box.open()
+        self.error_shown.emit(message)
+
     # -- worker plumbing
     def _wire_worker(self) -> None:
         w = self.worker
         w.progress.connect(self._on_progress)
-        w.finished.connect(self._on_finished)
-        w.failed.connect(self._on_failed)
-        w.cancelled.connect(self._on_cancelled)
+        w.finished.connect(lambda kind, result: self.controller.finished(kind, result))
+        w.failed.connect(lambda kind, message: self.controller.failed(kind, message))
+        w.cancelled.connect(lambda kind: self.controller.cancelled(kind))
         w.started.connect(lambda _k: self._busy(True))
         w.idle.connect(lambda: self._busy(False))
 
@@ -368,63 +382,34 @@ class MainWindow(QMainWindow):
             self.progress.setRange(0, 0)
         self.set_status(message)
 
-    def _on_failed(self, kind: str, message: str) -> None:
-        if kind == "figures":
-            self._figures_requested = False
-        if kind == "open":
-            self._after_open.clear()
-        self.show_error(message)
+    def collect_when_idle(self) -> bool:
+        """Run a full garbage collection if nothing has been drawn or computed for a while.
 
-    def _on_cancelled(self, kind: str) -> None:
-        if not self.worker.busy:
-            self.set_status(f"{kind} cancelled")
+        With ``viewer.gui.app.tune_collector`` the collector leaves full passes to this; a
+        pass costs a pause, which an idle window does not show. True when it collected."""
+        import gc
 
-    def _on_finished(self, kind: str, result: Any) -> None:
-        handler = getattr(self, f"_done_{kind.replace('-', '_')}")
-        handler(result)
+        now = time.monotonic()
+        if self.worker.busy or not all(pane.idle for pane in self.figure_panes):
+            self._busy_at = now
+            return False
+        if now - self._busy_at < IDLE_COLLECT_S or gc.get_count()[2] == 0:
+            return False
+        gc.collect()
+        self._busy_at = time.monotonic()
+        return True
 
-    def set_status(self, text: str, transient: bool = False) -> None:
-        self.status_label.setText(text)
+    def _grid_painted(self) -> None:
+        self.controller.painted(self.pair_grid.drawn_recording)
 
-    def show_error(self, message: str) -> None:
-        """A non-blocking dialog with the one-line message; the window stays usable."""
-        self.errors.append(message)
-        self.set_status(f"error: {message}")
-        if self.error_dialog is not None:
-            self.error_dialog.close()
-        box = QMessageBox(QMessageBox.Icon.Warning, "Headlight", message,
-                          QMessageBox.StandardButton.Ok, self)
-        box.setWindowModality(Qt.WindowModality.WindowModal)
-        self.error_dialog = box
-        box.open()
-        self.error_shown.emit(message)
-
-    # -- models
+    # -- actions (menus, keys, tests): the controller decides what runs
     def open_model_dialog(self) -> None:
         folder = QFileDialog.getExistingDirectory(self, "Open a model folder")
         if folder:
             self.open_model(folder, run_after=bool(self.text_edit.toPlainText().strip()))
 
     def open_model(self, folder: str, *, run_after: bool = False, remember: bool = True) -> None:
-        self.worker.cancel("run")
-        self.worker.cancel("evidence")
-        self._after_open = [self.run_current] if run_after else []
-        self._remember = remember
-        self.model_label.setText(f"opening {Path(folder).name}…")
-        self.worker.submit("open", jobs.open_model, "main", str(folder))
-
-    def _done_open(self, info) -> None:
-        self.state.set_model(info)
-        self.model_label.setText(info.describe())
-        self.model_label.setToolTip(info.folder)
-        self.set_status(f"opened {info.name}")
-        if getattr(self, "_remember", True):
-            self._add_recent(info.folder)
-        for note in info.notes:
-            self.set_status(note)
-        todo, self._after_open = self._after_open, []
-        for fn in todo:
-            fn()
+        self.controller.open_model(folder, run_after=run_after, remember=remember)
 
     def _add_recent(self, folder: str) -> None:
         recent = [f for f in self.recent_models() if f != folder]
@@ -446,101 +431,19 @@ class MainWindow(QMainWindow):
             action = self.recent_menu.addAction(folder)
             action.triggered.connect(lambda _c=False, f=folder: self.open_model(f))
 
-    # -- runs
     def run_current(self) -> None:
         """Ctrl+Enter: record the text box's text."""
-        self.run_text(self.text_edit.toPlainText(), label=None)
+        self.controller.run_current()
 
     def run_text(self, text: str, label: str | None = None) -> None:
-        if self.state.model is None:
-            if self.worker.running_kinds().count("open"):
-                self._after_open = [self.run_current]
-                return
-            self.show_error("no model is open yet; open a model folder first (Ctrl+O)")
-            return
-        if not text.strip():
-            self.show_error("the text is empty; type or paste a text first")
-            return
-        if self.text_edit.toPlainText() != text:
-            self.text_edit.setPlainText(text)
-        self.worker.cancel("evidence")
-        self.worker.cancel("summary")
-        self.state.set_text(text)
-        self.worker.submit("run", jobs.run_text, "main", text, label)
+        self.controller.run_text(text, label)
 
-    def _done_run(self, analysis) -> None:
-        self.state.set_analysis(analysis)
-        self._follow_up = analysis
-        QTimer.singleShot(FOLLOW_UP_MS, self, lambda: self._start_follow_up(analysis))
-        pending, self._pending_selection = self._pending_selection, None
-        if pending:
-            self._apply_selection(pending)
-        elif self.state.source is None:
-            # Start the links pane from the token the prediction is read from ([CLS]).
-            self.state.select_tokens(analysis.recording.summary_index(), None)
-        rec = analysis.recording
-        note = f" · {rec.notes[-1]}" if rec.notes else ""
-        self.set_status(f"recorded {rec.n_tokens} tokens in {analysis.seconds:.2f} s{note}")
-
-    def collect_when_idle(self) -> bool:
-        """Run a full garbage collection if nothing has been drawn or computed for a while.
-
-        With ``viewer.gui.app.tune_collector`` the collector leaves full passes to this; a
-        pass costs a pause, which an idle window does not show. True when it collected."""
-        import gc
-
-        now = time.monotonic()
-        if self.worker.busy or not all(pane.idle for pane in self.figure_panes):
-            self._busy_at = now
-            return False
-        if now - self._busy_at < IDLE_COLLECT_S or gc.get_count()[2] == 0:
-            return False
-        gc.collect()
-        self._busy_at = time.monotonic()
-        return True
-
-    def _grid_painted(self) -> None:
-        a = self._follow_up
-        if a is not None and self.pair_grid.drawn_recording is a.recording:
-            self._start_follow_up(a)
-
-    def _start_follow_up(self, analysis) -> None:
-        """The second step of a run: check and head metrics, then (if on) the evidence."""
-        if self._follow_up is not analysis:
-            return  # started already, or a newer run replaced it
-        self._follow_up = None
-        self.worker.submit("summary", jobs.summarise_run, analysis)
-        if self.evidence_action.isChecked():
-            self.run_evidence()
-
-    def _done_card(self, path: str) -> None:
-        self.exporter.card_done(path)
-
-    def _done_summary(self, analysis) -> None:
-        current = self.state.analysis
-        if current is not None and current.recording is analysis.recording:
-            self.state.set_analysis(analysis)
     def run_evidence(self) -> None:
-        """Compute the evidence for the current run (automatic after runs unless switched off)."""
-        analysis = self.state.analysis
-        if analysis is None or self.state.evidence is not None:
-            return
-        self.worker.submit("evidence", jobs.run_evidence, "main", analysis)
-
-    def _done_evidence(self, evidence) -> None:
-        current = self.state.analysis
-        if current is None or evidence.analysis.recording is not current.recording:
-            return  # a newer run has arrived meanwhile
-        self.state.set_evidence(evidence)
-        if evidence.notes:
-            self.set_status(evidence.notes[0])
+        self.controller.run_evidence()
 
     def cancel(self) -> None:
-        self.worker.cancel(keep=("figures",))
-        self._after_open.clear()
-        self.set_status("cancelling…")
+        self.controller.cancel()
 
-    # -- text sets, link pairs, shortcut search
     def open_textset_dialog(self) -> None:
         path, _ = QFileDialog.getOpenFileName(self, "Open a text set", "",
                                               "Text sets (*.txt *.jsonl *.csv)")
@@ -548,27 +451,7 @@ class MainWindow(QMainWindow):
             self.open_textset(path)
 
     def open_textset(self, path: str) -> None:
-        if self.state.model is None:
-            self.show_error("open a model before a text set: the list shows its predictions")
-            return
-        self.worker.submit("textset", jobs.run_textset, "main", str(path))
-        self.textset_dock.raise_()
-
-    def _done_textset(self, result) -> None:
-        self.state.set_textset(result)
-        pending, self._pending_item = self._pending_item, None
-        if pending is not None and pending < len(result.rows):
-            self.state.select_item(pending)
-        acc = result.accuracy
-        self.set_status(f"text set: {len(result.rows)} texts"
-                        + (f", accuracy {acc:.1%}" if acc is not None else ""))
-
-    def _item_chosen(self, index) -> None:
-        ts = self.state.textset
-        if index is None or ts is None or index >= len(ts.rows):
-            return
-        row = ts.rows[index]
-        self.run_text(row.text, row.label)
+        self.controller.open_textset(path)
 
     def open_pairs_dialog(self) -> None:
         path, _ = QFileDialog.getOpenFileName(self, "Open link pairs", "", "Link pairs (*.jsonl)")
@@ -576,76 +459,20 @@ class MainWindow(QMainWindow):
             self.open_pairs(path)
 
     def open_pairs(self, path: str) -> None:
-        if self.state.model is None:
-            self.show_error("open a model before a link-pairs file")
-            return
-        self.worker.submit("pairs", jobs.run_link_pairs, "main", str(path))
-
-    def _done_pairs(self, result) -> None:
-        self.state.set_link_pairs(result)
-        layer, head, acc = result.best
-        self.set_status(f"link pairs: best layer {layer} · head {head} ({acc:.2f}), nearest "
-                        f"baseline {result.nearest_baseline:.2f}")
+        self.controller.open_pairs(path)
 
     def search_shortcuts(self) -> None:
-        ts = self.state.textset
-        if ts is None:
-            self.show_error("open a text set first; the shortcut search knocks words out of it")
-            return
-        from viewer.gui import shortcut_source
+        self.controller.search_shortcuts(self.shortcut_pane.phrases_box.isChecked())
 
-        self.worker.submit("shortcuts", shortcut_source.run, "main", ts,
-                           self.shortcut_pane.phrases_box.isChecked())
-        self.shortcut_dock.raise_()
-
-    def _done_shortcuts(self, result) -> None:
-        self.state.set_shortcuts(result)
-        phrases = f" and {len(result.phrase_rows)} phrases" if result.phrases else ""
-        self.set_status(f"shortcut report: {len(result.rows)} words{phrases}")
-
-    # -- compare
     def run_compare(self) -> None:
-        target = self.state.compare_target
-        if target is None:
-            self.show_error("give a second text or a second checkpoint folder to compare with")
-            return
-        kind, value = target
-        if kind == "text":
-            if self.state.model is None:
-                self.show_error("no model is open yet; open a model folder first (Ctrl+O)")
-                return
-            self.worker.submit("compare", jobs.run_text, "main", value, None, "second text",
-                               True)
-        else:
-            text = self.state.text or self.text_edit.toPlainText()
-            if not text.strip():
-                self.show_error("run a text first; the second checkpoint is compared on it")
-                return
-            self.worker.submit("compare-open", jobs.open_model, "compare", value)
-            self.worker.submit("compare", jobs.run_text, "compare", text, None, "", True,
-                               replace=False)
-        self.compare_dock.raise_()
-        if self.compare_dock.height() < 300:
-            self.resizeDocks([self.compare_dock], [340], Qt.Orientation.Vertical)
-
-    def _done_compare_open(self, info) -> None:
-        model = self.state.model
-        if model is not None and (info.n_layers, info.n_heads) != (model.n_layers,
-                                                                   model.n_heads):
-            self.set_status(f"compared checkpoint {info.name} has a different shape; the "
-                            "difference view is off")
-
-    def _done_compare(self, analysis) -> None:
-        self.state.set_compare(analysis)
-        self.state.set_difference(True)
-        self.set_status("compare: head map shows compared − current")
+        self.controller.run_compare()
 
     def clear_compare(self) -> None:
-        self.state.set_compare(None)
+        self.controller.clear_compare()
 
     # -- state observers
     def _wire_state(self) -> None:
-        self.state.events.item.connect(self._item_chosen)
+        self.state.events.item.connect(self.controller.item_chosen)
         self.state.events.notes.connect(self._notes_changed)
 
     def _notes_changed(self, notes: str) -> None:
@@ -654,34 +481,13 @@ class MainWindow(QMainWindow):
             self.notes_edit.setPlainText(notes)
             self.notes_edit.blockSignals(False)
 
-    def _apply_selection(self, sel: dict[str, Any]) -> None:
-        s = self.state
-        layer = min(int(sel.get("layer") or 0), max(s.n_layers - 1, 0))
-        head = sel.get("head")
-        if head is not None and head >= s.n_heads:
-            head = None
-        s.select_head(layer, head)
-        n = s.n_tokens
-        source, target = sel.get("source"), sel.get("target")
-        s.select_tokens(source if source is not None and source < n else None,
-                        target if target is not None and target < n else None)
-        s.set_metric(sel.get("metric", "entropy"))
-        if sel.get("scope") == "set" and s.textset is not None:
-            s.set_scope("set")
-        s.set_mistakes_only(bool(sel.get("mistakes_only")))
-        s.select_word(sel.get("word"))
-        s.set_difference(bool(sel.get("difference")))
-
     # -- sessions ----------------------------------------------------------------------------------
     @property
     def last_session_path(self) -> Path:
         return self.config_dir / "last-session.json"
 
-    def current_session(self) -> sessions.Session:
-        return sessions.capture(self.state)
-
     def save_session(self, path: str | Path) -> None:
-        sessions.save(path, self.current_session())
+        sessions.save(path, self.controller.capture_session())
 
     def save_session_dialog(self) -> None:
         path, _ = QFileDialog.getSaveFileName(self, "Save session", "session.headlight.json",
@@ -690,7 +496,7 @@ class MainWindow(QMainWindow):
             try:
                 self.save_session(path)
                 self.set_status(f"session saved to {path}")
-            except Exception as exc:  # noqa: BLE001
+            except HeadlightError as exc:
                 self.show_error(str(exc))
 
     def open_session_dialog(self) -> None:
@@ -700,46 +506,25 @@ class MainWindow(QMainWindow):
             self.open_session(path)
 
     def open_session(self, path: str | Path) -> None:
-        from viewer.errors import HeadlightError
-
         try:
-            self.restore_session(sessions.load(path))
+            self.controller.restore_session(sessions.load(path))
         except HeadlightError as exc:
             self.show_error(str(exc))
 
-    def restore_session(self, session: sessions.Session) -> None:
-        """Open the session's model, run its text and re-apply its selection when it arrives."""
-        self.text_edit.setPlainText(session.text)
-        self.state.set_notes(session.notes)
-        compare = session.compare
-        self.state.set_compare_target(None if compare is None else
-                                      (compare["kind"], compare["value"]))
-        self._pending_selection = dict(session.selection)
-        self._pending_item = session.item
-        if session.model is None:
-            self.set_status("session restored (no model in it)")
-            return
-        follow: list[Any] = []
-        if session.text_set:
-            follow.append(lambda: self.open_textset(session.text_set))
-        if session.link_pairs:
-            follow.append(lambda: self.open_pairs(session.link_pairs))
-        if session.text.strip():
-            follow.append(self.run_current)
-        self.open_model(session.model)
-        self._after_open = follow
-
     # -- closing
     def closeEvent(self, event) -> None:  # noqa: N802
-        self.settings.setValue("window/geometry", self.saveGeometry())
-        self.settings.setValue("window/state", self.saveState())
         if self.state.model is not None:
             try:
                 self.save_session(self.last_session_path)
-            except Exception:  # noqa: BLE001 - never block closing
-                pass
+            except HeadlightError as exc:  # say so, and let the user keep the window open
+                print(f"headlight: {exc}", file=sys.stderr)
+                if not confirm_close_unsaved(self, str(exc)):
+                    event.ignore()
+                    return
+        self.settings.setValue("window/geometry", self.saveGeometry())
+        self.settings.setValue("window/state", self.saveState())
         self.settings.sync()
-        self._follow_up = None
+        self.controller.shutdown()
         self.worker.shutdown()
         for pane in self.figure_panes:
             pane.detach()
@@ -747,3 +532,11 @@ class MainWindow(QMainWindow):
         self.shortcut_pane.detach()
         super().closeEvent(event)
 
+
+def confirm_close_unsaved(parent: QWidget, reason: str) -> bool:
+    """Ask whether to close although the session could not be saved (tests patch this)."""
+    answer = QMessageBox.warning(
+        parent, "Headlight", f"The session could not be saved: {reason}\n\nClose anyway?",
+        QMessageBox.StandardButton.Close | QMessageBox.StandardButton.Cancel,
+        QMessageBox.StandardButton.Cancel)
+    return answer == QMessageBox.StandardButton.Close

@@ -1,6 +1,6 @@
 """The worker thread: model work off the GUI thread, results back as messages.
 
-One ``QThreadPool`` with a single thread runs the jobs of ``viewer.gui.jobs`` one after another
+One ``QThreadPool`` with a single thread runs the jobs of ``viewer.session.jobs`` one after another
 (a torch model is not meant to be driven from two threads at once, and the open checkpoints live
 in that thread's ``models`` dict).
 
@@ -24,7 +24,7 @@ from typing import Any
 from PySide6.QtCore import QObject, QRunnable, QThreadPool, QTimer, Signal
 
 from viewer.errors import HeadlightError
-from viewer.gui.jobs import Cancelled, JobContext
+from viewer.session.jobs import Cancelled, JobContext
 
 POLL_MS = 5  # how often the GUI thread collects messages while jobs are pending
 

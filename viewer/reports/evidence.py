@@ -24,6 +24,7 @@ needs re-normalising. F is the probability of the predicted class (or of the top
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -34,6 +35,7 @@ from viewer.core.rollout import FLOW_MAX_TOKENS, attention_flow, attention_rollo
 from viewer.core.softmax import softmax
 from viewer.core.stats import spearman
 from viewer.core.summary import summary_attention
+from viewer.errors import HeadlightError
 from viewer.model.attribution import gradient_evidence, token_knockout
 from viewer.model.loader import LoadedModel
 
@@ -48,7 +50,19 @@ KIND_TITLES = {
     "integrated_gradients": "integrated gradients",
     "knockout": "knockout: drop in probability",
 }
+# Short row names for the strip (the titles above go to tooltips and the card).
+KIND_LABELS = {
+    "attention": "summary attention",
+    "rollout": "rollout",
+    "flow": "flow",
+    "value_norm": "value norm",
+    "grad_input": "grad × input",
+    "integrated_gradients": "integrated gradients",
+    "knockout": "knockout",
+}
 ATTENTION_KINDS = ("attention", "rollout", "flow", "value_norm")
+HEAD_EVIDENCE_TOKENS = 256
+"""Per-head importance and knockout of one text are computed up to this many tokens."""
 
 
 @dataclass(frozen=True, eq=False)
@@ -63,6 +77,20 @@ class Evidence:
     completeness_gap: float | None  # IG: |Σ IG − (F(x) − F(x'))| / |F(x) − F(x')|
     ig_steps: int | None = None  # path steps integrated gradients used (refined when needed)
     notes: tuple[str, ...] = field(default_factory=tuple)
+    head_importance: np.ndarray | None = None  # (L, H) Michel et al. 2019 for this text
+    head_knockout: np.ndarray | None = None  # (L, H) drop in p(target), each head knocked out
+
+    def strip_rows(self) -> tuple[tuple[str, ...], np.ndarray, tuple[float | str | None, ...]]:
+        """The rows the evidence strip draws: (row labels, (K, T) values, agreement).
+
+        Kinds that do not apply here (all NaN) are left out; labels are ``KIND_LABELS``; the
+        knockout row is the reference the others' Spearman agreement is measured against.
+        """
+        kinds = [k for k in KINDS if np.isfinite(self.rows[k]).any()]
+        values = np.stack([np.asarray(self.rows[k], dtype=np.float64) for k in kinds])
+        agreement = tuple("reference" if k == "knockout" else self.agreement.get(k)
+                          for k in kinds)
+        return tuple(KIND_LABELS[k] for k in kinds), values, agreement
 
     def to_dict(self) -> dict:
         rec = self.recording
@@ -84,6 +112,9 @@ class Evidence:
             "integrated_gradients_completeness_gap": num(self.completeness_gap),
             "integrated_gradients_steps": self.ig_steps,
             "notes": list(self.notes),
+            **{name: None if grid is None else [[num(v) for v in row] for row in grid]
+               for name, grid in (("head_importance", self.head_importance),
+                                  ("head_knockout", self.head_knockout))},
         }
 
 
@@ -150,3 +181,21 @@ def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
     return Evidence(rec, rows, per_head, agreement, target, label, probs, gap, ig_steps,
                     tuple(notes))
 
+
+
+def head_evidence(loaded: LoadedModel, text: str,
+                  tick: Callable[[int], None] | None = None
+                  ) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """(L, H) head importance (Michel et al. 2019, Eq. 2) and each head's knockout effect
+    (drop in the predicted class's probability) for one text; None where a model has no
+    prediction. ``tick`` is called between heads (a window uses it to cancel)."""
+    from viewer.reports.heads import head_importance, head_knockout
+    from viewer.reports.textsets import TextItem
+
+    item = [TextItem(text, None, 1)]
+    try:
+        importance = head_importance(loaded, item, progress=tick)["importance"]
+        knockout = head_knockout(loaded, item, progress=tick)["prob_drop"]
+    except HeadlightError:
+        return None, None
+    return importance, knockout

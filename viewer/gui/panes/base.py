@@ -30,7 +30,7 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from viewer.gui.state import Selection
+from viewer.session.state import Selection
 
 
 class StateListener:

@@ -21,7 +21,7 @@ from PySide6.QtWidgets import (
 )
 
 from viewer.gui.panes.pair_grid import PairGridPane
-from viewer.gui.state import Selection
+from viewer.session.state import Selection
 
 
 class ComparePane(QWidget):

@@ -6,9 +6,9 @@ knockout. Click a token to make it the source token; wheel to zoom along the tex
 
 from __future__ import annotations
 
+from viewer.figures.blit import Blitter
+from viewer.figures.zoom import Extent, ZoomPan
 from viewer.gui.panes.base import FigurePane
-from viewer.gui.panes.blit import Blitter
-from viewer.gui.panes.zoom import Extent, ZoomPan
 
 
 class EvidencePane(FigurePane):
@@ -47,13 +47,14 @@ class EvidencePane(FigurePane):
                 return
             if self.blitter is not None:
                 self.blitter.detach()
+            kinds, values, agreement = ev.strip_rows()
             self.artists = evidence_into(
-                self.figure, rec.tokens, ev.kinds, ev.values, ev.agreement, labels=rec.labels,
+                self.figure, rec.tokens, kinds, values, agreement, labels=rec.labels,
                 probabilities=probs if len(probs) else None, predicted=rec.predicted(),
                 gold=a.label, title=line,
             )
             n = rec.n_tokens
-            self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(ev.kinds) - 0.5))
+            self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(kinds) - 0.5))
             self.blitter = Blitter(self.agg, [self.artists.marker])
             self._drawn_for = ev
             mark_token(self.artists, source)
@@ -74,9 +75,10 @@ class EvidencePane(FigurePane):
         rec = self.state.analysis.recording
         row = int(round(event.ydata))
         lines = [f"token {i} '{rec.tokens[i]}'"]
-        for k, kind in enumerate(ev.kinds):
+        kinds, values, _ = ev.strip_rows()
+        for k, kind in enumerate(kinds):
             mark = "▸ " if k == row else "  "
-            lines.append(f"{mark}{kind}: {float(ev.values[k, i]):.4g}")
+            lines.append(f"{mark}{kind}: {float(values[k, i]):.4g}")
         return "\n".join(lines)
 
     def on_press(self, event) -> None:

@@ -9,9 +9,9 @@ from __future__ import annotations
 from PySide6.QtCore import Qt
 from PySide6.QtWidgets import QCheckBox, QComboBox
 
+from viewer.figures.blit import Blitter
 from viewer.gui.panes.base import FigurePane
-from viewer.gui.panes.blit import Blitter
-from viewer.gui.state import METRICS
+from viewer.session.state import METRICS
 
 ANNOTATE_CELLS = 48  # write values into the cells of small head maps only
 
@@ -78,7 +78,7 @@ class HeadMapPane(FigurePane):
         self.diff_box.setVisible(self.state.compare is not None)
 
     def render(self):
-        from viewer.gui.metrics import head_values
+        from viewer.session.metrics import head_values
 
         result = head_values(self.state)
         if isinstance(result, str):

@@ -45,10 +45,11 @@ class LinksPane(FigurePane):
             self.view_box.setCurrentIndex(1)
 
     def render(self):
-        from viewer.gui.analysis import per_head_link, unit_links
+        from viewer.session.analysis import per_head_link, unit_links
 
-        pairs = self.state.link_pairs
-        if pairs is not None and self.view_box.currentData() == "file":
+        run = self.state.link_pairs
+        if run is not None and self.view_box.currentData() == "file":
+            pairs = run.report  # viewer.core.links.LinkAccuracy
             self.set_title(f"links · accuracy over {pairs.pairs} pairs")
             selected = (self.state.layer, self.state.head)
 
@@ -127,11 +128,11 @@ class LinksPane(FigurePane):
             layer, head = cell
             if self.per_head is not None:
                 return f"layer {layer} · head {head}\nlink score {self.per_head[layer, head]:.6f}"
-            pairs = self.state.link_pairs
-            if pairs is not None:
+            run = self.state.link_pairs
+            if run is not None:
                 return (f"layer {layer} · head {head}\nlink accuracy "
-                        f"{pairs.accuracy[layer, head]:.3f} (nearest baseline "
-                        f"{pairs.nearest_baseline:.3f})")
+                        f"{run.report.accuracy[layer, head]:.3f} (nearest baseline "
+                        f"{run.report.nearest_baseline:.3f})")
         unit = self._bar(event)
         if unit is not None and self.scores is not None:
             name = self.state.analysis.units.names[unit]

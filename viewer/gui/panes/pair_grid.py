@@ -9,9 +9,9 @@ from __future__ import annotations
 
 from PySide6.QtWidgets import QCheckBox, QPushButton
 
+from viewer.figures.blit import Blitter
+from viewer.figures.zoom import Extent, ZoomPan
 from viewer.gui.panes.base import FigurePane
-from viewer.gui.panes.blit import Blitter
-from viewer.gui.panes.zoom import Extent, ZoomPan
 
 
 def _head_name(layer: int, head: int | None) -> str:

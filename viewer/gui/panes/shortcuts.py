@@ -22,8 +22,9 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
+from viewer.core.shortcuts import MIN_TEXTS
 from viewer.gui.panes.base import TableDock
-from viewer.gui.state import Selection
+from viewer.session.state import Selection
 
 COLUMNS = ("word", "texts", "flip rate", "flip low", "mean drop", "focus")
 KEYS = ("token", "count", "flip_rate", "flip_low", "mean_drop", "focus")
@@ -37,6 +38,7 @@ class ShortcutPane(TableDock):
         super().__init__(parent)
         self.state = state
         self.words: list[str] = []
+        self._ranked: tuple | None = None  # ((report id, phrases), report, rows)
         layout = QVBoxLayout(self)
         layout.setContentsMargins(4, 2, 4, 2)
         top = QHBoxLayout()
@@ -68,15 +70,15 @@ class ShortcutPane(TableDock):
         self.refresh()
 
     def refresh(self) -> None:
-        result = self.state.shortcuts
-        has_phrases = result is not None and result.phrases
+        report = self.state.shortcuts  # viewer.reports.shortcuts.ShortcutReport
+        has_phrases = report is not None and report.phrases.texts > 0
         self.view_box.setVisible(has_phrases)
         phrases = has_phrases and self.view_box.currentData() == "phrases"
         self.table.setHorizontalHeaderItem(0, QTableWidgetItem("phrase" if phrases else "word"))
         self.table.blockSignals(True)
         self.table.setRowCount(0)
         self.words = []
-        if result is None:
+        if report is None:
             if self.state.textset is None:
                 self.summary.setText("Open a text set, then search it for shortcut words.")
             else:
@@ -84,10 +86,10 @@ class ShortcutPane(TableDock):
                                      "depends on too much (word knockout).")
             self.table.blockSignals(False)
             return
-        rows = list(result.phrase_rows if phrases else result.rows)
+        rows = self._ranking(report, phrases)
         what = "phrases" if phrases else "words"
-        self.summary.setText(f"{len(rows)} {what} seen in at least {result.min_count} of "
-                             f"{result.texts} texts, ranked by flip low (Wilson 95%)")
+        self.summary.setText(f"{len(rows)} {what} seen in at least {MIN_TEXTS} of "
+                             f"{report.texts} texts, ranked by flip low (Wilson 95%)")
         self.table.setRowCount(len(rows))
         for r, row in enumerate(rows):
             for c, key in enumerate(KEYS):
@@ -100,6 +102,14 @@ class ShortcutPane(TableDock):
         self.table.horizontalHeader().setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
         self.table.blockSignals(False)
         self._select_current()
+
+    def _ranking(self, report, phrases: bool) -> list[dict]:
+        """The report's own ranking (``KnockoutTally.ranking``), computed once per report."""
+        key = (id(report), phrases)
+        if self._ranked is None or self._ranked[0] != key or self._ranked[1] is not report:
+            tally = report.phrases if phrases else report.words
+            self._ranked = (key, report, tally.ranking())
+        return self._ranked[2]
 
     def _select_current(self) -> None:
         self.table.blockSignals(True)

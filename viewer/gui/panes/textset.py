@@ -20,7 +20,7 @@ from PySide6.QtWidgets import (
 )
 
 from viewer.gui.panes.base import TableDock
-from viewer.gui.state import Selection
+from viewer.session.state import Selection
 
 COLUMNS = ("#", "text", "label", "predicted", "p", "")
 WRONG = QColor("#fde2e1")

@@ -21,8 +21,8 @@ MODULES = (
     "viewer.figures.head_map",
     "viewer.figures.links",
     "viewer.figures.evidence",
-    "viewer.gui.analysis",
-    "viewer.gui.metrics",
+    "viewer.session.analysis",
+    "viewer.session.metrics",
     "viewer.core.shortcuts",
 )
 
@@ -33,7 +33,7 @@ def load_figures(ctx: Any) -> float:
     ctx.progress(0, 0, "loading the drawing library…")
     for name in MODULES:
         importlib.import_module(name)
-    from viewer.gui.jobs import settle_imports
+    from viewer.session.jobs import settle_imports
 
     settle_imports()
     return time.perf_counter() - start

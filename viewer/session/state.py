@@ -1,7 +1,7 @@
 """The one selection state every pane observes and writes to (plain Python, no Qt).
 
 Each field has an ``Event`` in ``state.events`` that fires only when the field's value really
-changes (``viewer.gui.events.same``). Panes receive the state in their constructor, connect to
+changes (``viewer.session.events.same``). Panes receive the state in their constructor, connect to
 the fields they draw, and write user input back through the methods below; they never call each
 other. Results from the worker thread are stored here by the window, on the GUI thread.
 
@@ -12,7 +12,7 @@ model          ``ModelInfo`` of the open checkpoint, or None
 text           the text of the current run
 item           index of the selected text-set row, or None
 analysis       ``TextAnalysis`` of the current text (recording, check, per-text metrics)
-evidence       ``EvidenceResult`` for the current prediction, or None while it is computed
+evidence       ``viewer.reports.evidence.Evidence`` of the current run, or None meanwhile
 layer          selected layer (from 0)
 head           selected head (from 0), or None for the layer's head mean
 source         selected source (query) token, or None
@@ -24,8 +24,8 @@ mistakes_only  the text-set list shows only wrong predictions
 compare_target what to compare with: ("text", a second text) or ("model", a folder), or None
 compare        ``TextAnalysis`` of the compared text or checkpoint, or None
 difference     the head map shows compare − current instead of the current text's metric
-link_pairs     ``LinkPairsResult`` of an opened link-pairs file, or None
-shortcuts      ``ShortcutResult`` of a shortcut search over the text set, or None
+link_pairs     ``LinkPairsRun`` (file and ``LinkAccuracy``) of opened link pairs, or None
+shortcuts      ``viewer.reports.shortcuts.ShortcutReport`` over the text set, or None
 word           the word selected in the shortcut report (filters the text-set list), or None
 notes          free text saved with the session
 =============  ==========================================================================
@@ -37,7 +37,7 @@ from dataclasses import dataclass
 from types import SimpleNamespace
 from typing import Any
 
-from viewer.gui.events import Event, same
+from viewer.session.events import Event, same
 
 # name -> (label in the chooser, colour-bar label with units, explanation for the tooltip)
 METRICS: dict[str, tuple[str, str, str]] = {
@@ -234,11 +234,15 @@ class Selection:
         self._set("scope", scope)
 
     def set_textset(self, result: Any) -> None:
-        self._set("textset", result)
+        """A new text set (or none): what belonged to the old one goes (report, filters, row)."""
+        if same(self._values["textset"], result):
+            return
+        self._set("shortcuts", None)
+        self._set("word", None)
+        self._set("item", None)
         if result is None:
             self._set("scope", "text")
-            self._set("word", None)
-            self._set("shortcuts", None)
+        self._set("textset", result)
 
     def select_item(self, index: int | None) -> None:
         self._set("item", None if index is None else int(index))

@@ -22,14 +22,13 @@ same numbers (the runs are deterministic) without a large file.
 from __future__ import annotations
 
 import json
-import os
-import tempfile
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
 from viewer.errors import HeadlightError
-from viewer.gui.state import METRICS, Selection
+from viewer.files import atomic_write_text, json_text
+from viewer.session.state import METRICS, Selection
 
 FORMAT = "headlight-session"
 VERSION = 1
@@ -123,22 +122,13 @@ def from_dict(data: Any) -> Session:
 
 
 def save(path: str | Path, session: Session) -> None:
-    """Write the session atomically (temporary file in the same folder, then a rename)."""
+    """Write the session atomically (``viewer.files``: temporary file, fsync, rename)."""
     path = Path(path)
-    folder = path.parent if str(path.parent) else Path(".")
     try:
-        folder.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=folder)
+        path.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise HeadlightError(f"cannot write {path}: {exc.strerror}") from None
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(session.to_dict(), fh, indent=2, ensure_ascii=False)
-            fh.write("\n")
-        os.replace(tmp, path)
-    except OSError as exc:
-        Path(tmp).unlink(missing_ok=True)
-        raise HeadlightError(f"cannot write {path}: {exc.strerror}") from None
+    atomic_write_text(path, json_text(session.to_dict()))
 
 
 def load(path: str | Path) -> Session:

@@ -4,7 +4,7 @@ A head switch changes the pair grid's image, its title, the colour bar and the s
 outline, not the token labels, which are most of the drawing work. Those few artists are marked
 *animated*: a full draw leaves them out, copies the rest of the figure as the background, then
 draws them on top. A selection change afterwards restores the background and draws the animated
-artists again (matplotlib's blitting, on the render thread of ``viewer.gui.panes.render``,
+artists again (matplotlib's blitting; the window does this on its render thread,
 which then hands the pixels to the pane's view).
 """
 

@@ -14,17 +14,16 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from viewer.errors import HeadlightError
-from viewer.gui.state import ModelInfo
+from viewer.session.state import ModelInfo
 
 if TYPE_CHECKING:
-    import numpy as np
 
-    from viewer.gui.analysis import TextAnalysis
+    from viewer.session.analysis import TextAnalysis
 
 
 class Cancelled(Exception):
@@ -72,7 +71,6 @@ def settle_imports() -> None:
     gc.freeze()
 
 
-
 DEMO_NAME = "Northgate demo router"
 
 
@@ -115,7 +113,7 @@ def run_text(ctx: JobContext, slot: str, text: str, label: str | None = None,
     rec = loaded.record(text)
     seconds = time.perf_counter() - start
     ctx.check()
-    from viewer.gui.analysis import analyse
+    from viewer.session.analysis import analyse
 
     result = analyse(rec, label=label, seconds=seconds, summarised=summarised,
                      origin=origin or (loaded.name if slot != "main" else "text"))
@@ -125,7 +123,7 @@ def run_text(ctx: JobContext, slot: str, text: str, label: str | None = None,
 
 def summarise_run(ctx: JobContext, analysis: TextAnalysis) -> TextAnalysis:
     """Second step of a run: the re-derivation check and this text's head metrics."""
-    from viewer.gui.analysis import summarise
+    from viewer.session.analysis import summarise
 
     ctx.progress(0, 0, "re-derivation check and head metrics…")
     return summarise(analysis, threads=1)  # the other core draws the run meanwhile
@@ -201,19 +199,18 @@ def run_textset(ctx: JobContext, slot: str, path: str, batch_size: int = 8) -> T
     return TextSetResult(str(path), tuple(rows), stats.summary())
 
 
-# -- link pairs -----------------------------------------------------------------------------------
+# -- link pairs ---------------------------------------------------------------------------------
 
 
 @dataclass(frozen=True, eq=False)
-class LinkPairsResult:
+class LinkPairsRun:
+    """An opened link-pairs file and the reports' own per-head accuracy over it."""
+
     path: str
-    pairs: int
-    accuracy: np.ndarray  # (L, H)
-    nearest_baseline: float
-    best: tuple[int, int, float]
+    report: Any  # viewer.core.links.LinkAccuracy
 
 
-def run_link_pairs(ctx: JobContext, slot: str, path: str) -> LinkPairsResult:
+def run_link_pairs(ctx: JobContext, slot: str, path: str) -> LinkPairsRun:
     """Per-head link accuracy and the nearest baseline over a link-pairs file."""
     from viewer.core.links import read_link_pairs
     from viewer.reports.links import link_report
@@ -227,30 +224,84 @@ def run_link_pairs(ctx: JobContext, slot: str, path: str) -> LinkPairsResult:
         ctx.progress(done[0], len(pairs), f"scored {done[0]} of {len(pairs)} link pairs")
         ctx.check()
 
-    tally = link_report(loaded, pairs, progress=tick)
-    return LinkPairsResult(str(path), tally.pairs, tally.accuracy, tally.nearest_baseline,
-                           tally.best())
+    return LinkPairsRun(str(path), link_report(loaded, pairs, progress=tick))
 
 
 # -- evidence -------------------------------------------------------------------------------------
 
 
-@dataclass(frozen=True, eq=False)
-class EvidenceResult:
-    """Per-token evidence for the current prediction, one row per kind."""
+def run_evidence(ctx: JobContext, slot: str, analysis: TextAnalysis) -> Any:
+    """The evidence strip for the run of ``analysis`` (``viewer.reports.evidence.Evidence``),
+    with this text's per-head importance and knockout effect, which the head map offers as
+    metrics. Runs in stages so that a cancel takes effect between them."""
+    import dataclasses
 
-    analysis: TextAnalysis  # the run this evidence explains
-    kinds: tuple[str, ...]
-    values: np.ndarray  # (K, T)
-    agreement: tuple[float | None, ...]  # Spearman ρ of each row with knockout
-    importance: np.ndarray | None = None  # (L, H) head importance
-    knockout: np.ndarray | None = None  # (L, H) head knockout effect
-    notes: tuple[str, ...] = field(default_factory=tuple)
+    from viewer.reports.evidence import HEAD_EVIDENCE_TOKENS, evidence_for, head_evidence
+
+    loaded = ctx.model(slot)
+    rec = analysis.recording
+    ctx.progress(0, 3, "evidence: gradients, integrated gradients and knockout…")
+    ev = evidence_for(loaded, rec.text, recording=rec)
+    ctx.check()
+    if ev.target is None:
+        return ev
+    if rec.n_tokens > HEAD_EVIDENCE_TOKENS:
+        return dataclasses.replace(ev, notes=(*ev.notes, "head importance and knockout are "
+                                              f"computed up to {HEAD_EVIDENCE_TOKENS} tokens"))
+    ctx.progress(1, 3, f"head importance and knockout ({loaded.n_layers * loaded.n_heads} "
+                       "heads)…")
+    importance, knockout = head_evidence(loaded, rec.text, tick=lambda _n=1: ctx.check())
+    ctx.progress(3, 3, "evidence done")
+    return dataclasses.replace(ev, head_importance=importance, head_knockout=knockout)
 
 
-def run_evidence(ctx: JobContext, slot: str, analysis: TextAnalysis) -> EvidenceResult:
-    """Evidence for the prediction of ``analysis`` (full set from ``viewer.reports`` when there)."""
-    from viewer.gui import evidence_source
+# -- shortcut search ------------------------------------------------------------------------------
 
-    loaded = ctx.models.get(slot)
-    return evidence_source.compute(ctx, loaded, analysis)
+
+def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult,
+                  phrases: bool = False) -> Any:
+    """Word knockout (with ``phrases`` also two-word phrases) over the open text set, by the
+    reports' own search (``viewer.reports.shortcuts.ShortcutReport``)."""
+    from viewer.reports.shortcuts import shortcut_search
+    from viewer.reports.textsets import TextItem
+
+    loaded = ctx.model(slot)
+    items = [TextItem(r.text, r.label, r.index + 1) for r in textset.rows]
+    done = [0]
+
+    def tick(n: int) -> None:
+        done[0] += n
+        ctx.progress(done[0], len(items), f"shortcut search: {done[0]} of {len(items)} texts")
+        ctx.check()
+
+    what = "word and two-word phrase" if phrases else "word"
+    ctx.progress(0, len(items), f"shortcut search: knocking out every {what}…")
+    return shortcut_search(loaded, items, progress=tick, phrases=phrases)
+
+
+# -- card export ----------------------------------------------------------------------------------
+
+
+def card_command(folder: str, texts: str, pairs: str | None, out: str,
+                 force: bool) -> tuple[str, ...]:
+    """The ``headlight card`` command that writes the same folder as the window's export."""
+    cmd = ["headlight", "card", folder, "--texts", texts]
+    if pairs:
+        cmd += ["--pairs", pairs]
+    cmd += ["--out", out]
+    if force:
+        cmd.append("--force")
+    return tuple(cmd)
+
+
+def card_job(ctx: JobContext, slot: str, texts: str, pairs: str | None, out: str,
+             force: bool) -> str:
+    """``export_card`` with the window's open model; returns the folder written."""
+    loaded = ctx.model(slot)
+    ctx.progress(0, 0, "writing the model-card folder (check, heads, links, shortcuts)…")
+    from viewer.figures.card import export_card
+
+    command = card_command(str(loaded.folder), texts, pairs, out, force)
+    path = export_card(loaded, texts, out, pairs_path=pairs, force=force, command=command,
+                       quiet=True)
+    return str(path)

@@ -11,10 +11,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from viewer.gui.analysis import TextAnalysis, per_head_link
-from viewer.gui.state import METRICS, Selection
+from viewer.core.headstats import METRICS as STAT_METRICS
+from viewer.session.analysis import TextAnalysis, per_head_link
+from viewer.session.state import METRICS, Selection
 
-STAT_METRICS = ("entropy", "distance", "special", "confidence", "previous", "same", "next")
+EVIDENCE_METRICS = {"importance": "head_importance", "knockout": "head_knockout"}
 
 
 @dataclass(frozen=True, eq=False)
@@ -51,7 +52,7 @@ def _one(state: Selection, analysis: TextAnalysis | None, evidence, name: str,
     if name in ("importance", "knockout"):
         if evidence is None:
             return f"{METRICS[name][0]} appears once the evidence for this text is computed"
-        values = getattr(evidence, name, None)
+        values = getattr(evidence, EVIDENCE_METRICS[name], None)
         if values is None:
             return f"{METRICS[name][0]} is not available for this model or text"
         return np.asarray(values)
