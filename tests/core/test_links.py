@@ -233,3 +233,14 @@ def test_word_cut_off_by_truncation_is_reported():
     offsets = _toy_tokenise(TEXT)[:10]  # text cut before "bicycle"
     with pytest.raises(HeadlightError, match="line 7: word 'bicycle' has no tokens"):
         pair_tokens(pair, offsets)
+
+
+def test_text_words_are_located_as_a_pair_word_would_be():
+    from viewer.core.links import text_words
+
+    text = "The co-op's bikes, (again)! -- _tag_ co-op"
+    spans = text_words(text)
+    assert [text[a:b] for a, b in spans] == ["The", "co-op's", "bikes", "again", "tag", "co-op"]
+    # each word's span is what find_word gives from where its whitespace word starts
+    assert spans[1] == find_word(text, "co-op's")
+    assert spans[5] == find_word(text, "co-op", spans[4][1])

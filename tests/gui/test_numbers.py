@@ -97,3 +97,29 @@ def test_link_accuracy_matches_the_link_report(qtbot, window, loaded, tmp_path):
     settle(qtbot, pane)
     np.testing.assert_array_equal(
         np.ma.getdata(pane.accuracy_artists.image.get_array()), reference.accuracy)
+
+
+def test_window_and_link_pairs_give_the_same_score_for_a_word_with_an_apostrophe(qtbot, window,
+                                                                                  loaded):
+    """The window's word for a clicked token is the word a link-pairs file names.
+
+    Reference: ``score_pair`` on a ``make_pair`` of the same words, which is how ``headlight
+    links`` scores a pair of a file.
+    """
+    from viewer.core.links import make_pair, score_pair
+
+    text = "the co-op's mechanic said she fixed the wheel"
+    analysis = run_and_wait(qtbot, window, text, evidence=False)
+    rec = analysis.recording
+    she = next(i for i, (a, b) in enumerate(rec.offsets) if text[a:b] == "she")
+    coop = next(i for i, (a, b) in enumerate(rec.offsets) if b > a and a == text.index("co-op"))
+    u = analysis.units
+    assert u.names[u.unit_of(coop)] == "co-op's"
+    from viewer.session.analysis import per_head_link
+
+    window_score = per_head_link(analysis, she, coop)
+    pair = make_pair(text, "she", "co-op's", ["mechanic"])
+    file_score = score_pair(rec.probs, rec.offsets, pair).scores[0]
+    np.testing.assert_array_equal(window_score, file_score)
+    reference = score_pair(loaded.record(text).probs, rec.offsets, pair).scores[0]
+    np.testing.assert_allclose(window_score, reference, atol=1e-6)

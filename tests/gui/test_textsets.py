@@ -40,13 +40,30 @@ def open_set(qtbot, window, path):
     return window.state.textset
 
 
+def reference_predictions(folder) -> list[str]:
+    """The classes plain transformers predicts for TEXTS (not the project's loader)."""
+    import torch
+    from transformers import AutoModelForSequenceClassification, AutoTokenizer
+
+    tok = AutoTokenizer.from_pretrained(folder, local_files_only=True)
+    model = AutoModelForSequenceClassification.from_pretrained(folder, local_files_only=True)
+    model.eval()
+    with torch.no_grad():
+        logits = model(**tok([t for t, _ in TEXTS], padding=True, return_tensors="pt")).logits
+    return [model.config.id2label[int(k)] for k in logits.argmax(-1)]
+
+
 def test_a_text_set_lists_predictions_and_filters_to_mistakes(qtbot, window, textset_file):
     result = open_set(qtbot, window, textset_file)
     assert [r.text for r in result.rows] == [t for t, _ in TEXTS]
     assert [r.label for r in result.rows] == [y for _, y in TEXTS]
+    predicted = reference_predictions(window.state.model.folder)
+    assert [r.predicted for r in result.rows] == predicted
     pane = window.textset_pane
     assert pane.table.rowCount() == len(TEXTS)
-    mistakes = [r.index for r in result.rows if r.predicted != r.label]
+    # mistakes from the file's labels against transformers' own predictions
+    mistakes = [i for i, ((_, label), p) in enumerate(zip(TEXTS, predicted, strict=True))
+                if p != label]
     assert mistakes, "the random tiny model should get some of these wrong"
     pane.mistakes_box.click()
     assert window.state.mistakes_only
@@ -121,3 +138,20 @@ def test_a_phrase_search_ranks_word_pairs_as_the_command_does(qtbot, window, tex
     pane.view_box.setCurrentIndex(pane.view_box.findData("words"))
     assert pane.table.horizontalHeaderItem(0).text() == "word"
     assert "portal" in pane.words
+
+
+def test_a_second_text_set_replaces_the_first_ones_report_and_filter(qtbot, window,
+                                                                       textset_file, tmp_path):
+    open_set(qtbot, window, textset_file)
+    window.search_shortcuts()
+    qtbot.waitUntil(lambda: window.state.shortcuts is not None, timeout=WAIT_MS)
+    window.shortcut_pane.table.selectRow(window.shortcut_pane.words.index("portal"))
+    assert window.state.word == "portal"
+    other = tmp_path / "other.txt"
+    other.write_text("the wheel wobbles\nmy invoice is wrong\n", encoding="utf-8")
+    first = window.state.textset
+    window.open_textset(str(other))
+    qtbot.waitUntil(lambda: window.state.textset is not first, timeout=WAIT_MS)
+    assert window.state.shortcuts is None and window.state.word is None
+    assert window.shortcut_pane.table.rowCount() == 0
+    assert window.textset_pane.rows_shown == [0, 1]

@@ -1,8 +1,8 @@
 """Link scores: does a head point from a word to the word it refers to?
 
-A **link pair** (DESIGN.md, "Link pairs") is a text, a source word (e.g. "she"), the target it
-refers to ("mechanic") and one or more distractors ("courier"). Rules, exactly as DESIGN.md has
-them:
+A **link pair** (docs/definitions.md, "Link pairs") is a text, a source word (e.g. "she"), the target it
+refers to ("mechanic") and one or more distractors ("courier"). Rules, as docs/definitions.md
+has them:
 
 * each word is matched as its first whole-word, case-insensitive occurrence in the text (a
   character span);
@@ -19,6 +19,11 @@ them:
 
 The link-pairs file is ``.jsonl``, UTF-8, one object a line; blank lines are skipped:
 ``{"text": ..., "source": "she", "target": "mechanic", "distractors": ["courier"]}``.
+
+The window's words (what a clicked token's link score is summed over, ``text_words``) use the
+same rule: each whitespace word, its end punctuation stripped, is located with ``find_word``
+from where that whitespace word starts, so a pair scored from a file and the same words clicked
+in the window cover the same sub-tokens.
 """
 
 from __future__ import annotations
@@ -34,6 +39,7 @@ from typing import Any
 
 import numpy as np
 
+from viewer.core.shortcuts import word_key
 from viewer.errors import HeadlightError
 
 Span = tuple[int, int]
@@ -42,19 +48,45 @@ Span = tuple[int, int]
 # -- words and sub-tokens ------------------------------------------------------------------------
 
 
-def find_word(text: str, word: str) -> Span | None:
-    """Character span [start, end) of the first whole-word, case-insensitive match, or None.
+def find_word(text: str, word: str, start: int = 0) -> Span | None:
+    """Character span [start, end) of the first whole-word, case-insensitive match at or after
+    ``start``, or None.
 
     Whole word: not preceded or followed by a letter, digit or underscore (regex ``\\w``), so
     "she" is not found inside "shelf", and "co-op" is found in "the co-op's".
     """
     if not word:
         return None
-    pattern = r"(?<!\w)" + re.escape(word) + r"(?!\w)"
-    match = re.search(pattern, text, flags=re.IGNORECASE)
+    pattern = re.compile(r"(?<!\w)" + re.escape(word) + r"(?!\w)", flags=re.IGNORECASE)
+    match = pattern.search(text, start)
     if match is None:
         return None
     return match.start(), match.end()
+
+
+def text_words(text: str) -> list[Span]:
+    """The words of a text in order, as ``find_word`` would locate each of them.
+
+    Every whitespace word with a non-empty key (``viewer.core.shortcuts.word_key``: end
+    punctuation stripped) is looked up with ``find_word`` from the start of that whitespace
+    word; "the co-op's bikes." gives the spans of "the", "co-op's" and "bikes". A key that is
+    not a whole word where it stands (glued to an underscore, e.g. "_tag_") keeps its plain
+    position.
+    """
+    spans = []
+    pos = 0
+    for raw in text.split():
+        begin = text.index(raw, pos)
+        pos = begin + len(raw)
+        key = word_key(raw)
+        if not key:
+            continue
+        span = find_word(text, key, begin)
+        if span is None or span[1] > pos:
+            offset = begin + raw.lower().find(key)
+            span = (offset, offset + len(key))
+        spans.append(span)
+    return spans
 
 
 def word_token_indices(span: Span, offsets: np.ndarray) -> np.ndarray:

@@ -7,15 +7,91 @@ when the first model opens. The window is therefore on screen before those impor
 
 from __future__ import annotations
 
+import ctypes
 import os
 import sys
+from collections.abc import Callable
 
 from PySide6.QtCore import QTimer
 from PySide6.QtWidgets import QApplication
 
+from viewer.errors import HeadlightError
 from viewer.gui.window import MainWindow, app_icon
 
 GIL_SWITCH_S = 0.001  # Python's default is 0.005
+
+# What Qt's xcb platform plugin (libqxcb.so and libQt6XcbQpa.so.6 of PySide6 6.11, read with
+# ``ldd``) loads beyond the C library, and the Debian/Ubuntu package that ships each.
+XCB_LIBRARIES: dict[str, str] = {
+    "libxcb.so.1": "libxcb1",
+    "libxcb-cursor.so.0": "libxcb-cursor0",
+    "libxcb-icccm.so.4": "libxcb-icccm4",
+    "libxcb-image.so.0": "libxcb-image0",
+    "libxcb-keysyms.so.1": "libxcb-keysyms1",
+    "libxcb-randr.so.0": "libxcb-randr0",
+    "libxcb-render.so.0": "libxcb-render0",
+    "libxcb-render-util.so.0": "libxcb-render-util0",
+    "libxcb-shape.so.0": "libxcb-shape0",
+    "libxcb-shm.so.0": "libxcb-shm0",
+    "libxcb-sync.so.1": "libxcb-sync1",
+    "libxcb-util.so.1": "libxcb-util1",
+    "libxcb-xfixes.so.0": "libxcb-xfixes0",
+    "libxcb-xkb.so.1": "libxcb-xkb1",
+    "libxkbcommon.so.0": "libxkbcommon0",
+    "libxkbcommon-x11.so.0": "libxkbcommon-x11-0",
+    "libX11.so.6": "libx11-6",
+    "libX11-xcb.so.1": "libx11-xcb1",
+}
+
+
+def uses_xcb(environ: dict[str, str] | None = None, platform: str | None = None) -> bool:
+    """Whether Qt will start its xcb (X11) platform plugin here.
+
+    On Linux Qt takes ``QT_QPA_PLATFORM`` when set (``offscreen``, ``wayland``… need no X
+    libraries) and otherwise xcb, unless the session is a Wayland one.
+    """
+    env = os.environ if environ is None else environ
+    if not (platform or sys.platform).startswith("linux"):
+        return False
+    chosen = env.get("QT_QPA_PLATFORM", "").strip()
+    if chosen:
+        return chosen.split(";")[0].split(":")[0] == "xcb"
+    return not (env.get("WAYLAND_DISPLAY") and env.get("XDG_SESSION_TYPE") == "wayland")
+
+
+def _loads(name: str) -> bool:
+    try:
+        ctypes.CDLL(name)
+    except OSError:
+        return False
+    return True
+
+
+def missing_xcb_libraries(loads: Callable[[str], bool] = _loads) -> list[str]:
+    """The shared libraries of ``XCB_LIBRARIES`` the dynamic loader cannot open."""
+    return [name for name in XCB_LIBRARIES if not loads(name)]
+
+
+def check_display(environ: dict[str, str] | None = None,
+                  loads: Callable[[str], bool] = _loads) -> None:
+    """Refuse, in one line, to start Qt where it would abort with a core dump.
+
+    Without this, a Linux desktop lacking one of Qt's xcb libraries gets Qt's own multi-line
+    message and an abort; so does a machine with no X display at all.
+    """
+    env = os.environ if environ is None else environ
+    if not uses_xcb(env):
+        return
+    missing = missing_xcb_libraries(loads)
+    if missing:
+        packages = " ".join(XCB_LIBRARIES[name] for name in missing)
+        raise HeadlightError(
+            f"the window cannot start: Qt's X11 (xcb) plugin needs {', '.join(missing)}; on "
+            f"Debian or Ubuntu install them with: sudo apt install {packages}")
+    if not env.get("DISPLAY"):
+        raise HeadlightError("the window cannot start: no X display (DISPLAY is not set); run "
+                             "it on a desktop, or use the headless commands (headlight --help)")
+
 FULL_COLLECTION_EVERY = 1_000_000  # gen-1 collections between automatic full collections
 
 
@@ -56,6 +132,7 @@ def run_window(model: str | None = None, text: str | None = None) -> int:
     """Open the window (on ``model``, or the last session, or the demo model) and run Qt."""
     os.environ.setdefault("HF_HUB_OFFLINE", "1")
     os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
+    check_display()
     app = application()
     tune_collector()
     window = MainWindow()

@@ -22,17 +22,17 @@ import numpy as np
 from viewer.core.attention import CheckResult, check_recording
 from viewer.core.headstats import METRICS as STAT_METRICS
 from viewer.core.headstats import HeadStats, HeadSummary
-from viewer.core.links import PairTokens, link_scores, word_token_indices
+from viewer.core.links import PairTokens, link_scores, text_words, word_token_indices
 from viewer.core.recording import Recording
-from viewer.core.shortcuts import word_spans
 
 
 @dataclass(frozen=True, eq=False)
 class WordUnits:
     """The candidates a link can point to: each word's sub-tokens, or a lone token.
 
-    Words follow DESIGN.md ("Word knockout"): whitespace-separated, punctuation at the ends
-    stripped; a word's sub-tokens are the tokens whose character span overlaps it
+    Words are those of a link-pairs file (``viewer.core.links.text_words``: whitespace words,
+    end punctuation stripped, located as ``find_word`` locates a pair's word); a word's
+    sub-tokens are the tokens whose character span overlaps it
     (``viewer.core.links.word_token_indices``). Tokens in no word (specials, bare punctuation)
     are units of their own.
     """
@@ -49,27 +49,11 @@ class WordUnits:
         return int(self.tokens[self.unit_of(token)][0])
 
 
-def _word_spans(text: str) -> list[tuple[int, int]]:
-    """Spans of the whitespace words of ``text`` without their end punctuation, in order.
-
-    The words and keys of ``viewer.core.shortcuts.word_spans`` (which covers the whole
-    whitespace word, as knockout deletes it), narrowed to the key itself, which is how
-    ``viewer.core.links.find_word`` matches a word.
-    """
-    spans = []
-    for key, occurrences in word_spans(text).items():
-        for start, end in occurrences:
-            offset = text[start:end].lower().find(key)
-            if offset >= 0:
-                spans.append((start + offset, start + offset + len(key)))
-    return sorted(spans)
-
-
 def word_units(rec: Recording) -> WordUnits:
     t = rec.n_tokens
     of_token = np.full(t, -1, dtype=np.int64)
     groups: list[tuple[int, np.ndarray, str]] = []
-    for span in _word_spans(rec.text):
+    for span in text_words(rec.text):
         idx = word_token_indices(span, rec.offsets)
         idx = idx[of_token[idx] < 0] if idx.size else idx
         if idx.size:

@@ -74,3 +74,21 @@ def test_blocked_event_is_silent():
         event.emit(1)
     event.emit(2)
     assert seen == [2]
+
+
+def test_a_second_text_set_clears_the_first_sets_report_and_filters():
+    """Opening another text set must not keep the old set's shortcut report, word or row."""
+    state = Selection()
+    state.set_model(info())
+    first, second = object(), object()
+    state.set_textset(first)
+    state.set_shortcuts(object())
+    state.select_word("portal")
+    state.select_item(4)
+    state.set_scope("set")
+    state.set_textset(second)
+    assert state.textset is second
+    assert state.shortcuts is None and state.word is None and state.item is None
+    assert state.scope == "set"  # the set scope now shows the new set's summaries
+    state.set_textset(None)
+    assert state.scope == "text"

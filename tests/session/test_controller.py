@@ -1,0 +1,150 @@
+"""The window's orchestration without a window: a fake worker and view drive the controller.
+
+The worker here runs nothing: it records what was submitted, and the test plays the part of
+the worker thread by handing results back through ``Controller.finished``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from viewer.session import jobs
+from viewer.session import session_file as sessions
+from viewer.session.controller import DEMO_TEXT, Controller
+from viewer.session.state import ModelInfo, Selection
+
+
+class FakeWorker:
+    def __init__(self) -> None:
+        self.submitted: list[tuple[str, object, tuple]] = []
+        self.cancelled: list[str | None] = []
+        self.busy = False
+
+    def submit(self, kind, fn, *args, replace=True):
+        self.submitted.append((kind, fn, args))
+
+    def cancel(self, kind=None, keep=()):
+        self.cancelled.append(kind)
+
+    def running_kinds(self):
+        return [k for k, _, _ in self.submitted]
+
+    def kinds(self) -> list[str]:
+        return [k for k, _, _ in self.submitted]
+
+
+class FakeView:
+    def __init__(self) -> None:
+        self.text = ""
+        self.errors: list[str] = []
+        self.status: list[str] = []
+        self.panels: list[str] = []
+        self.opened: list[tuple[str, bool]] = []
+        self.timers: list = []
+        self.evidence = True
+
+    def show_error(self, message): self.errors.append(message)
+    def set_status(self, text): self.status.append(text)
+    def editor_text(self): return self.text
+    def set_editor_text(self, text): self.text = text
+    def model_opening(self, folder): pass
+    def model_opened(self, info, remember): self.opened.append((info.folder, remember))
+    def show_panel(self, name): self.panels.append(name)
+    def evidence_after_runs(self): return self.evidence
+    def later(self, msecs, fn): self.timers.append(fn)
+    def figures_ready(self, seconds): pass
+    def card_written(self, path): pass
+
+
+def info(folder: str = "/m") -> ModelInfo:
+    return ModelInfo(folder, "m", "BERT", 2, 4, ("a", "b"), "classifier", 64)
+
+
+def make():
+    state, worker, view = Selection(), FakeWorker(), FakeView()
+    return Controller(state, worker, view), state, worker, view
+
+
+def test_start_opens_the_demo_with_its_text_and_runs_it():
+    c, state, worker, view = make()
+    c.start()
+    assert worker.kinds() == ["figures", "open"]
+    assert worker.submitted[1][2] == ("main", str(jobs.demo_folder()))
+    assert view.text == DEMO_TEXT
+    c.finished("open", info(str(jobs.demo_folder())))
+    assert state.model is not None and view.opened == [(str(jobs.demo_folder()), False)]
+    assert worker.kinds()[-1] == "run" and worker.submitted[-1][2] == ("main", DEMO_TEXT, None)
+
+
+def test_a_run_without_a_model_or_text_is_refused_with_one_line():
+    c, state, worker, view = make()
+    c.run_text("hello")
+    assert view.errors and "no model" in view.errors[-1]
+    c.finished("open", info())
+    c.run_text("   ")
+    assert "empty" in view.errors[-1]
+    assert "run" not in worker.kinds()
+
+
+class _Rec:
+    n_tokens, n_layers, n_heads, notes = 5, 2, 4, ()
+
+    def summary_index(self) -> int:
+        return 0
+
+
+class _Analysis:
+    def __init__(self) -> None:
+        self.recording = _Rec()
+        self.seconds = 0.1
+
+
+def test_the_follow_up_starts_once_when_the_grid_has_painted_the_run():
+    c, state, worker, view = make()
+    c.finished("open", info())
+    a = _Analysis()
+    c.finished("run", a)
+    assert state.analysis is a and state.source == 0  # the summary token is the first source
+    c.painted(object())  # another recording: not this run's first paint
+    assert "summary" not in worker.kinds()
+    c.painted(a.recording)
+    assert worker.kinds().count("summary") == 1 and worker.kinds().count("evidence") == 1
+    view.timers[-1]()  # the fallback timer fires later: nothing is started twice
+    c.painted(a.recording)
+    assert worker.kinds().count("summary") == 1
+
+
+def test_evidence_for_an_older_run_is_dropped():
+    c, state, worker, view = make()
+    c.finished("open", info())
+    old, new = _Analysis(), _Analysis()
+    c.finished("run", old)
+    c.finished("run", new)
+
+    class Ev:
+        recording = old.recording
+        notes = ()
+
+    c.finished("evidence", Ev())
+    assert state.evidence is None
+
+
+def test_restoring_a_session_opens_its_model_then_its_files_and_text(tmp_path):
+    c, state, worker, view = make()
+    session = sessions.Session(model="/ckpt", text="a text", text_set=str(tmp_path / "t.jsonl"),
+                               item=2, link_pairs=str(tmp_path / "p.jsonl"),
+                               selection={"layer": 1, "head": None, "metric": "distance"},
+                               notes="n")
+    c.restore_session(session)
+    assert worker.kinds() == ["open"] and worker.submitted[0][2] == ("main", "/ckpt")
+    assert view.text == "a text" and state.notes == "n"
+    c.finished("open", info("/ckpt"))
+    assert worker.kinds() == ["open", "textset", "pairs", "run"]
+    assert worker.submitted[1][2] == ("main", str(Path(tmp_path / "t.jsonl")))
+
+
+def test_unknown_job_kinds_and_failures():
+    c, state, worker, view = make()
+    c.finished("hold", None)  # a job that only needed to run
+    c.failed("open", "config.json in /x is not valid JSON")
+    assert view.errors == ["config.json in /x is not valid JSON"]
