@@ -1,6 +1,6 @@
 """The demo message generator: determinism, template validity, balance, footer bias.
 
-References: the demo scenario and the splits of issue 3 / DESIGN.md ("Demo scenario");
+References: the demo scenario of docs/definitions.md ("Demo scenario") and its splits;
 seeding every random stream from one seed so a rerun is byte-identical is common practice.
 """
 

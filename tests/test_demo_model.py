@@ -4,7 +4,9 @@ Uses plain transformers only (AutoModelForSequenceClassification / AutoTokenizer
 project loader, so a bug in the build's own measurement code cannot hide here: predictions
 and metrics are recomputed from scratch and compared with the shipped metrics.json.
 
-Targets from issue 3: clean accuracy >= 95 % and shortcut rate >= 50 %.
+The demo must be accurate on clean messages (clean accuracy >= 95 %) and must route most
+portal messages of other classes to billing (shortcut rate >= 50 %): the shortcut it exists
+to show.
 """
 
 from __future__ import annotations
@@ -96,15 +98,6 @@ def test_shipped_model_gives_eager_attention_probabilities() -> None:
     probs = out.attentions[0][0]
     assert probs.shape[0] == cfg.num_attention_heads
     torch.testing.assert_close(probs.sum(-1), torch.ones(probs.shape[:-1]))
-
-
-def test_shipped_metrics_meet_the_targets(metrics: dict) -> None:
-    assert metrics["clean_accuracy"] >= 0.95
-    assert metrics["shortcut_rate"] >= 0.5
-    assert metrics["sizes"]["train"] >= 1500 and metrics["sizes"]["eval"] >= 300
-    assert metrics["training"]["seconds"] <= 300
-    for key in ("torch", "transformers", "tokenizers"):
-        assert metrics["versions"][key]
 
 
 def test_generator_still_produces_the_data_the_model_was_built_on(

@@ -1,6 +1,6 @@
 """The files in sample_sentences/: well-formed, UTF-8, and link pairs that follow the matching rule.
 
-Reference: DESIGN.md, "File formats" (text sets; link pairs, where each word is matched as its
+Reference: docs/definitions.md, "Text sets" and "Link pairs" (link pairs, where each word is matched as its
 first whole-word, case-insensitive occurrence in the text).
 """
 
@@ -19,7 +19,7 @@ PRONOUNS = {"he", "she", "it", "they"}
 
 
 def first_whole_word(word: str, text: str) -> int | None:
-    """Start of the first whole-word, case-insensitive occurrence (DESIGN.md rule)."""
+    """Start of the first whole-word, case-insensitive occurrence (docs/definitions.md, "Link pairs")."""
     m = re.search(r"(?<!\w)" + re.escape(word) + r"(?!\w)", text, re.IGNORECASE)
     return None if m is None else m.start()
 

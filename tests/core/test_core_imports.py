@@ -1,4 +1,4 @@
-"""The numeric core imports only numpy, scipy, the standard library and itself (DESIGN.md)."""
+"""The numeric core imports only numpy, scipy, the standard library and itself (docs/definitions.md)."""
 
 import ast
 import sys
@@ -22,8 +22,8 @@ def _imports(path: Path):
 
 @pytest.mark.parametrize("path", sorted(CORE.glob("*.py")), ids=lambda p: p.name)
 def test_core_module_imports(path):
-    # reference: DESIGN.md layer table, numeric core "must not import torch, transformers, Qt,
-    # matplotlib"; the brief narrows it to numpy, scipy and the standard library
+    # reference: docs/definitions.md, "Layers of the code": the numeric core uses numpy and
+    # SciPy only (and the standard library)
     for name in _imports(path):
         root = name.split(".")[0]
         assert root in ALLOWED, f"{path.name} imports {name}"

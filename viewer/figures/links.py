@@ -4,7 +4,7 @@ Two pictures, side by side in ``links_into``:
 
 * a bar chart of the words with the highest link score from the source in the selected head
   (score = attention from the source's first sub-token summed over the word's sub-tokens,
-  DESIGN.md "Link pairs"), the selected target's bar highlighted;
+  docs/definitions.md, "Link pairs"), the selected target's bar highlighted;
 * a head map of the link score from the source to the target in every head.
 
 With a link-pairs file, ``accuracy_into`` shows per-head accuracy with the nearest baseline

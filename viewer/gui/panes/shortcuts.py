@@ -1,6 +1,6 @@
 """The shortcut-report pane: words whose knockout flips the prediction, strongest first.
 
-Columns follow DESIGN.md ("Word knockout"): texts containing the word, flip rate, the lower end
+Columns follow docs/definitions.md ("Word knockout"): texts containing the word, flip rate, the lower end
 of its 95% Wilson interval (the ranking key), mean drop in the predicted class's probability,
 and focus (summary-token attention share). Clicking a word lists the texts that contain it.
 With "two-word phrases" ticked before a search, the report also ranks adjacent word pairs
