@@ -1,4 +1,4 @@
-"""The layering of docs/definitions.md ("Layers of the code"), enforced by import-linter's contracts in pyproject.toml."""
+"""The layering of docs/definitions.md ("Layers of the code"), enforced by import-linter."""
 
 import subprocess
 import sys
