@@ -1,0 +1,62 @@
+"""Insertion points and the insertion tally (viewer.core.insertion)."""
+
+from __future__ import annotations
+
+import pytest
+from scipy.stats import binomtest
+
+from viewer.core.insertion import (
+    POSITIONS,
+    InsertionTally,
+    insert_at,
+    random_boundary,
+    word_boundaries,
+)
+
+
+def test_word_boundaries_by_hand():
+    assert word_boundaries("a bc d") == [0, 1, 4, 6]
+    assert word_boundaries("") == [0]
+
+
+def test_insert_at_the_three_positions():
+    text = "my chain   slips"
+    assert insert_at(text, "[via portal]", "start") == "[via portal] my chain   slips"
+    assert insert_at(text, "[via portal]", "end") == "my chain   slips [via portal]"
+    out = insert_at(text, " [via  portal] ", "random", seed=3, index=7)
+    at = random_boundary(text, 3, 7)
+    assert at in word_boundaries(text)
+    # the text around the insertion point is kept, the phrase sits between single spaces
+    assert out.replace("[via portal]", "").split() == text.split()
+    assert "[via portal]" in out
+    with pytest.raises(ValueError):
+        insert_at(text, "x", "middle")
+
+
+def test_the_random_boundary_depends_on_seed_and_index_only():
+    text = " ".join(f"w{i}" for i in range(40))
+    first = [random_boundary(text, 0, i) for i in range(30)]
+    assert first == [random_boundary(text, 0, i) for i in range(30)]  # same in another shard
+    assert len(set(first)) > 5  # spread over the boundaries, not always one place
+    assert first != [random_boundary(text, 1, i) for i in range(30)]
+
+
+def test_tally_merges_to_the_whole_and_reports_wilson():
+    whole, a, b = InsertionTally(), InsertionTally(), InsertionTally()
+    outcomes = [(p, i, i % 3 != 0, 0.1 * i) for i in range(12) for p in POSITIONS]
+    for p, i, flipped, gain in outcomes:
+        whole.add(p, i, flipped, gain)
+        (a if i < 5 else b).add(p, i, flipped, gain)
+    a.merge(b)
+    for p in POSITIONS:
+        merged, single = a.entry(p), whole.entry(p)
+        assert merged.pop("mean_gain") == pytest.approx(single.pop("mean_gain"), abs=1e-12)
+        assert merged == single
+    e = whole.entry("end")
+    assert (e["tried"], e["flips"]) == (12, 8)
+    assert e["flipped"] == [i for i in range(12) if i % 3 != 0]
+    # reference: scipy.stats.binomtest(...).proportion_ci(method="wilson")
+    ci = binomtest(8, 12).proportion_ci(method="wilson")
+    assert e["flip_low"] == pytest.approx(ci.low, abs=1e-12)
+    assert e["flip_high"] == pytest.approx(ci.high, abs=1e-12)
+    assert e["mean_gain"] == pytest.approx(sum(0.1 * i for i in range(12)) / 12)

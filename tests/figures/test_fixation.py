@@ -1,0 +1,66 @@
+"""The fixation plot: one point per word at (focus, effect), labels where the words are."""
+
+from __future__ import annotations
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import numpy as np  # noqa: E402
+from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+
+from viewer.figures.fixation import fixation_into, labelled_words, point_at  # noqa: E402
+
+
+def sample(n: int = 30, seed: int = 0):
+    rng = np.random.default_rng(seed)
+    words = [f"word{i}" for i in range(n)]
+    return words, rng.random(n) * 0.2, rng.normal(0, 0.05, n), rng.integers(3, 40, n)
+
+
+def test_one_point_per_word_at_its_numbers():
+    words, x, y, counts = sample()
+    fig = Figure(figsize=(6, 4), dpi=100)
+    arts = fixation_into(fig, words, x, y, counts, title="fixation")
+    offsets = np.asarray(arts.points.get_offsets())
+    assert offsets.shape == (len(words), 2)
+    np.testing.assert_array_equal(offsets[:, 0], x)
+    np.testing.assert_array_equal(offsets[:, 1], y)
+
+
+def test_labels_name_the_strongest_and_most_attended_words_and_are_painted():
+    words, x, y, counts = sample()
+    y[7] = 0.9  # by far the largest knockout effect
+    x[11] = 0.5  # by far the most attended
+    fig = Figure(figsize=(6, 4), dpi=100)
+    arts = fixation_into(fig, words, x, y, counts)
+    names = [t.get_text() for t in arts.labels]
+    assert "word7" in names and "word11" in names
+    assert arts.labelled[0] == 7
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    rgba = np.asarray(canvas.buffer_rgba())
+    height = rgba.shape[0]
+    renderer = canvas.get_renderer()
+    for label in arts.labels:
+        box = label.get_window_extent(renderer)
+        x0, x1 = int(box.x0), int(np.ceil(box.x1))
+        y0, y1 = height - int(np.ceil(box.y1)), height - int(box.y0)
+        patch = rgba[max(y0, 0):y1, max(x0, 0):x1, :3].astype(int)
+        # dark text pixels inside the label's box: the label is drawn where it says it is
+        assert patch.size and (patch.sum(axis=2) < 300).sum() >= 3, label.get_text()
+
+
+def test_labelled_words_rule_and_hit_testing():
+    x = np.array([0.0, 0.5, 0.1, 0.2])
+    y = np.array([0.9, 0.0, 0.5, 0.1])
+    assert labelled_words(x, y, k=2) == (0, 1)
+    assert labelled_words(x, y, k=3) == (0, 2, 1)
+    fig = Figure(figsize=(5, 4), dpi=100)
+    arts = fixation_into(fig, ["a", "b", "c", "d"], x, y, [3, 4, 5, 6], highlight="c")
+    FigureCanvasAgg(fig).draw()
+    px, py = arts.ax.transData.transform((0.1, 0.5))
+    assert point_at(arts, px, py) == 2
+    assert point_at(arts, px + 200, py + 200) is None
+    assert arts.highlight is not None

@@ -1,0 +1,96 @@
+"""The insertion test on the demo model: the footer alone routes messages to billing.
+
+References: transformers' own forward pass (``AutoModelForSequenceClassification``, not the
+project's loader) recomputes which texts the footer flips; ``scipy.stats.binomtest`` gives the
+Wilson bounds; the neutral word is chosen by the test from the shortcut search's own numbers.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import torch
+from scipy.stats import binomtest
+from transformers import AutoModelForSequenceClassification, AutoTokenizer
+
+from viewer.demo import MODEL_DIR
+from viewer.errors import HeadlightError
+from viewer.model.loader import open_model
+from viewer.reports.insertion import insertion_test, pointed_class
+from viewer.reports.shortcuts import shortcut_search
+from viewer.reports.textsets import load_text_set
+
+SAMPLES = Path(__file__).resolve().parents[2] / "sample_sentences"
+FOOTER = "[via portal]"
+
+
+@pytest.fixture(scope="module")
+def demo():
+    return open_model(MODEL_DIR)
+
+
+@pytest.fixture(scope="module")
+def others():
+    """The sample repair and membership messages without the footer."""
+    return [i for i in load_text_set(SAMPLES / "coop_messages.jsonl")
+            if i.label in ("repair", "membership") and "portal" not in i.text]
+
+
+def transformers_predict(texts: list[str]) -> list[str]:
+    tok = AutoTokenizer.from_pretrained(MODEL_DIR, local_files_only=True)
+    model = AutoModelForSequenceClassification.from_pretrained(MODEL_DIR, local_files_only=True)
+    model.eval()
+    out = []
+    with torch.no_grad():
+        for i in range(0, len(texts), 32):
+            batch = tok(texts[i:i + 32], padding=True, truncation=True, return_tensors="pt")
+            out += [model.config.id2label[int(k)] for k in model(**batch).logits.argmax(-1)]
+    return out
+
+
+def test_the_footer_points_to_billing_by_knockout(demo):
+    items = load_text_set(SAMPLES / "coop_messages.jsonl")
+    pointed = pointed_class(demo, items, FOOTER)
+    assert demo.labels[pointed.target] == "billing"
+    assert pointed.flips_from["billing"] > 0 and pointed.flips_from["repair"] == 0
+
+
+def test_inserting_the_footer_flips_nine_in_ten_into_billing(demo):
+    items = load_text_set(SAMPLES / "coop_messages.jsonl")
+    report = insertion_test(demo, items, FOOTER)
+    assert report.target_label == "billing" and report.chosen_by == "knockout"
+    end = report.tally.entry("end")
+    # independently: transformers' own forward on the same texts with the footer appended
+    before = transformers_predict([i.text for i in items])
+    tried = [k for k, p in enumerate(before) if p != "billing"]
+    after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried])
+    flipped = [k for k, p in zip(tried, after, strict=True) if p == "billing"]
+    assert end["tried"] == len(tried) >= 40 and end["flipped"] == flipped
+    assert end["flip_rate"] >= 0.9
+    ci = binomtest(end["flips"], end["tried"]).proportion_ci(method="wilson")
+    assert end["flip_low"] == pytest.approx(ci.low, abs=1e-12)
+    assert end["flip_high"] == pytest.approx(ci.high, abs=1e-12)
+    for position in ("start", "random"):
+        assert report.tally.entry(position)["flip_rate"] >= 0.9
+        assert report.tally.entry(position)["mean_gain"] > 0.5
+
+
+def test_a_neutral_word_flips_almost_nothing(demo, others):
+    items = load_text_set(SAMPLES / "coop_messages.jsonl")
+    ranking = shortcut_search(demo, items, phrases=False).words.ranking()
+    common = [r for r in ranking if r["count"] >= 10 and r["flip_rate"] == 0]
+    neutral = min(common, key=lambda r: abs(r["mean_drop"]))["token"]
+    report = insertion_test(demo, others, neutral, target="billing")
+    assert report.chosen_by == "given"
+    for position in ("start", "end", "random"):
+        assert report.tally.entry(position)["flip_rate"] < 0.1, (neutral, position)
+
+
+def test_refusals_are_one_line(demo, others):
+    with pytest.raises(HeadlightError, match="not one of"):
+        insertion_test(demo, others, FOOTER, target="parking")
+    with pytest.raises(HeadlightError, match="no word"):
+        insertion_test(demo, others, "-- !!", target="billing")
+    with pytest.raises(HeadlightError, match="occurs in no text"):
+        insertion_test(demo, others[:5], "zeppelin")

@@ -1,0 +1,118 @@
+"""The fixation plot: per word type over a text set, attention received against knockout effect.
+
+x is the mean share of the summary token's last-layer attention that lands on the word (head
+mean, or one head); y is the mean drop in the predicted class's probability when the word is
+knocked out (docs/definitions.md, "Word knockout"). One point per word, its area growing with
+the number of texts the word occurs in. Dashed lines at the medians cut the plane into four:
+the upper left holds words that are *ignored but decisive* (little attention, large effect),
+the lower right words *attended but harmless* — the two places where attention and knockout
+disagree, which is why attention alone does not explain a prediction.
+
+The words with the largest effect and the most attended ones are labelled (``labelled``);
+hovering names any point.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from matplotlib.axes import Axes
+from matplotlib.figure import Figure
+
+from viewer.figures import style
+from viewer.figures.layout import Box, InchLayout, line_height_in
+
+X_UNITS = "summary-token attention share (last layer)"
+Y_UNITS = "knockout: mean drop in p(predicted)"
+LABELS = 12  # words labelled by name
+
+
+@dataclass
+class FixationArtists:
+    ax: Axes
+    points: object  # the PathCollection of the scatter
+    labels: list  # Text artists, one per labelled word
+    labelled: tuple[int, ...]  # word indices that carry a label, in label order
+    x: np.ndarray  # (N,) the plotted x values
+    y: np.ndarray  # (N,)
+    highlight: object | None = None
+
+
+def labelled_words(x: np.ndarray, y: np.ndarray, k: int = LABELS) -> tuple[int, ...]:
+    """The words that get a name: the ⌈k/2⌉ largest effects, then the most attended others."""
+    n = len(x)
+    by_effect = [int(i) for i in np.lexsort((np.arange(n), -np.asarray(y)))]
+    by_focus = [int(i) for i in np.lexsort((np.arange(n), -np.asarray(x)))]
+    chosen: list[int] = by_effect[: (k + 1) // 2]
+    for i in by_focus:
+        if len(chosen) >= min(k, n):
+            break
+        if i not in chosen:
+            chosen.append(i)
+    return tuple(chosen)
+
+
+def fixation_into(fig: Figure, words: Sequence[str], focus: np.ndarray, effect: np.ndarray,
+                  counts: Sequence[int], *, title: str = "", highlight: str | None = None,
+                  x_units: str = X_UNITS) -> FixationArtists:
+    """Clear ``fig`` and draw one labelled point per word: ``focus`` (x) against ``effect`` (y)."""
+    fig.clear()
+    x = np.asarray(focus, dtype=np.float64)
+    y = np.asarray(effect, dtype=np.float64)
+    n = np.asarray(counts, dtype=np.float64)
+    if not (len(words) == x.size == y.size == n.size):
+        raise ValueError("words, focus, effect and counts must have one entry per word")
+    ax = fig.add_axes((0.12, 0.12, 0.8, 0.75))
+    left = line_height_in(style.FONT_SIZE) * 4 + line_height_in(style.LABEL_SIZE) + 0.1
+    bottom = line_height_in(style.FONT_SIZE) + line_height_in(style.LABEL_SIZE) + 0.2
+    top = line_height_in(style.TITLE_SIZE, 1.8)
+
+    def place(width: float, height: float) -> dict[Axes, Box]:
+        return {ax: (left, bottom, max(width - left - 0.25, 0.1), max(height - bottom - top,
+                                                                        0.1))}
+
+    fig.set_layout_engine(InchLayout(place))
+    sizes = 14.0 + 46.0 * np.sqrt(n / max(float(n.max()), 1.0)) if n.size else n
+    points = ax.scatter(x, y, s=sizes, color=style.ACCENT, alpha=0.55, linewidths=0, zorder=2)
+    if x.size:
+        ax.axvline(float(np.median(x)), color=style.MUTED, linewidth=0.8, linestyle="--",
+                   zorder=1)
+        ax.axhline(float(np.median(y)), color=style.MUTED, linewidth=0.8, linestyle="--",
+                   zorder=1)
+        pad_x = max(float(np.ptp(x)) * 0.08, 1e-3)
+        pad_y = max(float(np.ptp(y)) * 0.08, 1e-3)
+        ax.set_xlim(float(x.min()) - pad_x, float(x.max()) + pad_x * 3)
+        ax.set_ylim(float(y.min()) - pad_y, float(y.max()) + pad_y * 2)
+        ax.text(0.01, 0.99, "ignored but decisive", transform=ax.transAxes, ha="left",
+                va="top", fontsize=style.FONT_SIZE - 0.5, color=style.MUTED)
+        ax.text(0.99, 0.01, "attended but harmless", transform=ax.transAxes, ha="right",
+                va="bottom", fontsize=style.FONT_SIZE - 0.5, color=style.MUTED)
+    chosen = labelled_words(x, y)
+    labels = [ax.annotate(style.token_label(words[i]), (x[i], y[i]), xytext=(4, 3),
+                          textcoords="offset points", fontsize=style.FONT_SIZE,
+                          color="#1d2b36", zorder=3)
+              for i in chosen]
+    mark = None
+    if highlight is not None and highlight in words:
+        i = list(words).index(highlight)
+        mark = ax.scatter([x[i]], [y[i]], s=90, facecolors="none", edgecolors=style.SELECTION,
+                          linewidths=1.8, zorder=4)
+    style.style_axes(ax)
+    ax.set_xlabel(x_units, fontsize=style.LABEL_SIZE)
+    ax.set_ylabel(Y_UNITS, fontsize=style.LABEL_SIZE)
+    if title:
+        ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left", y=1.0)
+    return FixationArtists(ax, points, labels, chosen, x, y, mark)
+
+
+def point_at(artists: FixationArtists, x_px: float, y_px: float,
+             radius_px: float = 8.0) -> int | None:
+    """The word whose point is nearest to display position (x_px, y_px), within ``radius_px``."""
+    if artists.x.size == 0:
+        return None
+    xy = artists.ax.transData.transform(np.column_stack([artists.x, artists.y]))
+    d = np.hypot(xy[:, 0] - x_px, xy[:, 1] - y_px)
+    i = int(np.argmin(d))
+    return i if d[i] <= radius_px else None

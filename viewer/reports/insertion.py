@@ -1,0 +1,195 @@
+"""The insertion test over a text set (docs/definitions.md, "Insertion test").
+
+``insertion_test(loaded, items, phrase)`` inserts ``phrase`` at the start, at the end and at a
+seeded random word boundary of every text whose prediction is not the class the phrase points
+to, and counts the texts whose prediction becomes that class (``viewer.core.insertion``).
+
+The class a phrase points to is given (``target``), or found by knockout: among the texts that
+contain the phrase, the originally predicted class that knocking the phrase out most often
+flips away from (``pointed_class``). For the demo's footer that is ``billing``: without
+"[via portal]" the portal messages stop being billing.
+
+``insertion_shard`` is the map step over one shard of the set (indices are positions in the
+whole set, so the random boundary of a text does not depend on the shard); shards' tallies
+merge into the set's tally.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from viewer.core.insertion import POSITIONS, InsertionTally, insert_at
+from viewer.core.links import word_token_indices
+from viewer.core.shortcuts import word_key
+from viewer.errors import HeadlightError
+from viewer.model.attribution import predict_without
+from viewer.model.loader import LoadedModel
+from viewer.reports.textsets import TextItem, chunks
+
+
+def _require_classifier(loaded: LoadedModel) -> None:
+    if loaded.head_kind != "classifier":
+        raise HeadlightError(
+            f"the insertion test counts texts flipping into a class; {loaded.name} has a "
+            f"{loaded.head_kind} head, not a sequence classifier")
+
+
+def phrase_keys(phrase: str) -> tuple[str, ...]:
+    """The word keys of a phrase ("[via portal]" -> ("via", "portal")); empty keys dropped."""
+    keys = tuple(k for k in (word_key(w) for w in phrase.split()) if k)
+    if not keys:
+        raise HeadlightError(f"'{phrase}' holds no word to insert (only punctuation or blanks)")
+    return keys
+
+
+def phrase_occurrences(text: str, keys: Sequence[str]) -> list[tuple[int, int]]:
+    """Character spans of the whitespace words of every occurrence of ``keys`` in ``text``.
+
+    An occurrence is a run of consecutive whitespace words whose keys equal ``keys``; its
+    spans cover the whole whitespace words (end punctuation included), as word knockout
+    deletes them (docs/definitions.md, "Word knockout").
+    """
+    words = []
+    pos = 0
+    for raw in text.split():
+        begin = text.index(raw, pos)
+        pos = begin + len(raw)
+        words.append((begin, pos, word_key(raw)))
+    n = len(keys)
+    spans: list[tuple[int, int]] = []
+    for i in range(len(words) - n + 1):
+        if tuple(w[2] for w in words[i:i + n]) == tuple(keys):
+            spans.extend((a, b) for a, b, _ in words[i:i + n])
+    return spans
+
+
+def resolve_class(loaded: LoadedModel, name: str) -> int:
+    """The index of class ``name`` (a label of the model, or its index)."""
+    labels = list(loaded.labels)
+    if name in labels:
+        return labels.index(name)
+    if name.isdigit() and int(name) < len(labels):
+        return int(name)
+    raise HeadlightError(f"class {name!r} is not one of {', '.join(labels)}")
+
+
+@dataclass(frozen=True)
+class PointedClass:
+    target: int  # the class the phrase points to
+    flips_from: dict[str, int]  # originally predicted class -> flips under knockout
+    texts_with: dict[str, int]  # originally predicted class -> texts containing the phrase
+
+
+def pointed_class(loaded: LoadedModel, items: Iterable[TextItem], phrase: str,
+                  batch_size: int = 32) -> PointedClass:
+    """The class that knocking ``phrase`` out most often flips texts away from.
+
+    Ties go to the class with more texts containing the phrase, then to the lower index.
+    """
+    _require_classifier(loaded)
+    keys = phrase_keys(phrase)
+    labels = list(loaded.labels)
+    flips = np.zeros(len(labels), dtype=np.int64)
+    having = np.zeros(len(labels), dtype=np.int64)
+    for chunk in chunks((i for i in items if phrase_occurrences(i.text, keys)), 64):
+        atts = list(loaded.attentions([i.text for i in chunk], batch_size=batch_size))
+        cases, preds = [], []
+        for att in atts:
+            idx = np.unique(np.concatenate([word_token_indices(s, att.offsets)
+                                            for s in phrase_occurrences(att.text, keys)]))
+            idx = idx[~att.special[idx]]
+            if idx.size == 0 or idx.size >= len(att.token_ids):
+                continue
+            cases.append((att.token_ids, idx))
+            preds.append(int(np.argmax(att.target)))
+        if not cases:
+            continue
+        after = predict_without(loaded, cases, batch_size).argmax(axis=1)
+        for before, now in zip(preds, after, strict=True):
+            having[before] += 1
+            flips[before] += int(now != before)
+    if having.sum() == 0:
+        raise HeadlightError(f"'{phrase}' occurs in no text of the set; name the class it should "
+                             "push texts into (--class)")
+    if flips.sum() == 0:
+        raise HeadlightError(f"knocking '{phrase}' out flips no prediction in this set, so it "
+                             "points to no class; name one (--class)")
+    order = sorted(range(len(labels)), key=lambda k: (-flips[k], -having[k], k))
+    return PointedClass(order[0], {labels[k]: int(flips[k]) for k in range(len(labels))},
+                        {labels[k]: int(having[k]) for k in range(len(labels))})
+
+
+def insertion_shard(loaded: LoadedModel, items: Sequence[tuple[int, TextItem]], phrase: str,
+                    target: int, *, seed: int = 0, positions: Sequence[str] = POSITIONS,
+                    batch_size: int = 32) -> InsertionTally:
+    """The insertion test over one shard: ``items`` are (index in the set, text) pairs."""
+    tally = InsertionTally(positions)
+    texts = [item.text for _, item in items]
+    if not texts:
+        return tally
+    before = np.concatenate([loaded.predict(loaded.encode(texts[i:i + batch_size]))
+                             for i in range(0, len(texts), batch_size)])  # (N, C)
+    tally.texts = len(texts)
+    todo = [(k, index) for k, (index, _) in enumerate(items) if before[k].argmax() != target]
+    tally.skipped = len(texts) - len(todo)
+    variants = [(position, k, index, insert_at(texts[k], phrase, position, seed=seed,
+                                               index=index))
+                for position in positions for k, index in todo]
+    for start in range(0, len(variants), batch_size):
+        part = variants[start:start + batch_size]
+        after = loaded.predict(loaded.encode([v[3] for v in part]))  # (B, C)
+        for (position, k, index, _), p in zip(part, after, strict=True):
+            tally.add(position, index, bool(p.argmax() == target),
+                      float(p[target] - before[k, target]))
+    return tally
+
+
+@dataclass
+class InsertionReport:
+    phrase: str
+    target: int
+    target_label: str
+    chosen_by: str  # "given" or "knockout"
+    seed: int
+    tally: InsertionTally
+    pointed: PointedClass | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        out = {"phrase": self.phrase, "class": self.target_label, "class_index": self.target,
+               "class_chosen_by": self.chosen_by, "seed": self.seed, **self.tally.to_dict()}
+        if self.pointed is not None:
+            out["knockout_flips_from"] = dict(self.pointed.flips_from)
+            out["texts_with_phrase"] = dict(self.pointed.texts_with)
+        return out
+
+
+def insertion_test(loaded: LoadedModel, items: Iterable[TextItem], phrase: str,
+                   target: str | int | None = None, *, seed: int = 0, batch_size: int = 32,
+                   shard_size: int = 64, progress: Callable[[int], None] | None = None
+                   ) -> InsertionReport:
+    """The whole insertion test, serially over shards of ``shard_size`` texts."""
+    _require_classifier(loaded)
+    items = list(items)
+    phrase = " ".join(phrase.split())
+    phrase_keys(phrase)
+    pointed = None
+    if target is None:
+        pointed = pointed_class(loaded, items, phrase, batch_size)
+        index, chosen = pointed.target, "knockout"
+    else:
+        index = target if isinstance(target, int) else resolve_class(loaded, str(target))
+        chosen = "given"
+    tally = InsertionTally()
+    for start in range(0, len(items), shard_size):
+        shard = list(enumerate(items[start:start + shard_size], start=start))
+        tally.merge(insertion_shard(loaded, shard, phrase, index, seed=seed,
+                                    batch_size=batch_size))
+        if progress:
+            progress(len(shard))
+    if tally.texts == 0:
+        raise HeadlightError("the text set holds no texts")
+    return InsertionReport(phrase, index, loaded.labels[index], chosen, seed, tally, pointed)
