@@ -55,3 +55,15 @@ def test_headlight_without_a_display_exits_2_with_one_line(tmp_path):
     assert run.returncode == 2, run.stderr[-2000:]
     lines = run.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("headlight: error: the window cannot start")
+
+
+def test_the_window_module_loads_no_numerical_library():
+    """The window appears before numpy, SciPy, matplotlib or torch load (they come later, in the
+    background): importing it must not pull them in."""
+    code = ("import sys, viewer.gui.window; print(sorted(m for m in ('numpy', 'scipy', "
+            "'matplotlib', 'torch', 'transformers') if m in sys.modules))")
+    env = {**os.environ, "QT_QPA_PLATFORM": "offscreen"}
+    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env,
+                         timeout=120)
+    assert run.returncode == 0, run.stderr[-2000:]
+    assert run.stdout.strip() == "[]"

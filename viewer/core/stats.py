@@ -1,6 +1,8 @@
 """Small statistics from SciPy: the Wilson score interval and Spearman rank correlation.
 
 Both are thin wrappers that fix the conventions Headlight relies on; the arithmetic is SciPy's.
+``scipy.stats`` is imported on first use: it takes about two seconds to import, and modules that
+only need a constant from their neighbours (the window's panes) must not wait for it.
 """
 
 from __future__ import annotations
@@ -10,11 +12,12 @@ import warnings
 from functools import lru_cache
 
 import numpy as np
-from scipy.stats import ConstantInputWarning, binomtest, spearmanr
 
 
 @lru_cache(maxsize=65536)
 def _wilson(k: int, n: int, level: float) -> tuple[float, float]:
+    from scipy.stats import binomtest
+
     ci = binomtest(k, n).proportion_ci(confidence_level=level, method="wilson")
     return max(0.0, float(ci.low)), min(1.0, float(ci.high))
 
@@ -49,6 +52,8 @@ def spearman(x: np.ndarray, y: np.ndarray) -> float:
         raise ValueError("spearman needs finite values")
     if a.size < 2 or np.ptp(a) == 0 or np.ptp(b) == 0:
         return float("nan")
+    from scipy.stats import ConstantInputWarning, spearmanr
+
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConstantInputWarning)
         rho = float(spearmanr(a, b).statistic)

@@ -22,7 +22,6 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from viewer.core.shortcuts import MIN_TEXTS
 from viewer.gui.panes.base import TableDock
 from viewer.session.state import Selection
 
@@ -86,6 +85,8 @@ class ShortcutPane(TableDock):
                                      "depends on too much (word knockout).")
             self.table.blockSignals(False)
             return
+        from viewer.core.shortcuts import MIN_TEXTS  # not at start-up: it brings numpy
+
         rows = self._ranking(report, phrases)
         what = "phrases" if phrases else "words"
         self.summary.setText(f"{len(rows)} {what} seen in at least {MIN_TEXTS} of "
