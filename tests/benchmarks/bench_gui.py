@@ -92,14 +92,31 @@ class PaintProbe:
     def __init__(self, canvas) -> None:
         self.count = 0
         self.last = 0.0  # time.perf_counter() at the end of the last paint
+        self.waiting: tuple[Callable[[], bool], QEventLoop] | None = None
         original = canvas.paintEvent
 
         def paint(event, _original=original):
             _original(event)
             self.count += 1
             self.last = time.perf_counter()
+            if self.waiting is not None and self.waiting[0]():
+                self.waiting[1].quit()
 
         canvas.paintEvent = paint
+
+    def wait(self, condition: Callable[[], bool], timeout: float = 600.0) -> None:
+        """Run the event loop until a paint finds ``condition()`` true, without polling: no
+        Python runs on the GUI thread meanwhile except the application's own event handling
+        (a poll would take the GIL and a core from the recording it measures)."""
+        loop = QEventLoop()
+        self.waiting = (condition, loop)
+        end = time.monotonic() + timeout
+        QTimer.singleShot(int(timeout * 1000), loop.quit)
+        while not condition() and time.monotonic() <= end:
+            loop.exec()
+        self.waiting = None
+        if not condition():
+            raise SystemExit("benchmark: timed out waiting for a paint")
 
 
 def idle(seconds: float) -> None:
@@ -213,7 +230,7 @@ def bench_run(window, loaded, text: str, repeats: int = 5) -> tuple[float, float
         window.state.events.analysis.connect(summary)
         start = time.perf_counter()
         window.run_current()
-        pump_until(lambda: window.state.analysis is not old and grid.count > g0)
+        grid.wait(lambda: window.state.analysis is not old and grid.count > g0)
         grid_painted = grid.last
         pump_until(lambda: window.state.analysis.summarised and summarised_at[0] is not None
                    and heads.count > summarised_at[0] and window.head_map.idle,

@@ -181,6 +181,8 @@ class MainWindow(QMainWindow):
         self.pair_grid = PairGridPane(self.state)
         self.pair_grid.painted.connect(self._grid_painted)
         self.evidence = EvidencePane(self.state)
+        for pane in (self.head_map, self.links, self.evidence):
+            pane.waits_for = self.pair_grid  # after a run, the pair grid is painted first
         left_split = QSplitter(Qt.Orientation.Vertical)
         left_split.addWidget(self.head_map)
         left_split.addWidget(self.links)

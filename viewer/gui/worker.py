@@ -5,10 +5,12 @@ One ``QThreadPool`` with a single thread runs the jobs of ``viewer.session.jobs`
 in that thread's ``models`` dict).
 
 A job never touches a Qt object: it puts plain messages (progress, result, failure,
-cancellation) on a thread-safe ``queue.Queue``. While jobs are pending, a timer on the GUI thread
-drains that queue every few milliseconds and re-emits each message as a signal of the
-``Worker``, on the GUI thread. So widgets are only ever touched from the GUI thread, and no
-Python object has to be marshalled by Qt across threads. Cancelling sets a flag the job checks
+cancellation) on a thread-safe ``queue.Queue`` and wakes the GUI thread with an argument-less
+queued signal; the GUI thread then drains the queue and re-emits each message as a signal of
+the ``Worker``. So widgets are only ever touched from the GUI thread, no Python object has to be
+marshalled by Qt across threads, and nothing polls: while the model runs, the GUI thread sleeps
+until there is a message (a poll every few milliseconds took the GIL and a core from the
+recording, measured with ``tests/benchmarks/bench_gui.py``). Cancelling sets a flag the job checks
 between steps; a new job of the same kind cancels the one it replaces.
 """
 
@@ -21,19 +23,17 @@ import traceback
 from collections.abc import Callable
 from typing import Any
 
-from PySide6.QtCore import QObject, QRunnable, QThreadPool, QTimer, Signal
+from PySide6.QtCore import QObject, QRunnable, Qt, QThreadPool, Signal
 
 from viewer.errors import HeadlightError
 from viewer.session.jobs import Cancelled, JobContext
-
-POLL_MS = 5  # how often the GUI thread collects messages while jobs are pending
 
 
 class Job(QRunnable):
     """One call of a job function on the worker thread; reports through ``outbox``."""
 
     def __init__(self, kind: str, fn: Callable[..., Any], args: tuple, models: dict,
-                 outbox: queue.Queue) -> None:
+                 outbox: queue.Queue, wake: Callable[[], None]) -> None:
         super().__init__()
         self.setAutoDelete(False)
         self.kind = kind
@@ -41,6 +41,7 @@ class Job(QRunnable):
         self.args = args
         self.models = models
         self.outbox = outbox
+        self.wake = wake
         self.cancel_flag = threading.Event()
         self.done = threading.Event()
 
@@ -49,6 +50,10 @@ class Job(QRunnable):
 
     def _post(self, what: str, *payload: Any) -> None:
         self.outbox.put((self, what, payload))
+        try:
+            self.wake()
+        except RuntimeError:  # the window is being torn down
+            pass
 
     def _progress(self, done: int, total: int, message: str) -> None:
         self._post("progress", int(done), int(total), str(message))
@@ -84,6 +89,7 @@ class Worker(QObject):
     failed = Signal(str, str)  # kind, one-line message
     cancelled = Signal(str)  # kind
     idle = Signal()
+    _posted = Signal()  # emitted on the worker thread: messages are waiting
 
     def __init__(self, parent: QObject | None = None) -> None:
         super().__init__(parent)
@@ -93,9 +99,7 @@ class Worker(QObject):
         self.outbox: queue.Queue = queue.Queue()
         self._jobs: list[Job] = []
         self._retired: list[Job] = []  # kept alive until their thread has left run()
-        self.timer = QTimer(self)
-        self.timer.setInterval(POLL_MS)
-        self.timer.timeout.connect(self.deliver)
+        self._posted.connect(self.deliver, Qt.ConnectionType.QueuedConnection)
 
     # -- submitting and cancelling ---------------------------------------------------------
     def submit(self, kind: str, fn: Callable[..., Any], *args: Any,
@@ -106,11 +110,9 @@ class Worker(QObject):
                 if job.kind == kind:
                     job.cancel()
         self._retired = [j for j in self._retired if not j.done.is_set()]
-        job = Job(kind, fn, args, self.models, self.outbox)
+        job = Job(kind, fn, args, self.models, self.outbox, self._posted.emit)
         self._jobs.append(job)
         self.started.emit(kind)
-        if not self.timer.isActive():
-            self.timer.start()
         self.pool.start(job)
         return job
 
@@ -135,11 +137,10 @@ class Worker(QObject):
         self.cancel()
         self.pool.clear()
         self.pool.waitForDone(60000)
-        self.timer.stop()
 
     # -- delivery on the GUI thread -----------------------------------------------------------
     def deliver(self) -> None:
-        """Re-emit the messages the jobs have posted (GUI thread; called by the timer)."""
+        """Re-emit the messages the jobs have posted (GUI thread, woken by ``_posted``)."""
         while True:
             try:
                 job, what, payload = self.outbox.get_nowait()
@@ -157,7 +158,6 @@ class Worker(QObject):
             else:
                 self.cancelled.emit(job.kind)
             if not self._jobs:
-                self.timer.stop()
                 self.idle.emit()
 
     def _retire(self, job: Job) -> None:

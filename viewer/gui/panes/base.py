@@ -104,6 +104,7 @@ class FigurePane(StateListener, QWidget):
     title = "pane"
     waiting_text = "loading the drawing library…"
     schedule_delay_ms = 20  # the pair grid (0) repaints first after a selection change
+    waits_for: FigurePane | None = None  # a pane whose new frame goes before this one's
 
     def __init__(self, state: Selection, parent: QWidget | None = None) -> None:
         super().__init__(parent)
@@ -203,8 +204,15 @@ class FigurePane(StateListener, QWidget):
             QTimer.singleShot(self.schedule_delay_ms, self._flush)
 
     def _flush(self) -> None:
-        if self._scheduled:
-            self.refresh()
+        if not self._scheduled:
+            return
+        first = self.waits_for
+        if first is not None and (first._scheduled or first.drawing):
+            # the pane the user looks at first is being drawn: drawing this one now would take
+            # the render thread's time and the GIL from it; try again shortly
+            QTimer.singleShot(self.schedule_delay_ms, self._flush)
+            return
+        self.refresh()
 
     def refresh(self) -> None:
         """Render now: ``render`` returns a build for the render thread, or a message."""
