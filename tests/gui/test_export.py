@@ -176,7 +176,8 @@ def test_menus_and_context_menu_have_the_export_actions(qtbot, window):
     assert "Export pane" in names and "Export model-card folder…" in names
     sub = next(a.menu() for a in file_menu.actions() if a.text() == "Export pane")
     panes = [a.text() for a in sub.actions() if a.menu() is not None]
-    assert panes == ["pair grid", "head map", "links", "evidence strip", "compare grid"]
+    assert panes == ["pair grid", "head map", "links", "evidence strip", "compare grid",
+                     "fixation plot"]
     menu = window.exporter.context_menu(window.head_map)
     assert [a.text() for a in menu.actions()] == ["Export head map figure and data…",
                                                   "Copy figure"]

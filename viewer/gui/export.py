@@ -38,6 +38,7 @@ from viewer.session.exports import DATA_FORMATS, PaneExport, Source, export_path
 def build_export(pane) -> PaneExport:
     """The export of one of the window's figure panes, from what the pane shows now."""
     from viewer.gui.panes.evidence import EvidencePane
+    from viewer.gui.panes.fixation import FixationPane
     from viewer.gui.panes.head_map import HeadMapPane
     from viewer.gui.panes.links import LinksPane
     from viewer.gui.panes.pair_grid import PairGridPane
@@ -74,6 +75,10 @@ def build_export(pane) -> PaneExport:
                                     query=state.source, key=state.target)
     if isinstance(pane, EvidencePane):
         return exports.evidence_export(analysis, state.evidence, source, token=state.source)
+    if isinstance(pane, FixationPane):
+        ts = state.textset
+        return exports.fixation_export(state.shortcuts, source, head=pane.focus_head(),
+                                       word=state.word, text_set=None if ts is None else ts.path)
     raise HeadlightError(f"the {pane.title} pane has no export")
 
 
@@ -164,7 +169,7 @@ class PaneExporter(QObject):
     # -- menus
     def panes(self) -> list:
         w = self.window
-        return [w.pair_grid, w.head_map, w.links, w.evidence, w.compare_pane.grid]
+        return [w.pair_grid, w.head_map, w.links, w.evidence, w.compare_pane.grid, w.fixation]
 
     def pane_name(self, pane) -> str:
         if pane is self.window.compare_pane.grid:

@@ -34,6 +34,7 @@ from viewer.gui.badge import CheckBadge
 from viewer.gui.export import PaneExporter
 from viewer.gui.panes.compare import ComparePane
 from viewer.gui.panes.evidence import EvidencePane
+from viewer.gui.panes.fixation import FixationPane
 from viewer.gui.panes.head_map import HeadMapPane
 from viewer.gui.panes.links import LinksPane
 from viewer.gui.panes.pair_grid import PairGridPane
@@ -134,6 +135,10 @@ class MainWindow(QMainWindow):
                                               "per-head link accuracy over a link-pairs file")
         self.shortcuts_action = self._action("Search shortcuts", self.search_shortcuts, None,
                                              "knock each word out of every text of the set")
+        self.insert_action = self._action(
+            "Insertion test", self.run_insertions, None,
+            "insert each of the report's top words into the texts of other classes and count "
+            "the flips into its class (does the word alone drive the prediction?)")
         self.compare_action = self._action("Compare", self.run_compare, None,
                                            "run the second text or checkpoint")
         self.clear_compare_action = self._action("Clear", self.clear_compare, None,
@@ -207,7 +212,8 @@ class MainWindow(QMainWindow):
 
     def _build_docks(self) -> None:
         self.textset_pane = TextSetPane(self.state, self.open_set_action)
-        self.shortcut_pane = ShortcutPane(self.state, self.shortcuts_action)
+        self.shortcut_pane = ShortcutPane(self.state, self.shortcuts_action, self.insert_action)
+        self.fixation = FixationPane(self.state)
         self.compare_pane = ComparePane(self.state, self.compare_action, self.clear_compare_action)
         self.notes_edit = _NotesEdit()
         self.notes_edit.setPlaceholderText("notes saved with the session")
@@ -217,10 +223,12 @@ class MainWindow(QMainWindow):
         self.textset_dock = self._dock("text set", self.textset_pane, "textsetDock", bottom)
         self.shortcut_dock = self._dock("shortcut report", self.shortcut_pane, "shortcutDock",
                                         bottom)
+        self.fixation_dock = self._dock("fixation plot", self.fixation, "fixationDock", bottom)
         self.compare_dock = self._dock("compare", self.compare_pane, "compareDock", bottom)
         self.notes_dock = self._dock("notes", self.notes_edit, "notesDock", bottom)
         self.tabifyDockWidget(self.textset_dock, self.shortcut_dock)
-        self.tabifyDockWidget(self.shortcut_dock, self.compare_dock)
+        self.tabifyDockWidget(self.shortcut_dock, self.fixation_dock)
+        self.tabifyDockWidget(self.fixation_dock, self.compare_dock)
         self.tabifyDockWidget(self.compare_dock, self.notes_dock)
         self.textset_dock.raise_()
         self._docks_sized = False
@@ -248,9 +256,11 @@ class MainWindow(QMainWindow):
         run_menu.addAction(self.evidence_action)
         run_menu.addSeparator()
         run_menu.addAction(self.shortcuts_action)
+        run_menu.addAction(self.insert_action)
         run_menu.addAction(self.compare_action)
         view_menu = self.menuBar().addMenu("&View")
-        for dock in (self.textset_dock, self.shortcut_dock, self.compare_dock, self.notes_dock):
+        for dock in (self.textset_dock, self.shortcut_dock, self.fixation_dock, self.compare_dock,
+                     self.notes_dock):
             view_menu.addAction(dock.toggleViewAction())
         self._fill_recent()
 
@@ -286,7 +296,8 @@ class MainWindow(QMainWindow):
 
     @property
     def figure_panes(self) -> list:
-        return [self.head_map, self.links, self.pair_grid, self.evidence, self.compare_pane.grid]
+        return [self.head_map, self.links, self.pair_grid, self.evidence, self.compare_pane.grid,
+                self.fixation]
 
     def showEvent(self, event) -> None:  # noqa: N802
         super().showEvent(event)
@@ -465,6 +476,9 @@ class MainWindow(QMainWindow):
 
     def search_shortcuts(self) -> None:
         self.controller.search_shortcuts(self.shortcut_pane.phrases_box.isChecked())
+
+    def run_insertions(self) -> None:
+        self.controller.run_insertions(self.shortcut_pane.top_words())
 
     def run_compare(self) -> None:
         self.controller.run_compare()

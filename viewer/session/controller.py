@@ -246,6 +246,34 @@ class Controller:
                    else "")
         self.view.set_status(f"shortcut report: {words} words{phrases}")
 
+    def run_insertions(self, words) -> None:
+        """Insertion tests for the shortcut report's ``words`` (on request: one pass over the
+        text set per word and position)."""
+        ts, report = self.state.textset, self.state.shortcuts
+        if ts is None or report is None:
+            self.view.show_error("search the text set for shortcuts first; the insertion test "
+                                 "takes the report's top words")
+            return
+        words = tuple(words)
+        if not words:
+            self.view.show_error("the shortcut report has no words to test")
+            return
+        self.worker.submit("insertions", jobs.run_insertions, "main", ts, report, words)
+
+    def _done_insertions(self, done) -> None:
+        report, results = done
+        if report is not self.state.shortcuts:
+            return  # a newer search replaced the report these words came from
+        self.state.set_insertions(results)
+        best = max(results.values(), key=lambda r: r.tally.entry("end")["flip_rate"] or 0,
+                   default=None)
+        if best is None:
+            self.view.set_status("insertion tests: no top word points to a class")
+            return
+        end = best.tally.entry("end")
+        self.view.set_status(f"insertion tests: '{best.phrase}' at the end flips "
+                             f"{end['flips']} of {end['tried']} texts into {best.target_label}")
+
     # -- compare --------------------------------------------------------------------------------
     def run_compare(self) -> None:
         target = self.state.compare_target

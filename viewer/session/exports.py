@@ -302,6 +302,41 @@ def evidence_export(analysis, evidence, source: Source, *, token: int | None = N
                       export_stem(rec.text, "evidence strip"), heading)
 
 
+def fixation_export(report, source: Source, *, head: int | None = None, word: str | None = None,
+                    text_set: str | None = None) -> PaneExport:
+    """The fixation plot of a shortcut report: every ranked word's attention share (last
+    layer, head mean or ``head``) against its knockout effect, as the pane draws it."""
+    from viewer.figures.fixation import X_UNITS, fixation_into
+
+    if report is None:
+        raise HeadlightError("nothing to export in the fixation plot yet: search a text set "
+                             "for shortcuts first")
+    rows = report.words.ranking()
+    if head is None:
+        focus = [r["focus"] for r in rows]
+    else:
+        focus = [float(report.words.head_focus(r["token"])[head]) for r in rows]
+    where = "head mean" if head is None else f"head {head}"
+    fig = print_figure()
+    fixation_into(fig, [r["token"] for r in rows], focus, [r["mean_drop"] for r in rows],
+                  [r["count"] for r in rows], highlight=word, x_units=f"{X_UNITS}, {where}",
+                  title=f"fixation plot · {len(rows)} words · last layer, {where}")
+    name = Path(text_set).name if text_set else "text set"
+    heading = (f"{source.name} · fixation plot · {where}",
+               f"text set: {name} ({report.texts} texts)")
+    add_heading(fig, heading)
+    data = _base_data("fixation plot", source, "")
+    data.update({"text_set": text_set, "texts": report.texts, "head": head,
+                 "x": f"{X_UNITS}, {where}", "y": "mean drop in p(predicted) on knockout",
+                 "words": [{**r, "attention_share": float(f)} for r, f in zip(rows, focus,
+                                                                              strict=True)]})
+    table = [[r["token"], r["count"], _cell(f), _cell(r["mean_drop"]), _cell(r["flip_rate"]),
+              _cell(r["flip_low"])] for r, f in zip(rows, focus, strict=True)]
+    header = ["word", "count", "attention_share", "mean_drop", "flip_rate", "flip_low"]
+    stem = f"{sanitise_name(Path(text_set).stem if text_set else 'text-set')}-fixation-plot"
+    return PaneExport(fig, data, header, table, stem, heading)
+
+
 # -- files ------------------------------------------------------------------------------------------
 
 

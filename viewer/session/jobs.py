@@ -279,6 +279,31 @@ def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult,
     return shortcut_search(loaded, items, progress=tick, phrases=phrases)
 
 
+def run_insertions(ctx: JobContext, slot: str, textset: TextSetResult, report: Any,
+                   words: tuple[str, ...]) -> tuple[Any, dict[str, Any]]:
+    """The insertion test (``viewer.reports.insertion``) for each of ``words`` over the open
+    text set, each into the class knocking it out flips texts away from; a word that points to
+    no class is left out. Returns (``report``, {word: InsertionReport}): the shortcut report
+    the words came from, so that results of an older search are not shown beside a newer one."""
+    from viewer.errors import HeadlightError
+    from viewer.reports.insertion import insertion_test
+    from viewer.reports.textsets import TextItem
+
+    loaded = ctx.model(slot)
+    items = [TextItem(r.text, r.label, r.index + 1) for r in textset.rows]
+    results: dict[str, Any] = {}
+    for k, word in enumerate(words):
+        ctx.check()
+        ctx.progress(k, len(words), f"insertion test: '{word}' ({k + 1} of {len(words)})")
+        try:
+            results[word] = insertion_test(loaded, items, word,
+                                           progress=lambda _n: ctx.check())
+        except HeadlightError:
+            continue  # e.g. knocking it out flips nothing: it points to no class
+    ctx.progress(len(words), len(words), "insertion tests done")
+    return report, results
+
+
 # -- card export ----------------------------------------------------------------------------------
 
 

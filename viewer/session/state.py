@@ -26,6 +26,7 @@ compare        ``TextAnalysis`` of the compared text or checkpoint, or None
 difference     the head map shows compare − current instead of the current text's metric
 link_pairs     ``LinkPairsRun`` (file and ``LinkAccuracy``) of opened link pairs, or None
 shortcuts      ``viewer.reports.shortcuts.ShortcutReport`` over the text set, or None
+insertions     {word: ``viewer.reports.insertion.InsertionReport``} for the report's top words
 word           the word selected in the shortcut report (filters the text-set list), or None
 notes          free text saved with the session
 =============  ==========================================================================
@@ -68,7 +69,7 @@ METRICS: dict[str, tuple[str, str, str]] = {
 FIELDS = (
     "model", "text", "item", "analysis", "evidence", "layer", "head", "source", "target",
     "metric", "scope", "textset", "mistakes_only", "compare_target", "compare", "difference",
-    "link_pairs", "shortcuts", "word", "notes",
+    "link_pairs", "shortcuts", "insertions", "word", "notes",
 )
 
 
@@ -102,7 +103,8 @@ class Selection:
             "layer": 0, "head": 0, "source": None, "target": None, "metric": "entropy",
             "scope": "text", "textset": None, "mistakes_only": False, "compare_target": None,
             "compare": None,
-            "difference": False, "link_pairs": None, "shortcuts": None, "word": None,
+            "difference": False, "link_pairs": None, "shortcuts": None, "insertions": None,
+            "word": None,
             "notes": "",
         }
 
@@ -156,7 +158,7 @@ class Selection:
         self.set_compare(None)
         self._set("textset", None)
         self._set("item", None)
-        self._set("shortcuts", None)
+        self.set_shortcuts(None)
         self._set("link_pairs", None)
         self._set("model", info)
         self._clamp_head()
@@ -237,7 +239,7 @@ class Selection:
         """A new text set (or none): what belonged to the old one goes (report, filters, row)."""
         if same(self._values["textset"], result):
             return
-        self._set("shortcuts", None)
+        self.set_shortcuts(None)
         self._set("word", None)
         self._set("item", None)
         if result is None:
@@ -271,7 +273,14 @@ class Selection:
         self._set("link_pairs", result)
 
     def set_shortcuts(self, result: Any) -> None:
+        """A new shortcut report; insertion results of the old one go with it."""
+        if not same(self._values["shortcuts"], result):
+            self._set("insertions", None)
         self._set("shortcuts", result)
+
+    def set_insertions(self, results: Any) -> None:
+        """Insertion tests of the report's top words: {word: InsertionReport}, or None."""
+        self._set("insertions", None if results is None else dict(results))
 
     def select_word(self, word: str | None) -> None:
         self._set("word", word or None)

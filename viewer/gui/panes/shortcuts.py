@@ -25,15 +25,33 @@ from PySide6.QtWidgets import (
 from viewer.gui.panes.base import TableDock
 from viewer.session.state import Selection
 
-COLUMNS = ("word", "texts", "flip rate", "flip low", "mean drop", "focus")
+COLUMNS = ("word", "texts", "flip rate", "flip low", "mean drop", "focus",
+           "inserted → flips into")
 KEYS = ("token", "count", "flip_rate", "flip_low", "mean_drop", "focus")
+TOP_INSERTIONS = 5  # words of the report the insertion test runs for, strongest first
+
+
+def insertion_cell(report) -> tuple[str, str]:
+    """(cell text, tooltip) of one word's insertion test: the rate at the end of the texts,
+    with its 95% Wilson low end; the tooltip has every position."""
+    end = report.tally.entry("end")
+    if not end["tried"]:
+        return "no text to try", "every text is already predicted as " + report.target_label
+    text = f"{report.target_label} {end['flip_rate']:.0%} (low {end['flip_low']:.2f})"
+    lines = [f"inserting '{report.phrase}' into texts not predicted {report.target_label}:"]
+    for position in report.tally.positions:
+        e = report.tally.entry(position)
+        lines.append(f"  {position}: {e['flips']} of {e['tried']} flip "
+                     f"({e['flip_rate']:.0%}, 95% low {e['flip_low']:.2f}), "
+                     f"mean gain {e['mean_gain']:+.3f}")
+    return text, "\n".join(lines)
 
 
 class ShortcutPane(TableDock):
     title = "shortcut report"
 
     def __init__(self, state: Selection, search_action: QAction | None = None,
-                 parent: QWidget | None = None) -> None:
+                 insert_action: QAction | None = None, parent: QWidget | None = None) -> None:
         super().__init__(parent)
         self.state = state
         self.words: list[str] = []
@@ -44,6 +62,10 @@ class ShortcutPane(TableDock):
         if search_action is not None:
             button = QToolButton()
             button.setDefaultAction(search_action)
+            top.addWidget(button)
+        if insert_action is not None:
+            button = QToolButton()
+            button.setDefaultAction(insert_action)
             top.addWidget(button)
         self.phrases_box = QCheckBox("two-word phrases")
         self.phrases_box.setToolTip("also knock out every pair of adjacent words (about twice "
@@ -64,6 +86,7 @@ class ShortcutPane(TableDock):
         self.table.itemSelectionChanged.connect(self._word_chosen)
         layout.addWidget(self.table, 1)
         self.listen("shortcuts", lambda _v: self.refresh())
+        self.listen("insertions", lambda _v: self.refresh())
         self.listen("textset", lambda _v: self.refresh())
         self.listen("word", lambda _v: self._select_current())
         self.refresh()
@@ -92,17 +115,29 @@ class ShortcutPane(TableDock):
         self.summary.setText(f"{len(rows)} {what} seen in at least {MIN_TEXTS} of "
                              f"{report.texts} texts, ranked by flip low (Wilson 95%)")
         self.table.setRowCount(len(rows))
+        insertions = self.state.insertions or {}
         for r, row in enumerate(rows):
             for c, key in enumerate(KEYS):
                 value = row[key]
                 text = value if isinstance(value, str) else (
                     str(value) if isinstance(value, int) else f"{value:.3f}")
                 self.table.setItem(r, c, QTableWidgetItem(text))
+            result = insertions.get(row["token"])
+            cell = QTableWidgetItem("")
+            if result is not None:
+                text, tip = insertion_cell(result)
+                cell.setText(text)
+                cell.setToolTip(tip)
+            self.table.setItem(r, len(KEYS), cell)
             self.words.append(row["token"])
         self.table.resizeColumnsToContents()
         self.table.horizontalHeader().setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
         self.table.blockSignals(False)
         self._select_current()
+
+    def top_words(self, n: int = TOP_INSERTIONS) -> list[str]:
+        """The ``n`` strongest rows of the view shown (words or phrases)."""
+        return list(self.words[:n])
 
     def _ranking(self, report, phrases: bool) -> list[dict]:
         """The report's own ranking (``KnockoutTally.ranking``), computed once per report."""
