@@ -120,7 +120,17 @@ def main(argv: list[str] | None = None) -> int:
     window.resizeDocks([window.shortcut_dock], [260], Qt.Orientation.Vertical)
     shoot(window, args.out, "window-demo.png")
 
-    # 2. the text set, mistakes only, one mistake selected
+    # 2. the insertion tests of the report's top words and the fixation plot
+    window.run_insertions()
+    wait(lambda: s.insertions is not None, what="insertion tests")
+    shoot(window, args.out, "window-insertion.png")
+    s.select_word("portal")
+    window.fixation_dock.raise_()
+    window.resizeDocks([window.fixation_dock], [330], Qt.Orientation.Vertical)
+    shoot(window, args.out, "window-fixation.png")
+    window.resizeDocks([window.fixation_dock], [260], Qt.Orientation.Vertical)
+
+    # 3. the text set, mistakes only, one mistake selected
     window.textset_dock.raise_()
     s.select_word(None)
     s.set_mistakes_only(True)
@@ -137,7 +147,7 @@ def main(argv: list[str] | None = None) -> int:
         wait(lambda: s.link_pairs is not None, what="link pairs")
     shoot(window, args.out, "window-textset.png")
 
-    # 3. compare: the demo message against itself without the footer
+    # 4. compare: the demo message against itself without the footer
     window.links.view_box.setCurrentIndex(0)
     window.resizeDocks([window.textset_dock], [170], Qt.Orientation.Vertical)
     s.set_mistakes_only(False)
@@ -150,7 +160,7 @@ def main(argv: list[str] | None = None) -> int:
     s.select_head(0, 1)
     shoot(window, args.out, "window-compare.png")
 
-    # 4. the check badge's per-layer dialog
+    # 5. the check badge's per-layer dialog
     window.badge.open_details()
     settle(window)
     path = args.out / "check-dialog.png"

@@ -55,8 +55,8 @@ def test_labels_name_the_strongest_and_most_attended_words_and_are_painted():
 def test_labelled_words_rule_and_hit_testing():
     x = np.array([0.0, 0.5, 0.1, 0.2])
     y = np.array([0.9, 0.0, 0.5, 0.1])
-    assert labelled_words(x, y, k=2) == (0, 1)
-    assert labelled_words(x, y, k=3) == (0, 2, 1)
+    assert labelled_words(x, y, k=2)[:2] == (0, 1)
+    assert labelled_words(x, y, k=3) == (0, 2, 1, 3)  # then the rest, by effect
     fig = Figure(figsize=(5, 4), dpi=100)
     arts = fixation_into(fig, ["a", "b", "c", "d"], x, y, [3, 4, 5, 6], highlight="c")
     FigureCanvasAgg(fig).draw()
@@ -64,3 +64,20 @@ def test_labelled_words_rule_and_hit_testing():
     assert point_at(arts, px, py) == 2
     assert point_at(arts, px + 200, py + 200) is None
     assert arts.highlight is not None
+
+
+def test_labels_do_not_overlap():
+    # twenty words piled on one spot: only one of them can carry a readable label there
+    words = [f"clustered{i}" for i in range(20)] + ["alone"]
+    x = np.r_[np.full(20, 0.1) + np.arange(20) * 1e-5, 0.9]
+    y = np.r_[np.full(20, 0.2), 0.8]
+    fig = Figure(figsize=(6, 4), dpi=100)
+    arts = fixation_into(fig, words, x, y, [5] * 21)
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    boxes = [t.get_window_extent(renderer) for t in arts.labels]
+    for i, a in enumerate(boxes):
+        for b in boxes[i + 1:]:
+            assert not a.overlaps(b)
+    assert "alone" in [t.get_text() for t in arts.labels]

@@ -22,7 +22,7 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
 from viewer.figures import style
-from viewer.figures.layout import Box, InchLayout, line_height_in
+from viewer.figures.layout import Box, InchLayout, line_height_in, text_width_in
 
 X_UNITS = "summary-token attention share (last layer)"
 Y_UNITS = "knockout: mean drop in p(predicted)"
@@ -41,7 +41,8 @@ class FixationArtists:
 
 
 def labelled_words(x: np.ndarray, y: np.ndarray, k: int = LABELS) -> tuple[int, ...]:
-    """The words that get a name: the ⌈k/2⌉ largest effects, then the most attended others."""
+    """Label candidates in order: the ⌈k/2⌉ largest effects, then the most attended others,
+    then the rest by effect (``fixation_into`` skips candidates whose label would overlap)."""
     n = len(x)
     by_effect = [int(i) for i in np.lexsort((np.arange(n), -np.asarray(y)))]
     by_focus = [int(i) for i in np.lexsort((np.arange(n), -np.asarray(x)))]
@@ -51,7 +52,33 @@ def labelled_words(x: np.ndarray, y: np.ndarray, k: int = LABELS) -> tuple[int, 
             break
         if i not in chosen:
             chosen.append(i)
-    return tuple(chosen)
+    return tuple(chosen) + tuple(i for i in by_effect if i not in chosen)
+
+
+def _free_labels(candidates: Sequence[int], words: Sequence[str], x: np.ndarray, y: np.ndarray,
+                 box: Box, limits: tuple[float, float, float, float], k: int) -> tuple[int, ...]:
+    """Up to ``k`` candidates whose labels, estimated at the axes' size in inches, do not
+    overlap each other and stay inside the axes' width."""
+    left, bottom, width, height = box
+    x0, x1, y0, y1 = limits
+    sx = width / max(x1 - x0, 1e-12)
+    sy = height / max(y1 - y0, 1e-12)
+    px, py = (x - x0) * sx, (y - y0) * sy  # point positions in inches inside the axes
+    h = line_height_in(style.FONT_SIZE)
+    placed: list[tuple[float, float, float, float]] = []
+    keep: list[int] = []
+    for i in candidates:
+        if len(keep) >= k:
+            break
+        w = text_width_in(len(style.token_label(words[i])))
+        a = (px[i] + 0.05, py[i] + 0.04, px[i] + 0.05 + w, py[i] + 0.04 + h)
+        if a[2] > width + 0.2:
+            continue
+        if any(a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3] for b in placed):
+            continue
+        keep.append(i)
+        placed.append(a)
+    return tuple(keep)
 
 
 def fixation_into(fig: Figure, words: Sequence[str], focus: np.ndarray, effect: np.ndarray,
@@ -74,6 +101,7 @@ def fixation_into(fig: Figure, words: Sequence[str], focus: np.ndarray, effect: 
                                                                         0.1))}
 
     fig.set_layout_engine(InchLayout(place))
+    width_in, height_in = fig.get_size_inches()
     sizes = 14.0 + 46.0 * np.sqrt(n / max(float(n.max()), 1.0)) if n.size else n
     points = ax.scatter(x, y, s=sizes, color=style.ACCENT, alpha=0.55, linewidths=0, zorder=2)
     if x.size:
@@ -89,7 +117,9 @@ def fixation_into(fig: Figure, words: Sequence[str], focus: np.ndarray, effect: 
                 va="top", fontsize=style.FONT_SIZE - 0.5, color=style.MUTED)
         ax.text(0.99, 0.01, "attended but harmless", transform=ax.transAxes, ha="right",
                 va="bottom", fontsize=style.FONT_SIZE - 0.5, color=style.MUTED)
-    chosen = labelled_words(x, y)
+    limits = (*ax.get_xlim(), *ax.get_ylim())
+    chosen = _free_labels(labelled_words(x, y), words, x, y, place(width_in, height_in)[ax], limits,
+                          LABELS)
     labels = [ax.annotate(style.token_label(words[i]), (x[i], y[i]), xytext=(4, 3),
                           textcoords="offset points", fontsize=style.FONT_SIZE,
                           color="#1d2b36", zorder=3)
