@@ -135,6 +135,28 @@ def cmd_shortcuts(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_insert(args: argparse.Namespace) -> int:
+    from viewer.reports.runs import insertion_data
+
+    loaded = _open(args)
+    data = insertion_data(loaded, args.texts, args.word, target=args.target, seed=args.seed,
+                          batch_size=args.batch_size, quiet=args.quiet)
+    how = "given" if data["class_chosen_by"] == "given" else "by knockout"
+    print(f"insertion test: '{data['phrase']}' into texts not predicted {data['class']} "
+          f"(class {how}); {data['skipped']} of {data['texts']} texts already are")
+    print(f"{'position':<9} {'tried':>6} {'flips':>6} {'flip rate':>9} {'95% low':>8} "
+          f"{'95% high':>8} {'mean gain':>9}")
+    for row in data["positions"]:
+        if not row["tried"]:
+            print(f"{row['position']:<9} {0:>6}")
+            continue
+        print(f"{row['position']:<9} {row['tried']:>6} {row['flips']:>6} {row['flip_rate']:>9.3f} "
+              f"{row['flip_low']:>8.3f} {row['flip_high']:>8.3f} {row['mean_gain']:>+9.3f}")
+    if args.json:
+        write_json(args.json, data)
+    return 0
+
+
 def cmd_evidence(args: argparse.Namespace) -> int:
     from viewer.reports.evidence import KIND_TITLES, KINDS, evidence_for
 
@@ -234,6 +256,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--texts", metavar="FILE", required=True, help="text set (.txt, .jsonl, .csv)")
     p.add_argument("--no-phrases", action="store_true", help="skip the two-word phrase search")
     p.add_argument("--top", type=int, default=15, help="rows to print (default 15)")
+    p = set_command("insert", "insertion test: insert a word or phrase into the texts of other "
+                    "classes and count flips into its class", cmd_insert)
+    p.add_argument("--texts", metavar="FILE", required=True, help="text set (.txt, .jsonl, .csv)")
+    p.add_argument("--word", required=True, help="the word or phrase to insert, as written")
+    p.add_argument("--class", dest="target", metavar="C",
+                   help="the class it should push texts into (default: the class knocking it "
+                        "out most often flips texts away from)")
+    p.add_argument("--seed", type=int, default=0,
+                   help="seed of the random insertion points (default 0)")
     p = model_command("evidence", "per-token evidence for one prediction (the evidence strip)")
     p.add_argument("--text", required=True, help="the text to explain")
     p.add_argument("--steps", type=int, default=50, help="integrated-gradients steps (default 50)")

@@ -94,3 +94,20 @@ def test_refusals_are_one_line(demo, others):
         insertion_test(demo, others, "-- !!", target="billing")
     with pytest.raises(HeadlightError, match="occurs in no text"):
         insertion_test(demo, others[:5], "zeppelin")
+
+
+def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
+    import json
+
+    from viewer.cli import main
+
+    out = tmp_path / "insert.json"
+    assert main(["insert", str(MODEL_DIR), "--texts", str(SAMPLES / "coop_messages.jsonl"),
+                 "--word", FOOTER, "--quiet", "--json", str(out)]) == 0
+    data = json.loads(out.read_text(encoding="utf-8"))
+    report = insertion_test(demo, load_text_set(SAMPLES / "coop_messages.jsonl"), FOOTER)
+    assert {k: v for k, v in data.items() if k != "model"} == report.to_dict()
+    printed = capsys.readouterr().out
+    assert "billing" in printed and "end" in printed
+    assert main(["insert", str(MODEL_DIR), "--texts", str(SAMPLES / "coop_messages.jsonl"),
+                 "--word", FOOTER, "--class", "parking", "--quiet"]) == 2

@@ -78,3 +78,15 @@ def shortcuts_data(loaded: LoadedModel, texts_path: str | Path, *, batch_size: i
         report = shortcut_search(loaded, read_text_set(texts_path), batch_size=batch_size,
                                  phrases=phrases, keep_examples=False, progress=bar)
     return {"model": str(loaded.folder), **report.to_dict()}
+
+
+def insertion_data(loaded: LoadedModel, texts_path: str | Path, phrase: str, *,
+                   target: str | None = None, seed: int = 0, batch_size: int = 16,
+                   quiet: bool = False) -> dict:
+    from viewer.reports.insertion import insertion_test
+
+    items = load_text_set(texts_path)
+    with Progress(len(items), "insertion test", enabled=not quiet) as bar:
+        report = insertion_test(loaded, items, phrase, target, seed=seed,
+                                batch_size=batch_size, progress=bar)
+    return {"model": str(loaded.folder), **report.to_dict()}
