@@ -155,3 +155,28 @@ def test_a_second_text_set_replaces_the_first_ones_report_and_filter(qtbot, wind
     assert window.state.shortcuts is None and window.state.word is None
     assert window.shortcut_pane.table.rowCount() == 0
     assert window.textset_pane.rows_shown == [0, 1]
+
+
+@pytest.mark.parametrize("metric", ["entropy", "distance", "special", "previous", "same",
+                                    "next", "confidence"])
+def test_the_set_scope_head_map_equals_headlight_heads(qtbot, window, textset_file, tmp_path,
+                                                         metric):
+    """Reference: ``headlight heads --json`` on the same folder and file."""
+    import numpy as np
+
+    from tests.gui.conftest import settle
+    from viewer.cli import main
+
+    out = tmp_path / "heads.json"
+    assert main(["heads", window.state.model.folder, "--texts", str(textset_file),
+                 "--skip-importance", "--quiet", "--json", str(out)]) == 0
+    expected = np.array(json.loads(out.read_text(encoding="utf-8"))[metric], dtype=float)
+    open_set(qtbot, window, textset_file)
+    pane = window.head_map
+    pane.metric_box.setCurrentIndex(pane.metric_box.findData(metric))
+    pane.scope_box.setCurrentIndex(1)
+    assert window.state.scope == "set"
+    settle(qtbot, pane)
+    assert "over the text set" in pane.title_label.text()
+    np.testing.assert_allclose(np.ma.getdata(pane.displayed_values()), expected, rtol=1e-12,
+                               atol=1e-15, equal_nan=True)
