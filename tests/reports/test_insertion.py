@@ -111,3 +111,14 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
     assert "billing" in printed and "end" in printed
     assert main(["insert", str(MODEL_DIR), "--texts", str(SAMPLES / "coop_messages.jsonl"),
                  "--word", FOOTER, "--class", "parking", "--quiet"]) == 2
+
+
+def test_surface_form_is_how_the_texts_write_it():
+    from viewer.reports.insertion import phrase_keys, surface_form
+    from viewer.reports.textsets import TextItem
+
+    items = [TextItem("fix my bike [via portal]", None, 1), TextItem("thanks [via portal]", None, 2),
+             TextItem("sent via portal, thanks", None, 3)]
+    assert surface_form(items, phrase_keys("via portal")) == "[via portal]"
+    assert surface_form(items, phrase_keys("thanks")) == "thanks"
+    assert surface_form(items, phrase_keys("zeppelin")) is None

@@ -67,6 +67,23 @@ def phrase_occurrences(text: str, keys: Sequence[str]) -> list[tuple[int, int]]:
     return spans
 
 
+def surface_form(items: Iterable[TextItem], keys: Sequence[str]) -> str | None:
+    """How the texts most often write the word or phrase with these keys, as whitespace words
+    ("via portal" -> "[via portal]"): what knocking it out deletes, and so what to insert.
+
+    The most frequent exact form wins, ties by first occurrence; None when no text has it.
+    """
+    from collections import Counter
+
+    forms: Counter[str] = Counter()
+    n = len(keys)
+    for item in items:
+        spans = phrase_occurrences(item.text, keys)
+        for k in range(0, len(spans), n):
+            forms[" ".join(item.text[a:b] for a, b in spans[k:k + n])] += 1
+    return forms.most_common(1)[0][0] if forms else None
+
+
 def resolve_class(loaded: LoadedModel, name: str) -> int:
     """The index of class ``name`` (a label of the model, or its index)."""
     labels = list(loaded.labels)

@@ -282,11 +282,13 @@ def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult,
 def run_insertions(ctx: JobContext, slot: str, textset: TextSetResult, report: Any,
                    words: tuple[str, ...]) -> tuple[Any, dict[str, Any]]:
     """The insertion test (``viewer.reports.insertion``) for each of ``words`` over the open
-    text set, each into the class knocking it out flips texts away from; a word that points to
-    no class is left out. Returns (``report``, {word: InsertionReport}): the shortcut report
-    the words came from, so that results of an older search are not shown beside a newer one."""
+    text set, into the class knocking it out flips texts away from; a phrase is inserted as
+    the texts most often write it (``surface_form``: "via portal" as "[via portal]"). A word
+    that points to no class is left out. Returns (``report``, {word: InsertionReport}): the
+    shortcut report the words came from, so that results of an older search are not shown
+    beside a newer one."""
     from viewer.errors import HeadlightError
-    from viewer.reports.insertion import insertion_test
+    from viewer.reports.insertion import insertion_test, phrase_keys, surface_form
     from viewer.reports.textsets import TextItem
 
     loaded = ctx.model(slot)
@@ -295,8 +297,10 @@ def run_insertions(ctx: JobContext, slot: str, textset: TextSetResult, report: A
     for k, word in enumerate(words):
         ctx.check()
         ctx.progress(k, len(words), f"insertion test: '{word}' ({k + 1} of {len(words)})")
+        keys = phrase_keys(word)
+        phrase = (surface_form(items, keys) or word) if len(keys) > 1 else word
         try:
-            results[word] = insertion_test(loaded, items, word,
+            results[word] = insertion_test(loaded, items, phrase,
                                            progress=lambda _n: ctx.check())
         except HeadlightError:
             continue  # e.g. knocking it out flips nothing: it points to no class
