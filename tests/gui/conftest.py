@@ -67,15 +67,21 @@ def run_and_wait(qtbot, window, text: str = TEXT, *, evidence: bool = True):
     return window.state.analysis
 
 
-@pytest.fixture
-def window(qtbot, tmp_path, tiny_dir):
-    """A window on the tiny model, canvases attached, model open, nothing run yet."""
-    w = make_window(qtbot, tmp_path)
+def open_window(qtbot, tmp_path: Path, model: Path, name: str = "w"):
+    """A window on ``model``, canvases attached, model open, nothing run yet."""
+    w = make_window(qtbot, tmp_path, name)
     w.evidence_action.setChecked(False)  # evidence only where a test asks for it (speed)
-    w.start(model=str(tiny_dir), restore_last=False)
+    w.start(model=str(model), restore_last=False)
     wait_ready(qtbot, w)
     qtbot.waitUntil(lambda: w.state.model is not None, timeout=WAIT_MS)
     wait_idle(qtbot, w)
+    return w
+
+
+@pytest.fixture
+def window(qtbot, tmp_path, tiny_dir):
+    """A window on the tiny model, canvases attached, model open, nothing run yet."""
+    w = open_window(qtbot, tmp_path, tiny_dir)
     yield w
     w.close()
 

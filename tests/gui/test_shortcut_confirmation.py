@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from tests.gui.conftest import WAIT_MS, make_window, settle, wait_idle, wait_ready
+from tests.gui.conftest import WAIT_MS, open_window, settle
 
 SAMPLES = Path(__file__).resolve().parents[2] / "sample_sentences"
 
@@ -21,12 +21,7 @@ SAMPLES = Path(__file__).resolve().parents[2] / "sample_sentences"
 def demo_window(qtbot, tmp_path):
     from viewer.demo import MODEL_DIR
 
-    w = make_window(qtbot, tmp_path, "demo")
-    w.evidence_action.setChecked(False)
-    w.start(model=str(MODEL_DIR), restore_last=False)
-    wait_ready(qtbot, w)
-    qtbot.waitUntil(lambda: w.state.model is not None, timeout=WAIT_MS)
-    wait_idle(qtbot, w)
+    w = open_window(qtbot, tmp_path, MODEL_DIR, "demo")
     yield w
     w.close()
 
