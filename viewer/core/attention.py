@@ -75,8 +75,16 @@ class CheckResult:
     texts: int
 
     @property
+    def max_context_error(self) -> float:
+        """Largest error of probs @ V against the captured head outputs."""
+        worst = float(self.context_errors.max()) if self.context_errors.size else 0.0
+        return worst if np.isfinite(worst) else float("inf")
+
+    @property
     def passed(self) -> bool:
-        return bool(self.max_abs_error <= self.tolerance)
+        """Both the probabilities and the head outputs agree within the tolerance."""
+        return bool(self.max_abs_error <= self.tolerance
+                    and self.max_context_error <= self.tolerance)
 
     @property
     def layer_errors(self) -> np.ndarray:
@@ -103,10 +111,11 @@ class CheckResult:
                     "layer": i,
                     "max_abs_error": float(e),
                     "heads": [float(x) for x in self.head_errors[i]],
+                    "max_context_error": float(self.context_errors[i].max()),
                 }
                 for i, e in enumerate(self.layer_errors)
             ],
-            "max_context_error": float(self.context_errors.max()),
+            "max_context_error": self.max_context_error,
         }
 
 

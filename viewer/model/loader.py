@@ -1,19 +1,15 @@
-"""Opening a local checkpoint folder, safely and offline, and recording texts through it.
+"""Opening a checked checkpoint folder, offline, and recording texts through it.
 
-``open_model(folder)`` validates the folder before any weights are deserialised: the config must
-be valid JSON for a supported family and must not ask for remote code; weights must be
-safetensors (pickle only on explicit opt-in, then loaded with ``weights_only=True``) whose
-headers and sizes are intact; a fast tokenizer (for character offsets) must be present. The model
-is loaded with the eager attention implementation so that probabilities exist, from local files
-only: nothing is ever looked up on a model hub.
+``open_model(folder)`` first has ``viewer.model.folders`` check the folder without deserialising
+anything (config, remote code, weight files, safetensors headers, pickle opt-in, tokenizer,
+adapter folders). The model is then loaded with the eager attention implementation so that
+probabilities exist, from local files only: nothing is ever looked up on a model hub.
 """
 
 from __future__ import annotations
 
-import json
 import os
 import pickle
-import struct
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -49,6 +45,7 @@ from viewer.model.families import (  # noqa: E402
     family_for,
     layer_scale,
 )
+from viewer.model.folders import ModelFolder, existing_folder, model_folder  # noqa: E402
 from viewer.model.recorder import AttentionHooks, Capture  # noqa: E402
 
 transformers.logging.set_verbosity_error()
@@ -61,101 +58,6 @@ HEAD_KINDS = {
     "ForCausalLM": ("causal-lm", AutoModelForCausalLM),
     "LMHeadModel": ("causal-lm", AutoModelForCausalLM),
 }
-
-TOKENIZER_FILES = ("tokenizer.json", "vocab.txt", "vocab.json", "tokenizer.model", "spiece.model")
-
-
-# -- folder validation (before anything is deserialised) ------------------------------------
-
-
-def _read_config(folder: Path) -> dict:
-    path = folder / "config.json"
-    if not path.is_file():
-        raise HeadlightError(f"{folder} has no config.json; is it a Hugging Face model folder?")
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise HeadlightError(f"config.json in {folder} is not valid JSON: {exc}") from None
-    if not isinstance(data, dict):
-        raise HeadlightError(f"config.json in {folder} is not a JSON object")
-    if data.get("auto_map") or data.get("trust_remote_code"):
-        raise HeadlightError(
-            f"config.json in {folder} asks for remote code (auto_map); Headlight never runs code "
-            "from a model folder"
-        )
-    if "model_type" not in data:
-        raise HeadlightError(f"config.json in {folder} has no model_type")
-    return data
-
-
-def check_safetensors(path: Path) -> dict:
-    """Validate a safetensors file's header and size without loading tensors.
-
-    Format: 8-byte little-endian header length N, N bytes of JSON, then the tensor bytes; every
-    tensor's ``data_offsets`` must lie inside the byte buffer, and the buffer must end exactly
-    where the last tensor does (a truncated download fails here).
-    """
-    size = path.stat().st_size
-    try:
-        with path.open("rb") as fh:
-            head = fh.read(8)
-            if len(head) < 8:
-                raise ValueError("file shorter than its 8-byte header length")
-            (n,) = struct.unpack("<Q", head)
-            if n > size - 8 or n > 100_000_000:
-                raise ValueError("header length points past the end of the file")
-            header = json.loads(fh.read(n).decode("utf-8"))
-    except (ValueError, UnicodeDecodeError) as exc:
-        raise HeadlightError(f"{path.name} is not a valid safetensors file: {exc}") from None
-    if not isinstance(header, dict):
-        raise HeadlightError(f"{path.name} is not a valid safetensors file: header not an object")
-    buffer = size - 8 - n
-    end = 0
-    for name, info in header.items():
-        if name == "__metadata__":
-            continue
-        try:
-            start, stop = info["data_offsets"]
-        except (TypeError, KeyError, ValueError):
-            raise HeadlightError(f"{path.name}: tensor {name!r} has no data offsets") from None
-        if not (0 <= start <= stop <= buffer):
-            raise HeadlightError(
-                f"{path.name} is truncated or corrupt: tensor {name!r} lies past the end of the file"
-            )
-        end = max(end, stop)
-    if end != buffer:
-        raise HeadlightError(
-            f"{path.name} is truncated or corrupt: {buffer} data bytes but tensors cover {end}"
-        )
-    return header
-
-
-def _weight_files(folder: Path, allow_pickle: bool) -> tuple[list[Path], bool]:
-    """The weight files to load and whether they are safetensors."""
-    single = folder / "model.safetensors"
-    index = folder / "model.safetensors.index.json"
-    if single.is_file():
-        return [single], True
-    if index.is_file():
-        try:
-            shards = sorted(set(json.loads(index.read_text(encoding="utf-8"))["weight_map"].values()))
-        except (ValueError, KeyError, TypeError):
-            raise HeadlightError(f"{index.name} in {folder} is not a valid shard index") from None
-        paths = [folder / s for s in shards]
-        missing = [p.name for p in paths if not p.is_file()]
-        if missing:
-            raise HeadlightError(f"weight shard {missing[0]} listed in {index.name} is missing")
-        return paths, True
-    pickles = sorted(folder.glob("pytorch_model*.bin"))
-    if pickles:
-        if not allow_pickle:
-            raise HeadlightError(
-                f"{folder} has only pickle weights ({pickles[0].name}); pickle files can run code. "
-                "Convert to safetensors, or pass --allow-pickle to load them with weights_only=True"
-            )
-        return pickles, False
-    raise HeadlightError(f"{folder} has no weights (model.safetensors or pytorch_model.bin)")
-
 
 def _head_kind(config: dict) -> tuple[str, Any, str | None]:
     archs = config.get("architectures") or []
@@ -484,22 +386,14 @@ def _layer_count(config: Any) -> int:
 
 def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> LoadedModel:
     """Open a local Hugging Face-format folder for recording (offline, eager attention)."""
-    path = Path(folder).expanduser()
-    if not path.exists():
-        hint = ""
-        if "/" in str(folder) and not str(folder).startswith((".", "/", "~")):
-            hint = " (Headlight opens local folders only and never downloads models)"
-        raise HeadlightError(f"model folder not found: {folder}{hint}")
-    if not path.is_dir():
-        raise HeadlightError(f"{folder} is a file, not a model folder")
-    raw = _read_config(path)
+    checked = model_folder(existing_folder(folder), allow_pickle)
+    return _open_checked(checked, allow_pickle)
+
+
+def _open_checked(checked: ModelFolder, allow_pickle: bool) -> LoadedModel:
+    """Load a folder that ``viewer.model.folders`` has checked."""
+    path, raw = checked.path, checked.config
     family = family_for(raw.get("model_type"))
-    weights, safe = _weight_files(path, allow_pickle)
-    if safe:
-        for w in weights:
-            check_safetensors(w)
-    if not any((path / f).is_file() for f in TOKENIZER_FILES):
-        raise HeadlightError(f"{path} has no tokenizer (tokenizer.json or vocab files)")
     head_kind, auto_cls, note = _head_kind(raw)
     try:
         config = AutoConfig.from_pretrained(path, local_files_only=True, trust_remote_code=False)
@@ -522,7 +416,7 @@ def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> Load
             attn_implementation="eager",
             local_files_only=True,
             trust_remote_code=False,
-            use_safetensors=safe,
+            use_safetensors=checked.safetensors,
             weights_only=True,
             output_loading_info=True,
         )
@@ -545,7 +439,7 @@ def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> Load
     model.eval()
     notes = (note,) if note else ()
     loaded = LoadedModel(path, model, tokenizer, family, geometry, head_kind, notes)
-    loaded.weight_files = tuple(weights)
+    loaded.weight_files = checked.weights
     return loaded
 
 
