@@ -8,6 +8,7 @@ probabilities exist, from local files only: nothing is ever looked up on a model
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import pickle
 from collections.abc import Iterator, Sequence
@@ -36,10 +37,13 @@ from transformers import (  # noqa: E402
 
 from viewer.core.recording import Recording  # noqa: E402
 from viewer.core.rotary import apply_rotary  # noqa: E402
+from viewer.core.terms import ScoreTerms, layer_masks  # noqa: E402
 from viewer.errors import HeadlightError  # noqa: E402
 from viewer.model.families import (  # noqa: E402
     Family,
     Geometry,
+    Window,
+    _deberta_terms,
     _get,
     check_supported,
     family_for,
@@ -71,10 +75,10 @@ def _head_kind(config: dict) -> tuple[str, Any, str | None]:
     return "encoder", AutoModel, note
 
 
-def _max_tokens(config: Any, tokenizer: Any) -> int:
+def _max_tokens(config: Any, tokenizer: Any, family: Family) -> int:
     positions = _get(config, "max_position_embeddings", "n_positions", default=512)
-    if getattr(config, "model_type", "") == "roberta":
-        positions -= 2  # RoBERTa's position ids start after the padding index (padding_idx + 1)
+    # RoBERTa-style position ids start after the padding index (padding_idx + 1)
+    positions -= family.position_offset
     limit = getattr(tokenizer, "model_max_length", None)
     if isinstance(limit, int) and 0 < limit < positions:
         positions = limit
@@ -100,6 +104,16 @@ class Attention:
     probs: np.ndarray  # (L, H, T, T) the model's own attention probabilities
     target: np.ndarray | None  # (C,) target probabilities, None without a prediction head
     truncated_from: int | None
+    causal: bool = False
+    window: np.ndarray | None = None  # (L, 2) keys (before, after) each layer sees; -1 = all
+
+    def key_masks(self) -> np.ndarray | None:
+        """(L, T, T) bool keys each query row sees, or None when every row sees every key.
+
+        The same definition as ``Recording.key_masks`` (``viewer.core.terms``); pass it to
+        ``HeadStats.add(..., visible=...)`` so entropy is normalised by the visible keys.
+        """
+        return layer_masks(len(self.token_ids), self.causal, self.window, self.probs.shape[0])
 
 
 class LoadedModel:
@@ -119,10 +133,15 @@ class LoadedModel:
         self.weight_files: tuple[Path, ...] = ()
         self.config = model.config
         self.n_layers = _layer_count(self.config)
-        self.max_tokens = _max_tokens(self.config, tokenizer)
+        self.max_tokens = _max_tokens(self.config, tokenizer, family)
         self.scales = np.array(
             [layer_scale(family, self.config, i, geometry) for i in range(self.n_layers)]
         )
+        self.windows = _window_array(family.windows(self.config, self.n_layers), self.n_layers)
+        cap = float(family.softcap(self.config))
+        self.softcaps = np.full(self.n_layers, cap) if cap > 0 else None
+        # DeBERTa: which of the position terms the model adds (shared projections compute both)
+        self.position_terms = frozenset(_position_terms(family, self.config))
         id2label = getattr(self.config, "id2label", None) or {}
         if head_kind == "classifier":
             n = int(getattr(self.config, "num_labels", len(id2label)))
@@ -142,6 +161,10 @@ class LoadedModel:
                 tokenizer.pad_token = fallback
             if head_kind == "classifier" and getattr(self.config, "pad_token_id", None) is None:
                 self.max_batch = 1
+        if (family.causal and head_kind == "classifier"
+                and tokenizer.pad_token_id != getattr(self.config, "pad_token_id", None)):
+            # the classifier reads the last token that is not its pad id: pad with nothing else
+            self.max_batch = 1
 
     @property
     def n_heads(self) -> int:
@@ -271,6 +294,8 @@ class LoadedModel:
                     probs=probs[i, :, :, :n, :n].copy(),
                     target=None if targets is None else targets[i].copy(),
                     truncated_from=batch.truncated_from[i],
+                    causal=self.family.causal,
+                    window=self.windows,
                 )
 
     def model_inputs(self, batch: Batch) -> dict:
@@ -322,11 +347,8 @@ class LoadedModel:
         k = torch.stack(cap.k, dim=1).float().numpy()  # (B, L, G, T, d)
         v = torch.stack(cap.v, dim=1).float().numpy()  # (B, L, G, T, d)
         ctx = torch.stack(cap.context, dim=1).float().numpy()  # (B, L, H, T, d)
-        rot = None
-        if cap.rotary:
-            # The model's own tables are used for every layer; they are the same for all layers.
-            cos, sin = cap.rotary[0]
-            rot = (cos.float().numpy(), sin.float().numpy())  # (B or 1, T, d) each
+        rotary = self._rotary_tables(cap)
+        terms = self._batch_terms(cap)
         logits = getattr(out, "logits", None)
         logits = None if logits is None else logits.detach().float().numpy()
         enc = batch.encoding
@@ -336,10 +358,13 @@ class LoadedModel:
         recs = []
         for i, n in enumerate(batch.lengths):
             qi, ki = q[i, :, :, :n], k[i, :, :, :n]
-            if rot is not None:
-                row = min(i, rot[0].shape[0] - 1)  # tables may be shared across the batch
-                cos_i, sin_i = rot[0][row, :n], rot[1][row, :n]
-                qi, ki = apply_rotary(qi, cos_i, sin_i), apply_rotary(ki, cos_i, sin_i)
+            if rotary:
+                qi, ki = qi.copy(), ki.copy()
+                for layers, (cos, sin) in rotary:
+                    row = min(i, cos.shape[0] - 1)  # tables may be shared across the batch
+                    cos_i, sin_i = cos[row, :n], sin[row, :n]
+                    qi[layers] = apply_rotary(qi[layers], cos_i, sin_i)
+                    ki[layers] = apply_rotary(ki[layers], cos_i, sin_i)
             if self.head_kind == "classifier":
                 lg = logits[i].copy()
             elif logits is not None and logits.ndim == 3:
@@ -373,8 +398,72 @@ class LoadedModel:
                 model_name=self.name,
                 truncated_from=batch.truncated_from[i],
                 notes=tuple(notes),
+                terms=_text_terms(terms, n),
             ))
         return recs
+
+    def _rotary_tables(self, cap: Capture) -> list[tuple[list[int], tuple[np.ndarray, ...]]]:
+        """[(layers, (cos, sin))]: the model's own tables, layers sharing one table grouped.
+
+        ModernBERT and Gemma 3 use other bases in their local layers, so tables are per layer.
+        """
+        if not cap.rotary:
+            return []
+        if len(cap.rotary) != self.n_layers:
+            raise RuntimeError(f"captured {len(cap.rotary)} rotary tables for {self.n_layers} layers")
+        groups: dict[int, tuple[list[int], tuple[np.ndarray, ...]]] = {}
+        for layer, (cos, sin) in enumerate(cap.rotary):
+            key = cos.data_ptr()
+            if key not in groups:
+                groups[key] = ([], (cos.float().numpy(), sin.float().numpy()))  # (B or 1, T, r)
+            groups[key][0].append(layer)
+        return list(groups.values())
+
+    def _batch_terms(self, cap: Capture) -> ScoreTerms:
+        """The score terms of the whole batch (relative indices still at the padded length)."""
+        pos_key = pos_query = bias = None
+        if "c2p" in self.position_terms:
+            pos_key = _stack_layers(cap.pos_key, self.n_layers, "position keys")
+        if "p2c" in self.position_terms:
+            pos_query = _stack_layers(cap.pos_query, self.n_layers, "position queries")
+        if cap.bias is not None:
+            table = cap.bias.float().numpy()  # (H, R), one table for every layer
+            bias = np.broadcast_to(table, (self.n_layers, *table.shape))
+        index = None
+        if (pos_key is not None or pos_query is not None or bias is not None):
+            if cap.rel_index is None:
+                raise RuntimeError(f"{self.family.name}: relative positions were not captured")
+            index = cap.rel_index.numpy().astype(np.int64)
+        return ScoreTerms(rel_index=index, pos_key=pos_key, pos_query=pos_query, bias=bias,
+                          softcap=self.softcaps, window=self.windows)
+
+
+def _stack_layers(parts: list[torch.Tensor], n_layers: int, what: str) -> np.ndarray:
+    if len(parts) != n_layers:
+        raise RuntimeError(f"captured {what} for {len(parts)} of {n_layers} layers")
+    return torch.stack(parts).float().numpy()  # (L, H, R, d)
+
+
+def _text_terms(terms: ScoreTerms, n: int) -> ScoreTerms:
+    """One text's terms: the relative indices cut to its n tokens, the tables shared."""
+    if terms.rel_index is None:
+        return terms
+    return dataclasses.replace(terms, rel_index=np.ascontiguousarray(terms.rel_index[:n, :n]))
+
+
+def _window_array(windows: list[Window], n_layers: int) -> np.ndarray | None:
+    """(L, 2) int64 (before, after) per layer, -1 for an unbounded side; None without windows."""
+    if len(windows) != n_layers:
+        raise HeadlightError(f"config.json lists {len(windows)} layer types for {n_layers} layers")
+    if all(w is None for w in windows):
+        return None
+    return np.array([(-1, -1) if w is None else w for w in windows], dtype=np.int64)
+
+
+def _position_terms(family: Family, config: Any) -> list[str]:
+    if family.relative != "disentangled" or not getattr(config, "relative_attention", False):
+        return []
+    return [t for t in _deberta_terms(config) if t in ("c2p", "p2c")]
 
 
 def _layer_count(config: Any) -> int:
@@ -414,6 +503,7 @@ def _open_checked(checked: ModelFolder, allow_pickle: bool) -> LoadedModel:
             path,
             config=config,
             attn_implementation="eager",
+            dtype=torch.float32,  # bfloat16/float16 weights are upcast: the check runs at 1e-5
             local_files_only=True,
             trust_remote_code=False,
             use_safetensors=checked.safetensors,
@@ -437,10 +527,16 @@ def _open_checked(checked: ModelFolder, allow_pickle: bool) -> LoadedModel:
             f"weights in {path} lack {len(missing)} parameter(s) the config needs, e.g. {missing[0]}"
         )
     model.eval()
-    notes = (note,) if note else ()
+    notes = tuple(n for n in (note, _upcast_note(checked)) if n)
     loaded = LoadedModel(path, model, tokenizer, family, geometry, head_kind, notes)
     loaded.weight_files = checked.weights
     return loaded
+
+
+def _upcast_note(checked: ModelFolder) -> str | None:
+    if checked.stored_dtype is None:
+        return None
+    return f"upcast from {checked.stored_dtype} to float32"
 
 
 def _first_line(exc: BaseException) -> str:
