@@ -39,6 +39,7 @@ from viewer.core.recording import Recording  # noqa: E402
 from viewer.core.rotary import apply_rotary  # noqa: E402
 from viewer.core.terms import ScoreTerms, layer_masks  # noqa: E402
 from viewer.errors import HeadlightError  # noqa: E402
+from viewer.model.adapters import describe, merge_adapter  # noqa: E402
 from viewer.model.families import (  # noqa: E402
     Family,
     Geometry,
@@ -49,7 +50,14 @@ from viewer.model.families import (  # noqa: E402
     family_for,
     layer_scale,
 )
-from viewer.model.folders import ModelFolder, existing_folder, model_folder  # noqa: E402
+from viewer.model.folders import (  # noqa: E402
+    AdapterFolder,
+    ModelFolder,
+    adapter_folder,
+    existing_folder,
+    is_adapter_folder,
+    model_folder,
+)
 from viewer.model.recorder import AttentionHooks, Capture  # noqa: E402
 
 transformers.logging.set_verbosity_error()
@@ -122,8 +130,9 @@ class LoadedModel:
     def __init__(self, folder: Path, model: Any, tokenizer: Any, family: Family,
                  geometry: Geometry, head_kind: str, notes: tuple[str, ...]):
         self.folder = folder
-        # A folder called just "model" says little: name it with its parent ("demo/model").
-        self.name = folder.name if folder.name != "model" else f"{folder.parent.name}/model"
+        # the model line: "folder", "base + adapter" for a merged adapter
+        self.name = _folder_name(folder)
+        self.base_folder: Path | None = None  # the base model folder of a merged adapter
         self.model = model
         self.tokenizer = tokenizer
         self.family = family
@@ -473,14 +482,26 @@ def _layer_count(config: Any) -> int:
     return int(n)
 
 
-def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> LoadedModel:
-    """Open a local Hugging Face-format folder for recording (offline, eager attention)."""
-    checked = model_folder(existing_folder(folder), allow_pickle)
-    return _open_checked(checked, allow_pickle)
+def open_model(folder: str | os.PathLike, *, base: str | os.PathLike | None = None,
+               allow_pickle: bool = False) -> LoadedModel:
+    """Open a local Hugging Face-format folder for recording (offline, eager attention).
+
+    A PEFT adapter folder (``adapter_config.json``) opens on its base model: ``base`` when
+    given, else the adapter's ``base_model_name_or_path`` when that is a local folder; without
+    either, ``viewer.model.folders.NeedsBaseModel`` is raised (a ``HeadlightError``).
+    """
+    path = existing_folder(folder)
+    if is_adapter_folder(path):
+        adapter = adapter_folder(path, base, allow_pickle)
+        return _open_checked(model_folder(adapter.base, allow_pickle), adapter)
+    if base is not None:
+        raise HeadlightError(f"{path} is a model folder, not an adapter; a base model folder "
+                             "applies to adapter folders only")
+    return _open_checked(model_folder(path, allow_pickle))
 
 
-def _open_checked(checked: ModelFolder, allow_pickle: bool) -> LoadedModel:
-    """Load a folder that ``viewer.model.folders`` has checked."""
+def _open_checked(checked: ModelFolder, adapter: AdapterFolder | None = None) -> LoadedModel:
+    """Load a folder that ``viewer.model.folders`` has checked (with an adapter merged in)."""
     path, raw = checked.path, checked.config
     family = family_for(raw.get("model_type"))
     head_kind, auto_cls, note = _head_kind(raw)
@@ -490,13 +511,15 @@ def _open_checked(checked: ModelFolder, allow_pickle: bool) -> LoadedModel:
         raise HeadlightError(f"config.json in {path} cannot be read: {_first_line(exc)}") from None
     check_supported(family, config)
     geometry = family.head_geometry(config)
+    tok_path = adapter.path if adapter is not None and adapter.has_tokenizer else path
     try:
-        tokenizer = AutoTokenizer.from_pretrained(path, local_files_only=True,
+        tokenizer = AutoTokenizer.from_pretrained(tok_path, local_files_only=True,
                                                   trust_remote_code=False)
     except (ValueError, OSError, TypeError, KeyError, AttributeError, RuntimeError) as exc:
-        raise HeadlightError(f"tokenizer in {path} cannot be loaded: {_first_line(exc)}") from None
+        raise HeadlightError(f"tokenizer in {tok_path} cannot be loaded: {_first_line(exc)}") \
+            from None
     if not getattr(tokenizer, "is_fast", False):
-        raise HeadlightError(f"tokenizer in {path} is not a fast tokenizer (needed for offsets)")
+        raise HeadlightError(f"tokenizer in {tok_path} is not a fast tokenizer (needed for offsets)")
     tokenizer.padding_side = "right"
     try:
         model, info = auto_cls.from_pretrained(
@@ -527,10 +550,24 @@ def _open_checked(checked: ModelFolder, allow_pickle: bool) -> LoadedModel:
             f"weights in {path} lack {len(missing)} parameter(s) the config needs, e.g. {missing[0]}"
         )
     model.eval()
-    notes = tuple(n for n in (note, _upcast_note(checked)) if n)
-    loaded = LoadedModel(path, model, tokenizer, family, geometry, head_kind, notes)
+    notes = [n for n in (note, _upcast_note(checked)) if n]
+    if adapter is not None:
+        model = merge_adapter(model, adapter)
+        notes.append(f"adapter {adapter.path.name} ({describe(adapter)}) merged into base "
+                     f"{_folder_name(path)}")
+    loaded = LoadedModel(adapter.path if adapter else path, model, tokenizer, family, geometry,
+                         head_kind, tuple(notes))
     loaded.weight_files = checked.weights
+    if adapter is not None:
+        loaded.name = f"{_folder_name(path)} + {_folder_name(adapter.path)}"
+        loaded.base_folder = path
+        loaded.weight_files += (adapter.weights,)
     return loaded
+
+
+def _folder_name(folder: Path) -> str:
+    """A folder called just "model" says little: name it with its parent ("demo/model")."""
+    return folder.name if folder.name != "model" else f"{folder.parent.name}/model"
 
 
 def _upcast_note(checked: ModelFolder) -> str | None:
