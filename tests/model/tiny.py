@@ -136,14 +136,14 @@ def build(kind: str, **overrides):
         cfg = ElectraConfig(**SMALL, embedding_size=16, **LABELS, **overrides)
         return ElectraForSequenceClassification(cfg), True
     if kind == "deberta-v2":  # v3 layout: shared position projections, log buckets
-        cfg = DebertaV2Config(**SMALL, **LABELS, pad_token_id=0, **{**DEBERTA, **overrides})
+        cfg = DebertaV2Config(**LABELS, pad_token_id=0, **{**SMALL, **DEBERTA, **overrides})
         return DebertaV2ForSequenceClassification(cfg), True
     if kind == "modernbert":  # layers 0, 2 global; layer 1 local (|i - j| <= WINDOW)
-        cfg = ModernBertConfig(**{**SMALL, "num_hidden_layers": 3}, local_attention=2 * WINDOW,
+        cfg = ModernBertConfig(**{**SMALL, "num_hidden_layers": 3, "local_attention": 2 * WINDOW,
+                                  **overrides},
                                global_attn_every_n_layers=2, global_rope_theta=160000.0,
                                local_rope_theta=10000.0, pad_token_id=0, cls_token_id=2,
-                               sep_token_id=3, bos_token_id=2, eos_token_id=3, **LABELS,
-                               **overrides)
+                               sep_token_id=3, bos_token_id=2, eos_token_id=3, **LABELS)
         return ModernBertForSequenceClassification(cfg), True
     if kind == "mpnet":
         cfg = MPNetConfig(**{**SMALL, "max_position_embeddings": 66}, pad_token_id=0, **LABELS,
@@ -165,8 +165,8 @@ def build(kind: str, **overrides):
                           max_window_layers=1, **overrides)
         return Qwen2ForCausalLM(cfg), False
     if kind == "qwen3":  # q/k RMS norms, a classifier head, layer 1 slides
-        cfg = Qwen3Config(**DECODER, head_dim=8, use_sliding_window=True, sliding_window=WINDOW,
-                          max_window_layers=1, **LABELS, **overrides)
+        cfg = Qwen3Config(**{**DECODER, "head_dim": 8, "sliding_window": WINDOW, **overrides},
+                          use_sliding_window=True, max_window_layers=1, **LABELS)
         return Qwen3ForSequenceClassification(cfg), False
     if kind == "mistral":
         cfg = MistralConfig(**DECODER, sliding_window=WINDOW, **overrides)

@@ -26,13 +26,24 @@ from dataclasses import dataclass
 import numpy as np
 
 from viewer.core.recording import Recording
-from viewer.core.terms import ScoreTerms, add_relative_terms, p2c_table, soft_cap, visible_rows
+from viewer.core.terms import (
+    ScoreTerms,
+    add_relative_terms,
+    p2c_table,
+    soft_cap,
+    table_rows,
+    visible_rows,
+)
 
 DEFAULT_TOLERANCE = 1e-5
 
-# float64 entries of one block of scores (H, rows, T): 64k entries = 512 KiB, which stays in a
+# float64 entries of one block of scores (H, rows, T): 128k entries = 1 MiB, which stays in a
 # core's L2 cache (measured in tests/benchmarks/bench_recording.py against whole-layer tensors)
-BLOCK_ENTRIES = 1 << 16
+BLOCK_ENTRIES = 1 << 17
+# multiply-adds of one matrix product that OpenBLAS still runs on the calling thread: the check
+# has its own threads (one per layer), and BLAS threads left spinning after a product slow the
+# next model forward by 2-3x (measured in tests/benchmarks/bench_families.py)
+GEMM_SINGLE_THREAD = 1 << 18
 
 
 def visible_keys(n_tokens: int, causal: bool) -> np.ndarray:
@@ -73,7 +84,7 @@ class _LayerScores:
         self.causal, self.terms, self.layer = causal, terms, layer
         self.window = terms.layer_window(layer)
         self.cap = terms.layer_cap(layer)
-        self.p2c = p2c_table(terms, layer, k, scale, self.n_heads)  # (H, T, R) or None
+        self.p2c = p2c_table(terms, layer, k, scale, self.n_heads, GEMM_SINGLE_THREAD)
 
     def rows(self, rows: slice) -> np.ndarray:
         """(H, rows, T) the softmax probabilities of query rows ``rows``."""
@@ -88,11 +99,17 @@ class _LayerScores:
         return s
 
 
+# exp of float64 scores within ±SAFE_EXP neither overflows nor loses a row to underflow, so
+# the row maximum need not be subtracted there (it changes nothing mathematically)
+SAFE_EXP = 600.0
+
+
 def _softmax_in_place(s: np.ndarray) -> None:
     """Softmax over the last axis of float64 ``s``, in place (see ``viewer.core.softmax``)."""
     m = s.max(axis=-1, keepdims=True)
     m[~np.isfinite(m)] = 0.0  # a row that sees no key stays all zero
-    s -= m
+    if m.max() > SAFE_EXP or m.min() < -SAFE_EXP:
+        s -= m
     np.exp(s, out=s)
     total = s.sum(axis=-1, keepdims=True)
     total[total == 0] = 1.0
@@ -100,8 +117,15 @@ def _softmax_in_place(s: np.ndarray) -> None:
     s *= total
 
 
-def _row_blocks(n_rows: int, row_entries: int):
-    size = max(1, BLOCK_ENTRIES // max(1, row_entries))
+def _row_blocks(n_rows: int, row_entries: int, row_products: int = 0):
+    """Slices of query rows, as equal as can be, of at most BLOCK_ENTRIES entries each, and
+    (when ``row_products`` = multiply-adds per row of one matrix product is given) small enough
+    that OpenBLAS runs each product on the calling thread (below GEMM_SINGLE_THREAD)."""
+    most = max(1, BLOCK_ENTRIES // max(1, row_entries))
+    if row_products:
+        most = min(most, max(1, GEMM_SINGLE_THREAD // row_products))
+    count = -(-n_rows // most)  # ceil
+    size = -(-n_rows // max(1, count))
     for start in range(0, n_rows, size):
         yield slice(start, min(n_rows, start + size))
 
@@ -193,17 +217,20 @@ def _layer_errors(rec: Recording, layer: int) -> tuple[np.ndarray, np.ndarray]:
     own, context = rec.probs[layer], rec.context[layer]  # (H, T, T), (H, T, d)
     prob_err = np.zeros(n_heads)
     ctx_err = np.zeros(n_heads)
-    for rows in _row_blocks(t, n_heads * t):
+    d = rec.q.shape[-1]
+    # multiply-adds per query row of the largest product: q·kᵀ, probs·v (H/G·T·d), c2p (R·d)
+    row_products = max(scores.groups * t * d, table_rows(rec.terms) * d)
+    for rows in _row_blocks(t, n_heads * t, row_products):
+        mine = own[:, rows].astype(np.float64)  # (H, b, T) the model's own, in float64
         p = scores.rows(rows)  # (H, b, T)
-        p -= own[:, rows]  # re-derived minus the model's own
+        p -= mine  # re-derived minus the model's own
         np.abs(p, out=p)
-        np.maximum(prob_err, p.max(axis=(1, 2)), out=prob_err)
+        np.maximum(prob_err, p.reshape(n_heads, -1).max(axis=1), out=prob_err)
         # probs @ V from the model's own probabilities, against the captured head outputs
-        mine = own[:, rows].astype(np.float64)  # (H, b, T)
         ctx = np.matmul(_grouped(mine, scores.groups), v).reshape(n_heads, -1, v.shape[-1])
         ctx -= context[:, rows]
         np.abs(ctx, out=ctx)
-        np.maximum(ctx_err, ctx.max(axis=(1, 2)), out=ctx_err)
+        np.maximum(ctx_err, ctx.reshape(n_heads, -1).max(axis=1), out=ctx_err)
     return prob_err, ctx_err
 
 

@@ -110,6 +110,14 @@ def layer_masks(n_tokens: int, causal: bool, window: np.ndarray | None,
     return np.stack([visible_mask(n_tokens, causal, w) for w in windows])
 
 
+def table_rows(terms: ScoreTerms) -> int:
+    """R, the rows of the position tables (0 without relative terms)."""
+    for table in (terms.pos_key, terms.pos_query, terms.bias):
+        if table is not None:
+            return int(table.shape[2])
+    return 0
+
+
 def add_relative_terms(scores: np.ndarray, terms: ScoreTerms, layer: int, rows: slice,
                        q_scaled: np.ndarray, p2c_table: np.ndarray | None) -> None:
     """Add the c2p, p2c and bias terms of ``rows`` to ``scores`` (H, rows, T), in place.
@@ -133,17 +141,21 @@ def add_relative_terms(scores: np.ndarray, terms: ScoreTerms, layer: int, rows: 
 
 
 def p2c_table(terms: ScoreTerms, layer: int, k: np.ndarray, scale: float,
-              n_heads: int) -> np.ndarray | None:
+              n_heads: int, chunk_products: int = 1 << 18) -> np.ndarray | None:
     """(H, T, R) scale · k_j · Qʳ[r] for one layer, or None without a p2c term.
 
-    k: (G, T, d) keys; query head h reads the keys of its group h // (H / G).
+    k: (G, T, d) keys; query head h reads the keys of its group h // (H / G). Computed in
+    chunks of keys of at most ``chunk_products`` multiply-adds per matrix product.
     """
     if terms.pos_query is None:
         return None
-    table = np.asarray(terms.pos_query[layer], dtype=np.float64)  # (H, R, d)
+    table = np.asarray(terms.pos_query[layer], dtype=np.float64).transpose(0, 2, 1)  # (H, d, R)
     groups = n_heads // k.shape[0]
     keys = np.asarray(k, dtype=np.float64)[np.arange(n_heads) // groups]  # (H, T, d)
-    out = np.matmul(keys, table.transpose(0, 2, 1))  # (H, T, R)
+    out = np.empty((n_heads, keys.shape[1], table.shape[2]))  # (H, T, R)
+    step = max(1, chunk_products // max(1, table.shape[1] * table.shape[2]))
+    for start in range(0, keys.shape[1], step):  # small products stay on the calling thread
+        np.matmul(keys[:, start:start + step], table, out=out[:, start:start + step])
     out *= scale
     return out
 
