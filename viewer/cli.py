@@ -44,7 +44,8 @@ def _texts(args: argparse.Namespace, default: str | None = None) -> list[str]:
 def _open(args: argparse.Namespace):
     from viewer.model.loader import open_model
 
-    return open_model(args.model, allow_pickle=getattr(args, "allow_pickle", False))
+    return open_model(args.model, base=getattr(args, "base", None),
+                      allow_pickle=getattr(args, "allow_pickle", False))
 
 
 # -- commands --------------------------------------------------------------------------------
@@ -225,6 +226,8 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("model", metavar="DIR", help="local model folder")
         p.add_argument("--allow-pickle", action="store_true",
                        help="accept pickle weights (loaded with weights_only=True)")
+        p.add_argument("--base", metavar="DIR",
+                       help="base model folder of an adapter folder (when its own is not local)")
         p.add_argument("--json", metavar="FILE", help="also write the result as JSON")
         return p
 

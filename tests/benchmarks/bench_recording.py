@@ -6,7 +6,9 @@ For each length (32, 128, 512 tokens) it alternates a full Headlight recording (
 numpy, slicing per text) with a bare forward pass of the same model asking for
 ``output_attentions=True`` and no hooks, and reports the ratio of medians. It also times the
 re-derivation check of one recording against one bare forward. Goals: recording <= 1.25x at 128
-tokens; check <= 0.3x of one forward. Not a test: machines are noisy, read the ratios.
+tokens; check <= 0.3x of one forward at 128 tokens and <= 1x at 512. Not a test: machines are
+noisy, read the ratios (and run it on an otherwise idle machine: other processes on the cores
+slow torch's two-thread forward far more than the check).
 """
 
 from __future__ import annotations
@@ -58,7 +60,8 @@ def main(repeats: int = 15) -> None:
         rec_m, bare_m, check_m = (statistics.median(x) for x in (rec_t, bare_t, check_t))
         print(f"{rec.n_tokens:4d} tokens: recording {rec_m*1e3:7.1f} ms, bare forward "
               f"{bare_m*1e3:7.1f} ms, ratio {rec_m / bare_m:.2f}x (goal <= 1.25x at 128); "
-              f"check {check_m*1e3:7.1f} ms = {check_m / bare_m:.2f}x of a forward (goal <= 0.3x)")
+              f"check {check_m*1e3:7.1f} ms = {check_m / bare_m:.2f}x of a forward "
+              "(goal <= 0.3x at 128, <= 1x at 512)")
 
 
 if __name__ == "__main__":

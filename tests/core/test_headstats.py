@@ -141,3 +141,34 @@ def test_shape_mismatch_rejected():
         stats.add(np.ones((L, H + 1, 2, 2)) / 2, np.zeros(2, bool), causal=False)
     with pytest.raises(ValueError):
         stats.merge(HeadStats(L + 1, H))
+
+
+def test_windowed_rows_are_normalised_by_the_keys_they_see():
+    """Worked example: uniform weight over the n keys a row sees has entropy ln n (Shannon 1948),
+    so normalised by the visible keys it is 1; normalised by all T keys it would be below 1."""
+    from viewer.core.terms import layer_masks
+
+    t, window = 9, np.array([[2, 2], [-1, -1]])  # layer 0: |i - j| <= 2; layer 1: global
+    masks = layer_masks(t, False, window, 2)  # (2, T, T)
+    probs = masks / masks.sum(axis=-1, keepdims=True)  # uniform over the visible keys
+    probs = np.broadcast_to(probs[:, None], (2, 3, t, t))  # (L, H, T, T)
+    stats = HeadStats(2, 3)
+    stats.add(probs, np.zeros(t, bool), False, visible=masks)
+    summary = stats.summary()
+    np.testing.assert_allclose(summary.entropy, 1.0, rtol=1e-12)
+    blind = HeadStats(2, 3)
+    blind.add(probs, np.zeros(t, bool), False)
+    assert (blind.summary().entropy[0] < 0.9).all()
+    np.testing.assert_allclose(blind.summary().entropy[1], 1.0, rtol=1e-12)
+    # rows 1..8 see their previous key; rows 1 and 7 see 4 keys, 2..6 see 5, row 8 sees 3
+    np.testing.assert_allclose(summary.previous[0], (2 / 4 + 5 / 5 + 1 / 3) / 8)
+
+
+def test_a_window_of_one_key_drops_the_neighbours_from_the_counts():
+    t = 5
+    mask = np.eye(t, dtype=bool)  # each row sees only itself
+    stats = HeadStats(1, 1)
+    stats.add(np.eye(t)[None, None], np.zeros(t, bool), False, visible=mask[None])
+    summary = stats.summary()
+    assert np.isnan(summary.entropy).all() and np.isnan(summary.previous).all()
+    assert np.isnan(summary.next).all() and summary.same[0, 0] == 1.0

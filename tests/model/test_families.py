@@ -15,6 +15,7 @@ import torch
 from transformers import AutoModel
 
 from tests.model import tiny
+from viewer.cli import main
 from viewer.core.attention import check_recording
 from viewer.model.loader import open_model
 
@@ -67,15 +68,24 @@ def test_probabilities_equal_library_output_attentions(family_folder, loaded):
 
 
 def test_sdpa_gives_the_recorded_head_outputs(loaded):
-    """Reference: torch.nn.functional.scaled_dot_product_attention on the recorded tensors."""
+    """Reference: torch.nn.functional.scaled_dot_product_attention on the recorded tensors.
+
+    Windows go in as SDPA's boolean mask; families with additive score terms (c2p/p2c, bias,
+    soft-capping) are re-implemented from their papers in test_score_terms.py instead.
+    """
     rec = loaded.record(tiny.TEXTS[1])
+    additive = set(rec.terms.names()) - {"window"}
+    if additive:
+        pytest.skip(f"{sorted(additive)} are not expressible in SDPA; see test_score_terms.py")
     for layer in range(rec.n_layers):
         q = torch.from_numpy(rec.q[layer]).double()[None]  # (1, H, T, d)
         k = torch.from_numpy(rec.k[layer]).double()[None]  # (1, G, T, d)
         v = torch.from_numpy(rec.v[layer]).double()[None]
+        windowed = rec.terms.layer_window(layer) is not None
+        mask = torch.from_numpy(rec.key_mask(layer)) if windowed else None
         ours = torch.nn.functional.scaled_dot_product_attention(
-            q, k, v, is_causal=rec.causal, scale=float(rec.scale[layer]),
-            enable_gqa=rec.n_kv_heads != rec.n_heads,
+            q, k, v, attn_mask=mask, is_causal=rec.causal and not windowed,
+            scale=float(rec.scale[layer]), enable_gqa=rec.n_kv_heads != rec.n_heads,
         )[0].numpy()
         np.testing.assert_allclose(rec.context[layer], ours, atol=1e-5)
 
@@ -85,14 +95,20 @@ def test_recording_shapes_and_tokens(family_folder, loaded):
     rec = loaded.record(tiny.TEXTS[0])
     L, H, T, d = rec.q.shape
     assert rec.probs.shape == (L, H, T, T)
-    assert rec.k.shape[1] == (2 if kind == "llama" else H)  # grouped K/V heads kept grouped
-    assert rec.causal == (kind in ("gpt2", "llama"))
+    assert rec.k.shape[1] == (2 if kind in tiny.GROUPED_KINDS else H)  # K/V heads kept grouped
+    assert rec.causal == (kind in tiny.CAUSAL_KINDS)
     assert len(rec.tokens) == T == len(rec.offsets) == len(rec.special)
-    # Offsets point back into the text for every ordinary token.
+    # Offsets point back into the text for every ordinary token. (transformers rebuilds a
+    # Qwen2 tokenizer from the vocabulary with its own byte-level rules, which the tiny WordPiece
+    # vocabulary does not fit: there the offsets are only checked to lie inside the text.)
     for tok, (a, b), special in zip(rec.tokens, rec.offsets, rec.special, strict=True):
-        if not special:
+        if special:
+            continue
+        assert 0 <= a <= b <= len(rec.text)
+        if kind != "qwen2":
             assert rec.text[a:b].lower() == tok.removeprefix("##")
-    if kind in ("bert", "roberta", "albert", "electra"):
+    if kind in ("bert", "roberta", "xlm-roberta", "albert", "electra", "deberta-v2",
+                "modernbert", "mpnet", "gpt2-cls", "llama-cls", "qwen3"):
         assert rec.head_kind == "classifier"
         assert rec.labels == ("repair", "billing", "membership")
         assert rec.logits.shape == (3,)
@@ -121,3 +137,26 @@ def test_a_wrong_scale_would_fail_the_check(loaded):
     assert not check_recording(wrong).passed
     swapped = dataclasses.replace(rec, q=rec.q[:, ::-1].copy())  # heads out of order
     assert not check_recording(swapped).passed
+
+
+def test_headlight_check_exits_0(family_folder, capsys):
+    """The command on every family's tiny checkpoint, at a text that crosses every window."""
+    assert main(["check", str(family_folder[1]), "--text", tiny.TEXTS[1]]) == 0
+    assert "passed" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("kind", ["llama-cls", "qwen3", "gpt2-cls"])
+def test_decoder_classifier_reads_the_last_real_token(tmp_path, kind):
+    """Reference: the model's own score head applied by hand to the last real token's final
+    hidden state, in a right-padded batch (transformers' *ForSequenceClassification pools the
+    last non-pad token)."""
+    loaded = open_model(tiny.save(tmp_path / kind, kind))
+    assert loaded.head_kind == "classifier" and loaded.max_batch > 1
+    batch = loaded.encode(tiny.TEXTS)
+    out, _ = loaded.forward(batch, output_hidden_states=True)
+    head = loaded.model.score
+    for i, n in enumerate(batch.lengths):
+        by_hand = head(out.hidden_states[-1][i, n - 1]).detach().numpy()
+        np.testing.assert_allclose(out.logits[i].detach().numpy(), by_hand, atol=1e-5)
+    rec = loaded.record(tiny.TEXTS[1])
+    assert rec.summary_index() == rec.n_tokens - 1

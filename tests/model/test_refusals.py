@@ -69,8 +69,16 @@ def test_invalid_config(good, tmp_path, capsys):
 
 def test_unsupported_architecture_names_the_supported(good, tmp_path, capsys):
     folder = copy(good, tmp_path)
-    edit_config(folder, model_type="t5")
-    assert_refused(folder, capsys, r"unsupported architecture.*BERT.*GPT-2.*Llama")
+    edit_config(folder, model_type="reformer")
+    assert_refused(folder, capsys, r"unsupported architecture.*BERT.*DeBERTa.*GPT-2.*Llama.*Qwen3")
+
+
+@pytest.mark.parametrize(("model_type", "feature"), [
+    ("t5", "cross-attention"), ("bloom", "ALiBi"), ("mpt", "ALiBi")])
+def test_unmodelled_attention_is_named(good, tmp_path, capsys, model_type, feature):
+    folder = copy(good, tmp_path)
+    edit_config(folder, model_type=model_type)
+    assert_refused(folder, capsys, feature)
 
 
 def test_remote_code_is_always_refused(good, tmp_path, capsys):
@@ -138,12 +146,16 @@ def test_relative_position_scores_are_refused(good, tmp_path, capsys):
     assert_refused(folder, capsys, "relative-position")
 
 
-def test_rope_scaling_is_refused(tmp_path, capsys):
-    folder = tiny.save(tmp_path / "l", "llama")
-    cfg = json.loads((folder / "config.json").read_text())
-    cfg["rope_parameters"] = {"rope_type": "linear", "factor": 2.0, "rope_theta": 10000.0}
-    (folder / "config.json").write_text(json.dumps(cfg))
-    assert_refused(folder, capsys, "rope_type='linear'")
+def test_deberta_p2p_term_is_refused(tmp_path, capsys):
+    folder = tiny.save(tmp_path / "d", "deberta-v2")
+    edit_config(folder, pos_att_type=["c2p", "p2c", "p2p"])
+    assert_refused(folder, capsys, "p2p")
+
+
+def test_bidirectional_gemma_is_refused(tmp_path, capsys):
+    folder = tiny.save(tmp_path / "g", "gemma2")
+    edit_config(folder, use_bidirectional_attention=True)
+    assert_refused(folder, capsys, "use_bidirectional_attention")
 
 
 def test_long_text_is_truncated_with_a_notice(good):

@@ -10,8 +10,11 @@ choice to make: its weight is forced to 1 on that key. Its normalised entropy is
 (log 1 = 0 would otherwise divide 0 by 0). Averages over rows should leave such rows out, see
 ``viewer.core.headstats``.
 
-The probabilities are taken as they are: keys a causal row may not see are assumed to carry
-zero weight (the model's mask makes them exactly 0).
+The probabilities are taken as they are: keys a row may not see are assumed to carry zero
+weight (the model's mask makes them exactly 0). In a windowed layer (sliding or local windows,
+``viewer.core.terms``) a row sees only the keys inside its window; pass the recording's visible
+mask (``Recording.key_mask(layer)``) as ``visible`` and each row is normalised by the log of its
+own visible key count.
 """
 
 from __future__ import annotations
@@ -41,18 +44,24 @@ def row_entropy(probs: np.ndarray) -> np.ndarray:
     return entr(np.clip(a, 0.0, None)).sum(axis=-1)  # (..., T)
 
 
-def normalized_entropy(probs: np.ndarray, causal: bool) -> np.ndarray:
+def normalized_entropy(probs: np.ndarray, causal: bool,
+                       visible: np.ndarray | None = None) -> np.ndarray:
     """Row entropy divided by the log of the row's visible key count: (..., T, T) -> (..., T).
 
-    H_i / ln n_i, with n_i = i + 1 for a causal row and n_i = T otherwise (Shannon 1948 entropy;
-    ln n_i is its maximum, reached by the uniform distribution over the n_i visible keys). A row
-    with n_i = 1 has normalised entropy 0 by definition. Values lie in [0, 1] up to rounding.
+    H_i / ln n_i, with n_i = i + 1 for a causal row and n_i = T otherwise, or n_i the number of
+    True entries in row i of ``visible`` (broadcastable to probs) when given (Shannon 1948
+    entropy; ln n_i is its maximum, reached by the uniform distribution over the n_i visible
+    keys). A row with n_i = 1 has normalised entropy 0 by definition. Values lie in [0, 1] up to
+    rounding.
     """
     a = np.asarray(probs, dtype=np.float64)
     rows, keys = a.shape[-2], a.shape[-1]
-    if causal and rows != keys:
+    if visible is not None:
+        n = np.asarray(visible, dtype=bool).sum(axis=-1)  # (..., T) keys each row sees
+    elif causal and rows != keys:
         raise ValueError(f"causal attention must be square, got {rows} rows and {keys} keys")
-    n = visible_keys(keys, True) if causal else np.full(rows, keys)  # (T,) keys per row
+    else:
+        n = visible_keys(keys, True) if causal else np.full(rows, keys)  # (T,) keys per row
     h = row_entropy(a)  # (..., T)
     log_n = np.log(n.astype(np.float64))  # (T,)
     safe = np.where(n > 1, log_n, 1.0)  # (T,) avoid 0/0 for single-key rows

@@ -21,6 +21,11 @@ next            a_{i, i+1}                               rows i <= T-2 of an enc
 confidence      max_j a_ij (Voita et al. 2019)           all rows
 ==============  =======================================  ======================================
 
+Which keys a row sees is the causal rule, or, when ``add`` is given the recording's per-layer
+visible mask (``Recording.key_masks()``), that mask: windowed layers then normalise entropy by
+the keys inside each row's window, and ``previous``/``next`` count the rows that can see that
+neighbour. Row counts are kept per layer for that reason.
+
 A metric with no counted rows is NaN (e.g. ``next`` when only causal texts were added);
 ``to_dict`` writes NaN as ``None`` so the JSON stays valid. Row 0 of a causal model is forced
 (all weight on itself): it is left out of the entropy mean, where it would add a fake 0, and kept
@@ -87,6 +92,18 @@ class HeadSummary:
         return out
 
 
+def _layer_masks(visible: np.ndarray | None, n_layers: int, t: int) -> np.ndarray | None:
+    """(L, T, T) bool masks from (L, T, T) or (T, T), or None."""
+    if visible is None:
+        return None
+    mask = np.asarray(visible, dtype=bool)
+    if mask.shape == (t, t):
+        return np.broadcast_to(mask, (n_layers, t, t))
+    if mask.shape != (n_layers, t, t):
+        raise ValueError(f"visible mask {mask.shape} does not fit {n_layers} layers of {t} tokens")
+    return mask
+
+
 def _json_grid(a: np.ndarray) -> list[list[float | None]]:
     return [[None if math.isnan(v) else float(v) for v in row] for row in a.tolist()]
 
@@ -101,10 +118,16 @@ class HeadStats:
         self.n_heads = int(n_heads)
         self.texts = 0
         self._sums = np.zeros((len(METRICS), self.n_layers, self.n_heads))  # (M, L, H) float64
-        self._rows = np.zeros(len(METRICS), dtype=np.int64)  # (M,) rows counted per metric
+        # (M, L) rows counted per metric and layer
+        self._rows = np.zeros((len(METRICS), self.n_layers), dtype=np.int64)
 
-    def add(self, probs: np.ndarray, special: np.ndarray, causal: bool) -> None:
-        """Add one text's attention, probs (L, H, T, T), special (T,) bool."""
+    def add(self, probs: np.ndarray, special: np.ndarray, causal: bool,
+            visible: np.ndarray | None = None) -> None:
+        """Add one text's attention, probs (L, H, T, T), special (T,) bool.
+
+        visible: (L, T, T) or (T, T) bool keys each query row sees (``Recording.key_masks()``);
+        None for the causal rule alone.
+        """
         probs = np.asarray(probs)
         special = np.asarray(special, dtype=bool)
         if probs.ndim != 4 or probs.shape[:2] != (self.n_layers, self.n_heads):
@@ -119,33 +142,32 @@ class HeadStats:
             return
         idx = np.arange(t)
         dist = np.abs(idx[:, None] - idx[None, :]).astype(np.float64)  # (T, T) |i - j|
-        multi_key = visible_keys(t, causal) > 1  # (T,) rows with a real choice
         special_f = special.astype(np.float64)  # (T,)
+        masks = _layer_masks(visible, self.n_layers, t)
         sums = np.zeros((len(METRICS), self.n_layers, self.n_heads))  # (M, L, H)
+        rows = np.zeros((len(METRICS), self.n_layers), dtype=np.int64)  # (M, L)
         for layer in range(self.n_layers):  # one layer at a time bounds the float64 copy
             a = probs[layer].astype(np.float64)  # (H, T, T)
-            ent = normalized_entropy(a, causal)  # (H, T)
+            mask = None if masks is None else masks[layer]  # (T, T)
+            if mask is None:
+                multi_key = visible_keys(t, causal) > 1  # (T,) rows with a real choice
+                previous, following = t - 1, 0 if causal else t - 1
+            else:
+                multi_key = mask.sum(axis=-1) > 1
+                previous = int(np.diagonal(mask, offset=-1).sum())
+                following = int(np.diagonal(mask, offset=1).sum())
+            rows[:, layer] = (int(multi_key.sum()), t, t, previous, t, following, t)
+            ent = normalized_entropy(a, causal, mask)  # (H, T)
             sums[0, layer] = ent[:, multi_key].sum(axis=-1)
             sums[1, layer] = a.reshape(self.n_heads, -1) @ dist.ravel()  # sum_ij a_ij |i - j|
             sums[2, layer] = (a @ special_f).sum(axis=-1)  # sum_i sum_{j special} a_ij
             sums[3, layer] = np.diagonal(a, offset=-1, axis1=1, axis2=2).sum(axis=-1)
             sums[4, layer] = np.diagonal(a, offset=0, axis1=1, axis2=2).sum(axis=-1)
-            if not causal:
+            if following:
                 sums[5, layer] = np.diagonal(a, offset=1, axis1=1, axis2=2).sum(axis=-1)
             sums[6, layer] = a.max(axis=-1).sum(axis=-1)
         self._sums += sums
-        self._rows += np.array(
-            [
-                int(multi_key.sum()),  # entropy
-                t,  # distance
-                t,  # special
-                t - 1,  # previous
-                t,  # same
-                0 if causal else t - 1,  # next
-                t,  # confidence
-            ],
-            dtype=np.int64,
-        )
+        self._rows += rows
 
     def merge(self, other: HeadStats) -> HeadStats:
         """Fold ``other`` into this accumulator (in place) and return self."""
@@ -162,7 +184,7 @@ class HeadStats:
     @property
     def rows(self) -> int:
         """Query rows seen over all texts (sum of T)."""
-        return int(self._rows[METRICS.index("same")])
+        return int(self._rows[METRICS.index("same")].max(initial=0))
 
     def state_nbytes(self) -> int:
         """Bytes held by the accumulator's arrays; constant in the number of texts."""
@@ -172,8 +194,9 @@ class HeadStats:
         """Means over counted rows as a frozen ``HeadSummary`` (NaN where no row counted)."""
         means = {}
         for m, name in enumerate(METRICS):
-            n = int(self._rows[m])
-            means[name] = self._sums[m] / n if n > 0 else np.full_like(self._sums[m], np.nan)
+            n = self._rows[m][:, None].astype(np.float64)  # (L, 1) rows counted per layer
+            with np.errstate(invalid="ignore", divide="ignore"):
+                means[name] = np.where(n > 0, self._sums[m] / np.where(n > 0, n, 1.0), np.nan)
         return HeadSummary(texts=self.texts, rows=self.rows, **means)
 
     def to_dict(self) -> dict[str, Any]:

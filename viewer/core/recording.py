@@ -16,9 +16,14 @@ probs           (L, H, T, T)     the model's own attention probabilities (query 
 context         (L, H, T, d)     each head's output (probs @ v) before the output projection
 scale           (L,)             the factor applied to q·k before the softmax, per layer
 logits          (C,) or (T, V)   classifier logits, or per-token LM logits
+terms           ScoreTerms       the score terms beyond q·k the family adds (relative-position
+                                 terms, bias, soft-capping, windows; ``viewer.core.terms``)
 ==============  ===============  ===========================================================
 
-Padding of a batch is removed: T is this text's own token count.
+Padding of a batch is removed: T is this text's own token count. Which keys a query row sees
+is defined once, by ``key_mask``: keys j <= i in a causal model, and in a windowed layer only
+the keys inside the layer's window. The check, the entropy normalisation and the pair grid's
+hatching all use it.
 """
 
 from __future__ import annotations
@@ -29,6 +34,7 @@ import numpy as np
 
 from viewer.core.softmax import softmax
 from viewer.core.summary import summary_index
+from viewer.core.terms import ScoreTerms, layer_masks, visible_mask
 
 
 @dataclass(frozen=True, eq=False)
@@ -52,6 +58,7 @@ class Recording:
     model_name: str = ""
     truncated_from: int | None = None  # original token count when the text was cut
     notes: tuple[str, ...] = field(default_factory=tuple)
+    terms: ScoreTerms = field(default_factory=ScoreTerms)
 
     # -- derived sizes -------------------------------------------------------------------
     @property
@@ -74,12 +81,26 @@ class Recording:
     def truncated(self) -> bool:
         return self.truncated_from is not None
 
-    def key_mask(self) -> np.ndarray:
-        """(T, T) bool: True where a query row may see a key column (causal rows see j <= i)."""
-        t = self.n_tokens
-        if self.causal:
-            return np.tril(np.ones((t, t), dtype=bool))
-        return np.ones((t, t), dtype=bool)
+    def key_mask(self, layer: int | None = None) -> np.ndarray:
+        """(T, T) bool: True where a query row of ``layer`` may see a key column.
+
+        Causal rows see j <= i; a windowed layer's rows only the keys inside its window. With
+        no layer given, the mask every layer shares (the causal rule, without windows).
+        """
+        window = None if layer is None else self.terms.layer_window(layer)
+        return visible_mask(self.n_tokens, self.causal, window)
+
+    def key_masks(self) -> np.ndarray | None:
+        """(L, T, T) bool visible keys per layer, or None when every row sees every key."""
+        return layer_masks(self.n_tokens, self.causal, self.terms.window, self.n_layers)
+
+    def masked(self, layer: int | None = None) -> bool:
+        """Whether some query row of ``layer`` (of any layer when None) misses some key."""
+        if self.causal and self.n_tokens > 1:
+            return True
+        layers = range(self.n_layers) if layer is None else (layer,)
+        return any(self.terms.layer_window(i) is not None and not self.key_mask(i).all()
+                   for i in layers)
 
     def class_probabilities(self) -> np.ndarray:
         """(C,) softmax of classifier logits (float64); empty for non-classifiers."""

@@ -2,8 +2,10 @@
 
 Query tokens are rows (top to bottom), key tokens are columns (left to right); cell (i, j) is the
 probability with which query i attends to key j. Keys a query may not see (the upper triangle of
-a causal model, or anything a caller masks) are transparent over a hatched background, so they
-read as "not computed" rather than as zero attention.
+a causal model, the cells outside a windowed layer's window, or anything a caller masks) are
+transparent over a hatched background, so they read as "not computed" rather than as zero
+attention. ``visible_cells(rec, layer)`` gives the mask of a recording's layer: the same
+definition the re-derivation check and the entropy normalisation use (``Recording.key_mask``).
 
 ``draw_pair_grid`` draws into given axes (used by the window's pane and by the card export);
 ``update_pair_grid`` swaps the values in place, the fast path for a head switch;
@@ -24,6 +26,7 @@ from matplotlib.figure import Figure
 from matplotlib.image import AxesImage
 from matplotlib.patches import Rectangle
 
+from viewer.core.recording import Recording
 from viewer.figures import style
 from viewer.figures.cells import cell_image
 from viewer.figures.layout import InchLayout, line_height_in, main_with_colorbar, text_width_in
@@ -40,6 +43,15 @@ class PairGridArtists:
     marker: Rectangle  # outline of the selected cell (invisible when none)
     n_rows: int
     n_cols: int
+
+
+def visible_cells(rec: Recording, layer: int | None = None) -> np.ndarray | None:
+    """(T, T) bool cells of ``layer`` a query may see, or None when it sees every key.
+
+    Pass it as ``visible=``: causal rows and windowed layers get their invisible cells hatched,
+    a layer that sees everything skips the hatching altogether.
+    """
+    return rec.key_mask(layer) if rec.masked(layer) else None
 
 
 def masked_grid(probs: np.ndarray, visible: np.ndarray | None) -> np.ma.MaskedArray:

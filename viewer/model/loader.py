@@ -1,19 +1,16 @@
-"""Opening a local checkpoint folder, safely and offline, and recording texts through it.
+"""Opening a checked checkpoint folder, offline, and recording texts through it.
 
-``open_model(folder)`` validates the folder before any weights are deserialised: the config must
-be valid JSON for a supported family and must not ask for remote code; weights must be
-safetensors (pickle only on explicit opt-in, then loaded with ``weights_only=True``) whose
-headers and sizes are intact; a fast tokenizer (for character offsets) must be present. The model
-is loaded with the eager attention implementation so that probabilities exist, from local files
-only: nothing is ever looked up on a model hub.
+``open_model(folder)`` first has ``viewer.model.folders`` check the folder without deserialising
+anything (config, remote code, weight files, safetensors headers, pickle opt-in, tokenizer,
+adapter folders). The model is then loaded with the eager attention implementation so that
+probabilities exist, from local files only: nothing is ever looked up on a model hub.
 """
 
 from __future__ import annotations
 
-import json
+import dataclasses
 import os
 import pickle
-import struct
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -40,14 +37,26 @@ from transformers import (  # noqa: E402
 
 from viewer.core.recording import Recording  # noqa: E402
 from viewer.core.rotary import apply_rotary  # noqa: E402
+from viewer.core.terms import ScoreTerms, layer_masks  # noqa: E402
 from viewer.errors import HeadlightError  # noqa: E402
+from viewer.model.adapters import describe, merge_adapter  # noqa: E402
 from viewer.model.families import (  # noqa: E402
     Family,
     Geometry,
+    Window,
+    _deberta_terms,
     _get,
     check_supported,
     family_for,
     layer_scale,
+)
+from viewer.model.folders import (  # noqa: E402
+    AdapterFolder,
+    ModelFolder,
+    adapter_folder,
+    existing_folder,
+    is_adapter_folder,
+    model_folder,
 )
 from viewer.model.recorder import AttentionHooks, Capture  # noqa: E402
 
@@ -62,101 +71,6 @@ HEAD_KINDS = {
     "LMHeadModel": ("causal-lm", AutoModelForCausalLM),
 }
 
-TOKENIZER_FILES = ("tokenizer.json", "vocab.txt", "vocab.json", "tokenizer.model", "spiece.model")
-
-
-# -- folder validation (before anything is deserialised) ------------------------------------
-
-
-def _read_config(folder: Path) -> dict:
-    path = folder / "config.json"
-    if not path.is_file():
-        raise HeadlightError(f"{folder} has no config.json; is it a Hugging Face model folder?")
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise HeadlightError(f"config.json in {folder} is not valid JSON: {exc}") from None
-    if not isinstance(data, dict):
-        raise HeadlightError(f"config.json in {folder} is not a JSON object")
-    if data.get("auto_map") or data.get("trust_remote_code"):
-        raise HeadlightError(
-            f"config.json in {folder} asks for remote code (auto_map); Headlight never runs code "
-            "from a model folder"
-        )
-    if "model_type" not in data:
-        raise HeadlightError(f"config.json in {folder} has no model_type")
-    return data
-
-
-def check_safetensors(path: Path) -> dict:
-    """Validate a safetensors file's header and size without loading tensors.
-
-    Format: 8-byte little-endian header length N, N bytes of JSON, then the tensor bytes; every
-    tensor's ``data_offsets`` must lie inside the byte buffer, and the buffer must end exactly
-    where the last tensor does (a truncated download fails here).
-    """
-    size = path.stat().st_size
-    try:
-        with path.open("rb") as fh:
-            head = fh.read(8)
-            if len(head) < 8:
-                raise ValueError("file shorter than its 8-byte header length")
-            (n,) = struct.unpack("<Q", head)
-            if n > size - 8 or n > 100_000_000:
-                raise ValueError("header length points past the end of the file")
-            header = json.loads(fh.read(n).decode("utf-8"))
-    except (ValueError, UnicodeDecodeError) as exc:
-        raise HeadlightError(f"{path.name} is not a valid safetensors file: {exc}") from None
-    if not isinstance(header, dict):
-        raise HeadlightError(f"{path.name} is not a valid safetensors file: header not an object")
-    buffer = size - 8 - n
-    end = 0
-    for name, info in header.items():
-        if name == "__metadata__":
-            continue
-        try:
-            start, stop = info["data_offsets"]
-        except (TypeError, KeyError, ValueError):
-            raise HeadlightError(f"{path.name}: tensor {name!r} has no data offsets") from None
-        if not (0 <= start <= stop <= buffer):
-            raise HeadlightError(
-                f"{path.name} is truncated or corrupt: tensor {name!r} lies past the end of the file"
-            )
-        end = max(end, stop)
-    if end != buffer:
-        raise HeadlightError(
-            f"{path.name} is truncated or corrupt: {buffer} data bytes but tensors cover {end}"
-        )
-    return header
-
-
-def _weight_files(folder: Path, allow_pickle: bool) -> tuple[list[Path], bool]:
-    """The weight files to load and whether they are safetensors."""
-    single = folder / "model.safetensors"
-    index = folder / "model.safetensors.index.json"
-    if single.is_file():
-        return [single], True
-    if index.is_file():
-        try:
-            shards = sorted(set(json.loads(index.read_text(encoding="utf-8"))["weight_map"].values()))
-        except (ValueError, KeyError, TypeError):
-            raise HeadlightError(f"{index.name} in {folder} is not a valid shard index") from None
-        paths = [folder / s for s in shards]
-        missing = [p.name for p in paths if not p.is_file()]
-        if missing:
-            raise HeadlightError(f"weight shard {missing[0]} listed in {index.name} is missing")
-        return paths, True
-    pickles = sorted(folder.glob("pytorch_model*.bin"))
-    if pickles:
-        if not allow_pickle:
-            raise HeadlightError(
-                f"{folder} has only pickle weights ({pickles[0].name}); pickle files can run code. "
-                "Convert to safetensors, or pass --allow-pickle to load them with weights_only=True"
-            )
-        return pickles, False
-    raise HeadlightError(f"{folder} has no weights (model.safetensors or pytorch_model.bin)")
-
-
 def _head_kind(config: dict) -> tuple[str, Any, str | None]:
     archs = config.get("architectures") or []
     arch = archs[0] if archs else ""
@@ -169,10 +83,10 @@ def _head_kind(config: dict) -> tuple[str, Any, str | None]:
     return "encoder", AutoModel, note
 
 
-def _max_tokens(config: Any, tokenizer: Any) -> int:
+def _max_tokens(config: Any, tokenizer: Any, family: Family) -> int:
     positions = _get(config, "max_position_embeddings", "n_positions", default=512)
-    if getattr(config, "model_type", "") == "roberta":
-        positions -= 2  # RoBERTa's position ids start after the padding index (padding_idx + 1)
+    # RoBERTa-style position ids start after the padding index (padding_idx + 1)
+    positions -= family.position_offset
     limit = getattr(tokenizer, "model_max_length", None)
     if isinstance(limit, int) and 0 < limit < positions:
         positions = limit
@@ -198,6 +112,16 @@ class Attention:
     probs: np.ndarray  # (L, H, T, T) the model's own attention probabilities
     target: np.ndarray | None  # (C,) target probabilities, None without a prediction head
     truncated_from: int | None
+    causal: bool = False
+    window: np.ndarray | None = None  # (L, 2) keys (before, after) each layer sees; -1 = all
+
+    def key_masks(self) -> np.ndarray | None:
+        """(L, T, T) bool keys each query row sees, or None when every row sees every key.
+
+        The same definition as ``Recording.key_masks`` (``viewer.core.terms``); pass it to
+        ``HeadStats.add(..., visible=...)`` so entropy is normalised by the visible keys.
+        """
+        return layer_masks(len(self.token_ids), self.causal, self.window, self.probs.shape[0])
 
 
 class LoadedModel:
@@ -206,8 +130,9 @@ class LoadedModel:
     def __init__(self, folder: Path, model: Any, tokenizer: Any, family: Family,
                  geometry: Geometry, head_kind: str, notes: tuple[str, ...]):
         self.folder = folder
-        # A folder called just "model" says little: name it with its parent ("demo/model").
-        self.name = folder.name if folder.name != "model" else f"{folder.parent.name}/model"
+        # the model line: "folder", "base + adapter" for a merged adapter
+        self.name = _folder_name(folder)
+        self.base_folder: Path | None = None  # the base model folder of a merged adapter
         self.model = model
         self.tokenizer = tokenizer
         self.family = family
@@ -217,10 +142,15 @@ class LoadedModel:
         self.weight_files: tuple[Path, ...] = ()
         self.config = model.config
         self.n_layers = _layer_count(self.config)
-        self.max_tokens = _max_tokens(self.config, tokenizer)
+        self.max_tokens = _max_tokens(self.config, tokenizer, family)
         self.scales = np.array(
             [layer_scale(family, self.config, i, geometry) for i in range(self.n_layers)]
         )
+        self.windows = _window_array(family.windows(self.config, self.n_layers), self.n_layers)
+        cap = float(family.softcap(self.config))
+        self.softcaps = np.full(self.n_layers, cap) if cap > 0 else None
+        # DeBERTa: which of the position terms the model adds (shared projections compute both)
+        self.position_terms = frozenset(_position_terms(family, self.config))
         id2label = getattr(self.config, "id2label", None) or {}
         if head_kind == "classifier":
             n = int(getattr(self.config, "num_labels", len(id2label)))
@@ -240,6 +170,10 @@ class LoadedModel:
                 tokenizer.pad_token = fallback
             if head_kind == "classifier" and getattr(self.config, "pad_token_id", None) is None:
                 self.max_batch = 1
+        if (family.causal and head_kind == "classifier"
+                and tokenizer.pad_token_id != getattr(self.config, "pad_token_id", None)):
+            # the classifier reads the last token that is not its pad id: pad with nothing else
+            self.max_batch = 1
 
     @property
     def n_heads(self) -> int:
@@ -369,6 +303,8 @@ class LoadedModel:
                     probs=probs[i, :, :, :n, :n].copy(),
                     target=None if targets is None else targets[i].copy(),
                     truncated_from=batch.truncated_from[i],
+                    causal=self.family.causal,
+                    window=self.windows,
                 )
 
     def model_inputs(self, batch: Batch) -> dict:
@@ -420,11 +356,8 @@ class LoadedModel:
         k = torch.stack(cap.k, dim=1).float().numpy()  # (B, L, G, T, d)
         v = torch.stack(cap.v, dim=1).float().numpy()  # (B, L, G, T, d)
         ctx = torch.stack(cap.context, dim=1).float().numpy()  # (B, L, H, T, d)
-        rot = None
-        if cap.rotary:
-            # The model's own tables are used for every layer; they are the same for all layers.
-            cos, sin = cap.rotary[0]
-            rot = (cos.float().numpy(), sin.float().numpy())  # (B or 1, T, d) each
+        rotary = self._rotary_tables(cap)
+        terms = self._batch_terms(cap)
         logits = getattr(out, "logits", None)
         logits = None if logits is None else logits.detach().float().numpy()
         enc = batch.encoding
@@ -434,10 +367,13 @@ class LoadedModel:
         recs = []
         for i, n in enumerate(batch.lengths):
             qi, ki = q[i, :, :, :n], k[i, :, :, :n]
-            if rot is not None:
-                row = min(i, rot[0].shape[0] - 1)  # tables may be shared across the batch
-                cos_i, sin_i = rot[0][row, :n], rot[1][row, :n]
-                qi, ki = apply_rotary(qi, cos_i, sin_i), apply_rotary(ki, cos_i, sin_i)
+            if rotary:
+                qi, ki = qi.copy(), ki.copy()
+                for layers, (cos, sin) in rotary:
+                    row = min(i, cos.shape[0] - 1)  # tables may be shared across the batch
+                    cos_i, sin_i = cos[row, :n], sin[row, :n]
+                    qi[layers] = apply_rotary(qi[layers], cos_i, sin_i)
+                    ki[layers] = apply_rotary(ki[layers], cos_i, sin_i)
             if self.head_kind == "classifier":
                 lg = logits[i].copy()
             elif logits is not None and logits.ndim == 3:
@@ -471,8 +407,72 @@ class LoadedModel:
                 model_name=self.name,
                 truncated_from=batch.truncated_from[i],
                 notes=tuple(notes),
+                terms=_text_terms(terms, n),
             ))
         return recs
+
+    def _rotary_tables(self, cap: Capture) -> list[tuple[list[int], tuple[np.ndarray, ...]]]:
+        """[(layers, (cos, sin))]: the model's own tables, layers sharing one table grouped.
+
+        ModernBERT and Gemma 3 use other bases in their local layers, so tables are per layer.
+        """
+        if not cap.rotary:
+            return []
+        if len(cap.rotary) != self.n_layers:
+            raise RuntimeError(f"captured {len(cap.rotary)} rotary tables for {self.n_layers} layers")
+        groups: dict[int, tuple[list[int], tuple[np.ndarray, ...]]] = {}
+        for layer, (cos, sin) in enumerate(cap.rotary):
+            key = cos.data_ptr()
+            if key not in groups:
+                groups[key] = ([], (cos.float().numpy(), sin.float().numpy()))  # (B or 1, T, r)
+            groups[key][0].append(layer)
+        return list(groups.values())
+
+    def _batch_terms(self, cap: Capture) -> ScoreTerms:
+        """The score terms of the whole batch (relative indices still at the padded length)."""
+        pos_key = pos_query = bias = None
+        if "c2p" in self.position_terms:
+            pos_key = _stack_layers(cap.pos_key, self.n_layers, "position keys")
+        if "p2c" in self.position_terms:
+            pos_query = _stack_layers(cap.pos_query, self.n_layers, "position queries")
+        if cap.bias is not None:
+            table = cap.bias.float().numpy()  # (H, R), one table for every layer
+            bias = np.broadcast_to(table, (self.n_layers, *table.shape))
+        index = None
+        if (pos_key is not None or pos_query is not None or bias is not None):
+            if cap.rel_index is None:
+                raise RuntimeError(f"{self.family.name}: relative positions were not captured")
+            index = cap.rel_index.numpy().astype(np.int64)
+        return ScoreTerms(rel_index=index, pos_key=pos_key, pos_query=pos_query, bias=bias,
+                          softcap=self.softcaps, window=self.windows)
+
+
+def _stack_layers(parts: list[torch.Tensor], n_layers: int, what: str) -> np.ndarray:
+    if len(parts) != n_layers:
+        raise RuntimeError(f"captured {what} for {len(parts)} of {n_layers} layers")
+    return torch.stack(parts).float().numpy()  # (L, H, R, d)
+
+
+def _text_terms(terms: ScoreTerms, n: int) -> ScoreTerms:
+    """One text's terms: the relative indices cut to its n tokens, the tables shared."""
+    if terms.rel_index is None:
+        return terms
+    return dataclasses.replace(terms, rel_index=np.ascontiguousarray(terms.rel_index[:n, :n]))
+
+
+def _window_array(windows: list[Window], n_layers: int) -> np.ndarray | None:
+    """(L, 2) int64 (before, after) per layer, -1 for an unbounded side; None without windows."""
+    if len(windows) != n_layers:
+        raise HeadlightError(f"config.json lists {len(windows)} layer types for {n_layers} layers")
+    if all(w is None for w in windows):
+        return None
+    return np.array([(-1, -1) if w is None else w for w in windows], dtype=np.int64)
+
+
+def _position_terms(family: Family, config: Any) -> list[str]:
+    if family.relative != "disentangled" or not getattr(config, "relative_attention", False):
+        return []
+    return [t for t in _deberta_terms(config) if t in ("c2p", "p2c")]
 
 
 def _layer_count(config: Any) -> int:
@@ -482,24 +482,28 @@ def _layer_count(config: Any) -> int:
     return int(n)
 
 
-def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> LoadedModel:
-    """Open a local Hugging Face-format folder for recording (offline, eager attention)."""
-    path = Path(folder).expanduser()
-    if not path.exists():
-        hint = ""
-        if "/" in str(folder) and not str(folder).startswith((".", "/", "~")):
-            hint = " (Headlight opens local folders only and never downloads models)"
-        raise HeadlightError(f"model folder not found: {folder}{hint}")
-    if not path.is_dir():
-        raise HeadlightError(f"{folder} is a file, not a model folder")
-    raw = _read_config(path)
+def open_model(folder: str | os.PathLike, *, base: str | os.PathLike | None = None,
+               allow_pickle: bool = False) -> LoadedModel:
+    """Open a local Hugging Face-format folder for recording (offline, eager attention).
+
+    A PEFT adapter folder (``adapter_config.json``) opens on its base model: ``base`` when
+    given, else the adapter's ``base_model_name_or_path`` when that is a local folder; without
+    either, ``viewer.model.folders.NeedsBaseModel`` is raised (a ``HeadlightError``).
+    """
+    path = existing_folder(folder)
+    if is_adapter_folder(path):
+        adapter = adapter_folder(path, base, allow_pickle)
+        return _open_checked(model_folder(adapter.base, allow_pickle), adapter)
+    if base is not None:
+        raise HeadlightError(f"{path} is a model folder, not an adapter; a base model folder "
+                             "applies to adapter folders only")
+    return _open_checked(model_folder(path, allow_pickle))
+
+
+def _open_checked(checked: ModelFolder, adapter: AdapterFolder | None = None) -> LoadedModel:
+    """Load a folder that ``viewer.model.folders`` has checked (with an adapter merged in)."""
+    path, raw = checked.path, checked.config
     family = family_for(raw.get("model_type"))
-    weights, safe = _weight_files(path, allow_pickle)
-    if safe:
-        for w in weights:
-            check_safetensors(w)
-    if not any((path / f).is_file() for f in TOKENIZER_FILES):
-        raise HeadlightError(f"{path} has no tokenizer (tokenizer.json or vocab files)")
     head_kind, auto_cls, note = _head_kind(raw)
     try:
         config = AutoConfig.from_pretrained(path, local_files_only=True, trust_remote_code=False)
@@ -507,22 +511,25 @@ def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> Load
         raise HeadlightError(f"config.json in {path} cannot be read: {_first_line(exc)}") from None
     check_supported(family, config)
     geometry = family.head_geometry(config)
+    tok_path = adapter.path if adapter is not None and adapter.has_tokenizer else path
     try:
-        tokenizer = AutoTokenizer.from_pretrained(path, local_files_only=True,
+        tokenizer = AutoTokenizer.from_pretrained(tok_path, local_files_only=True,
                                                   trust_remote_code=False)
     except (ValueError, OSError, TypeError, KeyError, AttributeError, RuntimeError) as exc:
-        raise HeadlightError(f"tokenizer in {path} cannot be loaded: {_first_line(exc)}") from None
+        raise HeadlightError(f"tokenizer in {tok_path} cannot be loaded: {_first_line(exc)}") \
+            from None
     if not getattr(tokenizer, "is_fast", False):
-        raise HeadlightError(f"tokenizer in {path} is not a fast tokenizer (needed for offsets)")
+        raise HeadlightError(f"tokenizer in {tok_path} is not a fast tokenizer (needed for offsets)")
     tokenizer.padding_side = "right"
     try:
         model, info = auto_cls.from_pretrained(
             path,
             config=config,
             attn_implementation="eager",
+            dtype=torch.float32,  # bfloat16/float16 weights are upcast: the check runs at 1e-5
             local_files_only=True,
             trust_remote_code=False,
-            use_safetensors=safe,
+            use_safetensors=checked.safetensors,
             weights_only=True,
             output_loading_info=True,
         )
@@ -543,10 +550,30 @@ def open_model(folder: str | os.PathLike, *, allow_pickle: bool = False) -> Load
             f"weights in {path} lack {len(missing)} parameter(s) the config needs, e.g. {missing[0]}"
         )
     model.eval()
-    notes = (note,) if note else ()
-    loaded = LoadedModel(path, model, tokenizer, family, geometry, head_kind, notes)
-    loaded.weight_files = tuple(weights)
+    notes = [n for n in (note, _upcast_note(checked)) if n]
+    if adapter is not None:
+        model = merge_adapter(model, adapter)
+        notes.append(f"adapter {adapter.path.name} ({describe(adapter)}) merged into base "
+                     f"{_folder_name(path)}")
+    loaded = LoadedModel(adapter.path if adapter else path, model, tokenizer, family, geometry,
+                         head_kind, tuple(notes))
+    loaded.weight_files = checked.weights
+    if adapter is not None:
+        loaded.name = f"{_folder_name(path)} + {_folder_name(adapter.path)}"
+        loaded.base_folder = path
+        loaded.weight_files += (adapter.weights,)
     return loaded
+
+
+def _folder_name(folder: Path) -> str:
+    """A folder called just "model" says little: name it with its parent ("demo/model")."""
+    return folder.name if folder.name != "model" else f"{folder.parent.name}/model"
+
+
+def _upcast_note(checked: ModelFolder) -> str | None:
+    if checked.stored_dtype is None:
+        return None
+    return f"upcast from {checked.stored_dtype} to float32"
 
 
 def _first_line(exc: BaseException) -> str:

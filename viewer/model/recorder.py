@@ -1,16 +1,23 @@
-"""Hooks on every layer's attention: capture Q/K/V and head outputs, and gate heads.
+"""Hooks on every layer's attention: capture Q/K/V, score terms and head outputs, and gate heads.
 
-For each attention layer the family names up to five modules. Forward hooks on the query, key
-and value projections (or on the one fused projection) capture their outputs; a forward
-pre-hook on the attention output projection sees the concatenated head outputs, captures them
-and, when gates are set, multiplies each head's slice by its gate. For rotary families a
-pre-hook on the attention module captures the (cos, sin) tables the model itself uses, and the
-rotation is applied to the captured queries and keys afterwards (``viewer.core.rotary``).
+For each attention layer the family names the modules to hook. Forward hooks on the query, key
+and value projections (or on the one fused projection, or on the q/k norms that follow them)
+capture their outputs; a forward pre-hook on the attention output projection sees the
+concatenated head outputs, captures them and, when gates are set, multiplies each head's slice
+by its gate. For rotary families a pre-hook on the attention module captures the (cos, sin)
+tables the model itself uses in that layer, and the rotation is applied to the captured queries
+and keys afterwards (``viewer.core.rotary``).
+
+Relative-position terms are captured from the model's own run as well: for DeBERTa the bucketed
+relative positions the attention module receives and the relative embeddings projected to keys
+and queries (the outputs of the position projections, or the second call of the shared q/k
+projections on the relative embedding table); for MPNet the bucket indices fed to the bias
+embedding and its table.
 
 Layer indices are the order in which the hooks fire during one forward pass; this covers
 ALBERT's one shared layer that runs many times.
 
-Shapes: B batch, T padded tokens, H query heads, G key/value heads, d head size.
+Shapes: B batch, T padded tokens, H query heads, G key/value heads, d head size, R table rows.
 """
 
 from __future__ import annotations
@@ -40,7 +47,11 @@ class Capture:
     k: list[torch.Tensor] = field(default_factory=list)  # each (B, G, T, d)
     v: list[torch.Tensor] = field(default_factory=list)  # each (B, G, T, d)
     context: list[torch.Tensor] = field(default_factory=list)  # each (B, H, T, d)
-    rotary: list[tuple[torch.Tensor, torch.Tensor]] = field(default_factory=list)  # (B, T, d)
+    rotary: list[tuple[torch.Tensor, torch.Tensor]] = field(default_factory=list)  # (B, T, r)
+    pos_key: list[torch.Tensor] = field(default_factory=list)  # each (H, R, d) DeBERTa Kʳ
+    pos_query: list[torch.Tensor] = field(default_factory=list)  # each (H, R, d) DeBERTa Qʳ
+    rel_index: torch.Tensor | None = None  # (T, T) table row of each (query, key) pair
+    bias: torch.Tensor | None = None  # (H, R) MPNet relative bias table
 
 
 class AttentionHooks:
@@ -56,6 +67,7 @@ class AttentionHooks:
         self.gates: torch.Tensor | None = None
         self._out_calls = 0
         self._handles: list = []
+        self._relative_table: torch.Tensor | None = None  # DeBERTa's rel_embeddings this layer
 
         q, k, v = _find(model, family.q), _find(model, family.k), _find(model, family.v)
         qkv, out = _find(model, family.qkv), _find(model, family.out)
@@ -68,51 +80,126 @@ class AttentionHooks:
             )
         if not family.qkv and not (len(q) == len(k) == len(v)):
             raise HeadlightError(f"{family.name} checkpoint has unequal numbers of Q/K/V modules")
-        if family.rotary and len(rot) != len(q):
+        if family.rotary and len(rot) != len(projections):
             raise HeadlightError(f"{family.name} checkpoint: rotary attention modules not found")
         self.module_names = [name for name, _ in projections]
         self.projection_modules = [m for _, m in projections]
         self.out_modules = [m for _, m in out]
         self.value_modules = [m for _, m in (qkv if family.qkv else v)]
 
+        hook = self._handles.append
         if family.qkv:
             for _, m in qkv:
-                self._handles.append(m.register_forward_hook(self._on_qkv))
+                hook(m.register_forward_hook(self._on_qkv))
         else:
             for _, m in q:
-                self._handles.append(m.register_forward_hook(self._on_proj("q", geometry.n_heads)))
+                hook(m.register_forward_hook(self._on_proj("q", geometry.n_heads, True)))
             for _, m in k:
-                self._handles.append(m.register_forward_hook(self._on_proj("k", geometry.n_kv_heads)))
+                hook(m.register_forward_hook(self._on_proj("k", geometry.n_kv_heads, True)))
             for _, m in v:
-                self._handles.append(m.register_forward_hook(self._on_proj("v", geometry.n_kv_heads)))
+                hook(m.register_forward_hook(self._on_proj("v", geometry.n_kv_heads, False)))
         for _, m in rot:
-            self._handles.append(m.register_forward_pre_hook(self._on_rotary, with_kwargs=True))
+            hook(m.register_forward_pre_hook(self._on_rotary, with_kwargs=True))
         for _, m in out:
-            self._handles.append(m.register_forward_pre_hook(self._on_out))
+            hook(m.register_forward_pre_hook(self._on_out))
+        if family.relative == "disentangled":
+            for _, m in _find(model, family.relative_module):
+                hook(m.register_forward_pre_hook(self._on_disentangled, with_kwargs=True))
+            for _, m in _find(model, family.pos_k):
+                hook(m.register_forward_hook(self._on_position("pos_key")))
+            for _, m in _find(model, family.pos_q):
+                hook(m.register_forward_hook(self._on_position("pos_query")))
+        elif family.relative == "bias":
+            for _, m in _find(model, family.relative_module):
+                hook(m.register_forward_hook(self._on_bias))
 
     # -- hook bodies --------------------------------------------------------------------
-    def _split_heads(self, x: torch.Tensor, n: int) -> torch.Tensor:
+    def _split_heads(self, x: torch.Tensor, n: int, layout: str = "flat") -> torch.Tensor:
+        """(B, n, T, d) from a projection output in the given layout."""
+        x = x.detach()
+        if layout == "bhtd":
+            return x
+        if layout == "bthd":
+            return x.transpose(1, 2)
         b, t, _ = x.shape
-        return x.detach().reshape(b, t, n, self.geometry.head_dim).transpose(1, 2)  # (B, n, T, d)
+        return x.reshape(b, t, n, self.geometry.head_dim).transpose(1, 2)
 
-    def _on_proj(self, which: str, n_heads: int):
+    def _is_relative_table(self, x: torch.Tensor) -> bool:
+        """Whether a projection input is DeBERTa's relative embedding table (shared q/k)."""
+        table = self._relative_table
+        return table is not None and x.data_ptr() == table.data_ptr() and x.dim() == 3 \
+            and x.shape[0] == 1 and x.shape[-1] == table.shape[-1]
+
+    def _on_proj(self, which: str, n_heads: int, query_or_key: bool):
+        layout = self.family.qk_layout if query_or_key else "flat"
+        position = {"q": "pos_query", "k": "pos_key"}.get(which)
+
         def hook(module, args, output):
-            if self.capturing:
-                getattr(self.capture, which).append(self._split_heads(output, n_heads))
+            if not self.capturing:
+                return
+            if position and self._is_relative_table(args[0]):
+                getattr(self.capture, position).append(self._position_heads(output))
+                return
+            getattr(self.capture, which).append(self._split_heads(output, n_heads, layout))
 
         return hook
 
     def _on_qkv(self, module, args, output):
-        if self.capturing:
-            q, k, v = output.split(self.geometry.n_heads * self.geometry.head_dim, dim=2)
-            self.capture.q.append(self._split_heads(q, self.geometry.n_heads))
-            self.capture.k.append(self._split_heads(k, self.geometry.n_kv_heads))
-            self.capture.v.append(self._split_heads(v, self.geometry.n_kv_heads))
+        if not self.capturing:
+            return
+        h, g, d = self.geometry.n_heads, self.geometry.n_kv_heads, self.geometry.head_dim
+        if self.family.qkv_layout == "per_head":  # (B, T, H, 3d): [q k v] side by side per head
+            b, t, _ = output.shape
+            q, k, v = output.detach().reshape(b, t, h, 3 * d).transpose(1, 2).split(d, dim=-1)
+            self.capture.q.append(q)
+            self.capture.k.append(k)
+            self.capture.v.append(v)
+            return
+        q, k, v = output.split([h * d, g * d, g * d], dim=2)
+        self.capture.q.append(self._split_heads(q, h))
+        self.capture.k.append(self._split_heads(k, g))
+        self.capture.v.append(self._split_heads(v, g))
 
     def _on_rotary(self, module, args, kwargs):
         if self.capturing:
-            cos, sin = kwargs["position_embeddings"]
+            tables = kwargs.get("position_embeddings")
+            if tables is None:
+                raise RuntimeError(f"{self.family.name} attention got no position_embeddings")
+            cos, sin = tables
             self.capture.rotary.append((cos.detach(), sin.detach()))
+
+    def _position_heads(self, x: torch.Tensor) -> torch.Tensor:
+        """(H, R, d) from a position projection output (1, R, H·d)."""
+        return self._split_heads(x, self.geometry.n_heads)[0]
+
+    def _on_disentangled(self, module, args, kwargs):
+        """DeBERTa: the relative positions and embedding table the attention module receives."""
+        if not self.capturing:
+            return
+        rel, table = kwargs.get("relative_pos"), kwargs.get("rel_embeddings")
+        if rel is None or table is None:
+            self._relative_table = None
+            return
+        self._relative_table = table
+        if self.capture.rel_index is None:
+            span = int(module.pos_ebd_size)
+            # the row of the 2·span position tables each pair reads: clamp(δ + span, 0, 2span − 1)
+            index = torch.clamp(rel.detach().reshape(rel.shape[-2], rel.shape[-1]) + span,
+                                0, 2 * span - 1)
+            self.capture.rel_index = index
+
+    def _on_position(self, which: str):
+        def hook(module, args, output):
+            if self.capturing:
+                getattr(self.capture, which).append(self._position_heads(output))
+
+        return hook
+
+    def _on_bias(self, module, args, output):
+        """MPNet: the bucket indices (T, T) the bias embedding is looked up with, and its table."""
+        if self.capturing:
+            self.capture.rel_index = args[0].detach()
+            self.capture.bias = module.weight.detach().T  # (H, R)
 
     def _on_out(self, module, args):
         layer = self._out_calls
@@ -136,6 +223,7 @@ class AttentionHooks:
         self.capturing = capture
         self.capture = Capture()
         self._out_calls = 0
+        self._relative_table = None
 
     def end(self) -> Capture:
         if self._out_calls != self.n_layers:
@@ -143,6 +231,7 @@ class AttentionHooks:
                 f"attention output projection ran {self._out_calls} times, expected {self.n_layers}"
             )
         self.capturing = False
+        self._relative_table = None
         return self.capture
 
     def remove(self) -> None:

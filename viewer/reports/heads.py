@@ -23,7 +23,7 @@ def head_summary(loaded: LoadedModel, items: Iterable[TextItem], batch_size: int
     stats = HeadStats(loaded.n_layers, loaded.n_heads)
     for chunk in chunks(items, batch_size * 4):
         for att in loaded.attentions([i.text for i in chunk], batch_size=batch_size):
-            stats.add(att.probs, att.special, loaded.family.causal)
+            stats.add(att.probs, att.special, att.causal, visible=att.key_masks())
         if progress:
             progress(len(chunk))
     if stats.texts == 0:

@@ -1,0 +1,66 @@
+"""The re-derivation check on hand-built recordings (numpy only, no model).
+
+The model's probabilities are stood in for by SciPy's softmax of Q Kᵀ · scale (reference:
+``scipy.special.softmax``; Vaswani et al. 2017, Eq. 1), and the head outputs by probs @ V.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+from scipy.special import softmax as scipy_softmax
+
+from viewer.core.attention import check_recording
+from viewer.core.recording import Recording
+
+
+def make_recording(rng: np.random.Generator, n_layers: int = 2, n_heads: int = 4,
+                   n_kv: int = 2, t: int = 7, d: int = 8, causal: bool = False) -> Recording:
+    q = rng.normal(size=(n_layers, n_heads, t, d)).astype(np.float32)
+    k = rng.normal(size=(n_layers, n_kv, t, d)).astype(np.float32)
+    v = rng.normal(size=(n_layers, n_kv, t, d)).astype(np.float32)
+    scale = np.full(n_layers, d**-0.5)
+    kk = np.repeat(k.astype(np.float64), n_heads // n_kv, axis=1)  # GQA: head h uses h // groups
+    vv = np.repeat(v.astype(np.float64), n_heads // n_kv, axis=1)
+    scores = q.astype(np.float64) @ kk.transpose(0, 1, 3, 2) * scale[:, None, None, None]
+    if causal:
+        scores[..., ~np.tril(np.ones((t, t), dtype=bool))] = -np.inf
+    probs = scipy_softmax(scores, axis=-1)
+    return Recording(
+        text="x", tokens=tuple(f"t{i}" for i in range(t)), offsets=np.zeros((t, 2), np.int64),
+        special=np.zeros(t, bool), token_ids=np.arange(t), q=q, k=k, v=v,
+        probs=probs.astype(np.float32), context=(probs @ vv).astype(np.float32), scale=scale,
+        causal=causal, logits=np.zeros(0, np.float32), head_kind="encoder",
+    )
+
+
+def test_a_consistent_recording_passes():
+    rec = make_recording(np.random.default_rng(0), causal=True)
+    result = check_recording(rec)
+    assert result.passed, result.to_dict()
+    assert result.max_abs_error < 1e-6 and result.max_context_error < 1e-5
+
+
+def test_head_outputs_that_are_not_probs_times_values_fail_the_check():
+    """Probabilities right, captured head outputs wrong: the verdict must be FAILED."""
+    rec = make_recording(np.random.default_rng(1))
+    context = rec.context.copy()
+    context[1, 2, 3] += 1e-3  # layer 1 · head 2, one query row off
+    bad = dataclasses.replace(rec, context=context)
+    result = check_recording(bad)
+    assert result.max_abs_error < 1e-6, "the probabilities themselves still agree"
+    assert not result.passed
+    assert result.context_errors[1, 2] > 1e-4 and result.context_errors[0].max() < 1e-5
+    data = result.to_dict()
+    assert data["passed"] is False and data["max_context_error"] > 1e-4
+    assert data["layers"][1]["max_context_error"] > 1e-4
+
+
+def test_merged_results_keep_a_head_output_failure():
+    rng = np.random.default_rng(2)
+    good = check_recording(make_recording(rng))
+    rec = make_recording(rng)
+    bad = check_recording(dataclasses.replace(rec, context=rec.context * 1.01))
+    assert good.passed and not bad.passed
+    assert not good.merge(bad).passed and not bad.merge(good).passed
