@@ -69,7 +69,7 @@ def test_start_opens_the_demo_with_its_text_and_runs_it():
     c, state, worker, view = make()
     c.start()
     assert worker.kinds() == ["figures", "open"]
-    assert worker.submitted[1][2] == ("main", str(jobs.demo_folder()))
+    assert worker.submitted[1][2] == ("main", str(jobs.demo_folder()), None)
     assert view.text == DEMO_TEXT
     c.finished("open", info(str(jobs.demo_folder())))
     assert state.model is not None and view.opened == [(str(jobs.demo_folder()), False)]
@@ -136,7 +136,7 @@ def test_restoring_a_session_opens_its_model_then_its_files_and_text(tmp_path):
                                selection={"layer": 1, "head": None, "metric": "distance"},
                                notes="n")
     c.restore_session(session)
-    assert worker.kinds() == ["open"] and worker.submitted[0][2] == ("main", "/ckpt")
+    assert worker.kinds() == ["open"] and worker.submitted[0][2] == ("main", "/ckpt", None)
     assert view.text == "a text" and state.notes == "n"
     c.finished("open", info("/ckpt"))
     assert worker.kinds() == ["open", "textset", "pairs", "run"]

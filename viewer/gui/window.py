@@ -346,6 +346,10 @@ class MainWindow(QMainWindow):
     def later(self, msecs: int, fn) -> None:
         QTimer.singleShot(msecs, self, fn)
 
+    def ask_base_model(self, adapter: str, message: str) -> str | None:
+        """Ask for an adapter's base model folder (the adapter names none on this machine)."""
+        return choose_base_folder(self, adapter, message)
+
     def figures_ready(self, seconds: float) -> None:
         for pane in self.figure_panes:
             pane.attach_canvas()
@@ -547,6 +551,14 @@ class MainWindow(QMainWindow):
         self.textset_pane.detach()
         self.shortcut_pane.detach()
         super().closeEvent(event)
+
+
+def choose_base_folder(parent: QWidget, adapter: str, message: str) -> str | None:
+    """The base model folder for an adapter, from a folder dialog (tests patch this)."""
+    QMessageBox.information(parent, "Headlight", f"{message}\n\nChoose the base model's "
+                            f"folder for the adapter {Path(adapter).name}.")
+    folder = QFileDialog.getExistingDirectory(parent, f"Base model for {Path(adapter).name}")
+    return folder or None
 
 
 def confirm_close_unsaved(parent: QWidget, reason: str) -> bool:

@@ -116,7 +116,7 @@ def summarise(analysis: TextAnalysis, threads: int | None = None) -> TextAnalysi
     rec = analysis.recording
     check = check_recording(rec, threads=threads)
     stats = HeadStats(rec.n_layers, rec.n_heads)
-    stats.add(rec.probs, rec.special, rec.causal)
+    stats.add(rec.probs, rec.special, rec.causal, visible=rec.key_masks())
     return replace(analysis, check=check, heads=stats.summary())
 
 

@@ -47,6 +47,7 @@ class View(Protocol):
     def show_panel(self, name: str) -> None: ...  # "textset", "shortcuts", "compare"
     def evidence_after_runs(self) -> bool: ...
     def later(self, msecs: int, fn: Callable[[], None]) -> None: ...
+    def ask_base_model(self, adapter: str, message: str) -> str | None: ...
     def figures_ready(self, seconds: float) -> None: ...
     def card_written(self, path: str) -> None: ...
 
@@ -99,15 +100,26 @@ class Controller:
         self.view.figures_ready(seconds)
 
     # -- models ---------------------------------------------------------------------------------
-    def open_model(self, folder: str, *, run_after: bool = False, remember: bool = True) -> None:
+    def open_model(self, folder: str, *, run_after: bool = False, remember: bool = True,
+                   base: str | None = None) -> None:
+        """Open a model folder, or an adapter folder (on ``base`` when given)."""
         self.worker.cancel("run")
         self.worker.cancel("evidence")
         self._after_open = [self.run_current] if run_after else []
         self._remember = remember
         self.view.model_opening(str(folder))
-        self.worker.submit("open", jobs.open_model, "main", str(folder))
+        self.worker.submit("open", jobs.open_model, "main", str(folder),
+                           None if base is None else str(base))
 
-    def _done_open(self, info: ModelInfo) -> None:
+    def _done_open(self, info: ModelInfo | jobs.BaseNeeded) -> None:
+        if isinstance(info, jobs.BaseNeeded):
+            base = self.view.ask_base_model(info.folder, info.message)
+            if not base:
+                self._after_open.clear()
+                self.view.show_error(info.message)
+                return
+            self.worker.submit("open", jobs.open_model, "main", info.folder, str(base))
+            return
         self.state.set_model(info)
         self.view.model_opened(info, self._remember)
         self.view.set_status(f"opened {info.name}")
@@ -298,7 +310,12 @@ class Controller:
                                replace=False)
         self.view.show_panel("compare")
 
-    def _done_compare_open(self, info: ModelInfo) -> None:
+    def _done_compare_open(self, info: ModelInfo | jobs.BaseNeeded) -> None:
+        if isinstance(info, jobs.BaseNeeded):
+            self.worker.cancel("compare")
+            self.view.show_error(f"{info.message} (open the compared adapter as the main model "
+                                 "first to choose its base)")
+            return
         model = self.state.model
         if model is not None and (info.n_layers, info.n_heads) != (model.n_layers,
                                                                    model.n_heads):
@@ -345,7 +362,7 @@ class Controller:
             follow.append(lambda: self.open_pairs(session.link_pairs))
         if session.text.strip():
             follow.append(self.run_current)
-        self.open_model(session.model)
+        self.open_model(session.model, base=session.base)
         self._after_open = follow
 
     def apply_selection(self, sel: dict[str, Any]) -> None:

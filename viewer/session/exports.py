@@ -131,7 +131,7 @@ def pair_grid_export(analysis, source: Source, *, layer: int, head: int | None,
     mark the selected cell."""
     import numpy as np
 
-    from viewer.figures.pair_grid import mark_cell, pair_grid_into
+    from viewer.figures.pair_grid import mark_cell, pair_grid_into, visible_cells
     from viewer.figures.style import ATTENTION_UNITS, head_name
 
     if analysis is None:
@@ -140,7 +140,7 @@ def pair_grid_export(analysis, source: Source, *, layer: int, head: int | None,
     layer = min(layer, rec.n_layers - 1)
     head = head if head is None else min(head, rec.n_heads - 1)
     grid = np.asarray(analysis.grid(layer, head))
-    visible = rec.key_mask() if rec.causal else None
+    visible = visible_cells(rec, layer)
     where = head_name(layer, head)
     fig = print_figure()
     arts = pair_grid_into(fig, grid, rec.tokens, visible=visible,

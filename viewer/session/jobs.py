@@ -81,18 +81,34 @@ def info_of(loaded: Any) -> ModelInfo:
         folder=str(loaded.folder), name=name, family=loaded.family.name,
         n_layers=int(loaded.n_layers), n_heads=int(loaded.n_heads), labels=tuple(loaded.labels),
         head_kind=loaded.head_kind, max_tokens=int(loaded.max_tokens), notes=tuple(loaded.notes),
+        base=None if loaded.base_folder is None else str(loaded.base_folder),
     )
 
 
-def open_model(ctx: JobContext, slot: str, folder: str) -> ModelInfo:
-    """Open ``folder`` into ``slot`` (importing torch and transformers the first time)."""
+@dataclass(frozen=True)
+class BaseNeeded:
+    """``open_model``'s answer for an adapter folder whose base model is not a local folder:
+    the window asks the user for the base and opens the adapter again with it."""
+
+    folder: str
+    message: str
+
+
+def open_model(ctx: JobContext, slot: str, folder: str,
+               base: str | None = None) -> ModelInfo | BaseNeeded:
+    """Open ``folder`` (an adapter folder on ``base``) into ``slot``, importing torch and
+    transformers the first time; ``BaseNeeded`` when an adapter's base must be chosen."""
     ctx.progress(0, 0, "loading torch and transformers…")
+    from viewer.model.folders import NeedsBaseModel
     from viewer.model.loader import open_model as open_folder
 
     settle_imports()
     ctx.check()
     ctx.progress(0, 0, f"opening {Path(folder).name}…")
-    loaded = open_folder(folder)
+    try:
+        loaded = open_folder(folder, base=base)
+    except NeedsBaseModel as exc:
+        return BaseNeeded(str(folder), str(exc))
     ctx.check()
     old = ctx.models.get(slot)
     if old is not None and hasattr(old, "hooks"):
@@ -186,7 +202,7 @@ def run_textset(ctx: JobContext, slot: str, path: str, batch_size: int = 8) -> T
         chunk = items[start:start + batch_size]
         for offset, att in enumerate(loaded.attentions([i.text for i in chunk], batch_size)):
             item = chunk[offset]
-            stats.add(att.probs, att.special, loaded.family.causal)
+            stats.add(att.probs, att.special, att.causal, visible=att.key_masks())
             predicted = confidence = None
             if att.target is not None and loaded.head_kind == "classifier":
                 k = int(att.target.argmax())

@@ -5,6 +5,7 @@ Format (``"format": "headlight-session"``, ``"version": 1``)::
     {
       "format": "headlight-session", "version": 1,
       "model": "/path/to/checkpoint" | null,
+      "base": "/path/to/base/model" | null,   (the base of an adapter folder; optional)
       "text": "the text of the current run",
       "text_set": "/path/to/texts.jsonl" | null, "item": 3 | null,
       "link_pairs": "/path/to/pairs.jsonl" | null,
@@ -37,6 +38,7 @@ VERSION = 1
 @dataclass
 class Session:
     model: str | None = None
+    base: str | None = None
     text: str = ""
     text_set: str | None = None
     item: int | None = None
@@ -56,6 +58,7 @@ def capture(state: Selection, *, text_set: str | None = None,
     target = state.compare_target
     return Session(
         model=model,
+        base=state.model.base if state.model is not None else None,
         text=state.text,
         text_set=text_set if text_set is not None else (
             state.textset.path if state.textset is not None else None),
@@ -107,7 +110,7 @@ def from_dict(data: Any) -> Session:
                                  "\"value\": ...}")
         compare = {"kind": compare["kind"], "value": compare["value"]}
     strings = {}
-    for name in ("model", "text_set", "link_pairs"):
+    for name in ("model", "base", "text_set", "link_pairs"):
         v = data.get(name)
         if v is not None and not isinstance(v, str):
             raise HeadlightError(f"session field {name} must be a path or null")
@@ -116,7 +119,7 @@ def from_dict(data: Any) -> Session:
     notes = data.get("notes", "")
     if not isinstance(text, str) or not isinstance(notes, str):
         raise HeadlightError("session fields text and notes must be strings")
-    return Session(model=strings["model"], text=text, text_set=strings["text_set"],
+    return Session(model=strings["model"], base=strings["base"], text=text, text_set=strings["text_set"],
                    item=_int_or_none(data.get("item"), "item"), link_pairs=strings["link_pairs"],
                    compare=compare, selection=clean, notes=notes)
 

@@ -86,11 +86,15 @@ class ModelInfo:
     head_kind: str
     max_tokens: int
     notes: tuple[str, ...] = ()
+    base: str | None = None  # the base model folder when ``folder`` is an adapter
 
     def describe(self) -> str:
+        """The model line: name ("base + adapter" for an adapter), family, size, and how the
+        weights were loaded when that is not as stored (e.g. "upcast from bfloat16 ...")."""
         kind = "classifier" if self.head_kind == "classifier" else self.head_kind
+        loaded = "".join(f" · {n}" for n in self.notes if n.startswith("upcast from"))
         return (f"{self.name} · {self.family} {kind} · {self.n_layers} layers × "
-                f"{self.n_heads} heads")
+                f"{self.n_heads} heads{loaded}")
 
 
 class Selection:

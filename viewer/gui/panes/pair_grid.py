@@ -92,13 +92,16 @@ class PairGridPane(FigurePane):
             target = None
 
         def build() -> None:  # render thread
-            from viewer.figures.pair_grid import mark_cell, update_pair_grid
+            from viewer.figures.pair_grid import mark_cell, update_pair_grid, visible_cells
 
-            visible = rec.key_mask() if rec.causal else None
+            visible = visible_cells(rec, layer)
             if self.artists is not None and self._drawn_for is rec:
-                # same tokens: only image, title, colour bar and outline change
+                # same tokens: only image, title, colour bar and outline change — unless the
+                # hatching behind masked cells appears or goes (a windowed layer next to a
+                # global one): the background the blitter keeps has it or not
+                hatched = self.artists.background.get_visible()
                 update_pair_grid(self.artists, grid, visible=visible, title=title)
-                self.fast = True
+                self.fast = self.artists.background.get_visible() == hatched
             else:
                 self._lay_out(rec.tokens, grid, visible, title)
             self._drawn_for = rec
@@ -158,8 +161,10 @@ class PairGridPane(FigurePane):
         row, col = cell
         rec = self.analysis.recording
         grid, layer, head = self.current_grid()
-        if rec.causal and col > row:
-            value = "masked (a causal query cannot see later keys)"
+        if not rec.key_mask(layer)[row, col]:
+            why = ("a causal query cannot see later keys" if rec.causal and col > row
+                   else "outside this layer's attention window")
+            value = f"masked ({why})"
         else:
             value = f"{float(grid[row, col]):.6f}"
         return (f"{_head_name(layer, head)}\nquery {row} '{rec.tokens[row]}' → "
