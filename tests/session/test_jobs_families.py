@@ -14,7 +14,6 @@ from tests.model import tiny
 from viewer.core.headstats import HeadStats
 from viewer.session import jobs
 
-
 EVIDENCE_KINDS = ("deberta-v2", "modernbert", "qwen3", "gemma2", "llama-cls")
 
 
