@@ -12,18 +12,16 @@ the family's score terms) against one bare forward. Goal: recording <= 1.25x. No
 
 from __future__ import annotations
 
-import statistics
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import torch
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
+from tests.benchmarks.bench_recording import measure  # noqa: E402
 from tests.model import tiny  # noqa: E402
-from viewer.core.attention import check_recording  # noqa: E402
 from viewer.model.loader import open_model  # noqa: E402
 
 SIZE = dict(hidden_size=256, num_attention_heads=4, num_hidden_layers=4, intermediate_size=1024,
@@ -48,23 +46,8 @@ def main(repeats: int = 15, n_tokens: int = 128) -> None:
     with tempfile.TemporaryDirectory() as root:
         for kind, overrides in KINDS.items():
             loaded = open_model(tiny.save(Path(root) / kind, kind, **overrides))
-            text = text_of(loaded, n_tokens)
-            inputs = loaded.model_inputs(loaded.encode([text]))
-            rec_t, bare_t, check_t = [], [], []
-            rec = loaded.record(text)  # warm-up
-            for _ in range(repeats):
-                t0 = time.perf_counter()
-                rec = loaded.record(text)
-                rec_t.append(time.perf_counter() - t0)
-                with loaded.unhooked() as model, torch.no_grad():
-                    t0 = time.perf_counter()
-                    loaded.tokenizer([text], return_tensors="pt")
-                    model(**inputs, output_attentions=True)
-                    bare_t.append(time.perf_counter() - t0)
-                t0 = time.perf_counter()
-                result = check_recording(rec)
-                check_t.append(time.perf_counter() - t0)
-            rec_m, bare_m, check_m = (statistics.median(x) for x in (rec_t, bare_t, check_t))
+            (rec_m, bare_m, check_m), rec, result = measure(loaded, text_of(loaded, n_tokens),
+                                                            repeats)
             print(f"{loaded.family.name:11s} {rec.n_tokens:4d} tokens, terms "
                   f"{','.join(rec.terms.names()) or '-':18s}: recording {rec_m*1e3:6.1f} ms, "
                   f"bare forward {bare_m*1e3:6.1f} ms, ratio {rec_m / bare_m:.2f}x (goal <= 1.25x);"

@@ -35,29 +35,34 @@ def text_of(loaded, n_tokens: int) -> str:
     return text
 
 
+def measure(loaded, text: str, repeats: int):
+    """(recording, bare forward, check) medians in seconds, alternated, and the last
+    recording and check result."""
+    inputs = loaded.model_inputs(loaded.encode([text]))
+    rec_t, bare_t, check_t = [], [], []
+    loaded.record(text)  # warm-up
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        rec = loaded.record(text)
+        rec_t.append(time.perf_counter() - t0)
+        with loaded.unhooked() as model, torch.no_grad():
+            t0 = time.perf_counter()
+            loaded.tokenizer([text], return_tensors="pt")
+            model(**inputs, output_attentions=True)
+            bare_t.append(time.perf_counter() - t0)
+        t0 = time.perf_counter()
+        result = check_recording(rec)
+        check_t.append(time.perf_counter() - t0)
+    medians = tuple(statistics.median(x) for x in (rec_t, bare_t, check_t))
+    return medians, rec, result
+
+
 def main(repeats: int = 15) -> None:
     torch.set_num_threads(2)
     loaded = open_model(minilm_folder())
     print(f"model: MiniLM ({loaded.n_layers} layers x {loaded.n_heads} heads), torch threads 2")
     for n in (32, 128, 512):
-        text = text_of(loaded, n)
-        batch = loaded.encode([text])
-        inputs = loaded.model_inputs(batch)
-        rec_t, bare_t, check_t = [], [], []
-        loaded.record(text)  # warm-up
-        for _ in range(repeats):
-            t0 = time.perf_counter()
-            rec = loaded.record(text)
-            rec_t.append(time.perf_counter() - t0)
-            with loaded.unhooked() as model, torch.no_grad():
-                t0 = time.perf_counter()
-                loaded.tokenizer([text], return_tensors="pt")
-                model(**inputs, output_attentions=True)
-                bare_t.append(time.perf_counter() - t0)
-            t0 = time.perf_counter()
-            check_recording(rec)
-            check_t.append(time.perf_counter() - t0)
-        rec_m, bare_m, check_m = (statistics.median(x) for x in (rec_t, bare_t, check_t))
+        (rec_m, bare_m, check_m), rec, _ = measure(loaded, text_of(loaded, n), repeats)
         print(f"{rec.n_tokens:4d} tokens: recording {rec_m*1e3:7.1f} ms, bare forward "
               f"{bare_m*1e3:7.1f} ms, ratio {rec_m / bare_m:.2f}x (goal <= 1.25x at 128); "
               f"check {check_m*1e3:7.1f} ms = {check_m / bare_m:.2f}x of a forward "

@@ -194,14 +194,15 @@ def causal_window(t: int, w: int | None) -> torch.Tensor:
 
 
 def local_window(t: int, half: int | None) -> torch.Tensor:
-    """Bidirectional local attention: |i − j| <= half (Warner et al. 2024, ModernBERT, §2.1.1:
-    local layers attend within a sliding window of local_attention tokens, half on each side)."""
+    """Bidirectional local attention: |i − j| <= half (Warner et al. 2024, ModernBERT,
+    alternating attention: local layers attend within a window of local_attention tokens centred
+    on the query; docs/families.md §7)."""
     i, j = torch.arange(t)[:, None], torch.arange(t)[None, :]
     return (i - j).abs() <= half if half is not None else torch.ones(t, t, dtype=torch.bool)
 
 
 def test_gemma2_soft_capping_and_windows(tmp_path):
-    """Gemma Team 2024 (Gemma 2), §2: logits soft-capped as cap · tanh(logits / cap); scale
+    """Gemma Team 2024 (Gemma 2), logit soft-capping: cap · tanh(logits / cap); scale
     query_pre_attn_scalar^(−1/2); sliding layers alternate with global ones."""
     loaded = open_tiny(tmp_path, "gemma2")
     rec = loaded.record(TEXT)
