@@ -1,8 +1,10 @@
 """Safe file output: atomic writes, no silent overwrites, sanitised names.
 
-Every file Headlight writes goes to a temporary file in the target folder first and is then
-renamed over the target (``os.replace`` is atomic on one file system), so a crash or a full
-disk never leaves a half-written figure or card behind. An existing file or folder is only
+Every file Headlight writes goes to a temporary file in the target folder first, is flushed to
+disk (fsync) and is then renamed over the target (``os.replace`` is atomic on one file system;
+the folder is fsynced after the rename), so a crash, a power cut or a full disk never leaves a
+half-written figure, card or run-folder shard behind. ``atomic_write_bytes`` is the one helper
+for this; everything else that writes a file goes through it. An existing file or folder is only
 replaced when the caller says so (``--force`` on the command line, a confirmation in the
 window). Problems the user can fix become one-line ``HeadlightError`` messages.
 """
@@ -41,12 +43,29 @@ def atomic_write_bytes(path: str | os.PathLike, data: bytes, *, force: bool = Tr
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())  # the bytes are on disk before the name points at them
         os.chmod(tmp, 0o644)
         os.replace(tmp, path)
     except OSError as exc:
         Path(tmp).unlink(missing_ok=True)
         raise _fail(path, exc) from None
+    _fsync_folder(folder)
     return path
+
+
+def _fsync_folder(folder: Path) -> None:
+    """Make a rename in ``folder`` durable (POSIX: fsync the folder; a no-op where it cannot)."""
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass  # some file systems cannot fsync a folder; the rename itself has happened
+    finally:
+        os.close(fd)
 
 
 def atomic_write_text(path: str | os.PathLike, text: str, *, force: bool = True) -> Path:
