@@ -32,3 +32,16 @@ def minilm(minilm_dir):
     from viewer.model.loader import open_model
 
     return open_model(minilm_dir)
+
+
+@pytest.fixture(scope="session")
+def run_folders(tmp_path_factory) -> Path:
+    return tmp_path_factory.mktemp("runs")
+
+
+@pytest.fixture(autouse=True)
+def _runs_in_a_temporary_folder(run_folders, monkeypatch):
+    """Commands keep their run folders under the test's temporary folder, not ~/.cache."""
+    from viewer.reports import runfolder
+
+    monkeypatch.setattr(runfolder, "default_work_dir", lambda: run_folders)

@@ -8,6 +8,7 @@ Heavy libraries (torch, transformers, Qt) are imported inside the commands that 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -16,6 +17,7 @@ from viewer import __version__
 from viewer.core.attention import DEFAULT_TOLERANCE
 from viewer.errors import HeadlightError
 from viewer.files import write_json
+from viewer.reports.shards import SHARD_SIZE
 
 DEFAULT_CHECK_TEXT = (
     "The mechanic at the co-op trued the rear wheel, then she checked the brake cables twice."
@@ -27,18 +29,38 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"headlight: error: {message} (see headlight --help)\n")
 
 
-def _texts(args: argparse.Namespace, default: str | None = None) -> list[str]:
-    from viewer.reports.textsets import load_text_set
+def _source(args: argparse.Namespace):
+    """The text set of ``--texts`` with its read options (split, columns)."""
+    from viewer.reports.textsets import TextSource
 
-    if getattr(args, "text", None) and getattr(args, "texts", None):
-        raise HeadlightError("give either --text or --texts, not both")
-    if getattr(args, "texts", None):
-        return [item.text for item in load_text_set(args.texts)]
-    if getattr(args, "text", None):
-        return [args.text]
-    if default is None:
-        raise HeadlightError("no text given; use --text or --texts")
-    return [default]
+    return TextSource(Path(args.texts), split=args.split, text_column=args.text_column,
+                      label_column=args.label_column)
+
+
+def cores() -> int:
+    """Cores this process may run on."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on every platform
+        return os.cpu_count() or 1
+
+
+def _run_options(args: argparse.Namespace):
+    """Where a set's shards run (``--workers``, ``--cluster``) and the run folder (``--work``)."""
+    from viewer.reports.runfolder import default_work_dir
+    from viewer.reports.shards import RunOptions
+
+    if args.cluster and args.workers is not None:
+        raise HeadlightError("give either --workers or --cluster, not both (a cluster's size is "
+                             "its workers')")
+    workers = cores() if args.workers is None else args.workers
+    if workers < 1:
+        raise HeadlightError(f"--workers must be at least 1, got {workers}")
+    if args.shard_size < 1:
+        raise HeadlightError(f"--shard-size must be at least 1, got {args.shard_size}")
+    work = Path(args.work).expanduser() if args.work else default_work_dir()
+    return RunOptions(workers=workers, cluster=args.cluster, work=work, fresh=args.fresh,
+                      shard_size=args.shard_size)
 
 
 def _open(args: argparse.Namespace):
@@ -53,10 +75,16 @@ def _open(args: argparse.Namespace):
 
 def cmd_check(args: argparse.Namespace) -> int:
     from viewer.reports.runs import check_data
+    from viewer.reports.textsets import survey
 
-    texts = _texts(args, DEFAULT_CHECK_TEXT)
+    if args.text and args.texts:
+        raise HeadlightError("give either --text or --texts, not both")
+    texts = [args.text or DEFAULT_CHECK_TEXT]
+    if args.texts:
+        texts = _source(args)
+        survey(texts)  # bad input is reported before the model is opened
     loaded = _open(args)
-    data = check_data(loaded, texts, args.tolerance)
+    data = check_data(loaded, texts, args.tolerance, run=_run_options(args))
     print(f"re-derivation check: {data['family']} · {loaded.n_layers} layers × "
           f"{loaded.n_heads} heads · {data['texts']} text(s)")
     print(f"{'layer':>5}  {'max abs error':>13}")
@@ -83,10 +111,11 @@ def _grid(title: str, grid, fmt: str = "{:6.3f}") -> str:
 def cmd_heads(args: argparse.Namespace) -> int:
     from viewer.reports.runs import heads_data
 
+    run = _run_options(args)
     loaded = _open(args)
-    data = heads_data(loaded, args.texts, batch_size=args.batch_size,
+    data = heads_data(loaded, _source(args), batch_size=args.batch_size,
                       importance=not args.skip_importance, knockout=args.knockout_heads,
-                      quiet=args.quiet)
+                      quiet=args.quiet, run=run)
     print(_grid("mean entropy (0 = one key, 1 = uniform over the visible keys)", data["entropy"]))
     if "importance" in data:
         print(_grid("head importance (Michel et al. 2019), unit norm per layer",
@@ -104,8 +133,9 @@ def cmd_links(args: argparse.Namespace) -> int:
     from viewer.reports.runs import links_data
 
     read_link_pairs(args.pairs)  # bad pairs are reported before the model is opened
+    run = _run_options(args)
     loaded = _open(args)
-    data = links_data(loaded, args.pairs, batch_size=args.batch_size, quiet=args.quiet)
+    data = links_data(loaded, args.pairs, batch_size=args.batch_size, quiet=args.quiet, run=run)
     print(_grid(f"link accuracy over {data['pairs']} pairs (target strictly above every "
                 "distractor)", data["accuracy"]))
     best = data["best"]
@@ -119,9 +149,10 @@ def cmd_links(args: argparse.Namespace) -> int:
 def cmd_shortcuts(args: argparse.Namespace) -> int:
     from viewer.reports.runs import shortcuts_data
 
+    run = _run_options(args)
     loaded = _open(args)
-    data = shortcuts_data(loaded, args.texts, batch_size=args.batch_size,
-                          phrases=not args.no_phrases, quiet=args.quiet)
+    data = shortcuts_data(loaded, _source(args), batch_size=args.batch_size,
+                          phrases=not args.no_phrases, quiet=args.quiet, run=run)
     for title, rows in (("words", data["tokens"]), ("two-word phrases", data["phrases"])):
         if title != "words" and args.no_phrases:
             continue
@@ -193,13 +224,15 @@ def cmd_card(args: argparse.Namespace) -> int:
     out = Path(args.out)
     if out.exists() and not args.force:
         raise HeadlightError(f"{out} already exists; pass --force to replace it")
-    load_text_set(args.texts)  # bad inputs are reported before the model is opened
+    source = _source(args)
+    load_text_set(source)  # bad inputs are reported before the model is opened
     if args.pairs:
         read_link_pairs(args.pairs)
+    run = _run_options(args)
     loaded = _open(args)
     command = ["headlight", *(args.argv or [])]
-    export_card(loaded, args.texts, out, pairs_path=args.pairs, force=args.force,
-                command=command, batch_size=args.batch_size, quiet=args.quiet)
+    export_card(loaded, source, out, pairs_path=args.pairs, force=args.force,
+                command=command, batch_size=args.batch_size, quiet=args.quiet, run=run)
     print(f"card written to {out}/ (card.md, card.json, figures/)")
     return 0
 
@@ -231,23 +264,50 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--json", metavar="FILE", help="also write the result as JSON")
         return p
 
+    def run_options(p: argparse.ArgumentParser) -> None:
+        g = p.add_argument_group("large sets (README, \"Large evaluation sets\")")
+        g.add_argument("--workers", type=int, metavar="N",
+                       help="worker processes on this machine (default: all cores, one torch "
+                       "thread each; 1 runs in this process)")
+        g.add_argument("--cluster", metavar="ADDRESS",
+                       help="run the shards on a Dask cluster, e.g. tcp://10.0.0.5:8786 (the "
+                       "model folder must be at the same path on every worker)")
+        g.add_argument("--work", metavar="DIR", help="where run folders are kept (default: "
+                       "$XDG_CACHE_HOME/headlight/runs or ~/.cache/headlight/runs)")
+        g.add_argument("--fresh", action="store_true",
+                       help="ignore the finished shards of an earlier run and start over")
+        g.add_argument("--shard-size", type=int, default=SHARD_SIZE, metavar="N",
+                       help=f"texts per shard (default {SHARD_SIZE}); part of a run's identity")
+
+    def text_set(p: argparse.ArgumentParser, required: bool = True) -> None:
+        p.add_argument("--texts", metavar="FILE", required=required,
+                       help="text set: .txt, .jsonl, .csv, .parquet or a folder saved by "
+                       "datasets' save_to_disk")
+        p.add_argument("--split", help="split of a saved DatasetDict")
+        p.add_argument("--text-column", metavar="NAME",
+                       help="column (field) holding the texts (default: text)")
+        p.add_argument("--label-column", metavar="NAME",
+                       help="column (field) holding the labels (default: label, when present)")
+
     p = model_command("check", "re-derive attention from the captured Q/K for every layer and "
                       "head and compare with the model's own probabilities")
     p.add_argument("--text", help="text to check (default: a built-in sentence)")
-    p.add_argument("--texts", metavar="FILE", help="text set (.txt, .jsonl, .csv)")
+    text_set(p, required=False)
     p.add_argument("--tolerance", type=float, default=DEFAULT_TOLERANCE,
                    help=f"max abs error (default {DEFAULT_TOLERANCE:g})")
+    run_options(p)
     p.set_defaults(func=cmd_check)
 
     def set_command(name: str, help_text: str, func) -> argparse.ArgumentParser:
         p = model_command(name, help_text)
         p.add_argument("--batch-size", type=int, default=16, help="texts per batch (default 16)")
         p.add_argument("--quiet", action="store_true", help="no progress bar on stderr")
+        run_options(p)
         p.set_defaults(func=func)
         return p
 
     p = set_command("heads", "head summaries over a text set", cmd_heads)
-    p.add_argument("--texts", metavar="FILE", required=True, help="text set (.txt, .jsonl, .csv)")
+    text_set(p)
     p.add_argument("--skip-importance", action="store_true",
                    help="leave out head importance (gradients; slower)")
     p.add_argument("--knockout-heads", action="store_true",
@@ -256,7 +316,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--pairs", metavar="FILE", required=True, help="link pairs (.jsonl)")
     p = set_command("shortcuts", "shortcut search by word knockout over a text set",
                     cmd_shortcuts)
-    p.add_argument("--texts", metavar="FILE", required=True, help="text set (.txt, .jsonl, .csv)")
+    text_set(p)
     p.add_argument("--no-phrases", action="store_true", help="skip the two-word phrase search")
     p.add_argument("--top", type=int, default=15, help="rows to print (default 15)")
     p = set_command("insert", "insertion test: insert a word or phrase into the texts of other "
@@ -274,7 +334,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_evidence)
     p = set_command("card", "card export: Markdown section, figures and numbers for a model card",
                     cmd_card)
-    p.add_argument("--texts", metavar="FILE", required=True, help="text set (.txt, .jsonl, .csv)")
+    text_set(p)
     p.add_argument("--pairs", metavar="FILE", help="link pairs (.jsonl)")
     p.add_argument("--out", metavar="FOLDER", required=True, help="folder to create")
     p.add_argument("--force", action="store_true", help="replace an existing folder")
@@ -294,6 +354,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("headlight: interrupted", file=sys.stderr)
         return 130
+    finally:
+        if "viewer.reports.workers" in sys.modules:  # worker pools and cluster clients
+            sys.modules["viewer.reports.workers"].close_engines()
 
 
 if __name__ == "__main__":

@@ -3,8 +3,8 @@
 Every file Headlight writes goes to a temporary file in the target folder first, is flushed to
 disk (fsync) and is then renamed over the target (``os.replace`` is atomic on one file system;
 the folder is fsynced after the rename), so a crash, a power cut or a full disk never leaves a
-half-written figure, card, session or run shard behind. ``atomic_write_bytes`` is the one
-helper for this. An existing file or folder is only
+half-written figure, card, session or run-folder shard behind. ``atomic_write_bytes`` is the one helper
+for this; everything else that writes a file goes through it. An existing file or folder is only
 replaced when the caller says so (``--force`` on the command line, a confirmation in the
 window). Problems the user can fix become one-line ``HeadlightError`` messages.
 """
@@ -55,7 +55,7 @@ def atomic_write_bytes(path: str | os.PathLike, data: bytes, *, force: bool = Tr
 
 
 def _fsync_folder(folder: Path) -> None:
-    """Make a rename in ``folder`` durable (POSIX: fsync the directory; a no-op elsewhere)."""
+    """Make a rename in ``folder`` durable (POSIX: fsync the folder; a no-op where it cannot)."""
     try:
         fd = os.open(folder, os.O_RDONLY)
     except OSError:
@@ -63,7 +63,7 @@ def _fsync_folder(folder: Path) -> None:
     try:
         os.fsync(fd)
     except OSError:
-        pass  # some file systems cannot fsync a directory; the rename itself has happened
+        pass  # some file systems cannot fsync a folder; the rename itself has happened
     finally:
         os.close(fd)
 

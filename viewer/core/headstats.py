@@ -3,7 +3,8 @@
 ``HeadStats`` keeps float64 sums and row counts of shape (L, H) and nothing per text, so its
 memory does not depend on how many texts it has seen. Two accumulators filled on different
 parts of a text set (another process, another batch) ``merge`` into the one a single pass
-would have produced.
+would have produced; ``state`` / ``from_state`` turn one into plain arrays and back, exactly
+(a run folder keeps finished shards that way, docs/scale.md).
 
 Every metric is a **mean over query rows**, pooled over all texts (a long text weighs more than
 a short one, in proportion to its rows). For a query row i with attention a_i. over keys j:
@@ -180,6 +181,24 @@ class HeadStats:
         self._sums += other._sums
         self._rows += other._rows
         return self
+
+    def state(self) -> dict[str, np.ndarray]:
+        """The accumulator as plain arrays (no pickle needed); ``from_state`` restores it exactly."""
+        return {"texts": np.array(self.texts, dtype=np.int64), "sums": self._sums.copy(),
+                "rows": self._rows.copy()}
+
+    @classmethod
+    def from_state(cls, state: dict[str, np.ndarray]) -> HeadStats:
+        sums = np.asarray(state["sums"], dtype=np.float64)  # (M, L, H)
+        rows = np.asarray(state["rows"], dtype=np.int64)  # (M, L) rows counted per layer
+        if (sums.ndim != 3 or sums.shape[0] != len(METRICS)
+                or rows.shape != (len(METRICS), sums.shape[1])):
+            raise ValueError(f"not a head-stats state: sums {sums.shape}, rows {rows.shape}")
+        stats = cls(sums.shape[1], sums.shape[2])
+        stats.texts = int(state["texts"])
+        stats._sums[...] = sums
+        stats._rows[...] = rows
+        return stats
 
     @property
     def rows(self) -> int:

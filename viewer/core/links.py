@@ -348,6 +348,22 @@ class LinkAccuracy:
         self._nearest += other._nearest
         return self
 
+    def state(self) -> dict[str, np.ndarray]:
+        """The tally as plain arrays; ``from_state`` restores it exactly."""
+        return {"pairs": np.array(self.pairs, dtype=np.int64), "correct": self._correct.copy(),
+                "nearest": np.array(self._nearest, dtype=np.int64)}
+
+    @classmethod
+    def from_state(cls, state: dict[str, np.ndarray]) -> LinkAccuracy:
+        correct = np.asarray(state["correct"], dtype=np.int64)  # (L, H)
+        if correct.ndim != 2:
+            raise ValueError(f"not a link-accuracy state: correct {correct.shape}")
+        acc = cls(*correct.shape)
+        acc.pairs = int(state["pairs"])
+        acc._correct[...] = correct
+        acc._nearest = int(state["nearest"])
+        return acc
+
     @property
     def accuracy(self) -> np.ndarray:
         """(L, H) share of pairs each head gets right (NaN before any pair)."""

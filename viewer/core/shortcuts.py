@@ -18,11 +18,14 @@ must be adjacent in the whitespace split and both must have a non-empty key.
 
 from __future__ import annotations
 
+import json
 import string
 import unicodedata
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
+
+import numpy as np
 
 from viewer.core.stats import wilson_interval
 
@@ -139,6 +142,31 @@ class KnockoutTally:
             for i in range(4):
                 s[i] += o[i]
         return self
+
+    def state(self) -> dict[str, np.ndarray]:
+        """The tally as plain arrays: keys as UTF-8 JSON bytes, (count, flips) as int64, (sum of
+        drop, sum of focus) as float64; ``from_state`` restores it exactly, key order included."""
+        keys = list(self._sums)
+        rows = list(self._sums.values())
+        return {
+            "texts": np.array(self.texts, dtype=np.int64),
+            "keys": np.frombuffer(json.dumps(keys, ensure_ascii=False).encode("utf-8"), np.uint8),
+            "counts": np.array([[r[0], r[1]] for r in rows], dtype=np.int64).reshape(-1, 2),
+            "sums": np.array([[r[2], r[3]] for r in rows], dtype=np.float64).reshape(-1, 2),
+        }
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, np.ndarray]) -> KnockoutTally:
+        keys = json.loads(np.asarray(state["keys"], dtype=np.uint8).tobytes().decode("utf-8"))
+        counts, sums = np.asarray(state["counts"]), np.asarray(state["sums"])
+        if len(keys) != len(counts) or len(keys) != len(sums):
+            raise ValueError(f"not a knockout-tally state: {len(keys)} keys, {len(counts)} counts")
+        tally = cls()
+        tally.texts = int(state["texts"])
+        for key, (count, flips), (drop, focus) in zip(keys, counts.tolist(), sums.tolist(),
+                                                       strict=True):
+            tally._sums[key] = [count, flips, drop, focus]
+        return tally
 
     def __len__(self) -> int:
         return len(self._sums)

@@ -10,7 +10,6 @@ the commands. Apart from its one ``date`` line, an export is reproducible byte f
 from __future__ import annotations
 
 import datetime as dt
-import hashlib
 import os
 import platform
 from collections.abc import Sequence
@@ -30,9 +29,17 @@ from viewer.figures.links import accuracy_into
 from viewer.files import StagedFolder, atomic_write_text, json_text
 from viewer.model.loader import LoadedModel
 from viewer.reports.evidence import KIND_TITLES, KINDS, evidence_for
-from viewer.reports.predictions import accuracy_data, predict_items
-from viewer.reports.runs import check_data, heads_data, links_data, shortcuts_data
-from viewer.reports.textsets import load_text_set
+from viewer.reports.predictions import accuracy_data
+from viewer.reports.runfolder import input_digest
+from viewer.reports.runs import (
+    check_data,
+    heads_data,
+    links_data,
+    predictions_data,
+    shortcuts_data,
+)
+from viewer.reports.shards import SERIAL, RunOptions
+from viewer.reports.textsets import TextSource, as_source, load_text_set
 
 CARD_FORMATS = ("png", "svg")
 LIBRARIES = ("torch", "transformers", "tokenizers", "numpy", "scipy", "matplotlib", "safetensors")
@@ -46,14 +53,6 @@ CAUTIONS = (
     "Decisions about deploying this model follow the team's own review process; the numbers "
     "here are inputs to that review, not a verdict.",
 )
-
-
-def sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with path.open("rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 def versions() -> dict[str, str]:
@@ -75,7 +74,7 @@ def _figure() -> Figure:
 
 
 def _example_text(loaded: LoadedModel, items, shortcuts: dict | None,
-                  probabilities: np.ndarray | None) -> str | None:
+                  predicted: list[int] | None) -> str | None:
     """A text to show the evidence strip for: one containing the strongest shortcut word,
     preferably one the model gets wrong (labelled, predicted otherwise); else the first text."""
     if not items:
@@ -86,40 +85,43 @@ def _example_text(loaded: LoadedModel, items, shortcuts: dict | None,
 
     word = shortcuts["tokens"][0]["token"]
     having = [k for k, item in enumerate(items) if word in word_spans(item.text)]
-    if probabilities is not None and loaded.labels:
+    if predicted is not None and loaded.labels:
         for k in having:
             label = items[k].label
-            if label is not None and label != loaded.labels[int(probabilities[k].argmax())]:
+            if label is not None and label != loaded.labels[predicted[k]]:
                 return items[k].text
     return items[having[0]].text if having else items[0].text
 
 
-def collect(loaded: LoadedModel, texts_path: Path, pairs_path: Path | None, *,
-            batch_size: int = 16, quiet: bool = False) -> dict:
+def collect(loaded: LoadedModel, texts: Path | TextSource, pairs_path: Path | None, *,
+            batch_size: int = 16, quiet: bool = False, run: RunOptions = SERIAL) -> dict:
     """All numbers of a card, computed by the same runs as the commands."""
-    items = load_text_set(texts_path)
-    texts = [i.text for i in items]
+    source = as_source(texts)
+    items = load_text_set(source)
     prediction = loaded.head_kind in ("classifier", "causal-lm")
     data: dict = {
         "model": {"folder": loaded.name, "family": loaded.family.name,
                   "layers": loaded.n_layers, "heads": loaded.n_heads,
                   "head_kind": loaded.head_kind, "labels": list(loaded.labels)},
-        "evaluation_data": {"texts_file": texts_path.name, "texts": len(items),
+        "evaluation_data": {"texts_file": source.name, "texts": len(items),
                             "labelled": sum(i.label is not None for i in items)},
-        "check": check_data(loaded, texts, DEFAULT_TOLERANCE),
-        "heads": heads_data(loaded, texts_path, batch_size=batch_size, quiet=quiet),
+        "check": check_data(loaded, source, DEFAULT_TOLERANCE, run=run),
+        "heads": heads_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run),
     }
     if pairs_path is not None:
-        data["links"] = links_data(loaded, pairs_path, batch_size=batch_size, quiet=quiet)
+        data["links"] = links_data(loaded, pairs_path, batch_size=batch_size, quiet=quiet,
+                                   run=run)
         data["evaluation_data"]["pairs_file"] = pairs_path.name
         data["evaluation_data"]["pairs"] = data["links"]["pairs"]
     if prediction:
-        data["shortcuts"] = shortcuts_data(loaded, texts_path, batch_size=batch_size, quiet=quiet)
-        probabilities = None
+        data["shortcuts"] = shortcuts_data(loaded, source, batch_size=batch_size, quiet=quiet,
+                                           run=run)
+        predicted = None
         if loaded.head_kind == "classifier":
-            probabilities = predict_items(loaded, items)
-            data["accuracy"] = accuracy_data(loaded, items, probabilities)
-        example = _example_text(loaded, items, data["shortcuts"], probabilities)
+            scan = predictions_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run)
+            predicted = [r.predicted for r in scan.rows]
+            data["accuracy"] = accuracy_data(loaded, items, predicted)
+        example = _example_text(loaded, items, data["shortcuts"], predicted)
         if example is not None:
             ev = evidence_for(loaded, example)
             data["example"] = ev.to_dict()
@@ -269,12 +271,12 @@ def _markdown(data: dict, figures: dict[str, str]) -> str:
     return "\n".join(lines)
 
 
-def export_card(loaded: LoadedModel, texts_path: str | Path, out: str | Path, *,
+def export_card(loaded: LoadedModel, texts: str | Path | TextSource, out: str | Path, *,
                 pairs_path: str | Path | None = None, force: bool = False,
                 command: Sequence[str] = (), batch_size: int = 16, quiet: bool = False,
-                date: str | None = None) -> Path:
+                date: str | None = None, run: RunOptions = SERIAL) -> Path:
     """Write the card folder at `out` (refusing to replace an existing one without `force`)."""
-    texts_path = Path(texts_path)
+    source = as_source(texts)
     pairs_path = Path(pairs_path) if pairs_path is not None else None
     out = Path(out)
     if out.exists() and not force:
@@ -284,10 +286,10 @@ def export_card(loaded: LoadedModel, texts_path: str | Path, out: str | Path, *,
         raise HeadlightError(f"cannot write {out}: folder {parent} does not exist")
     if not os.access(parent, os.W_OK):
         raise HeadlightError(f"cannot write {out}: folder {parent} is not writable")
-    data = collect(loaded, texts_path, pairs_path, batch_size=batch_size, quiet=quiet)
-    inputs = [*loaded.weight_files, texts_path] + ([pairs_path] if pairs_path else [])
+    data = collect(loaded, source, pairs_path, batch_size=batch_size, quiet=quiet, run=run)
+    inputs = [*loaded.weight_files, source.path] + ([pairs_path] if pairs_path else [])
     data["reproducibility"] = {
-        "sha256": {p.name: sha256(p) for p in inputs},
+        "sha256": {p.name: input_digest(p) for p in inputs},
         "versions": versions(),
         "command": " ".join(command) if command else "(called from Python)",
         "date": date or dt.datetime.now(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),

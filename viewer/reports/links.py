@@ -1,25 +1,69 @@
-"""Per-head link accuracy over a link-pairs file (DESIGN.md, "Link pairs")."""
+"""Per-head link accuracy over a link-pairs file (docs/definitions.md, "Link pairs").
+
+A report kind (``LinksKind``) mapped over shards of pairs (``viewer.reports.shards``): each
+shard folds into its own ``LinkAccuracy``; the tallies merge in shard order.
+"""
 
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable
+from dataclasses import asdict, dataclass
+from typing import ClassVar
 
 from viewer.core.links import LinkAccuracy, LinkPair, score_pair
-from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
-from viewer.reports.textsets import chunks
+from viewer.reports.shards import (
+    SERIAL,
+    RunOptions,
+    Shard,
+    State,
+    progress_callback,
+    require_some,
+    run_shards,
+    sized,
+)
+
+
+@dataclass(frozen=True)
+class LinksKind:
+    """Every pair scored in every head; the partial is a ``LinkAccuracy``."""
+
+    name: ClassVar[str] = "links"
+    batch_size: int = 16
+
+    def options(self) -> dict:
+        return asdict(self)
+
+    def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> LinkAccuracy:
+        acc = LinkAccuracy(loaded.n_layers, loaded.n_heads)
+        pairs = list(shard.items)
+        for start in range(0, len(pairs), self.batch_size):
+            check()
+            chunk = pairs[start:start + self.batch_size]
+            atts = loaded.attentions([p.text for p in chunk], batch_size=self.batch_size)
+            for pair, att in zip(chunk, atts, strict=True):
+                acc.add(score_pair(att.probs, att.offsets, pair))
+        return acc
+
+    def state(self, partial: LinkAccuracy) -> State:
+        return partial.state()
+
+    def load(self, state: State) -> LinkAccuracy:
+        return LinkAccuracy.from_state(state)
 
 
 def link_report(loaded: LoadedModel, pairs: Iterable[LinkPair], batch_size: int = 16,
-                progress: Callable[[int], None] | None = None) -> LinkAccuracy:
-    """Score every pair in every head; accuracy (L, H) and the nearest baseline."""
-    acc = LinkAccuracy(loaded.n_layers, loaded.n_heads)
-    for chunk in chunks(pairs, batch_size * 4):
-        atts = loaded.attentions([p.text for p in chunk], batch_size=batch_size)
-        for pair, att in zip(chunk, atts, strict=True):
-            acc.add(score_pair(att.probs, att.offsets, pair))
-        if progress:
-            progress(len(chunk))
-    if acc.pairs == 0:
-        raise HeadlightError("the link-pairs file holds no pairs")
-    return acc
+                progress: Callable[..., None] | None = None,
+                cancelled: Callable[[], bool] | None = None,
+                options: RunOptions = SERIAL) -> LinkAccuracy:
+    """Score every pair in every head: the reports' ``LinkAccuracy`` (accuracy (L, H), the
+    nearest baseline, ``best()``, ``to_dict()``), for the window and ``headlight links``.
+
+    ``progress(done, total)`` is called after every shard with the pairs done so far;
+    ``cancelled()`` is asked between shards and batches and ends the run with
+    ``viewer.reports.shards.Cancelled``.
+    """
+    on_shard = progress_callback(progress, sized(pairs))
+    return require_some(run_shards(LinksKind(batch_size), loaded, pairs, options=options,
+                                   on_shard=on_shard, cancelled=cancelled),
+                        "the link-pairs file holds no pairs")

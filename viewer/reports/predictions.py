@@ -1,8 +1,9 @@
-"""Predictions over a text set, and accuracy where the set carries labels."""
+"""Accuracy over a labelled text set, from the per-text predictions of one pass
+(``viewer.reports.heads.scan_text_set`` / ``runs.predictions_data``)."""
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 
 import numpy as np
 
@@ -11,25 +12,16 @@ from viewer.reports.heads import label_indices
 from viewer.reports.textsets import TextItem
 
 
-def predict_items(loaded: LoadedModel, items: Sequence[TextItem], batch_size: int = 32,
-                  progress: Callable[[int], None] | None = None) -> np.ndarray:
-    """(N, C) class probabilities (or next-token distributions) for every item, in order."""
-    out = []
-    for start in range(0, len(items), batch_size):
-        chunk = items[start:start + batch_size]
-        out.append(loaded.predict(loaded.encode([i.text for i in chunk])))
-        if progress:
-            progress(len(chunk))
-    return np.concatenate(out, axis=0)
-
-
 def accuracy_data(loaded: LoadedModel, items: Sequence[TextItem],
-                  probabilities: np.ndarray) -> dict:
-    """Accuracy overall and per class over the labelled items (classifiers only)."""
+                  predicted: Sequence[int]) -> dict:
+    """Accuracy overall and per class over the labelled items (classifiers only).
+
+    ``predicted`` holds the predicted class index of every item, in order.
+    """
     gold = label_indices(loaded, items)
     if gold is None or loaded.head_kind != "classifier":
         return {"labelled": 0}
-    pred = probabilities.argmax(axis=1)
+    pred = np.asarray(predicted)
     y = np.asarray(gold)
     per_class = {}
     for k, name in enumerate(loaded.labels):

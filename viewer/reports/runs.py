@@ -1,82 +1,158 @@
 """The numbers behind each headless command, as JSON-ready dictionaries.
 
 The command line prints these and writes them with ``--json``; the card export puts the very
-same dictionaries into ``card.json``, so a card's numbers are those of the commands.
+same dictionaries into ``card.json``, so a card's numbers are those of the commands. Every
+report over a set runs through the shard engine (``viewer.reports.shards``) with the command's
+``RunOptions``: in this process, on local workers or on a Dask cluster, with a run folder.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import os
+from collections.abc import Callable, Iterable
+from dataclasses import asdict, dataclass
 from pathlib import Path
+from typing import Any, ClassVar
 
-from viewer.core.attention import check_recordings
-from viewer.core.links import read_link_pairs
+import numpy as np
+
+from viewer.core.attention import CheckResult, check_recordings
+from viewer.core.links import iter_link_pairs, read_link_pairs
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
-from viewer.reports.heads import head_importance, head_knockout, head_summary
-from viewer.reports.links import link_report
-from viewer.reports.progress import Progress
-from viewer.reports.shortcuts import shortcut_search
-from viewer.reports.textsets import load_text_set, read_text_set
+from viewer.reports.heads import (
+    HeadsKind,
+    TextSetScan,
+    _require_prediction,
+    check_labels,
+    normalise_importance,
+    predictions,
+)
+from viewer.reports.links import LinksKind
+from viewer.reports.progress import shard_bar
+from viewer.reports.runfolder import input_digest
+from viewer.reports.shards import (
+    SERIAL,
+    RunOptions,
+    Shard,
+    ShardKind,
+    State,
+    require_some,
+    run_shards,
+    shard_count,
+)
+from viewer.reports.shortcuts import ShortcutKind
+from viewer.reports.textsets import TextItem, TextSource, as_source, survey
 
 
-def _count(path: str | Path) -> int:
-    """Number of texts in a text-set file by a streaming pass; refuses an empty set."""
-    total = sum(1 for _ in read_text_set(path))
-    if not total:
-        raise HeadlightError(f"{Path(path).name} holds no texts")
-    return total
+def _run(kind: ShardKind, loaded: LoadedModel, items: Iterable[Any], total: int, label: str,
+         inputs: Callable[[], dict[str, Any]] | None, run: RunOptions, quiet: bool) -> Any:
+    """One report over a set with a progress bar (shards) on stderr.
+
+    ``inputs()`` identifies the input for the run folder (hashing it only when there is one).
+    """
+    key = inputs() if inputs is not None and run.work is not None else None
+    with shard_bar(label, shard_count(total, run.shard_size), quiet=quiet) as on_shard:
+        return require_some(run_shards(kind, loaded, items, options=run, total=total,
+                                       inputs=key, on_shard=on_shard))
 
 
-def check_data(loaded: LoadedModel, texts: Sequence[str], tolerance: float) -> dict:
+@dataclass(frozen=True)
+class CheckKind:
+    """The re-derivation check over shards; per head, the worst error over all texts."""
+
+    name: ClassVar[str] = "check"
+    tolerance: float
+    batch_size: int = 8
+
+    def options(self) -> dict:
+        return asdict(self)
+
+    def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> CheckResult:
+        check()
+        return check_recordings(loaded.record_many([i.text for i in shard.items],
+                                                   batch_size=self.batch_size), self.tolerance)
+
+    def state(self, partial: CheckResult) -> State:
+        return {"max_abs_error": np.array(partial.max_abs_error),
+                "head_errors": partial.head_errors, "context_errors": partial.context_errors,
+                "texts": np.array(partial.texts, dtype=np.int64)}
+
+    def load(self, state: State) -> CheckResult:
+        return CheckResult(float(state["max_abs_error"]), self.tolerance,
+                           np.asarray(state["head_errors"]), np.asarray(state["context_errors"]),
+                           int(state["texts"]))
+
+
+def check_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource | list[str],
+               tolerance: float, *, run: RunOptions = SERIAL, quiet: bool = True) -> dict:
+    """The re-derivation check over a list of texts or a whole text set."""
     if not (tolerance > 0):
         raise HeadlightError(f"tolerance must be positive, got {tolerance}")
-    result = check_recordings(loaded.record_many(texts, batch_size=8), tolerance)
+    kind = CheckKind(float(tolerance))
+    if isinstance(texts, list):
+        items, total, inputs = [TextItem(t, None, n) for n, t in enumerate(texts, 1)], len(texts), None
+    else:
+        source = as_source(texts)
+        items, total, inputs = source.items(), survey(source).texts, source.key
+    result = _run(kind, loaded, items, total, "re-derivation check", inputs, run, quiet)
     return {"model": str(loaded.folder), "family": loaded.family.name, **result.to_dict()}
 
 
-def heads_data(loaded: LoadedModel, texts_path: str | Path, *, batch_size: int = 16,
-               importance: bool = True, knockout: bool = False, quiet: bool = False) -> dict:
-    total = _count(texts_path)
-    with Progress(total, "head summaries", enabled=not quiet) as bar:
-        summary = head_summary(loaded, read_text_set(texts_path), batch_size, bar)
-    data = {"model": str(loaded.folder), **summary.to_dict()}
+def heads_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, *,
+               batch_size: int = 16, importance: bool = True, knockout: bool = False,
+               quiet: bool = False, run: RunOptions = SERIAL) -> dict:
+    source = as_source(texts)
+    info = survey(source)
     prediction = loaded.head_kind in ("classifier", "causal-lm")
-    if prediction and (importance or knockout):
-        items = load_text_set(texts_path)
-    if prediction and importance:
-        with Progress(len(items), "head importance", enabled=not quiet) as bar:
-            imp = head_importance(loaded, items, batch_size, bar)
-        data["importance"] = imp["importance"].tolist()
-        data["importance_raw"] = imp["importance_raw"].tolist()
-        data["importance_targets"] = imp["importance_targets"]
-    if prediction and knockout:
-        with Progress(loaded.n_layers * loaded.n_heads, "head knockout",
-                      enabled=not quiet) as bar:
-            ko = head_knockout(loaded, items, batch_size, bar)
-        data["knockout_prob_drop"] = ko["prob_drop"].tolist()
-        if "accuracy" in ko:
-            data["knockout_accuracy"] = ko["accuracy"].tolist()
-            data["base_accuracy"] = float(ko["base_accuracy"])
+    importance, knockout = prediction and importance, prediction and knockout
+    use_labels = check_labels(loaded, info) if (importance or knockout) else False
+    kind = HeadsKind(batch_size, importance=importance, knockout=knockout,
+                     use_labels=use_labels)
+    part = _run(kind, loaded, source.items(), info.texts, "head summaries", source.key, run,
+                quiet)
+    data = {"model": str(loaded.folder), **part.stats.summary().to_dict()}
+    n = info.texts
+    if importance:
+        raw = part.extras["importance"] / n
+        data["importance"] = normalise_importance(raw).tolist()
+        data["importance_raw"] = raw.tolist()
+        data["importance_targets"] = "labels" if use_labels else "predictions"
+    if knockout:
+        data["knockout_prob_drop"] = (part.extras["knockout_drop"] / n).tolist()
+        if use_labels:
+            data["knockout_accuracy"] = (part.extras["knockout_correct"] / n).tolist()
+            data["base_accuracy"] = float(part.extras["base_correct"] / n)
     return data
 
 
+def predictions_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, *,
+                     batch_size: int = 16, quiet: bool = False,
+                     run: RunOptions = SERIAL) -> TextSetScan:
+    """Every text's prediction and the head summary, as the window's ``scan_text_set``."""
+    source = as_source(texts)
+    total = survey(source).texts
+    part = _run(HeadsKind(batch_size, rows=True), loaded, source.items(), total, "predictions",
+                source.key, run, quiet)
+    return TextSetScan(part.stats.summary(), predictions(loaded, part))
+
+
 def links_data(loaded: LoadedModel, pairs_path: str | Path, *, batch_size: int = 16,
-               quiet: bool = False) -> dict:
-    pairs = read_link_pairs(pairs_path)
-    if not pairs:
-        raise HeadlightError(f"{Path(pairs_path).name} holds no link pairs")
-    with Progress(len(pairs), "link scores", enabled=not quiet) as bar:
-        acc = link_report(loaded, pairs, batch_size, bar)
+               quiet: bool = False, run: RunOptions = SERIAL) -> dict:
+    total = len(read_link_pairs(pairs_path))
+    acc = _run(LinksKind(batch_size), loaded, iter_link_pairs(pairs_path), total, "link scores",
+               lambda: {"sha256": input_digest(Path(pairs_path))}, run, quiet)
     return {"model": str(loaded.folder), **acc.to_dict()}
 
 
-def shortcuts_data(loaded: LoadedModel, texts_path: str | Path, *, batch_size: int = 16,
-                   phrases: bool = True, quiet: bool = False) -> dict:
-    total = _count(texts_path)
-    with Progress(total, "word knockout", enabled=not quiet) as bar:
-        report = shortcut_search(loaded, read_text_set(texts_path), batch_size=batch_size,
-                                 phrases=phrases, keep_examples=False, progress=bar)
+def shortcuts_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, *,
+                   batch_size: int = 16, phrases: bool = True, quiet: bool = False,
+                   run: RunOptions = SERIAL) -> dict:
+    _require_prediction(loaded, "shortcut search")
+    source = as_source(texts)
+    total = survey(source).texts
+    report = _run(ShortcutKind(batch_size, phrases), loaded, source.items(), total,
+                  "word knockout", source.key, run, quiet)
     return {"model": str(loaded.folder), **report.to_dict()}
 
 

@@ -1,4 +1,4 @@
-"""Shortcut search by word knockout over a text set (DESIGN.md, "Word knockout").
+"""Shortcut search by word knockout over a text set (docs/definitions.md, "Word knockout").
 
 For every text, every distinct word (and, separately, every two-word phrase) is knocked out
 by deleting all of its sub-tokens from the input; the change in the probability of the
@@ -6,14 +6,17 @@ originally predicted class is its ``drop``, a change of the predicted class a ``
 text set each word gets ``count``, ``flip_rate``, ``mean_drop`` and ``focus``, and words seen in
 at least 3 texts are ranked by the lower end of the Wilson interval of their flip rate.
 
-Cost: one forward per (text, word) plus one per (text, phrase), batched across texts, so the
-work grows linearly with the total number of words.
+Cost: one forward per (text, word) plus one per (text, phrase), batched across the texts of a
+shard, so the work grows linearly with the total number of words. The search is a report kind
+(``ShortcutKind``) mapped over shards (``viewer.reports.shards``): each shard folds into its own
+pair of ``KnockoutTally``; the tallies merge in shard order.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
+from typing import ClassVar
 
 import numpy as np
 
@@ -25,11 +28,22 @@ from viewer.core.shortcuts import (
     word_spans,
 )
 from viewer.core.summary import summary_index, summary_share
-from viewer.errors import HeadlightError
 from viewer.model.attribution import predict_without
 from viewer.model.loader import Attention, LoadedModel
 from viewer.reports.heads import _require_prediction
+from viewer.reports.shards import (
+    SERIAL,
+    RunOptions,
+    Shard,
+    State,
+    progress_callback,
+    require_some,
+    run_shards,
+    sized,
+)
 from viewer.reports.textsets import TextItem, chunks
+
+TEXTS_PER_FORWARD_GROUP = 16  # texts whose knockouts are batched together
 
 
 @dataclass
@@ -37,7 +51,12 @@ class ShortcutReport:
     words: KnockoutTally
     phrases: KnockoutTally
     texts: int
-    examples: dict[str, list[int]]  # word -> indices (0-based, in input order) of texts with it
+
+    def merge(self, other: ShortcutReport) -> ShortcutReport:
+        self.words.merge(other.words)
+        self.phrases.merge(other.phrases)
+        self.texts += other.texts
+        return self
 
     def to_dict(self, limit: int | None = None) -> dict:
         return {
@@ -59,48 +78,80 @@ def _token_sets(att: Attention, spans: dict[str, list[tuple[int, int]]]) -> dict
     return out
 
 
+@dataclass(frozen=True)
+class ShortcutKind:
+    """Word (and phrase) knockout over shards; the partial is a ``ShortcutReport``."""
+
+    name: ClassVar[str] = "shortcuts"
+    batch_size: int = 32
+    phrases: bool = True
+
+    def options(self) -> dict:
+        return asdict(self)
+
+    def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> ShortcutReport:
+        words, pairs = KnockoutTally(), KnockoutTally()
+        for chunk in chunks(shard.items, TEXTS_PER_FORWARD_GROUP):
+            check()
+            atts = list(loaded.attentions([i.text for i in chunk], batch_size=self.batch_size))
+            plans = []  # per text: [(kind, key, token indices)] in the order of `cases`
+            cases = []  # (token ids, sub-tokens to delete), one per knockout
+            for att in atts:
+                plan = [("w", key, idx)
+                        for key, idx in _token_sets(att, word_spans(att.text)).items()]
+                if self.phrases:
+                    plan += [("p", key, idx)
+                             for key, idx in _token_sets(att, phrase_spans(att.text)).items()]
+                cases.extend((att.token_ids, idx) for _, _, idx in plan)
+                plans.append(plan)
+            after = predict_without(loaded, cases, self.batch_size) if cases else None
+            row = 0
+            for att, plan in zip(atts, plans, strict=True):
+                pred = int(np.argmax(att.target))
+                p0 = float(att.target[pred])
+                s = summary_index(len(att.token_ids), loaded.family.causal)
+                outcomes: dict[str, dict[str, KnockoutOutcome]] = {"w": {}, "p": {}}
+                for kind, key, idx in plan:
+                    p = after[row]
+                    row += 1
+                    outcomes[kind][key] = KnockoutOutcome(
+                        flipped=bool(int(np.argmax(p)) != pred),
+                        drop=p0 - float(p[pred]),
+                        focus=summary_share(att.probs[-1], s, idx),
+                    )
+                words.add_text(outcomes["w"])
+                if self.phrases:
+                    pairs.add_text(outcomes["p"])
+        return ShortcutReport(words, pairs, words.texts)
+
+    def state(self, partial: ShortcutReport) -> State:
+        return {**{f"words.{k}": v for k, v in partial.words.state().items()},
+                **{f"phrases.{k}": v for k, v in partial.phrases.state().items()}}
+
+    def load(self, state: State) -> ShortcutReport:
+        words = KnockoutTally.from_state({k[6:]: v for k, v in state.items()
+                                          if k.startswith("words.")})
+        pairs = KnockoutTally.from_state({k[8:]: v for k, v in state.items()
+                                          if k.startswith("phrases.")})
+        return ShortcutReport(words, pairs, words.texts)
+
+
 def shortcut_search(loaded: LoadedModel, items: Iterable[TextItem], *, batch_size: int = 32,
-                    phrases: bool = True, keep_examples: bool = True,
-                    progress: Callable[[int], None] | None = None) -> ShortcutReport:
-    """Word (and phrase) knockout over a text set; streams the texts."""
+                    phrases: bool = True,
+                    progress: Callable[..., None] | None = None,
+                    cancelled: Callable[[], bool] | None = None,
+                    options: RunOptions = SERIAL) -> ShortcutReport:
+    """Word (and phrase) knockout over a text set; the window's and the command's search.
+
+    Streams the texts shard by shard, in this process unless ``options`` say otherwise, and
+    returns the merged ``ShortcutReport`` (``.words`` and ``.phrases`` are ``KnockoutTally``,
+    ``.texts`` the number of texts, ``to_dict()`` the command's JSON). ``progress(done, total)``
+    is called after every shard with the texts done so far (total None for a stream of unknown
+    length); ``cancelled()`` is asked between shards and batches and ends the run with
+    ``viewer.reports.shards.Cancelled``.
+    """
     _require_prediction(loaded, "shortcut search")
-    words, pairs = KnockoutTally(), KnockoutTally()
-    examples: dict[str, list[int]] = {}
-    index = 0
-    for chunk in chunks(items, 16):
-        atts = list(loaded.attentions([i.text for i in chunk], batch_size=batch_size))
-        plans = []  # per text: [(kind, key, token indices)] in the order of `cases`
-        cases = []  # (token ids, sub-tokens to delete), one per knockout
-        for att in atts:
-            plan = [("w", key, idx) for key, idx in _token_sets(att, word_spans(att.text)).items()]
-            if phrases:
-                plan += [("p", key, idx)
-                         for key, idx in _token_sets(att, phrase_spans(att.text)).items()]
-            cases.extend((att.token_ids, idx) for _, _, idx in plan)
-            plans.append(plan)
-        after = predict_without(loaded, cases, batch_size) if cases else None
-        row = 0
-        for att, plan in zip(atts, plans, strict=True):
-            pred = int(np.argmax(att.target))
-            p0 = float(att.target[pred])
-            s = summary_index(len(att.token_ids), loaded.family.causal)
-            outcomes: dict[str, dict[str, KnockoutOutcome]] = {"w": {}, "p": {}}
-            for kind, key, idx in plan:
-                p = after[row]
-                row += 1
-                outcomes[kind][key] = KnockoutOutcome(
-                    flipped=bool(int(np.argmax(p)) != pred),
-                    drop=p0 - float(p[pred]),
-                    focus=summary_share(att.probs[-1], s, idx),
-                )
-                if keep_examples and kind == "w":
-                    examples.setdefault(key, []).append(index)
-            words.add_text(outcomes["w"])
-            if phrases:
-                pairs.add_text(outcomes["p"])
-            index += 1
-        if progress:
-            progress(len(chunk))
-    if words.texts == 0:
-        raise HeadlightError("the text set holds no texts")
-    return ShortcutReport(words, pairs, words.texts, examples)
+    on_shard = progress_callback(progress, sized(items))
+    kind = ShortcutKind(batch_size=batch_size, phrases=phrases)
+    return require_some(run_shards(kind, loaded, items, options=options, on_shard=on_shard,
+                                   cancelled=cancelled))

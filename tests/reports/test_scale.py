@@ -1,0 +1,277 @@
+"""The shard engine on the demo model: worker processes and a real Dask cluster give the serial
+numbers, a killed run resumes to them, run folders hold no code.
+
+References: the serial run (one process, the same shards) for every engine, compared exactly
+(tallies and partial sums bit for bit, which is stronger than means within 1e-12); a
+``HeadStats`` filled text by text and a brute-force word count from ``word_spans`` for the serial
+run itself; the model's own forward (transformers' logits) for the window's predictions;
+``hashlib`` for the run-folder key.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+
+from viewer.cli import main
+from viewer.core.headstats import METRICS, HeadStats
+from viewer.core.links import read_link_pairs
+from viewer.core.shortcuts import word_spans
+from viewer.demo import MODEL_DIR
+from viewer.model.loader import open_model
+from viewer.reports import workers
+from viewer.reports.heads import HeadsKind, scan_text_set
+from viewer.reports.links import LinksKind
+from viewer.reports.runs import CheckKind, heads_data, shortcuts_data
+from viewer.reports.shards import Cancelled, RunOptions, cut_shards, run_shards
+from viewer.reports.shortcuts import ShortcutKind, shortcut_search
+from viewer.reports.textsets import TextItem, load_text_set
+
+ROOT = Path(__file__).resolve().parents[2]
+SAMPLES = ROOT / "sample_sentences"
+SHARD = 8
+KINDS = {
+    "shortcuts": ShortcutKind(batch_size=16, phrases=True),
+    "heads": HeadsKind(rows=True, importance=True, knockout=True, use_labels=True),
+    "links": LinksKind(),
+    "check": CheckKind(tolerance=1e-5),
+}
+
+
+@pytest.fixture(scope="module")
+def demo():
+    return open_model(MODEL_DIR)
+
+
+@pytest.fixture(scope="module")
+def items():
+    return load_text_set(SAMPLES / "coop_messages.jsonl")[:48]  # footer texts among them
+
+
+@pytest.fixture(scope="module")
+def pairs():
+    return read_link_pairs(SAMPLES / "coop_links.jsonl")[:24]
+
+
+def inputs_of(name, items, pairs):
+    return pairs if name == "links" else items
+
+
+def run_all(demo, items, pairs, options):
+    return {name: kind.state(run_shards(kind, demo, inputs_of(name, items, pairs),
+                                        options=options))
+            for name, kind in KINDS.items()}
+
+
+@pytest.fixture(scope="module")
+def serial(demo, items, pairs):
+    return run_all(demo, items, pairs, RunOptions(shard_size=SHARD))
+
+
+def assert_same(got: dict, want: dict) -> None:
+    for name in want:
+        assert set(got[name]) == set(want[name]), name
+        for key, value in want[name].items():
+            assert np.array_equal(got[name][key], value, equal_nan=True), (name, key)
+
+
+def test_serial_run_against_one_accumulator_and_a_word_count(demo, items, serial):
+    """Shards merged in order equal one HeadStats filled text by text (sums of parts; the
+    summation order differs, so within 1e-12), and each word's count is the number of texts
+    whose word_spans hold it (the definition of count)."""
+    whole = HeadStats(demo.n_layers, demo.n_heads)
+    for att in demo.attentions([i.text for i in items], batch_size=16):
+        whole.add(att.probs, att.special, demo.family.causal)
+    merged = KINDS["heads"].load(serial["heads"]).stats.summary()
+    for metric in METRICS:
+        np.testing.assert_allclose(getattr(merged, metric), getattr(whole.summary(), metric),
+                                   rtol=0, atol=1e-12, err_msg=metric)
+    report = KINDS["shortcuts"].load(serial["shortcuts"])
+    for word in ("portal", "via", "the"):
+        assert report.words.entry(word)["count"] == sum(word in word_spans(i.text) for i in items)
+    assert report.texts == len(items)
+
+
+def test_shards_merge_in_shard_order_whatever_order_they_finish(demo, items, monkeypatch):
+    """An engine that hands the shards back last first still gives the shard-order merge."""
+
+    class Reversed(workers.InProcess):
+        ahead = 10 ** 6
+
+        def run(self, kind, shards, check, may_start):
+            yield from reversed(list(super().run(kind, shards, check, may_start)))
+
+    kind = ShortcutKind(batch_size=16, phrases=False)
+    want = kind.state(run_shards(kind, demo, items, options=RunOptions(shard_size=SHARD)))
+    monkeypatch.setattr(workers, "engine_for", lambda options, loaded, n: Reversed(loaded, 1))
+    got = kind.state(run_shards(kind, demo, items, options=RunOptions(shard_size=SHARD)))
+    for key in want:
+        assert np.array_equal(got[key], want[key]), key
+    assert [s.start for s in cut_shards(range(20), SHARD)] == [0, 8, 16]
+
+
+@pytest.mark.slow
+def test_local_worker_processes_give_the_serial_numbers(demo, items, pairs, serial):
+    try:
+        got = run_all(demo, items, pairs, RunOptions(workers=2, shard_size=SHARD))
+    finally:
+        workers.close_engines()
+    assert_same(got, serial)
+
+
+@pytest.mark.slow
+def test_a_dask_cluster_gives_the_serial_numbers(demo, items, pairs, serial):
+    """A real distributed.LocalCluster with two worker processes, not a mock."""
+    from distributed import LocalCluster
+
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                      dashboard_address=None) as cluster:
+        try:
+            got = run_all(demo, items, pairs,
+                          RunOptions(cluster=cluster.scheduler_address, shard_size=SHARD))
+        finally:
+            workers.close_engines()
+    assert_same(got, serial)
+
+
+def test_an_unreachable_scheduler_is_a_one_line_error(demo):
+    with pytest.raises(workers.HeadlightError, match="cannot reach the Dask scheduler"):
+        workers.DaskCluster(demo, "tcp://127.0.0.1:9", 1, timeout=1)
+
+
+@pytest.mark.slow
+def test_a_killed_run_resumes_to_the_serial_result(demo, items, tmp_path, monkeypatch):
+    """A subprocess killed (SIGKILL) after a few shards; the same command again computes only
+    the missing shards and prints what a run without a run folder prints."""
+    texts = tmp_path / "texts.jsonl"
+    texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in items), "utf-8")
+    work = tmp_path / "work"
+    argv = ["shortcuts", str(MODEL_DIR), "--texts", str(texts), "--workers", "1",
+            "--shard-size", "4", "--no-phrases", "--work", str(work), "--quiet"]
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    proc = subprocess.Popen([sys.executable, "-m", "viewer", *argv], env=env,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + 120
+    try:
+        while len(list(work.glob("*/shard-*.npz"))) < 3:
+            assert proc.poll() is None, "the run ended before it could be killed"
+            assert time.monotonic() < deadline
+            time.sleep(0.02)
+    finally:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+    (folder,) = work.iterdir()
+    kept = len(list(folder.glob("shard-*.npz")))
+    assert kept >= 3 and not (folder / "result.npz").exists()
+    assert not list(folder.glob(".*.part"))  # atomic writes: no half-written shard is left
+
+    calls = []
+    original = ShortcutKind.map
+
+    def counting(self, loaded, shard, check):
+        calls.append(shard.index)
+        return original(self, loaded, shard, check)
+
+    monkeypatch.setattr(ShortcutKind, "map", counting)
+    assert main([*argv, "--json", str(tmp_path / "resumed.json")]) == 0
+    assert len(calls) == 12 - kept and not set(calls) & set(range(kept))
+    assert (folder / "result.npz").exists() and not list(folder.glob("shard-*.npz"))
+    reference = shortcuts_data(demo, texts, phrases=False, run=RunOptions(shard_size=4),
+                               quiet=True)
+    reference.pop("model")
+    resumed = json.loads((tmp_path / "resumed.json").read_text())
+    resumed.pop("model")
+    assert resumed == reference
+
+    calls.clear()  # a finished run answers from its result; --fresh starts over
+    assert main([*argv, "--json", str(tmp_path / "again.json")]) == 0
+    assert calls == []
+    assert main([*argv, "--fresh", "--json", str(tmp_path / "fresh.json")]) == 0
+    assert len(calls) == 12
+    for name in ("again", "fresh"):
+        data = json.loads((tmp_path / f"{name}.json").read_text())
+        data.pop("model")
+        assert data == reference, name
+
+
+def test_run_folders_are_keyed_by_content_and_options_and_hold_no_code(demo, items, tmp_path):
+    texts = tmp_path / "t.jsonl"
+    texts.write_text("".join(json.dumps({"text": i.text, "label": i.label}) + "\n"
+                             for i in items[:12]), encoding="utf-8")
+    work = tmp_path / "work"
+    for phrases in (True, False, True):
+        shortcuts_data(demo, texts, phrases=phrases, quiet=True,
+                       run=RunOptions(work=work, shard_size=4))
+    folders = sorted(work.iterdir())
+    assert len(folders) == 2  # phrases on / off; the third run found the first folder
+    key = json.loads((folders[0] / "run.json").read_text())
+    want = hashlib.sha256((MODEL_DIR / "model.safetensors").read_bytes()).hexdigest()
+    assert key["model"]["model.safetensors"] == want
+    assert key["input"]["sha256"] == hashlib.sha256(texts.read_bytes()).hexdigest()
+    for folder in folders:
+        assert sorted(p.name for p in folder.iterdir()) == ["result.npz", "run.json"]
+        with np.load(folder / "result.npz", allow_pickle=False) as npz:
+            assert all(npz[k].dtype != object for k in npz.files)
+    texts.write_text(texts.read_text() + json.dumps({"text": "one more"}) + "\n")
+    shortcuts_data(demo, texts, quiet=True, run=RunOptions(work=work, shard_size=4))
+    assert len(list(work.iterdir())) == 3  # another input is another run
+
+
+def test_window_scan_equals_heads_and_the_models_own_predictions(demo, items, tmp_path):
+    """scan_text_set's head summary is `headlight heads`' to the bit (same kind, same shards);
+    its predictions are transformers' own argmax of the classifier's logits."""
+    texts = tmp_path / "t.jsonl"
+    texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in items),
+                     encoding="utf-8")
+    scan = scan_text_set(demo, items)
+    heads = heads_data(demo, texts, importance=False, quiet=True)
+    summary = scan.heads.to_dict()
+    for metric in METRICS:
+        assert summary[metric] == heads[metric], metric
+    with demo.unhooked() as model, torch.no_grad():
+        enc = demo.tokenizer([i.text for i in items], padding=True, return_tensors="pt")
+        probs = torch.softmax(model(**enc).logits, dim=-1).numpy()
+    assert [r.predicted for r in scan.rows] == probs.argmax(axis=1).tolist()
+    np.testing.assert_allclose([r.confidence for r in scan.rows], probs.max(axis=1), atol=1e-5)
+    assert [r.label for r in scan.rows] == [demo.labels[k] for k in probs.argmax(axis=1)]
+    assert [r.tokens for r in scan.rows] == [int(m.sum()) for m in enc["attention_mask"]]
+
+
+def test_progress_counts_texts_and_cancel_stops_between_shards(demo, items):
+    seen = []
+    report = shortcut_search(demo, items[:20], phrases=False, progress=lambda d, t: seen.append(
+        (d, t)), options=RunOptions(shard_size=SHARD))
+    assert seen == [(8, 20), (16, 20), (20, 20)] and report.texts == 20
+    increments = []
+    shortcut_search(demo, items[:20], phrases=False, progress=increments.append,
+                    options=RunOptions(shard_size=SHARD))
+    assert increments == [8, 8, 4]  # a one-argument callback gets the texts just done
+
+
+def test_cancel_in_process_stops_before_the_next_shard(demo, items):
+    threads = torch.get_num_threads()
+    done = []
+    with pytest.raises(Cancelled):
+        shortcut_search(demo, items, phrases=False, options=RunOptions(shard_size=SHARD),
+                        progress=lambda d, t: done.append(d), cancelled=lambda: len(done) >= 2)
+    assert done == [8, 16]
+    assert torch.get_num_threads() == threads  # the run's one torch thread is given back
+
+
+def test_a_stream_and_a_list_give_the_same_report(demo, items):
+    kind = ShortcutKind(batch_size=16, phrases=False)
+    a = kind.state(run_shards(kind, demo, iter(items), options=RunOptions(shard_size=SHARD)))
+    b = kind.state(run_shards(kind, demo, list(items), options=RunOptions(shard_size=SHARD)))
+    assert all(np.array_equal(a[k], b[k]) for k in a)
+    assert run_shards(kind, demo, iter([]), options=RunOptions()) is None
+    assert TextItem("x", None, 3, unit="row").where == "row 3"

@@ -1,0 +1,232 @@
+"""The shard engine: every text-set report is a map over fixed-size shards and a merge in order.
+
+docs/scale.md describes the scheme; in short:
+
+- the set is cut into shards of ``shard_size`` consecutive items, in input order
+  (``cut_shards``); shard k holds items k·S … (k+1)·S − 1;
+- a **report kind** (``ShardKind``) maps one shard to a *partial*: one of the mergeable
+  accumulators (``HeadStats``, ``KnockoutTally``, ``LinkAccuracy`` …) filled on that shard alone;
+- partials are merged in shard order, 0, 1, 2, …, whatever order they finished in. The serial
+  run uses the very same shards, so every run — one process, worker processes, a Dask cluster,
+  a run resumed from its run folder — adds the same floating-point partial sums in the same
+  order and gets the same numbers, to the last bit.
+
+Where the shards run is the engine's choice (``RunOptions``): in this process (the window, and
+sets of one shard), in local worker processes, or on a Dask cluster (``viewer.reports.workers``).
+Finished shards can be kept in a run folder (``viewer.reports.runfolder``) so a killed run
+continues where it stopped.
+
+To add a report kind: a frozen, picklable dataclass with a ``name``, ``options()`` (JSON-ready;
+everything that changes the numbers, since it is part of the run-folder key), ``map(loaded,
+shard, check)`` returning a partial with ``merge(other) -> merged``, and ``state(partial)`` /
+``load(state)`` turning a partial into a dict of numpy arrays and back exactly.
+"""
+
+from __future__ import annotations
+
+import inspect
+from collections.abc import Callable, Iterable, Iterator, Sized
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, ClassVar, Protocol
+
+import numpy as np
+
+from viewer.errors import HeadlightError
+
+SHARD_SIZE = 32
+"""Texts per shard. Part of a run's identity: the partial sums, and so the last bits of every
+mean, depend on where the shards are cut (never on how many workers ran them)."""
+
+State = dict[str, np.ndarray]
+
+
+@dataclass(frozen=True)
+class Shard:
+    """``items[start : start + len(items)]`` of the whole set; shard ``index`` in order."""
+
+    index: int
+    start: int
+    items: tuple[Any, ...]
+
+    def indexed(self) -> Iterator[tuple[int, Any]]:
+        """(position in the whole set, item) pairs."""
+        return enumerate(self.items, start=self.start)
+
+
+def cut_shards(items: Iterable[Any], size: int = SHARD_SIZE) -> Iterator[Shard]:
+    """Consecutive shards of ``size`` items (the last may be shorter), read lazily."""
+    if size < 1:
+        raise HeadlightError(f"shard size must be at least 1, got {size}")
+    chunk: list[Any] = []
+    index = start = 0
+    for item in items:
+        chunk.append(item)
+        if len(chunk) == size:
+            yield Shard(index, start, tuple(chunk))
+            index, start, chunk = index + 1, start + size, []
+    if chunk:
+        yield Shard(index, start, tuple(chunk))
+
+
+def shard_count(items: int, size: int = SHARD_SIZE) -> int:
+    return -(-items // size)
+
+
+class Partial(Protocol):
+    def merge(self, other: Any) -> Any: ...
+
+
+class ShardKind(Protocol):
+    """A report kind: the map step over one shard and the (de)serialisation of its partial."""
+
+    name: ClassVar[str]
+
+    def options(self) -> dict[str, Any]: ...
+
+    def map(self, loaded: Any, shard: Shard, check: Callable[[], None]) -> Partial: ...
+
+    def state(self, partial: Any) -> State: ...
+
+    def load(self, state: State) -> Partial: ...
+
+
+class Cancelled(Exception):
+    """Raised between shards (or batches) when the caller's ``cancelled()`` says so."""
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    """Where and how a report's shards run.
+
+    workers: processes on this machine (1: this process); cluster: a Dask scheduler address
+    (then ``workers`` is ignored); work: the folder holding run folders (None: keep nothing);
+    fresh: ignore finished shards kept there; threads: torch threads while a shard is mapped,
+    wherever it runs (None: leave the process's setting).
+
+    One torch thread everywhere is what makes every engine's numbers bit-identical: a forward
+    on two threads can differ from the same forward on one in the last bit of a float32
+    (measured on the demo model: one phrase's summed drop moved by 8e-10), and workers run one
+    thread each.
+    """
+
+    workers: int = 1
+    cluster: str | None = None
+    work: Path | None = None
+    fresh: bool = False
+    shard_size: int = SHARD_SIZE
+    threads: int | None = 1
+
+
+SERIAL = RunOptions()
+
+
+def progress_callback(progress: Callable[..., None] | None,
+                      total: int | None) -> Callable[[int], None] | None:
+    """Turn a caller's ``progress(done, total)`` into the engine's per-shard ``on_shard(n)``.
+
+    A callback taking one argument is called with the number of items just finished instead
+    (the older convention of the window's jobs, still accepted).
+    """
+    if progress is None:
+        return None
+    try:
+        params = [p for p in inspect.signature(progress).parameters.values()
+                  if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD, p.VAR_POSITIONAL)]
+    except (TypeError, ValueError):
+        params = []
+    if len(params) == 1 and params[0].kind != params[0].VAR_POSITIONAL:
+        return progress
+    done = [0]
+
+    def on_shard(n: int) -> None:
+        done[0] += n
+        progress(done[0], total)
+
+    return on_shard
+
+
+def sized(items: Iterable[Any]) -> int | None:
+    return len(items) if isinstance(items, Sized) else None
+
+
+def run_shards(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
+               options: RunOptions = SERIAL, total: int | None = None,
+               inputs: dict[str, Any] | None = None,
+               on_shard: Callable[[int], None] | None = None,
+               cancelled: Callable[[], bool] | None = None) -> Any | None:
+    """Map ``kind`` over the shards of ``items`` and merge the partials in shard order.
+
+    ``loaded`` is the model opened in this process; workers open the same folder themselves.
+    ``total`` (items, when known) sizes the pool; ``inputs`` describes where the items were
+    read from and, with ``options.work``, names the run folder (None: no run folder).
+    ``on_shard(n)`` is called after every finished shard of n items (shards taken from the run
+    folder included); ``cancelled()`` is asked between shards and batches and stops the run
+    with ``Cancelled``. Returns the merged partial, None for an empty set.
+    """
+    from viewer.reports import runfolder, workers
+
+    if total is None:
+        total = sized(items)
+    folder = None
+    if options.work is not None and inputs is not None:
+        folder = runfolder.RunFolder.open(options.work, kind, loaded, inputs,
+                                          options.shard_size, fresh=options.fresh)
+        finished = folder.result()
+        if finished is not None:
+            if on_shard and total:
+                on_shard(total)
+            return kind.load(finished)
+    on_disk = folder.finished() if folder is not None else set()
+
+    def check() -> None:
+        if cancelled is not None and cancelled():
+            raise Cancelled("cancelled")
+
+    def todo() -> Iterator[Shard]:
+        for shard in cut_shards(items, options.shard_size):
+            if shard.index in on_disk:
+                if on_shard:
+                    on_shard(len(shard.items))
+                continue
+            yield shard
+
+    merged: Any = None
+    next_index = 0
+    ready: dict[int, State] = {}
+
+    def drain() -> None:
+        nonlocal merged, next_index
+        while next_index in ready or next_index in on_disk:
+            state = ready.pop(next_index) if next_index in ready else folder.read(next_index)
+            part = kind.load(state)
+            merged = part if merged is None else merged.merge(part)
+            next_index += 1
+
+    n_shards = None if total is None else shard_count(total, options.shard_size)
+    engine = workers.engine_for(options, loaded, n_shards)
+    failed = True
+    try:
+        for index, n, state in engine.run(kind, todo(), check,
+                                          lambda i: i < next_index + engine.ahead):
+            if folder is not None:
+                folder.write(index, state)
+            ready[index] = state
+            if on_shard:
+                on_shard(n)
+            drain()
+        failed = False
+    finally:
+        workers.release(engine, failed)
+    drain()
+    if ready:
+        raise RuntimeError(f"shards {sorted(ready)} finished but shard {next_index} is missing")
+    if folder is not None and merged is not None:
+        folder.finish(kind.state(merged))
+    return merged
+
+
+def require_some(partial: Any, what: str = "the text set holds no texts") -> Any:
+    if partial is None:
+        raise HeadlightError(what)
+    return partial
