@@ -4,12 +4,16 @@ from __future__ import annotations
 
 import importlib.util
 import os
+import tempfile
 from pathlib import Path
 
 import pytest
 
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 os.environ.setdefault("HF_HUB_OFFLINE", "1")
+# Run folders (and anything else cached) go to a fresh folder of this test run, never to the
+# user's ~/.cache, whatever the fixture scope of the test that writes them.
+os.environ["XDG_CACHE_HOME"] = tempfile.mkdtemp(prefix="headlight-tests-cache-")
 
 
 def minilm_folder() -> Path:
@@ -32,16 +36,3 @@ def minilm(minilm_dir):
     from viewer.model.loader import open_model
 
     return open_model(minilm_dir)
-
-
-@pytest.fixture(scope="session")
-def run_folders(tmp_path_factory) -> Path:
-    return tmp_path_factory.mktemp("runs")
-
-
-@pytest.fixture(autouse=True)
-def _runs_in_a_temporary_folder(run_folders, monkeypatch):
-    """Commands keep their run folders under the test's temporary folder, not ~/.cache."""
-    from viewer.reports import runfolder
-
-    monkeypatch.setattr(runfolder, "default_work_dir", lambda: run_folders)
