@@ -230,3 +230,14 @@ def require_some(partial: Any, what: str = "the text set holds no texts") -> Any
     if partial is None:
         raise HeadlightError(what)
     return partial
+
+
+def run_report(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
+               options: RunOptions = SERIAL, progress: Callable[..., None] | None = None,
+               cancelled: Callable[[], bool] | None = None,
+               empty: str = "the text set holds no texts") -> Any:
+    """``run_shards`` for callers holding the items (the window): ``progress(done, total)``
+    with the items done after every shard, and a HeadlightError(``empty``) for an empty set."""
+    on_shard = progress_callback(progress, sized(items))
+    return require_some(run_shards(kind, loaded, items, options=options, on_shard=on_shard,
+                                   cancelled=cancelled), empty)
