@@ -203,12 +203,15 @@ def run_shards(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
             merged = part if merged is None else merged.merge(part)
             next_index += 1
 
+    def may_start(index: int) -> bool:  # bounds the shards in flight beyond the next merge
+        drain()
+        return index < next_index + engine.ahead
+
     n_shards = None if total is None else shard_count(total, options.shard_size)
     engine = workers.engine_for(options, loaded, n_shards)
     failed = True
     try:
-        for index, n, state in engine.run(kind, todo(), check,
-                                          lambda i: i < next_index + engine.ahead):
+        for index, n, state in engine.run(kind, todo(), check, may_start):
             if folder is not None:
                 folder.write(index, state)
             ready[index] = state
@@ -219,8 +222,9 @@ def run_shards(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
     finally:
         workers.release(engine, failed)
     drain()
-    if ready:
-        raise RuntimeError(f"shards {sorted(ready)} finished but shard {next_index} is missing")
+    if ready or (n_shards is not None and next_index != n_shards):
+        raise RuntimeError(f"merged {next_index} of {n_shards} shards; shards {sorted(ready)} "
+                           "are waiting for a missing one")
     if folder is not None and merged is not None:
         folder.finish(kind.state(merged))
     return merged
