@@ -120,6 +120,49 @@ def test_shards_merge_in_shard_order_whatever_order_they_finish(demo, items, mon
     assert [s.start for s in cut_shards(range(20), SHARD)] == [0, 8, 16]
 
 
+class Threads(workers._Submitting):
+    """The submitting engine of the pool and the cluster on a thread of this process."""
+
+    def __init__(self, loaded):
+        from concurrent.futures import ThreadPoolExecutor
+
+        self.loaded, self.spec, self.ahead = loaded, None, 2
+        self.pool = ThreadPoolExecutor(1)  # one LoadedModel runs one forward at a time
+
+    def _submit(self, spec, kind, shard, run):
+        return self.pool.submit(lambda: (shard.index, len(shard.items),
+                                         kind.state(kind.map(self.loaded, shard, lambda: None))))
+
+    def _wait(self, futures):
+        from concurrent.futures import FIRST_COMPLETED, wait
+
+        return set(wait(futures, return_when=FIRST_COMPLETED).done)
+
+    def close(self):
+        self.pool.shutdown()
+
+
+def test_a_run_resumed_on_submitting_workers_computes_the_rest(demo, items, tmp_path,
+                                                               monkeypatch):
+    """Stopped after three shards, resumed on an engine that submits shards (as the pool and
+    the cluster do): it must compute every missing shard and give the uninterrupted result."""
+    kind = ShortcutKind(batch_size=16, phrases=False)
+    want = kind.state(run_shards(kind, demo, items, options=RunOptions(shard_size=SHARD)))
+    options = RunOptions(shard_size=SHARD, work=tmp_path)
+    inputs = {"name": "the first 48 sample messages"}
+    done = []
+    with pytest.raises(Cancelled):
+        run_shards(kind, demo, items, options=options, inputs=inputs,
+                   on_shard=done.append, cancelled=lambda: len(done) >= 3)
+    (folder,) = tmp_path.iterdir()
+    assert len(list(folder.glob("shard-*.npz"))) == 3
+    monkeypatch.setattr(workers, "engine_for", lambda options, loaded, n: Threads(loaded))
+    got = kind.state(run_shards(kind, demo, items, options=options, inputs=inputs))
+    assert got["words.texts"] == len(items)
+    for key in want:
+        assert np.array_equal(got[key], want[key]), key
+
+
 @pytest.mark.slow
 def test_local_worker_processes_give_the_serial_numbers(demo, items, pairs, serial):
     try:

@@ -19,16 +19,7 @@ from viewer.core.headstats import HeadStats, HeadSummary
 from viewer.errors import HeadlightError
 from viewer.model.attribution import head_importance_sums, head_knockout_effects
 from viewer.model.loader import LoadedModel
-from viewer.reports.shards import (
-    SERIAL,
-    RunOptions,
-    Shard,
-    State,
-    progress_callback,
-    require_some,
-    run_shards,
-    sized,
-)
+from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 from viewer.reports.textsets import Survey, TextItem
 
 
@@ -202,9 +193,8 @@ def scan_text_set(loaded: LoadedModel, items: Iterable[TextItem], *, batch_size:
     None for a stream of unknown length); ``cancelled()`` is asked between shards and batches
     and ends the run with ``viewer.reports.shards.Cancelled``.
     """
-    on_shard = progress_callback(progress, sized(items))
-    part = require_some(run_shards(HeadsKind(batch_size, rows=True), loaded, items,
-                                   options=options, on_shard=on_shard, cancelled=cancelled))
+    part = run_report(HeadsKind(batch_size, rows=True), loaded, items, options=options,
+                      progress=progress, cancelled=cancelled)
     return TextSetScan(part.stats.summary(), predictions(loaded, part))
 
 
@@ -216,10 +206,9 @@ def head_summary(loaded: LoadedModel, items: Iterable[TextItem], batch_size: int
     The texts are streamed shard by shard: memory depends on the shard size and the model, not
     on the number of texts (the accumulator holds a few (L, H) sums).
     """
-    on_shard = progress_callback(progress, sized(items))
-    part = run_shards(HeadsKind(batch_size), loaded, items, on_shard=on_shard,
+    part = run_report(HeadsKind(batch_size), loaded, items, progress=progress,
                       cancelled=cancelled)
-    return require_some(part).stats.summary()
+    return part.stats.summary()
 
 
 def head_importance(loaded: LoadedModel, items: Sequence[TextItem], batch_size: int = 16,

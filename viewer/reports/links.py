@@ -12,16 +12,7 @@ from typing import ClassVar
 
 from viewer.core.links import LinkAccuracy, LinkPair, score_pair
 from viewer.model.loader import LoadedModel
-from viewer.reports.shards import (
-    SERIAL,
-    RunOptions,
-    Shard,
-    State,
-    progress_callback,
-    require_some,
-    run_shards,
-    sized,
-)
+from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 
 
 @dataclass(frozen=True)
@@ -63,7 +54,5 @@ def link_report(loaded: LoadedModel, pairs: Iterable[LinkPair], batch_size: int 
     ``cancelled()`` is asked between shards and batches and ends the run with
     ``viewer.reports.shards.Cancelled``.
     """
-    on_shard = progress_callback(progress, sized(pairs))
-    return require_some(run_shards(LinksKind(batch_size), loaded, pairs, options=options,
-                                   on_shard=on_shard, cancelled=cancelled),
-                        "the link-pairs file holds no pairs")
+    return run_report(LinksKind(batch_size), loaded, pairs, options=options, progress=progress,
+                      cancelled=cancelled, empty="the link-pairs file holds no pairs")

@@ -203,12 +203,15 @@ def run_shards(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
             merged = part if merged is None else merged.merge(part)
             next_index += 1
 
+    def may_start(index: int) -> bool:  # bounds the shards in flight beyond the next merge
+        drain()
+        return index < next_index + engine.ahead
+
     n_shards = None if total is None else shard_count(total, options.shard_size)
     engine = workers.engine_for(options, loaded, n_shards)
     failed = True
     try:
-        for index, n, state in engine.run(kind, todo(), check,
-                                          lambda i: i < next_index + engine.ahead):
+        for index, n, state in engine.run(kind, todo(), check, may_start):
             if folder is not None:
                 folder.write(index, state)
             ready[index] = state
@@ -219,8 +222,9 @@ def run_shards(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
     finally:
         workers.release(engine, failed)
     drain()
-    if ready:
-        raise RuntimeError(f"shards {sorted(ready)} finished but shard {next_index} is missing")
+    if ready or (n_shards is not None and next_index != n_shards):
+        raise RuntimeError(f"merged {next_index} of {n_shards} shards; shards {sorted(ready)} "
+                           "are waiting for a missing one")
     if folder is not None and merged is not None:
         folder.finish(kind.state(merged))
     return merged
@@ -230,3 +234,14 @@ def require_some(partial: Any, what: str = "the text set holds no texts") -> Any
     if partial is None:
         raise HeadlightError(what)
     return partial
+
+
+def run_report(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
+               options: RunOptions = SERIAL, progress: Callable[..., None] | None = None,
+               cancelled: Callable[[], bool] | None = None,
+               empty: str = "the text set holds no texts") -> Any:
+    """``run_shards`` for callers holding the items (the window): ``progress(done, total)``
+    with the items done after every shard, and a HeadlightError(``empty``) for an empty set."""
+    on_shard = progress_callback(progress, sized(items))
+    return require_some(run_shards(kind, loaded, items, options=options, on_shard=on_shard,
+                                   cancelled=cancelled), empty)

@@ -31,16 +31,7 @@ from viewer.core.summary import summary_index, summary_share
 from viewer.model.attribution import predict_without
 from viewer.model.loader import Attention, LoadedModel
 from viewer.reports.heads import _require_prediction
-from viewer.reports.shards import (
-    SERIAL,
-    RunOptions,
-    Shard,
-    State,
-    progress_callback,
-    require_some,
-    run_shards,
-    sized,
-)
+from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 from viewer.reports.textsets import TextItem, chunks
 
 TEXTS_PER_FORWARD_GROUP = 16  # texts whose knockouts are batched together
@@ -151,7 +142,5 @@ def shortcut_search(loaded: LoadedModel, items: Iterable[TextItem], *, batch_siz
     ``viewer.reports.shards.Cancelled``.
     """
     _require_prediction(loaded, "shortcut search")
-    on_shard = progress_callback(progress, sized(items))
-    kind = ShortcutKind(batch_size=batch_size, phrases=phrases)
-    return require_some(run_shards(kind, loaded, items, options=options, on_shard=on_shard,
-                                   cancelled=cancelled))
+    return run_report(ShortcutKind(batch_size=batch_size, phrases=phrases), loaded, items,
+                      options=options, progress=progress, cancelled=cancelled)
