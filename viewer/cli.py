@@ -171,8 +171,9 @@ def cmd_insert(args: argparse.Namespace) -> int:
     from viewer.reports.runs import insertion_data
 
     loaded = _open(args)
-    data = insertion_data(loaded, args.texts, args.word, target=args.target, seed=args.seed,
-                          batch_size=args.batch_size, quiet=args.quiet)
+    run = _run_options(args)
+    data = insertion_data(loaded, _source(args), args.word, target=args.target,
+                          seed=args.seed, batch_size=args.batch_size, quiet=args.quiet, run=run)
     how = "given" if data["class_chosen_by"] == "given" else "by knockout"
     print(f"insertion test: '{data['phrase']}' into texts not predicted {data['class']} "
           f"(class {how}); {data['skipped']} of {data['texts']} texts already are")
@@ -321,7 +322,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--top", type=int, default=15, help="rows to print (default 15)")
     p = set_command("insert", "insertion test: insert a word or phrase into the texts of other "
                     "classes and count flips into its class", cmd_insert)
-    p.add_argument("--texts", metavar="FILE", required=True, help="text set (.txt, .jsonl, .csv)")
+    text_set(p)
     p.add_argument("--word", required=True, help="the word or phrase to insert, as written")
     p.add_argument("--class", dest="target", metavar="C",
                    help="the class it should push texts into (default: the class knocking it "

@@ -15,3 +15,8 @@ class HeadlightError(Exception):
 
     def __str__(self) -> str:
         return self.message
+
+
+class Cancelled(Exception):
+    """Raised between shards, batches or stages of a long computation once the user (or the
+    caller's ``cancelled()``) asked to stop. Not an error: nothing is reported."""

@@ -60,3 +60,16 @@ def test_tally_merges_to_the_whole_and_reports_wilson():
     assert e["flip_low"] == pytest.approx(ci.low, abs=1e-12)
     assert e["flip_high"] == pytest.approx(ci.high, abs=1e-12)
     assert e["mean_gain"] == pytest.approx(sum(0.1 * i for i in range(12)) / 12)
+
+
+def test_tally_state_restores_the_tally_exactly():
+    """state()/from_state() is what run folders and workers carry; a lossy round trip would
+    change a resumed run's numbers."""
+    a = InsertionTally()
+    a.texts, a.skipped = 7, 2
+    a.add("start", 4, True, 0.25)
+    a.add("start", 6, False, -0.125)
+    a.add("random", 5, True, 1 / 3)
+    b = InsertionTally.from_state({k: v.copy() for k, v in a.state().items()})
+    assert b.to_dict() == a.to_dict()
+    assert b.positions["random"].gain == 1 / 3

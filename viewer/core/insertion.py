@@ -23,6 +23,8 @@ from collections.abc import Iterable
 from dataclasses import dataclass, field
 from typing import Any
 
+import numpy as np
+
 from viewer.core.stats import wilson_interval
 
 POSITIONS: tuple[str, ...] = ("start", "end", "random")
@@ -119,6 +121,34 @@ class InsertionTally:
             "mean_gain": t.gain / t.tried if t.tried else None,
             "flipped": list(t.flipped),
         }
+
+    def state(self) -> dict[str, np.ndarray]:
+        """The tally as plain arrays (positions as UTF-8 bytes, one row of (tried, flips) and one
+        gain per position, the flipped indices with their position); ``from_state`` restores it
+        exactly."""
+        names = list(self.positions)
+        tallies = list(self.positions.values())
+        return {
+            "positions": np.frombuffer("\n".join(names).encode("utf-8"), np.uint8),
+            "texts": np.array([self.texts, self.skipped], dtype=np.int64),
+            "counts": np.array([[t.tried, t.flips] for t in tallies], np.int64).reshape(-1, 2),
+            "gain": np.array([t.gain for t in tallies], dtype=np.float64),
+            "flipped": np.array([[k, i] for k, t in enumerate(tallies) for i in t.flipped],
+                                dtype=np.int64).reshape(-1, 2),
+        }
+
+    @classmethod
+    def from_state(cls, state: dict[str, np.ndarray]) -> InsertionTally:
+        names = np.asarray(state["positions"], np.uint8).tobytes().decode("utf-8").split("\n")
+        tally = cls(names)
+        tally.texts, tally.skipped = (int(v) for v in state["texts"])
+        tallies = list(tally.positions.values())
+        for t, (tried, flips), gain in zip(tallies, np.asarray(state["counts"]).tolist(),
+                                           np.asarray(state["gain"]).tolist(), strict=True):
+            t.tried, t.flips, t.gain = tried, flips, gain
+        for k, index in np.asarray(state["flipped"]).tolist():
+            tallies[k].flipped.append(index)
+        return tally
 
     def to_dict(self) -> dict[str, Any]:
         return {"texts": self.texts, "skipped": self.skipped,

@@ -9,16 +9,17 @@ contain the phrase, the originally predicted class that knocking the phrase out 
 flips away from (``pointed_class``). For the demo's footer that is ``billing``: without
 "[via portal]" the portal messages stop being billing.
 
-``insertion_shard`` is the map step over one shard of the set (indices are positions in the
-whole set, so the random boundary of a text does not depend on the shard); shards' tallies
-merge into the set's tally.
+Both passes are report kinds of the shard engine (``PointedKind``, ``InsertionKind``), so they
+run on workers or a cluster and resume from a run folder like every set report.
+``insertion_shard`` is the map step over one shard (indices are positions in the whole set, so
+the random boundary of a text does not depend on the shard); shards' tallies merge in order.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Sequence
-from dataclasses import dataclass
-from typing import Any
+from dataclasses import asdict, dataclass
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -28,7 +29,8 @@ from viewer.core.shortcuts import word_key
 from viewer.errors import HeadlightError
 from viewer.model.attribution import predict_without
 from viewer.model.loader import LoadedModel
-from viewer.reports.textsets import TextItem, chunks
+from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
+from viewer.reports.textsets import TextItem, TextSource, chunks
 
 
 def _require_classifier(loaded: LoadedModel) -> None:
@@ -101,43 +103,86 @@ class PointedClass:
     texts_with: dict[str, int]  # originally predicted class -> texts containing the phrase
 
 
-def pointed_class(loaded: LoadedModel, items: Iterable[TextItem], phrase: str,
-                  batch_size: int = 32) -> PointedClass:
-    """The class that knocking ``phrase`` out most often flips texts away from.
+@dataclass
+class PointedTally:
+    """Per originally predicted class: texts containing the phrase, and flips when knocked out."""
 
-    Ties go to the class with more texts containing the phrase, then to the lower index.
-    """
-    _require_classifier(loaded)
-    keys = phrase_keys(phrase)
-    labels = list(loaded.labels)
-    flips = np.zeros(len(labels), dtype=np.int64)
-    having = np.zeros(len(labels), dtype=np.int64)
-    for chunk in chunks((i for i in items if phrase_occurrences(i.text, keys)), 64):
-        atts = list(loaded.attentions([i.text for i in chunk], batch_size=batch_size))
-        cases, preds = [], []
-        for att in atts:
-            idx = np.unique(np.concatenate([word_token_indices(s, att.offsets)
-                                            for s in phrase_occurrences(att.text, keys)]))
-            idx = idx[~att.special[idx]]
-            if idx.size == 0 or idx.size >= len(att.token_ids):
+    having: np.ndarray
+    flips: np.ndarray
+
+    def merge(self, other: PointedTally) -> PointedTally:
+        self.having = self.having + other.having
+        self.flips = self.flips + other.flips
+        return self
+
+    def pointed(self, labels: Sequence[str], phrase: str) -> PointedClass:
+        """The class knocking the phrase out most often flips texts away from.
+
+        Ties go to the class with more texts containing the phrase, then to the lower index."""
+        if self.having.sum() == 0:
+            raise HeadlightError(f"'{phrase}' occurs in no text of the set; name the class it "
+                                 "should push texts into (--class)")
+        if self.flips.sum() == 0:
+            raise HeadlightError(f"knocking '{phrase}' out flips no prediction in this set, so "
+                                 "it points to no class; name one (--class)")
+        order = sorted(range(len(labels)), key=lambda k: (-self.flips[k], -self.having[k], k))
+        return PointedClass(order[0],
+                            {labels[k]: int(self.flips[k]) for k in range(len(labels))},
+                            {labels[k]: int(self.having[k]) for k in range(len(labels))})
+
+
+@dataclass(frozen=True)
+class PointedKind:
+    """Knockout of one phrase in the texts containing it, over shards (a ``ShardKind``)."""
+
+    name: ClassVar[str] = "pointed-class"
+    phrase: str
+    batch_size: int = 32
+
+    def options(self) -> dict:
+        return asdict(self)
+
+    def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> PointedTally:
+        keys = phrase_keys(self.phrase)
+        n = len(loaded.labels)
+        tally = PointedTally(np.zeros(n, np.int64), np.zeros(n, np.int64))
+        for chunk in chunks((i for i in shard.items if phrase_occurrences(i.text, keys)), 64):
+            check()
+            atts = list(loaded.attentions([i.text for i in chunk], batch_size=self.batch_size))
+            cases, preds = [], []
+            for att in atts:
+                idx = np.unique(np.concatenate([word_token_indices(s, att.offsets)
+                                                for s in phrase_occurrences(att.text, keys)]))
+                idx = idx[~att.special[idx]]
+                if idx.size == 0 or idx.size >= len(att.token_ids):
+                    continue
+                cases.append((att.token_ids, idx))
+                preds.append(int(np.argmax(att.target)))
+            if not cases:
                 continue
-            cases.append((att.token_ids, idx))
-            preds.append(int(np.argmax(att.target)))
-        if not cases:
-            continue
-        after = predict_without(loaded, cases, batch_size).argmax(axis=1)
-        for before, now in zip(preds, after, strict=True):
-            having[before] += 1
-            flips[before] += int(now != before)
-    if having.sum() == 0:
-        raise HeadlightError(f"'{phrase}' occurs in no text of the set; name the class it should "
-                             "push texts into (--class)")
-    if flips.sum() == 0:
-        raise HeadlightError(f"knocking '{phrase}' out flips no prediction in this set, so it "
-                             "points to no class; name one (--class)")
-    order = sorted(range(len(labels)), key=lambda k: (-flips[k], -having[k], k))
-    return PointedClass(order[0], {labels[k]: int(flips[k]) for k in range(len(labels))},
-                        {labels[k]: int(having[k]) for k in range(len(labels))})
+            after = predict_without(loaded, cases, self.batch_size).argmax(axis=1)
+            for before, now in zip(preds, after, strict=True):
+                tally.having[before] += 1
+                tally.flips[before] += int(now != before)
+        return tally
+
+    def state(self, partial: PointedTally) -> State:
+        return {"having": partial.having, "flips": partial.flips}
+
+    def load(self, state: State) -> PointedTally:
+        return PointedTally(np.asarray(state["having"], np.int64),
+                            np.asarray(state["flips"], np.int64))
+
+
+def pointed_class(loaded: LoadedModel, items: Iterable[TextItem], phrase: str,
+                  batch_size: int = 32, *, options: RunOptions = SERIAL,
+                  cancelled: Callable[[], bool] | None = None) -> PointedClass:
+    """The class that knocking ``phrase`` out most often flips texts away from (``PointedTally``)."""
+    _require_classifier(loaded)
+    phrase_keys(phrase)
+    tally = run_report(PointedKind(phrase, batch_size), loaded, items, options=options,
+                       cancelled=cancelled)
+    return tally.pointed(list(loaded.labels), phrase)
 
 
 def insertion_shard(loaded: LoadedModel, items: Sequence[tuple[int, TextItem]], phrase: str,
@@ -184,29 +229,69 @@ class InsertionReport:
         return out
 
 
-def insertion_test(loaded: LoadedModel, items: Iterable[TextItem], phrase: str,
-                   target: str | int | None = None, *, seed: int = 0, batch_size: int = 32,
-                   shard_size: int = 64, progress: Callable[[int], None] | None = None
-                   ) -> InsertionReport:
-    """The whole insertion test, serially over shards of ``shard_size`` texts."""
+@dataclass(frozen=True)
+class InsertionKind:
+    """The insertion test over shards (a ``ShardKind``); the partial is an ``InsertionTally``."""
+
+    name: ClassVar[str] = "insertion"
+    phrase: str
+    target: int
+    seed: int = 0
+    batch_size: int = 32
+    positions: tuple[str, ...] = POSITIONS
+
+    def options(self) -> dict:
+        return asdict(self)
+
+    def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> InsertionTally:
+        check()
+        return insertion_shard(loaded, list(shard.indexed()), self.phrase, self.target,
+                               seed=self.seed, positions=self.positions,
+                               batch_size=self.batch_size)
+
+    def state(self, partial: InsertionTally) -> State:
+        return partial.state()
+
+    def load(self, state: State) -> InsertionTally:
+        return InsertionTally.from_state(state)
+
+
+def run_insertion(loaded: LoadedModel, phrase: str, target: str | int | None, seed: int,
+                  batch_size: int, run: Callable[[Any, str], Any]) -> InsertionReport:
+    """The insertion test with ``run(kind, label)`` mapping a report kind over the whole set
+    (the engine call of the caller: the window's, or the command's with its progress bar)."""
     _require_classifier(loaded)
-    items = list(items)
     phrase = " ".join(phrase.split())
     phrase_keys(phrase)
     pointed = None
     if target is None:
-        pointed = pointed_class(loaded, items, phrase, batch_size)
+        tally = run(PointedKind(phrase, batch_size), f"knockout of '{phrase}'")
+        pointed = tally.pointed(list(loaded.labels), phrase)
         index, chosen = pointed.target, "knockout"
     else:
         index = target if isinstance(target, int) else resolve_class(loaded, str(target))
         chosen = "given"
-    tally = InsertionTally()
-    for start in range(0, len(items), shard_size):
-        shard = list(enumerate(items[start:start + shard_size], start=start))
-        tally.merge(insertion_shard(loaded, shard, phrase, index, seed=seed,
-                                    batch_size=batch_size))
-        if progress:
-            progress(len(shard))
-    if tally.texts == 0:
-        raise HeadlightError("the text set holds no texts")
+    tally = run(InsertionKind(phrase, index, seed, batch_size), f"insertion of '{phrase}'")
     return InsertionReport(phrase, index, loaded.labels[index], chosen, seed, tally, pointed)
+
+
+def insertion_test(loaded: LoadedModel, items: Iterable[TextItem] | TextSource, phrase: str,
+                   target: str | int | None = None, *, seed: int = 0, batch_size: int = 32,
+                   progress: Callable[..., None] | None = None,
+                   cancelled: Callable[[], bool] | None = None,
+                   options: RunOptions = SERIAL) -> InsertionReport:
+    """The whole insertion test over the shards of the set (``viewer.reports.shards``).
+
+    Without ``target`` the set is read twice (the knockout that finds the pointed class, then
+    the insertions): a one-shot stream of items is read into a list first.
+    ``progress(done, total)`` follows the insertion pass.
+    """
+    if not isinstance(items, TextSource):
+        items = list(items)
+
+    def run(kind: Any, _label: str) -> Any:
+        return run_report(kind, loaded, items.items() if isinstance(items, TextSource) else items,
+                          options=options, cancelled=cancelled,
+                          progress=progress if isinstance(kind, InsertionKind) else None)
+
+    return run_insertion(loaded, phrase, target, seed, batch_size, run)

@@ -28,7 +28,7 @@ import numpy as np
 from viewer import __version__
 from viewer.errors import HeadlightError
 from viewer.files import atomic_write_bytes, write_json
-from viewer.reports.shards import ShardKind, State
+from viewer.reports.shardtypes import ShardKind, State
 
 FORMAT = 2  # the state layout of the accumulators; change it when one changes
 MODEL_FILES = ("config.json", "tokenizer.json", "tokenizer_config.json", "special_tokens_map.json",

@@ -156,13 +156,14 @@ def shortcuts_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, *
     return {"model": str(loaded.folder), **report.to_dict()}
 
 
-def insertion_data(loaded: LoadedModel, texts_path: str | Path, phrase: str, *,
+def insertion_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, phrase: str, *,
                    target: str | None = None, seed: int = 0, batch_size: int = 16,
-                   quiet: bool = False) -> dict:
-    from viewer.reports.insertion import insertion_test
+                   quiet: bool = False, run: RunOptions = SERIAL) -> dict:
+    from viewer.reports.insertion import run_insertion
 
-    items = load_text_set(texts_path)
-    with Progress(len(items), "insertion test", enabled=not quiet) as bar:
-        report = insertion_test(loaded, items, phrase, target, seed=seed,
-                                batch_size=batch_size, progress=bar)
+    source = as_source(texts)
+    total = survey(source).texts
+    report = run_insertion(loaded, phrase, target, seed, batch_size,
+                           lambda kind, label: _run(kind, loaded, source.items(), total, label,
+                                                    source.key, run, quiet))
     return {"model": str(loaded.folder), **report.to_dict()}

@@ -24,119 +24,30 @@ shard, check)`` returning a partial with ``merge(other) -> merged``, and ``state
 
 from __future__ import annotations
 
-import inspect
 from collections.abc import Callable, Iterable, Iterator, Sized
-from dataclasses import dataclass
-from pathlib import Path
-from typing import Any, ClassVar, Protocol
-
-import numpy as np
+from typing import Any
 
 from viewer.errors import HeadlightError
-
-SHARD_SIZE = 32
-"""Texts per shard. Part of a run's identity: the partial sums, and so the last bits of every
-mean, depend on where the shards are cut (never on how many workers ran them)."""
-
-State = dict[str, np.ndarray]
-
-
-@dataclass(frozen=True)
-class Shard:
-    """``items[start : start + len(items)]`` of the whole set; shard ``index`` in order."""
-
-    index: int
-    start: int
-    items: tuple[Any, ...]
-
-    def indexed(self) -> Iterator[tuple[int, Any]]:
-        """(position in the whole set, item) pairs."""
-        return enumerate(self.items, start=self.start)
+from viewer.reports import runfolder, workers
+from viewer.reports.shardtypes import (  # noqa: F401  (re-exported: the engine's public names)
+    SERIAL,
+    SHARD_SIZE,
+    Cancelled,
+    Partial,
+    RunOptions,
+    Shard,
+    ShardKind,
+    State,
+    cut_shards,
+    shard_count,
+)
 
 
-def cut_shards(items: Iterable[Any], size: int = SHARD_SIZE) -> Iterator[Shard]:
-    """Consecutive shards of ``size`` items (the last may be shorter), read lazily."""
-    if size < 1:
-        raise HeadlightError(f"shard size must be at least 1, got {size}")
-    chunk: list[Any] = []
-    index = start = 0
-    for item in items:
-        chunk.append(item)
-        if len(chunk) == size:
-            yield Shard(index, start, tuple(chunk))
-            index, start, chunk = index + 1, start + size, []
-    if chunk:
-        yield Shard(index, start, tuple(chunk))
-
-
-def shard_count(items: int, size: int = SHARD_SIZE) -> int:
-    return -(-items // size)
-
-
-class Partial(Protocol):
-    def merge(self, other: Any) -> Any: ...
-
-
-class ShardKind(Protocol):
-    """A report kind: the map step over one shard and the (de)serialisation of its partial."""
-
-    name: ClassVar[str]
-
-    def options(self) -> dict[str, Any]: ...
-
-    def map(self, loaded: Any, shard: Shard, check: Callable[[], None]) -> Partial: ...
-
-    def state(self, partial: Any) -> State: ...
-
-    def load(self, state: State) -> Partial: ...
-
-
-class Cancelled(Exception):
-    """Raised between shards (or batches) when the caller's ``cancelled()`` says so."""
-
-
-@dataclass(frozen=True)
-class RunOptions:
-    """Where and how a report's shards run.
-
-    workers: processes on this machine (1: this process); cluster: a Dask scheduler address
-    (then ``workers`` is ignored); work: the folder holding run folders (None: keep nothing);
-    fresh: ignore finished shards kept there; threads: torch threads while a shard is mapped,
-    wherever it runs (None: leave the process's setting).
-
-    One torch thread everywhere is what makes every engine's numbers bit-identical: a forward
-    on two threads can differ from the same forward on one in the last bit of a float32
-    (measured on the demo model: one phrase's summed drop moved by 8e-10), and workers run one
-    thread each.
-    """
-
-    workers: int = 1
-    cluster: str | None = None
-    work: Path | None = None
-    fresh: bool = False
-    shard_size: int = SHARD_SIZE
-    threads: int | None = 1
-
-
-SERIAL = RunOptions()
-
-
-def progress_callback(progress: Callable[..., None] | None,
+def progress_callback(progress: Callable[[int, int | None], None] | None,
                       total: int | None) -> Callable[[int], None] | None:
-    """Turn a caller's ``progress(done, total)`` into the engine's per-shard ``on_shard(n)``.
-
-    A callback taking one argument is called with the number of items just finished instead
-    (the older convention of the window's jobs, still accepted).
-    """
+    """Turn a caller's ``progress(done, total)`` into the engine's per-shard ``on_shard(n)``."""
     if progress is None:
         return None
-    try:
-        params = [p for p in inspect.signature(progress).parameters.values()
-                  if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD, p.VAR_POSITIONAL)]
-    except (TypeError, ValueError):
-        params = []
-    if len(params) == 1 and params[0].kind != params[0].VAR_POSITIONAL:
-        return progress
     done = [0]
 
     def on_shard(n: int) -> None:
@@ -164,8 +75,6 @@ def run_shards(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
     folder included); ``cancelled()`` is asked between shards and batches and stops the run
     with ``Cancelled``. Returns the merged partial, None for an empty set.
     """
-    from viewer.reports import runfolder, workers
-
     if total is None:
         total = sized(items)
     folder = None

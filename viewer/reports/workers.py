@@ -32,7 +32,7 @@ from typing import Any
 
 from viewer import __version__
 from viewer.errors import HeadlightError
-from viewer.reports.shards import RunOptions, Shard, ShardKind, State
+from viewer.reports.shardtypes import RunOptions, Shard, ShardKind, State
 
 Result = tuple[int, int, State]  # (shard index, items in the shard, partial state)
 

@@ -18,16 +18,12 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from viewer.errors import HeadlightError
+from viewer.errors import Cancelled, HeadlightError
 from viewer.session.state import ModelInfo
 
 if TYPE_CHECKING:
 
     from viewer.session.analysis import TextAnalysis
-
-
-class Cancelled(Exception):
-    """Raised inside a job by ``JobContext.check`` once the user cancelled it."""
 
 
 @dataclass
@@ -37,8 +33,18 @@ class JobContext:
     models: dict[str, Any]  # slot ("main", "compare") -> LoadedModel, worker thread only
 
     def check(self) -> None:
+        """Raise ``Cancelled`` (the shard engine's, so one exception ends every job) once the
+        user cancelled."""
         if self.cancelled():
-            raise Cancelled()
+            raise Cancelled("cancelled")
+
+    def counter(self, what: str) -> Callable[[int, int | None], None]:
+        """A set report's ``progress(done, total)``, shown as "{what}: done of total"."""
+
+        def progress(done: int, total: int | None) -> None:
+            self.progress(done, total or 0, f"{what}: {done} of {total or '?'}")
+
+        return progress
 
     def model(self, slot: str) -> Any:
         loaded = self.models.get(slot)
@@ -181,38 +187,27 @@ class TextSetResult:
         return sum(known) / len(known) if known else None
 
 
-def run_textset(ctx: JobContext, slot: str, path: str, batch_size: int = 8) -> TextSetResult:
+def run_textset(ctx: JobContext, slot: str, path: str) -> TextSetResult:
     """Every text of a text-set file: prediction, correctness, and set-wide head metrics.
 
-    The head metrics are accumulated exactly as ``headlight heads`` does (``HeadStats`` over
-    the model's attention of every text), so the head map's "text set" scope shows its numbers.
+    One pass of the reports' own ``scan_text_set``: the head map's "text set" scope shows the
+    numbers ``headlight heads`` prints for the same file, to the last bit.
     """
-    from viewer.core.headstats import HeadStats
+    from viewer.reports.heads import scan_text_set
     from viewer.reports.textsets import load_text_set
 
     items = load_text_set(path)
     loaded = ctx.model(slot)
-    stats = HeadStats(loaded.n_layers, loaded.n_heads)
-    labels = tuple(loaded.labels)
-    rows: list[TextSetRow] = []
     total = len(items)
     ctx.progress(0, total, f"recording {total} texts…")
-    for start in range(0, total, batch_size):
-        ctx.check()
-        chunk = items[start:start + batch_size]
-        for offset, att in enumerate(loaded.attentions([i.text for i in chunk], batch_size)):
-            item = chunk[offset]
-            stats.add(att.probs, att.special, att.causal, visible=att.key_masks())
-            predicted = confidence = None
-            if att.target is not None and loaded.head_kind == "classifier":
-                k = int(att.target.argmax())
-                predicted = labels[k] if k < len(labels) else str(k)
-                confidence = float(att.target[k])
-            rows.append(TextSetRow(index=start + offset, text=item.text, label=item.label,
-                                   predicted=predicted, confidence=confidence,
-                                   tokens=len(att.token_ids)))
-        ctx.progress(len(rows), total, f"recorded {len(rows)} of {total} texts")
-    return TextSetResult(str(path), tuple(rows), stats.summary())
+    scan = scan_text_set(loaded, items, progress=ctx.counter("recorded texts"),
+                         cancelled=ctx.cancelled)
+    classifier = loaded.head_kind == "classifier"
+    rows = tuple(TextSetRow(index=p.index, text=item.text, label=item.label,
+                            predicted=p.label if classifier else None,
+                            confidence=p.confidence if classifier else None, tokens=p.tokens)
+                 for p, item in zip(scan.rows, items, strict=True))
+    return TextSetResult(str(path), rows, scan.heads)
 
 
 # -- link pairs ---------------------------------------------------------------------------------
@@ -233,14 +228,9 @@ def run_link_pairs(ctx: JobContext, slot: str, path: str) -> LinkPairsRun:
 
     pairs = read_link_pairs(path)
     loaded = ctx.model(slot)
-    done = [0]
-
-    def tick(n: int) -> None:
-        done[0] += n
-        ctx.progress(done[0], len(pairs), f"scored {done[0]} of {len(pairs)} link pairs")
-        ctx.check()
-
-    return LinkPairsRun(str(path), link_report(loaded, pairs, progress=tick))
+    return LinkPairsRun(str(path), link_report(loaded, pairs,
+                                               progress=ctx.counter("scored link pairs"),
+                                               cancelled=ctx.cancelled))
 
 
 # -- evidence -------------------------------------------------------------------------------------
@@ -283,16 +273,10 @@ def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult,
 
     loaded = ctx.model(slot)
     items = [TextItem(r.text, r.label, r.index + 1) for r in textset.rows]
-    done = [0]
-
-    def tick(n: int) -> None:
-        done[0] += n
-        ctx.progress(done[0], len(items), f"shortcut search: {done[0]} of {len(items)} texts")
-        ctx.check()
-
     what = "word and two-word phrase" if phrases else "word"
     ctx.progress(0, len(items), f"shortcut search: knocking out every {what}…")
-    return shortcut_search(loaded, items, progress=tick, phrases=phrases)
+    return shortcut_search(loaded, items, progress=ctx.counter("shortcut search, texts"),
+                           cancelled=ctx.cancelled, phrases=phrases)
 
 
 def run_insertions(ctx: JobContext, slot: str, textset: TextSetResult, report: Any,
@@ -316,8 +300,7 @@ def run_insertions(ctx: JobContext, slot: str, textset: TextSetResult, report: A
         keys = phrase_keys(word)
         phrase = (surface_form(items, keys) or word) if len(keys) > 1 else word
         try:
-            results[word] = insertion_test(loaded, items, phrase,
-                                           progress=lambda _n: ctx.check())
+            results[word] = insertion_test(loaded, items, phrase, cancelled=ctx.cancelled)
         except HeadlightError:
             continue  # e.g. knocking it out flips nothing: it points to no class
     ctx.progress(len(words), len(words), "insertion tests done")
