@@ -124,3 +124,25 @@ def test_summary_share():
     att[1, 0] = [0.0, 0.5, 0.5]
     assert summary_share(att, 0, np.array([1, 2])) == pytest.approx(0.75)
     assert summary_share(att, 0, np.array([], dtype=int)) == 0.0
+
+
+def test_per_class_breakdown_counts_flips_under_the_originally_predicted_class():
+    """Worked example: 'portal' in 3 texts predicted billing (2 flip) and 1 predicted repair
+    (no flip): by_class billing 2/3, repair 0/1, membership no texts; the totals are their sums."""
+    tally = KnockoutTally(("repair", "billing", "membership"))
+    for flipped, predicted in ((True, 1), (True, 1), (False, 1), (False, 0)):
+        tally.add_text({"portal": KnockoutOutcome(flipped, 0.1, 0.2, predicted=predicted)})
+    e = tally.entry("portal")
+    assert e["by_class"] == {"repair": {"count": 1, "flips": 0, "flip_rate": 0.0},
+                             "billing": {"count": 3, "flips": 2, "flip_rate": 2 / 3},
+                             "membership": {"count": 0, "flips": 0, "flip_rate": None}}
+    assert e["count"] == 4 and e["flip_rate"] == 0.5
+    other = KnockoutTally(("repair", "billing", "membership"))
+    other.add_text({"portal": KnockoutOutcome(True, 0.1, 0.2, predicted=2)})
+    tally.merge(other)
+    assert tally.entry("portal")["by_class"]["membership"] == {"count": 1, "flips": 1,
+                                                               "flip_rate": 1.0}
+    with pytest.raises(ValueError):
+        tally.merge(KnockoutTally(("repair", "billing")))
+    with pytest.raises(ValueError):
+        tally.add_text({"portal": KnockoutOutcome(True, 0.1, 0.2, predicted=3)})

@@ -46,6 +46,18 @@ def test_knockout_tally_state_round_trip_keeps_odd_keys_and_order():
     assert KnockoutTally.from_state(through_npz(KnockoutTally().state())).texts == 0
 
 
+def test_knockout_tally_state_keeps_head_focus_and_the_class_breakdown():
+    tally = KnockoutTally(("repair", "billing"), heads=2)
+    tally.add_text({"portal": KnockoutOutcome(True, 0.5, 0.3, (0.1, 0.5), predicted=0)})
+    tally.add_text({"portal": KnockoutOutcome(False, 0.25, 0.2, (1 / 3, 0.0), predicted=1)})
+    back = KnockoutTally.from_state(through_npz(tally.state()))
+    assert back.labels == ("repair", "billing") and back.heads == 2
+    assert back.entry("portal") == tally.entry("portal")
+    assert np.array_equal(back.head_focus("portal"), [(0.1 + 1 / 3) / 2, 0.25])
+    empty = KnockoutTally.from_state(through_npz(KnockoutTally(("a",), 3).state()))
+    assert (empty.labels, empty.heads, len(empty)) == (("a",), 3, 0)
+
+
 def test_link_accuracy_state_round_trip():
     acc = LinkAccuracy(2, 2)
     acc.add(PairResult(np.zeros((2, 2, 2)), np.array([[True, False], [True, True]]), True))

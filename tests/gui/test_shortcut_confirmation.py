@@ -54,7 +54,14 @@ def test_insertion_column_and_fixation_plot(qtbot, demo_window, messages):
     assert shown.tally.to_dict() == reference.tally.to_dict()
     row = pane.words.index("portal")
     end = reference.tally.entry("end")
-    cell = pane.table.item(row, 6)
+    header = [pane.table.horizontalHeaderItem(c).text() for c in range(pane.table.columnCount())]
+    assert header[6:] == ["flips · repair", "flips · billing", "flips · membership",
+                          "inserted → flips into"]
+    by_class = w.state.shortcuts.words.entry("portal")["by_class"]
+    assert pane.table.item(row, 7).text() == (f"{by_class['billing']['flips']}/"
+                                              f"{by_class['billing']['count']}")
+    assert by_class["billing"]["count"] > 0  # the footer's texts are predicted billing
+    cell = pane.table.item(row, 9)
     assert cell.text() == f"billing {end['flip_rate']:.0%} (low {end['flip_low']:.2f})"
     assert "random" in cell.toolTip() and "start" in cell.toolTip()
 
@@ -67,6 +74,13 @@ def test_insertion_column_and_fixation_plot(qtbot, demo_window, messages):
     assert offsets.shape == (len(ranking), 2)
     np.testing.assert_array_equal(offsets[:, 0], [r["focus"] for r in ranking])
     np.testing.assert_array_equal(offsets[:, 1], [r["mean_drop"] for r in ranking])
+    # the selected head's attention instead of the head mean: x is that head's share
+    w.state.select_head(w.state.layer if w.state.layer is not None else 0, 1)
+    plot.head_box.setCurrentIndex(plot.head_box.findData("head"))
+    settle(qtbot, plot)
+    offsets = np.asarray(plot.artists.points.get_offsets())
+    np.testing.assert_array_equal(offsets[:, 0], [r["head_focus"][1] for r in ranking])
+    assert not np.array_equal(offsets[:, 0], [r["focus"] for r in ranking])
     # clicking a point picks its word
     from tests.gui.conftest import click, data_to_widget
 

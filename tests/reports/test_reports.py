@@ -122,13 +122,27 @@ def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
     report = shortcut_search(bert, items, phrases=False)
     entry = report.words.entry("the")
     assert entry["count"] == 3
-    # By hand for "chain" in the first text (reference: DESIGN.md "Word knockout").
+    # By hand for "chain" in the first text (reference: docs/definitions.md "Word knockout").
     rec = bert.record(text)
     pred = rec.predicted()
     keep = [t for t, tok in zip(rec.token_ids, rec.tokens, strict=True) if tok != "chain"]
     after = bert.predict(bert.batch_from_ids([keep]))[0, pred]
     assert report.words.entry("chain")["mean_drop"] == pytest.approx(
         rec.class_probabilities()[pred] - after, abs=1e-6)
+    # Per-head focus against the model's own output_attentions (transformers): the last
+    # layer's attention from [CLS] (position 0) on the sub-tokens of "chain", per head.
+    import torch
+
+    enc = bert.tokenizer(text, return_tensors="pt")
+    with torch.no_grad():
+        last = bert.model(**enc, output_attentions=True).attentions[-1][0]  # (H, T, T)
+    chain = [k for k, tok in enumerate(rec.tokens) if tok == "chain"]
+    want = last[:, 0, chain].sum(dim=1).double().numpy()
+    np.testing.assert_allclose(report.words.head_focus("chain"), want, atol=1e-6)
+    assert report.words.entry("chain")["focus"] == pytest.approx(want.mean(), abs=1e-6)
+    by_class = report.words.entry("chain")["by_class"]
+    assert by_class[bert.labels[pred]]["count"] == 1 and sum(
+        c["count"] for c in by_class.values()) == 1
 
 
 def test_cli_json_contracts(bert, tmp_path, capsys):
@@ -152,7 +166,11 @@ def test_cli_json_contracts(bert, tmp_path, capsys):
     sc = json.loads((tmp_path / "s.json").read_text())
     assert sc["texts"] == 6
     assert sc["tokens"] and set(sc["tokens"][0]) == {"token", "count", "flip_rate", "flip_low",
-                                                     "mean_drop", "focus"}
+                                                     "mean_drop", "focus", "head_focus",
+                                                     "by_class"}
+    assert sc["classes"] == list(bert.labels)
+    assert len(sc["tokens"][0]["head_focus"]) == bert.n_heads
+    assert set(sc["tokens"][0]["by_class"]) == set(bert.labels)
     lows = [r["flip_low"] for r in sc["tokens"]]
     assert lows == sorted(lows, reverse=True)
     err = capsys.readouterr().err

@@ -7,10 +7,11 @@ those of the whole whitespace word, its end punctuation included, so that knocki
 "portal" of "portal]" removes the "]" too) and reports, per text and word, whether the
 predicted class flipped, the ``drop`` in the originally predicted class's probability, and the
 ``focus`` (share of the last layer's head-mean attention from the summary token on the word's
-sub-tokens, ``viewer.core.summary.summary_share``). ``KnockoutTally`` sums these per word over
-the text set; ``KnockoutTally.ranking`` leaves out words seen in fewer than 3 texts and ranks
-the rest by ``flip_low``, the lower end of the 95% Wilson interval of the flip rate (Wilson
-1927), then by ``mean_drop``, then by the word itself.
+sub-tokens, ``viewer.core.summary.summary_share``; per head too). ``KnockoutTally`` sums these
+per word over the text set, with each text's flip also counted under the class the model
+originally predicted for it (the per-class breakdown); ``KnockoutTally.ranking`` leaves out
+words seen in fewer than 3 texts and ranks the rest by ``flip_low``, the lower end of the 95%
+Wilson interval of the flip rate (Wilson 1927), then by ``mean_drop``, then by the word itself.
 
 Two-word phrases use the same tally with the key ``"w1 w2"`` (``phrase_spans``): the two words
 must be adjacent in the whitespace split and both must have a non-empty key.
@@ -21,7 +22,7 @@ from __future__ import annotations
 import json
 import string
 import unicodedata
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -31,7 +32,7 @@ from viewer.core.stats import wilson_interval
 
 Span = tuple[int, int]
 MIN_TEXTS: int = 3
-"""Words seen in fewer texts than this are left out of the ranking (DESIGN.md)."""
+"""Words seen in fewer texts than this are left out of the ranking (docs/definitions.md)."""
 
 _ASCII_PUNCTUATION = frozenset(string.punctuation)
 
@@ -89,6 +90,14 @@ def phrase_spans(text: str) -> dict[str, list[Span]]:
     return out
 
 
+def _json_bytes(value: Any) -> np.ndarray:
+    return np.frombuffer(json.dumps(value, ensure_ascii=False).encode("utf-8"), np.uint8)
+
+
+def _from_json_bytes(array: np.ndarray) -> Any:
+    return json.loads(np.asarray(array, dtype=np.uint8).tobytes().decode("utf-8"))
+
+
 def _words(text: str) -> list[tuple[int, int, str]]:
     """(start, end, key) per whitespace word; start/end cover the whole whitespace word."""
     words = []
@@ -107,20 +116,39 @@ class KnockoutOutcome:
 
     flipped: bool  # the predicted class changed
     drop: float  # probability of the originally predicted class, before minus after
-    focus: float  # summary-token attention share on the word's sub-tokens
+    focus: float  # summary-token attention share on the word's sub-tokens (last layer, head mean)
+    head_focus: Sequence[float] = ()  # the same share in each head of the last layer
+    predicted: int = -1  # the originally predicted class (-1: not a classifier)
 
 
 class KnockoutTally:
-    """Streaming, mergeable per-word sums: texts seen, flips, sum of drop, sum of focus.
+    """Streaming, mergeable per-word sums: texts seen, flips, sum of drop, sum of focus; with
+    ``heads`` > 0 the sum of each last-layer head's focus, and with ``labels`` the texts and
+    flips per originally predicted class (the per-class breakdown).
 
-    Memory grows with the number of distinct words (or phrases), not with the number of texts.
+    Memory grows with the number of distinct words (or phrases) times (heads + classes), not
+    with the number of texts.
     """
 
-    __slots__ = ("texts", "_sums")
+    __slots__ = ("texts", "labels", "heads", "_sums", "_heads", "_classes")
 
-    def __init__(self) -> None:
+    def __init__(self, labels: Sequence[str] = (), heads: int = 0) -> None:
         self.texts = 0
+        self.labels = tuple(labels)
+        self.heads = int(heads)
         self._sums: dict[str, list[float]] = {}  # key -> [count, flips, sum_drop, sum_focus]
+        self._heads: dict[str, np.ndarray] = {}  # key -> (heads,) sum of per-head focus
+        self._classes: dict[str, np.ndarray] = {}  # key -> (classes, 2) texts, flips
+
+    def _slot(self, key: str) -> list[float]:
+        s = self._sums.get(key)
+        if s is None:
+            s = self._sums[key] = [0, 0, 0.0, 0.0]
+            if self.heads:
+                self._heads[key] = np.zeros(self.heads, dtype=np.float64)
+            if self.labels:
+                self._classes[key] = np.zeros((len(self.labels), 2), dtype=np.int64)
+        return s
 
     def add_text(self, outcomes: Mapping[str, KnockoutOutcome]) -> None:
         """Add one text: one outcome per distinct word (or phrase) key of that text."""
@@ -128,44 +156,71 @@ class KnockoutTally:
         for key, o in outcomes.items():
             if not key:
                 continue
-            s = self._sums.setdefault(key, [0, 0, 0.0, 0.0])
+            s = self._slot(key)
             s[0] += 1
             s[1] += int(bool(o.flipped))
             s[2] += float(o.drop)
             s[3] += float(o.focus)
+            if self.heads:
+                if len(o.head_focus) != self.heads:
+                    raise ValueError(f"{len(o.head_focus)} head focus values for a tally of "
+                                     f"{self.heads} heads")
+                self._heads[key] += np.asarray(o.head_focus, dtype=np.float64)
+            if self.labels:
+                if not 0 <= o.predicted < len(self.labels):
+                    raise ValueError(f"predicted class {o.predicted} is not one of "
+                                     f"{len(self.labels)} classes")
+                self._classes[key][o.predicted] += (1, int(bool(o.flipped)))
 
     def merge(self, other: KnockoutTally) -> KnockoutTally:
         """Fold ``other`` into this tally (in place) and return self."""
+        if (other.labels, other.heads) != (self.labels, self.heads):
+            raise ValueError("cannot merge knockout tallies of different classes or heads")
         self.texts += other.texts
         for key, o in other._sums.items():
-            s = self._sums.setdefault(key, [0, 0, 0.0, 0.0])
+            s = self._slot(key)
             for i in range(4):
                 s[i] += o[i]
+            if self.heads:
+                self._heads[key] += other._heads[key]
+            if self.labels:
+                self._classes[key] += other._classes[key]
         return self
 
     def state(self) -> dict[str, np.ndarray]:
-        """The tally as plain arrays: keys as UTF-8 JSON bytes, (count, flips) as int64, (sum of
-        drop, sum of focus) as float64; ``from_state`` restores it exactly, key order included."""
+        """The tally as plain arrays: keys and labels as UTF-8 JSON bytes, (count, flips) as
+        int64, (sum of drop, sum of focus) and the per-head focus sums as float64, the per-class
+        (texts, flips) as int64; ``from_state`` restores it exactly, key order included."""
         keys = list(self._sums)
         rows = list(self._sums.values())
         return {
             "texts": np.array(self.texts, dtype=np.int64),
-            "keys": np.frombuffer(json.dumps(keys, ensure_ascii=False).encode("utf-8"), np.uint8),
+            "keys": _json_bytes(keys),
+            "labels": _json_bytes(list(self.labels)),
             "counts": np.array([[r[0], r[1]] for r in rows], dtype=np.int64).reshape(-1, 2),
             "sums": np.array([[r[2], r[3]] for r in rows], dtype=np.float64).reshape(-1, 2),
+            "head_focus": np.array([self._heads[k] for k in keys] if self.heads else [],
+                                   dtype=np.float64).reshape(len(keys), self.heads),
+            "classes": np.array([self._classes[k] for k in keys] if self.labels else [],
+                                dtype=np.int64).reshape(len(keys), len(self.labels), 2),
         }
 
     @classmethod
     def from_state(cls, state: Mapping[str, np.ndarray]) -> KnockoutTally:
-        keys = json.loads(np.asarray(state["keys"], dtype=np.uint8).tobytes().decode("utf-8"))
+        keys = _from_json_bytes(state["keys"])
         counts, sums = np.asarray(state["counts"]), np.asarray(state["sums"])
-        if len(keys) != len(counts) or len(keys) != len(sums):
+        heads, classes = np.asarray(state["head_focus"]), np.asarray(state["classes"])
+        if not len(keys) == len(counts) == len(sums) == len(heads) == len(classes):
             raise ValueError(f"not a knockout-tally state: {len(keys)} keys, {len(counts)} counts")
-        tally = cls()
+        tally = cls(_from_json_bytes(state["labels"]), heads.shape[1])
         tally.texts = int(state["texts"])
-        for key, (count, flips), (drop, focus) in zip(keys, counts.tolist(), sums.tolist(),
-                                                       strict=True):
+        for n, (key, (count, flips), (drop, focus)) in enumerate(
+                zip(keys, counts.tolist(), sums.tolist(), strict=True)):
             tally._sums[key] = [count, flips, drop, focus]
+            if tally.heads:
+                tally._heads[key] = heads[n].astype(np.float64, copy=True)
+            if tally.labels:
+                tally._classes[key] = classes[n].astype(np.int64, copy=True)
         return tally
 
     def __len__(self) -> int:
@@ -174,11 +229,19 @@ class KnockoutTally:
     def keys(self) -> Iterable[str]:
         return self._sums.keys()
 
+    def head_focus(self, key: str) -> np.ndarray:
+        """Mean focus of ``key`` in each head of the last layer, (heads,)."""
+        if not self.heads:
+            raise ValueError("this tally keeps no per-head focus")
+        return self._heads[key] / self._sums[key][0]
+
     def entry(self, key: str) -> dict[str, Any]:
-        """``{token, count, flip_rate, flip_low, mean_drop, focus}`` for one key."""
+        """``{token, count, flip_rate, flip_low, mean_drop, focus}`` for one key, with
+        ``head_focus`` (per last-layer head) and ``by_class`` ({class: {count, flips,
+        flip_rate}} over the texts originally predicted as that class) when kept."""
         count, flips, drop, focus = self._sums[key]
         count, flips = int(count), int(flips)
-        return {
+        out: dict[str, Any] = {
             "token": key,
             "count": count,
             "flip_rate": flips / count,
@@ -186,6 +249,13 @@ class KnockoutTally:
             "mean_drop": drop / count,
             "focus": focus / count,
         }
+        if self.heads:
+            out["head_focus"] = self.head_focus(key).tolist()
+        if self.labels:
+            out["by_class"] = {
+                label: {"count": int(n), "flips": int(f), "flip_rate": f / n if n else None}
+                for label, (n, f) in zip(self.labels, self._classes[key].tolist(), strict=True)}
+        return out
 
     def ranking(self, min_count: int = MIN_TEXTS, limit: int | None = None) -> list[dict[str, Any]]:
         """Words seen in at least ``min_count`` texts, strongest shortcut first.

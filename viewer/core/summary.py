@@ -41,3 +41,11 @@ def summary_share(attention: np.ndarray, summary: int, tokens: np.ndarray,
     """
     row = summary_attention(attention, summary, head)
     return float(row[np.asarray(tokens, dtype=np.int64)].sum())
+
+
+def summary_head_shares(attention: np.ndarray, summary: int, tokens: np.ndarray) -> np.ndarray:
+    """``summary_share`` in every head at once: (H,) float64, Σ_{j ∈ tokens} A_h[s, j].
+
+    Their mean over heads is the head-mean share (up to float rounding)."""
+    a = np.asarray(attention)[:, summary, :].astype(np.float64)
+    return a[:, np.asarray(tokens, dtype=np.int64)].sum(axis=1)

@@ -30,7 +30,7 @@ from viewer.errors import HeadlightError
 from viewer.files import atomic_write_bytes, write_json
 from viewer.reports.shardtypes import ShardKind, State
 
-FORMAT = 2  # the state layout of the accumulators; change it when one changes
+FORMAT = 3  # the state layout of the accumulators; change it when one changes
 MODEL_FILES = ("config.json", "tokenizer.json", "tokenizer_config.json", "special_tokens_map.json",
                "vocab.txt", "vocab.json", "merges.txt", "tokenizer.model", "spiece.model")
 _SHARD = re.compile(r"shard-(\d{6,})\.npz")

@@ -3,8 +3,10 @@
 For every text, every distinct word (and, separately, every two-word phrase) is knocked out
 by deleting all of its sub-tokens from the input; the change in the probability of the
 originally predicted class is its ``drop``, a change of the predicted class a ``flip``. Over the
-text set each word gets ``count``, ``flip_rate``, ``mean_drop`` and ``focus``, and words seen in
-at least 3 texts are ranked by the lower end of the Wilson interval of their flip rate.
+text set each word gets ``count``, ``flip_rate``, ``mean_drop`` and ``focus`` (with the focus in
+each head of the last layer, ``head_focus``, and for a classifier the texts and flips per
+originally predicted class, ``by_class``), and words seen in at least 3 texts are ranked by the
+lower end of the Wilson interval of their flip rate.
 
 Cost: one forward per (text, word) plus one per (text, phrase), batched across the texts of a
 shard, so the work grows linearly with the total number of words. The search is a report kind
@@ -27,7 +29,7 @@ from viewer.core.shortcuts import (
     phrase_spans,
     word_spans,
 )
-from viewer.core.summary import summary_index, summary_share
+from viewer.core.summary import summary_head_shares, summary_index, summary_share
 from viewer.model.attribution import predict_without
 from viewer.model.loader import Attention, LoadedModel
 from viewer.reports.heads import _require_prediction
@@ -49,9 +51,17 @@ class ShortcutReport:
         self.texts += other.texts
         return self
 
+    def fixation(self, head: int | None = None) -> tuple[list[dict], list[float]]:
+        """The fixation plot's numbers: the word ranking and each ranked word's attention share
+        (last layer; the head mean, or head ``head``). Its y is each row's ``mean_drop``."""
+        rows = self.words.ranking()
+        share = [r["focus"] if head is None else r["head_focus"][head] for r in rows]
+        return rows, share
+
     def to_dict(self, limit: int | None = None) -> dict:
         return {
             "texts": self.texts,
+            "classes": list(self.words.labels),
             "tokens": self.words.ranking(limit=limit),
             "phrases": self.phrases.ranking(limit=limit),
         }
@@ -81,7 +91,9 @@ class ShortcutKind:
         return asdict(self)
 
     def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> ShortcutReport:
-        words, pairs = KnockoutTally(), KnockoutTally()
+        labels = tuple(loaded.labels) if loaded.head_kind == "classifier" else ()
+        words = KnockoutTally(labels, loaded.n_heads)
+        pairs = KnockoutTally(labels, loaded.n_heads)
         for chunk in chunks(shard.items, TEXTS_PER_FORWARD_GROUP):
             check()
             atts = list(loaded.attentions([i.text for i in chunk], batch_size=self.batch_size))
@@ -109,6 +121,8 @@ class ShortcutKind:
                         flipped=bool(int(np.argmax(p)) != pred),
                         drop=p0 - float(p[pred]),
                         focus=summary_share(att.probs[-1], s, idx),
+                        head_focus=summary_head_shares(att.probs[-1], s, idx),
+                        predicted=pred if labels else -1,
                     )
                 words.add_text(outcomes["w"])
                 if self.phrases:

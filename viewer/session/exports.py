@@ -311,11 +311,7 @@ def fixation_export(report, source: Source, *, head: int | None = None, word: st
     if report is None:
         raise HeadlightError("nothing to export in the fixation plot yet: search a text set "
                              "for shortcuts first")
-    rows = report.words.ranking()
-    if head is None:
-        focus = [r["focus"] for r in rows]
-    else:
-        focus = [float(report.words.head_focus(r["token"])[head]) for r in rows]
+    rows, focus = report.fixation(head)
     where = "head mean" if head is None else f"head {head}"
     fig = print_figure()
     fixation_into(fig, [r["token"] for r in rows], focus, [r["mean_drop"] for r in rows],

@@ -36,12 +36,8 @@ class FixationPane(FigurePane):
         """(rows, x, y, counts) from the report's own per-word numbers."""
         import numpy as np
 
-        rows = report.words.ranking()
-        if head is None:
-            x = np.array([r["focus"] for r in rows], dtype=np.float64)
-        else:
-            x = np.array([report.words.head_focus(r["token"])[head] for r in rows],
-                         dtype=np.float64)
+        rows, share = report.fixation(head)
+        x = np.array(share, dtype=np.float64)
         y = np.array([r["mean_drop"] for r in rows], dtype=np.float64)
         counts = [r["count"] for r in rows]
         return rows, x, y, counts

@@ -2,7 +2,9 @@
 
 Columns follow docs/definitions.md ("Word knockout"): texts containing the word, flip rate, the lower end
 of its 95% Wilson interval (the ranking key), mean drop in the predicted class's probability,
-and focus (summary-token attention share). Clicking a word lists the texts that contain it.
+and focus (summary-token attention share); then, per class the model originally predicted, the
+texts of that class holding the word and how many of them flip ("flips/texts"), so a word that
+flips only one class's texts stands out. Clicking a word lists the texts that contain it.
 With "two-word phrases" ticked before a search, the report also ranks adjacent word pairs
 knocked out together (a shortcut such as a footer is often a phrase), shown by "phrases".
 """
@@ -25,8 +27,8 @@ from PySide6.QtWidgets import (
 from viewer.gui.panes.base import TableDock
 from viewer.session.state import Selection
 
-COLUMNS = ("word", "texts", "flip rate", "flip low", "mean drop", "focus",
-           "inserted → flips into")
+COLUMNS = ("word", "texts", "flip rate", "flip low", "mean drop", "focus")
+INSERTION_COLUMN = "inserted → flips into"
 KEYS = ("token", "count", "flip_rate", "flip_low", "mean_drop", "focus")
 TOP_INSERTIONS = 5  # words of the report the insertion test runs for, strongest first
 
@@ -81,7 +83,7 @@ class ShortcutPane(TableDock):
         self.summary.setWordWrap(True)
         top.addWidget(self.summary, 1)
         layout.addLayout(top)
-        self.table = self.make_table(COLUMNS)
+        self.table = self.make_table((*COLUMNS, INSERTION_COLUMN))
         self.table.horizontalHeader().setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
         self.table.itemSelectionChanged.connect(self._word_chosen)
         layout.addWidget(self.table, 1)
@@ -96,7 +98,11 @@ class ShortcutPane(TableDock):
         has_phrases = report is not None and report.phrases.texts > 0
         self.view_box.setVisible(has_phrases)
         phrases = has_phrases and self.view_box.currentData() == "phrases"
-        self.table.setHorizontalHeaderItem(0, QTableWidgetItem("phrase" if phrases else "word"))
+        classes = list(report.words.labels) if report is not None else []
+        self.table.setColumnCount(len(COLUMNS) + len(classes) + 1)
+        self.table.setHorizontalHeaderLabels(
+            ["phrase" if phrases else "word", *COLUMNS[1:],
+             *(f"flips · {c}" for c in classes), INSERTION_COLUMN])
         self.table.blockSignals(True)
         self.table.setRowCount(0)
         self.words = []
@@ -122,13 +128,22 @@ class ShortcutPane(TableDock):
                 text = value if isinstance(value, str) else (
                     str(value) if isinstance(value, int) else f"{value:.3f}")
                 self.table.setItem(r, c, QTableWidgetItem(text))
+            for c, label in enumerate(classes, start=len(KEYS)):
+                part = row["by_class"][label]
+                cell = QTableWidgetItem(f"{part['flips']}/{part['count']}" if part["count"]
+                                        else "–")
+                if part["count"]:
+                    cell.setToolTip(f"of {part['count']} texts predicted {label} holding "
+                                    f"'{row['token']}', knocking it out flips {part['flips']} "
+                                    f"({part['flip_rate']:.0%})")
+                self.table.setItem(r, c, cell)
             result = insertions.get(row["token"])
             cell = QTableWidgetItem("")
             if result is not None:
                 text, tip = insertion_cell(result)
                 cell.setText(text)
                 cell.setToolTip(tip)
-            self.table.setItem(r, len(KEYS), cell)
+            self.table.setItem(r, len(KEYS) + len(classes), cell)
             self.words.append(row["token"])
         self.table.resizeColumnsToContents()
         self.table.horizontalHeader().setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
