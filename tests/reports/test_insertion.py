@@ -122,3 +122,29 @@ def test_surface_form_is_how_the_texts_write_it():
     assert surface_form(items, phrase_keys("via portal")) == "[via portal]"
     assert surface_form(items, phrase_keys("thanks")) == "thanks"
     assert surface_form(items, phrase_keys("zeppelin")) is None
+
+
+def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_path):
+    """card.json's insertion part is `headlight insert`'s JSON for the strongest candidate,
+    inserted as the texts write it (the footer "[via portal]"), and card.md says it in words
+    beside its figure."""
+    import json
+
+    from viewer.cli import main
+
+    texts = str(SAMPLES / "coop_messages.jsonl")
+    assert main(["card", str(MODEL_DIR), "--texts", texts, "--out", str(tmp_path / "card"),
+                 "--quiet", "--workers", "1"]) == 0
+    card = json.loads((tmp_path / "card" / "card.json").read_text(encoding="utf-8"))
+    assert main(["insert", str(MODEL_DIR), "--texts", texts, "--word", FOOTER, "--quiet",
+                 "--workers", "1", "--json", str(tmp_path / "insert.json")]) == 0
+    insert = json.loads((tmp_path / "insert.json").read_text(encoding="utf-8"))
+    insert.pop("model")
+    assert card["insertion"] == insert
+    end = next(r for r in insert["positions"] if r["position"] == "end")
+    md = (tmp_path / "card" / "card.md").read_text(encoding="utf-8")
+    assert (f"inserting “{FOOTER}” at the end of the {end['tried']} texts not predicted billing "
+            f"flips {end['flips']} to billing (95% Wilson low {end['flip_low']:.3f})") in md
+    assert "![Insertion test](figures/insertion.png)" in md
+    assert "![Fixation plot](figures/fixation.png)" in md
+    assert (tmp_path / "card" / "figures" / "insertion.svg").is_file()

@@ -3,8 +3,10 @@
 The section follows the model-card structure of Mitchell et al. 2019 and contributes to its
 *Metrics*, *Evaluation data*, *Quantitative analyses* and *Caveats and recommendations*.
 Every number in ``card.md`` comes from ``card.json``, whose parts are the very dictionaries
-the ``check``, ``heads``, ``links`` and ``shortcuts`` commands print, so the card agrees with
-the commands. Apart from its one ``date`` line, an export is reproducible byte for byte.
+the ``check``, ``heads``, ``links``, ``shortcuts`` and ``insert`` commands print, so the card
+agrees with the commands. The insertion test runs for the strongest shortcut candidate (the top
+word or the top two-word phrase, whichever has the higher Wilson lower bound, inserted as the
+texts most often write it). Apart from its one ``date`` line, an export is reproducible byte for byte.
 """
 
 from __future__ import annotations
@@ -24,7 +26,9 @@ from viewer.core.attention import DEFAULT_TOLERANCE
 from viewer.errors import HeadlightError
 from viewer.figures.evidence import evidence_into
 from viewer.figures.export import PRINT_SIZE, save_figure
+from viewer.figures.fixation import X_UNITS, fixation_into
 from viewer.figures.head_map import head_map_into
+from viewer.figures.insertion import POSITION_NAMES, insertion_into
 from viewer.figures.links import accuracy_into
 from viewer.files import StagedFolder, atomic_write_text, json_text
 from viewer.model.loader import LoadedModel
@@ -34,6 +38,7 @@ from viewer.reports.runfolder import input_digest
 from viewer.reports.runs import (
     check_data,
     heads_data,
+    insertion_data,
     links_data,
     predictions_data,
     shortcuts_data,
@@ -93,6 +98,31 @@ def _example_text(loaded: LoadedModel, items, shortcuts: dict | None,
     return items[having[0]].text if having else items[0].text
 
 
+def strongest_candidate(shortcuts: dict) -> dict | None:
+    """The top word or the top two-word phrase, whichever ranks higher (flip low, then mean
+    drop; the word on a tie); None when knocking out neither flips anything."""
+    candidates = [rows[0] for rows in (shortcuts["tokens"], shortcuts.get("phrases") or [])
+                  if rows and rows[0]["flip_rate"] > 0]
+    return max(candidates, key=lambda r: (r["flip_low"], r["mean_drop"]), default=None)
+
+
+def _insertion(loaded: LoadedModel, source: TextSource, items, shortcuts: dict, *,
+               batch_size: int, quiet: bool, run: RunOptions) -> dict | None:
+    """``headlight insert`` for the strongest candidate, or why it was not run."""
+    from viewer.reports.insertion import phrase_keys, surface_form
+
+    best = strongest_candidate(shortcuts)
+    if best is None:
+        return None
+    keys = phrase_keys(best["token"])
+    phrase = (surface_form(items, keys) or best["token"]) if len(keys) > 1 else best["token"]
+    try:
+        return insertion_data(loaded, source, phrase, batch_size=batch_size, quiet=quiet,
+                              run=run)
+    except HeadlightError as e:
+        return {"phrase": phrase, "not_run": str(e)}
+
+
 def collect(loaded: LoadedModel, texts: Path | TextSource, pairs_path: Path | None, *,
             batch_size: int = 16, quiet: bool = False, run: RunOptions = SERIAL) -> dict:
     """All numbers of a card, computed by the same runs as the commands."""
@@ -118,6 +148,10 @@ def collect(loaded: LoadedModel, texts: Path | TextSource, pairs_path: Path | No
                                            run=run)
         predicted = None
         if loaded.head_kind == "classifier":
+            insertion = _insertion(loaded, source, items, data["shortcuts"],
+                                   batch_size=batch_size, quiet=quiet, run=run)
+            if insertion is not None:
+                data["insertion"] = insertion
             scan = predictions_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run)
             predicted = [r.predicted for r in scan.rows]
             data["accuracy"] = accuracy_data(loaded, items, predicted)
@@ -125,7 +159,7 @@ def collect(loaded: LoadedModel, texts: Path | TextSource, pairs_path: Path | No
         if example is not None:
             ev = evidence_for(loaded, example)
             data["example"] = ev.to_dict()
-    for part in ("check", "heads", "links", "shortcuts"):
+    for part in ("check", "heads", "links", "shortcuts", "insertion"):
         if part in data:
             data[part].pop("model", None)  # the folder path is machine-specific; see "model"
     return data
@@ -161,6 +195,20 @@ def _figures(data: dict, out: Path) -> dict[str, str]:
         accuracy_into(fig, np.asarray(links["accuracy"], dtype=float),
                       nearest_baseline=links["nearest_baseline"], pairs=links["pairs"])
         save("link_accuracy", fig)
+    sc = data.get("shortcuts")
+    if sc and sc["tokens"]:
+        rows = sc["tokens"]
+        fig = _figure()
+        fixation_into(fig, [r["token"] for r in rows], [r["focus"] for r in rows],
+                      [r["mean_drop"] for r in rows], [r["count"] for r in rows],
+                      x_units=f"{X_UNITS}, head mean",
+                      title=f"{model} · fixation plot · {len(rows)} words, {sc['texts']} texts")
+        save("fixation", fig)
+    ins = data.get("insertion")
+    if ins and "not_run" not in ins and any(r["tried"] for r in ins["positions"]):
+        fig = Figure(figsize=(PRINT_SIZE[0], 2.6), dpi=100)
+        insertion_into(fig, ins)
+        save("insertion", fig)
     if "example" in data:
         ex = data["example"]
         values = np.array([[np.nan if v is None else v for v in ex["rows"][k]] for k in KINDS])
@@ -173,6 +221,25 @@ def _figures(data: dict, out: Path) -> dict[str, str]:
                       title=f"{model} · evidence strip · predicted {ex['target_label']}")
         save("evidence_example", fig)
     return made
+
+
+def _insertion_line(ins: dict) -> str:
+    """The Metrics line of the insertion test (the end position first, then the others)."""
+    if "not_run" in ins:
+        return f"- Insertion test of “{ins['phrase']}” not run: {ins['not_run']}"
+    rows = {r["position"]: r for r in ins["positions"]}
+    tried = ins["texts"] - ins["skipped"]
+    if not tried:
+        return (f"- Insertion test of “{ins['phrase']}”: every text is already predicted "
+                f"{ins['class']}, so there was nothing to flip.")
+    end = rows.get("end") or next(iter(rows.values()))
+    others = [f"{POSITION_NAMES.get(p, p)} {r['flips']} of {r['tried']} (95% low "
+              f"{_fmt(r['flip_low'])})" for p, r in rows.items() if r is not end and r["tried"]]
+    where = POSITION_NAMES.get(end["position"], end["position"])
+    line = (f"- Insertion test: inserting “{ins['phrase']}” {where} of the {end['tried']} "
+            f"texts not predicted {ins['class']} flips {end['flips']} to {ins['class']} "
+            f"(95% Wilson low {_fmt(end['flip_low'])})")
+    return line + (f"; {'; '.join(others)}." if others else ".")
 
 
 def _markdown(data: dict, figures: dict[str, str]) -> str:
@@ -214,6 +281,9 @@ def _markdown(data: dict, figures: dict[str, str]) -> str:
         lines.append(f"- Strongest shortcut candidate: “{t['token']}” — knocking it out flips "
                      f"the prediction in {_fmt(100 * t['flip_rate'], 0)}% of the {t['count']} "
                      f"texts containing it (95% Wilson lower bound {_fmt(t['flip_low'])}).")
+    ins = data.get("insertion")
+    if ins:
+        lines.append(_insertion_line(ins))
     lines += ["", "### Quantitative analyses", ""]
     lines += [f"![Head map of mean attention entropy]({figures['head_entropy']})", "",
               "Mean attention entropy per head, normalised by the log of the number of visible "
@@ -248,6 +318,16 @@ def _markdown(data: dict, figures: dict[str, str]) -> str:
                 lines.append(f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
                              f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} |")
         lines.append("")
+    if "fixation" in figures:
+        lines += [f"![Fixation plot]({figures['fixation']})", "",
+                  "Fixation plot: per word, the summary token's last-layer attention share "
+                  "(head mean) against the mean drop in the predicted class's probability when "
+                  "the word is knocked out. Upper left: ignored but decisive; lower right: "
+                  "attended but harmless.", ""]
+    if "insertion" in figures:
+        lines += [f"![Insertion test]({figures['insertion']})", "",
+                  f"Insertion test of “{ins['phrase']}”: flip-into rate per insertion point "
+                  "with its 95% Wilson interval.", ""]
     if "evidence_example" in figures:
         ex = data["example"]
         lines += [f"![Evidence strip for one text]({figures['evidence_example']})", "",
@@ -262,6 +342,12 @@ def _markdown(data: dict, figures: dict[str, str]) -> str:
         lines.append(f"- The predictions depend strongly on “{t['token']}”. Check whether this "
                      "word carries the meaning of the class or only correlates with it in the "
                      "training data, and test on texts where it appears with other classes.")
+    ins = data.get("insertion")
+    end = next((r for r in (ins or {}).get("positions", []) if r["position"] == "end"), None)
+    if end and end["tried"] and end["flip_low"] > 0.5:
+        lines.append(f"- “{ins['phrase']}” alone moves most texts of other classes into "
+                     f"{ins['class']}: the model treats it as sufficient for that class. Texts "
+                     "that carry it for another reason will be misclassified.")
     rep = data["reproducibility"]
     lines += ["", "### Reproducibility", "", "| item | value |", "|---|---|"]
     for name, digest in rep["sha256"].items():
