@@ -223,6 +223,14 @@ def _figures(data: dict, out: Path) -> dict[str, str]:
     return made
 
 
+def _by_class(row: dict) -> str:
+    """"billing 52/56, repair 0/2": flips of the texts holding the word, per originally
+    predicted class that has any."""
+    parts = [f"{label} {c['flips']}/{c['count']}"
+             for label, c in (row.get("by_class") or {}).items() if c["count"]]
+    return ", ".join(parts) or "–"
+
+
 def _insertion_line(ins: dict) -> str:
     """The Metrics line of the insertion test (the end position first, then the others)."""
     if "not_run" in ins:
@@ -277,10 +285,17 @@ def _markdown(data: dict, figures: dict[str, str]) -> str:
         lines.append("- Shortcut search: knocking out no single word seen in at least 3 texts "
                      "changed a prediction.")
     elif sc:
-        t = sc["tokens"][0]
-        lines.append(f"- Strongest shortcut candidate: “{t['token']}” — knocking it out flips "
-                     f"the prediction in {_fmt(100 * t['flip_rate'], 0)}% of the {t['count']} "
-                     f"texts containing it (95% Wilson lower bound {_fmt(t['flip_low'])}).")
+        t = strongest_candidate(sc) or sc["tokens"][0]
+        what = "the two-word phrase " if t is not sc["tokens"][0] else ""
+        line = (f"- Strongest shortcut candidate: {what}“{t['token']}” — knocking it out flips "
+                f"the prediction in {_fmt(100 * t['flip_rate'], 0)}% of the {t['count']} "
+                f"texts containing it (95% Wilson lower bound {_fmt(t['flip_low'])}).")
+        if what:
+            w = sc["tokens"][0]
+            line += (f" The strongest single word is “{w['token']}” "
+                     f"({_fmt(100 * w['flip_rate'], 0)}% of {w['count']}, lower bound "
+                     f"{_fmt(w['flip_low'])}).")
+        lines.append(line)
     ins = data.get("insertion")
     if ins:
         lines.append(_insertion_line(ins))
@@ -306,11 +321,13 @@ def _markdown(data: dict, figures: dict[str, str]) -> str:
         lines += [f"Shortcut search by word knockout over {sc['texts']} texts (words seen in at "
                   "least 3 texts, ranked by the lower end of the 95% Wilson interval of the flip "
                   "rate):", "",
-                  "| word | texts | flip rate | flip rate, 95% low | mean drop | focus |",
-                  "|---|---:|---:|---:|---:|---:|"]
+                  "| word | texts | flip rate | flip rate, 95% low | mean drop | focus | "
+                  "flips / texts by predicted class |",
+                  "|---|---:|---:|---:|---:|---:|---|"]
         for r in sc["tokens"][:10]:
             lines.append(f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
-                         f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} | {_fmt(r['focus'])} |")
+                         f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} | {_fmt(r['focus'])} | "
+                         f"{_by_class(r)} |")
         if sc["phrases"]:
             lines += ["", "| two-word phrase | texts | flip rate | 95% low | mean drop |",
                       "|---|---:|---:|---:|---:|"]
