@@ -113,7 +113,7 @@ def test_tie_is_wrong_for_a_head():
 
 
 def test_word_matching_rules():
-    # DESIGN.md: first whole-word, case-insensitive occurrence
+    # docs/definitions.md ("Link pairs"): first whole-word, case-insensitive occurrence
     text = "Shelly said She fixed it; she did."
     assert find_word(text, "she") == (12, 15)  # not inside "Shelly"; first whole word, any case
     assert find_word("the co-op's bikes", "co-op") == (4, 9)

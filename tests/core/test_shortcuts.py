@@ -17,7 +17,7 @@ from viewer.core.summary import summary_share
 
 
 def test_word_key_follows_design():
-    # DESIGN.md "Word knockout": whitespace word, lower-cased, end punctuation stripped
+    # docs/definitions.md, "Word knockout": whitespace word, lower-cased, end punctuation stripped
     assert word_key("Portal]") == "portal"
     assert word_key("[via") == "via"
     assert word_key("co-op's,") == "co-op's"
@@ -45,7 +45,8 @@ def _add(tally, word, flips, count, drop=0.1, focus=0.0):
 
 
 def test_rare_word_does_not_outrank_frequent_one():
-    # DESIGN.md: 2 flips in 3 texts (rate 0.67) must not outrank 40 in 90 (rate 0.44); Wilson
+    # docs/definitions.md, "Word knockout": 2 flips in 3 texts (rate 0.67) must not outrank
+    # 40 in 90 (rate 0.44); Wilson
     # lower ends 0.208 vs 0.346 (outside reference: scipy binomtest(...).proportion_ci)
     tally = KnockoutTally()
     _add(tally, "rare", 2, 3)

@@ -42,7 +42,8 @@ def write_jsonl(path, rows):
 
 
 def test_links_against_a_brute_force_computation(bert, tmp_path):
-    """Reference: DESIGN.md's definition computed here from recordings, token by token."""
+    """Reference: the link-score definition of docs/definitions.md ("Link pairs"), computed
+    here from recordings, token by token."""
     pairs_file = write_jsonl(tmp_path / "pairs.jsonl", PAIRS)
     acc = link_report(bert, read_link_pairs(pairs_file), batch_size=2)
     correct = np.zeros((bert.n_layers, bert.n_heads))

@@ -280,7 +280,7 @@ def link_scores(probs: np.ndarray, tokens: PairTokens) -> np.ndarray:
     """Link score of every candidate in every head: probs (L, H, T, T) -> (K, L, H) float64.
 
     score[k, l, h] = sum_{j in candidate k} probs[l, h, s, j], s = the source's first sub-token
-    (DESIGN.md, "Link pairs"). K = 1 + number of distractors, target first.
+    (docs/definitions.md, "Link pairs"). K = 1 + number of distractors, target first.
     """
     p = np.asarray(probs)
     s = int(tokens.source[0])
