@@ -110,6 +110,22 @@ def test_retokened_pair_grid_draws_the_same_pixels_as_a_fresh_one(causal):
     assert cell_at(artists, 22.0, 22.0) == (22, 22) and cell_at(artists, 23.0, 0) is None
 
 
+def test_updated_pair_grid_draws_the_same_pixels_as_a_fresh_one():
+    """Reference: a fresh ``pair_grid_into`` of the new values. The colour bar follows the new
+    range by moving its limits only (``style.rescale_by_ticks``), so its colours, ticks and
+    labels must still be those a new bar would get, also for a range far from the first."""
+    tokens = [f"t{i}" for i in range(30)]
+    first = random_attention(30, causal=False, seed=7)
+    second = random_attention(30, causal=False, seed=8) ** 3
+    reused, fresh = Figure(figsize=(6, 5), dpi=80), Figure(figsize=(6, 5), dpi=80)
+    artists = pair_grid_into(reused, first, tokens, title="a")
+    FigureCanvasAgg(reused).draw()
+    update_pair_grid(artists, second, title="b")
+    pair_grid_into(fresh, second, tokens, title="b")
+    assert artists.colorbar.ax.get_ylim() == (0.0, pytest.approx(second.max()))
+    np.testing.assert_array_equal(pixels(reused), pixels(fresh))
+
+
 @pytest.mark.parametrize("diverging", [False, True])
 def test_updated_head_map_draws_the_same_pixels_as_a_fresh_one(diverging):
     # reference: a fresh ``head_map_into`` of the new values on its own figure

@@ -82,6 +82,12 @@ def _token_grid(probs, visible, query_tokens, key_tokens):
     return grid, key_tokens
 
 
+def _set_scale(artists: PairGridArtists, norm) -> None:
+    artists.image.set_clim(norm.vmin, norm.vmax)
+    if artists.colorbar is not None:
+        style.set_colorbar_range(artists.colorbar, norm.vmin, norm.vmax)
+
+
 def _hatch_if_masked(background: Rectangle, grid: np.ma.MaskedArray) -> None:
     # the opaque image hides the hatching except under masked cells; with none, skipping it
     # saves Agg a hatch fill of the whole grid on every draw
@@ -135,6 +141,7 @@ def draw_pair_grid(
     if cax is not None:
         colorbar = ax.figure.colorbar(image, cax=cax)
         style.style_colorbar(colorbar, units)
+        style.rescale_by_ticks(colorbar)
     return PairGridArtists(ax, image, colorbar, background, marker, n_rows, n_cols)
 
 
@@ -152,8 +159,7 @@ def update_pair_grid(
             f"grid {grid.shape} does not fit the drawn {artists.n_rows}×{artists.n_cols}")
     artists.image.set_data(grid)
     _hatch_if_masked(artists.background, grid)
-    norm = _norm(grid)
-    artists.image.set_clim(norm.vmin, norm.vmax)
+    _set_scale(artists, _norm(grid))
     if title is not None:
         _set_title(artists.ax, title)
 
@@ -177,8 +183,7 @@ def retoken_pair_grid(
     _hatch_if_masked(artists.background, grid)
     artists.image.set_data(grid)
     artists.image.set_extent(extent)
-    norm = _norm(grid)
-    artists.image.set_clim(norm.vmin, norm.vmax)
+    _set_scale(artists, _norm(grid))
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
     style.set_token_axis(ax, "x", key_tokens, rotate=True, restyle=False)

@@ -27,7 +27,7 @@ from matplotlib.axes import Axes
 from matplotlib.colors import Colormap, Normalize, TwoSlopeNorm
 from matplotlib.patches import Rectangle
 from matplotlib.ticker import FuncFormatter, Locator, MaxNLocator
-from matplotlib.transforms import offset_copy
+from matplotlib.transforms import Affine2D, offset_copy
 
 SEQUENTIAL = "cividis"
 DIVERGING = "RdBu_r"
@@ -252,6 +252,33 @@ def style_colorbar(cbar, label: str) -> None:
     cbar.units = cbar.ax.text(1.0, 0.5, label, transform=place, rotation=90, ha="center",
                               va="top", fontsize=LABEL_SIZE, rotation_mode="anchor",
                               multialignment="center")
+
+
+def rescale_by_ticks(cbar) -> None:
+    """Make a vertical colour bar of a linear 0-based scale follow its image's ``set_clim`` by
+    moving its axis limits alone (``set_colorbar_range``).
+
+    A linear scale's colour bar looks the same in axes coordinates whatever its range; only the
+    ticks move. matplotlib rebuilds the whole bar on every change of the image's limits (the
+    colour mesh, the outline, the locators: 7 ms for the pair grid, measured in a 128-token run),
+    so the bar is cut from the image's updates and its colour mesh is pinned to the axes box.
+    """
+    mappable = cbar.mappable
+    if getattr(mappable, "colorbar_cid", None) is not None:
+        mappable.callbacks.disconnect(mappable.colorbar_cid)
+        mappable.colorbar_cid = None
+    lo, hi = float(cbar.vmin), float(cbar.vmax)
+    if cbar.solids is not None:
+        # the mesh keeps the colours and places of the range it was built for
+        cbar.solids.set_norm(Normalize(vmin=lo, vmax=hi))
+        cbar.solids.set_transform(Affine2D().translate(0.0, -lo).scale(1.0, 1.0 / (hi - lo))
+                                  + cbar.ax.transAxes)
+
+
+def set_colorbar_range(cbar, vmin: float, vmax: float) -> None:
+    """The range of a colour bar prepared by ``rescale_by_ticks``."""
+    cbar.vmin, cbar.vmax = vmin, vmax
+    cbar.ax.set_ylim(vmin, vmax)
 
 
 def pin_empty_axis_labels(ax: Axes) -> None:

@@ -72,14 +72,32 @@ class TextAnalysis:
     """One recorded text with everything the panes draw from it."""
 
     recording: Recording
-    head_means: np.ndarray  # (L, T, T) float32 head-mean attention per layer
-    units: WordUnits
     label: str | None = None  # the gold label when the text came from a labelled set
     seconds: float = 0.0  # time spent recording (model forward)
     origin: str = ""  # "text" or the checkpoint's name, for compare titles
     notes: tuple[str, ...] = field(default_factory=tuple)
     check: CheckResult | None = None  # filled in by ``summarise``
     heads: HeadSummary | None = None  # per-head metrics of this one text, by ``summarise``
+    # head means and word units, computed when first asked for (not on the way from the model
+    # to the first painted grid); shared by the copies ``summarise`` makes
+    _cache: dict = field(default_factory=dict, repr=False, compare=False)
+
+    @property
+    def units(self) -> WordUnits:
+        """The text's words and the tokens of each (``word_units``)."""
+        units = self._cache.get("units")
+        if units is None:
+            units = self._cache["units"] = word_units(self.recording)
+        return units
+
+    def head_mean(self, layer: int) -> np.ndarray:
+        """(T, T) float32 head-mean attention of one layer (accumulated in float64)."""
+        key = ("mean", layer)
+        mean = self._cache.get(key)
+        if mean is None:
+            probs = self.recording.probs[layer]
+            mean = self._cache[key] = probs.mean(axis=0, dtype=np.float64).astype(np.float32)
+        return mean
 
     @property
     def summarised(self) -> bool:
@@ -95,16 +113,15 @@ class TextAnalysis:
     def grid(self, layer: int, head: int | None) -> np.ndarray:
         """(T, T) attention of one head, or the layer's head mean when ``head`` is None."""
         if head is None:
-            return self.head_means[layer]
+            return self.head_mean(layer)
         return self.recording.probs[layer, head]
 
 
 def analyse(rec: Recording, *, label: str | None = None, seconds: float = 0.0,
             origin: str = "", summarised: bool = False) -> TextAnalysis:
-    """Head means and word units of a recording (and with ``summarised`` the check too)."""
-    means = rec.probs.mean(axis=1, dtype=np.float64).astype(np.float32)  # (L, T, T)
-    analysis = TextAnalysis(rec, means, word_units(rec), label, seconds, origin,
-                            tuple(rec.notes))
+    """A recording as the panes' analysis; head means and word units follow when first asked
+    for (with ``summarised`` the check and head metrics are added now)."""
+    analysis = TextAnalysis(rec, label, seconds, origin, tuple(rec.notes))
     return summarise(analysis) if summarised else analysis
 
 

@@ -125,8 +125,8 @@ def open_model(ctx: JobContext, slot: str, folder: str,
 
 def run_text(ctx: JobContext, slot: str, text: str, label: str | None = None,
              origin: str = "", summarised: bool = False) -> TextAnalysis:
-    """Record one text: head means and word units (with ``summarised`` also the check and
-    head metrics; otherwise ``summarise_run`` adds them in a second job)."""
+    """Record one text (with ``summarised`` also the check and head metrics; otherwise
+    ``summarise_run`` adds them in a second job)."""
     if not text.strip():
         raise HeadlightError("the text is empty; type or paste a text first")
     loaded = ctx.model(slot)
