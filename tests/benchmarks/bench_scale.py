@@ -35,7 +35,7 @@ from viewer.core.shortcuts import phrase_spans, word_spans  # noqa: E402
 from viewer.model.loader import open_model  # noqa: E402
 from viewer.reports import workers  # noqa: E402
 from viewer.reports.shards import RunOptions  # noqa: E402
-from viewer.reports.shortcuts import _token_sets, shortcut_search  # noqa: E402
+from viewer.reports.shortcuts import knockout_tokens, shortcut_search  # noqa: E402
 from viewer.reports.textsets import TextItem  # noqa: E402
 
 WORDS = ("member mechanic wheel chain invoice brake cable tandem renewal workshop portal "
@@ -68,9 +68,9 @@ def knocked_out_inputs(loaded, items, phrases: bool) -> list[list[int]]:
     """The id lists the search runs, in its order (per group of 16 texts)."""
     out = []
     for att in loaded.attentions([i.text for i in items], batch_size=BATCH):
-        plans = list(_token_sets(att, word_spans(att.text)).values())
+        plans = list(knockout_tokens(att, word_spans(att.text)).values())
         if phrases:
-            plans += list(_token_sets(att, phrase_spans(att.text)).values())
+            plans += list(knockout_tokens(att, phrase_spans(att.text)).values())
         out += [np.delete(att.token_ids, idx).tolist() for idx in plans]
     return out
 

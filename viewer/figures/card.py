@@ -109,13 +109,12 @@ def strongest_candidate(shortcuts: dict) -> dict | None:
 def _insertion(loaded: LoadedModel, source: TextSource, items, shortcuts: dict, *,
                batch_size: int, quiet: bool, run: RunOptions) -> dict | None:
     """``headlight insert`` for the strongest candidate, or why it was not run."""
-    from viewer.reports.insertion import phrase_keys, surface_form
+    from viewer.reports.insertion import insertion_phrase
 
     best = strongest_candidate(shortcuts)
     if best is None:
         return None
-    keys = phrase_keys(best["token"])
-    phrase = (surface_form(items, keys) or best["token"]) if len(keys) > 1 else best["token"]
+    phrase = insertion_phrase(items, best["token"])
     try:
         return insertion_data(loaded, source, phrase, batch_size=batch_size, quiet=quiet,
                               run=run)

@@ -24,12 +24,12 @@ from typing import Any, ClassVar
 import numpy as np
 
 from viewer.core.insertion import POSITIONS, InsertionTally, insert_at
-from viewer.core.links import word_token_indices
 from viewer.core.shortcuts import word_key
 from viewer.errors import HeadlightError
 from viewer.model.attribution import predict_without
 from viewer.model.loader import LoadedModel
 from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
+from viewer.reports.shortcuts import knockout_tokens
 from viewer.reports.textsets import TextItem, TextSource, chunks
 
 
@@ -84,6 +84,13 @@ def surface_form(items: Iterable[TextItem], keys: Sequence[str]) -> str | None:
         for k in range(0, len(spans), n):
             forms[" ".join(item.text[a:b] for a, b in spans[k:k + n])] += 1
     return forms.most_common(1)[0][0] if forms else None
+
+
+def insertion_phrase(items: Iterable[TextItem], word: str) -> str:
+    """What to insert for a word or phrase of the shortcut report: a word as it is, a phrase as
+    the texts most often write it (``surface_form``), or as given when no text holds it."""
+    keys = phrase_keys(word)
+    return (surface_form(items, keys) or word) if len(keys) > 1 else word
 
 
 def resolve_class(loaded: LoadedModel, name: str) -> int:
@@ -151,10 +158,8 @@ class PointedKind:
             atts = list(loaded.attentions([i.text for i in chunk], batch_size=self.batch_size))
             cases, preds = [], []
             for att in atts:
-                idx = np.unique(np.concatenate([word_token_indices(s, att.offsets)
-                                                for s in phrase_occurrences(att.text, keys)]))
-                idx = idx[~att.special[idx]]
-                if idx.size == 0 or idx.size >= len(att.token_ids):
+                idx = knockout_tokens(att, {"": phrase_occurrences(att.text, keys)}).get("")
+                if idx is None:
                     continue
                 cases.append((att.token_ids, idx))
                 preds.append(int(np.argmax(att.target)))

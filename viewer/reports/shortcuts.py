@@ -67,8 +67,10 @@ class ShortcutReport:
         }
 
 
-def _token_sets(att: Attention, spans: dict[str, list[tuple[int, int]]]) -> dict[str, np.ndarray]:
-    """Word key -> sorted sub-token indices of all its occurrences (empty keys dropped)."""
+def knockout_tokens(att: Attention, spans: dict[str, list[tuple[int, int]]]
+                    ) -> dict[str, np.ndarray]:
+    """Key -> sorted sub-token indices of all its occurrences' spans, special tokens left out:
+    what knocking it out deletes. Keys with nothing to delete, or with every token, are dropped."""
     out = {}
     for key, key_spans in spans.items():
         idx = np.unique(np.concatenate(
@@ -101,10 +103,10 @@ class ShortcutKind:
             cases = []  # (token ids, sub-tokens to delete), one per knockout
             for att in atts:
                 plan = [("w", key, idx)
-                        for key, idx in _token_sets(att, word_spans(att.text)).items()]
+                        for key, idx in knockout_tokens(att, word_spans(att.text)).items()]
                 if self.phrases:
                     plan += [("p", key, idx)
-                             for key, idx in _token_sets(att, phrase_spans(att.text)).items()]
+                             for key, idx in knockout_tokens(att, phrase_spans(att.text)).items()]
                 cases.extend((att.token_ids, idx) for _, _, idx in plan)
                 plans.append(plan)
             after = predict_without(loaded, cases, self.batch_size) if cases else None

@@ -181,6 +181,12 @@ class TextSetResult:
     def mistakes(self) -> tuple[TextSetRow, ...]:
         return tuple(r for r in self.rows if r.correct is False)
 
+    def items(self) -> list[Any]:
+        """The set's texts as the reports read them (``TextItem``, numbered from 1)."""
+        from viewer.reports.textsets import TextItem
+
+        return [TextItem(r.text, r.label, r.index + 1) for r in self.rows]
+
     @property
     def accuracy(self) -> float | None:
         known = [r.correct for r in self.rows if r.correct is not None]
@@ -269,10 +275,9 @@ def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult,
     """Word knockout (with ``phrases`` also two-word phrases) over the open text set, by the
     reports' own search (``viewer.reports.shortcuts.ShortcutReport``)."""
     from viewer.reports.shortcuts import shortcut_search
-    from viewer.reports.textsets import TextItem
 
     loaded = ctx.model(slot)
-    items = [TextItem(r.text, r.label, r.index + 1) for r in textset.rows]
+    items = textset.items()
     what = "word and two-word phrase" if phrases else "word"
     ctx.progress(0, len(items), f"shortcut search: knocking out every {what}…")
     return shortcut_search(loaded, items, progress=ctx.counter("shortcut search, texts"),
@@ -283,24 +288,22 @@ def run_insertions(ctx: JobContext, slot: str, textset: TextSetResult, report: A
                    words: tuple[str, ...]) -> tuple[Any, dict[str, Any]]:
     """The insertion test (``viewer.reports.insertion``) for each of ``words`` over the open
     text set, into the class knocking it out flips texts away from; a phrase is inserted as
-    the texts most often write it (``surface_form``: "via portal" as "[via portal]"). A word
+    the texts most often write it (``insertion_phrase``: "via portal" as "[via portal]"). A word
     that points to no class is left out. Returns (``report``, {word: InsertionReport}): the
     shortcut report the words came from, so that results of an older search are not shown
     beside a newer one."""
     from viewer.errors import HeadlightError
-    from viewer.reports.insertion import insertion_test, phrase_keys, surface_form
-    from viewer.reports.textsets import TextItem
+    from viewer.reports.insertion import insertion_phrase, insertion_test
 
     loaded = ctx.model(slot)
-    items = [TextItem(r.text, r.label, r.index + 1) for r in textset.rows]
+    items = textset.items()
     results: dict[str, Any] = {}
     for k, word in enumerate(words):
         ctx.check()
         ctx.progress(k, len(words), f"insertion test: '{word}' ({k + 1} of {len(words)})")
-        keys = phrase_keys(word)
-        phrase = (surface_form(items, keys) or word) if len(keys) > 1 else word
         try:
-            results[word] = insertion_test(loaded, items, phrase, cancelled=ctx.cancelled)
+            results[word] = insertion_test(loaded, items, insertion_phrase(items, word),
+                                           cancelled=ctx.cancelled)
         except HeadlightError:
             continue  # e.g. knocking it out flips nothing: it points to no class
     ctx.progress(len(words), len(words), "insertion tests done")
