@@ -1,10 +1,11 @@
 """Smoke tests of the demo build pipeline on a tiny configuration, so the build cannot rot.
 
 The full build (``python -m scripts.demo.build``) takes about a minute and is not run here.
-References: huggingface/tokenizers issue 1794 (WordPiece training not deterministic; the
-tokenizer module works around it); the transformers ``save_pretrained``/``from_pretrained``
-round trip and fast-tokenizer offsets are the library's documented behaviour; a training loss
-that falls over the first steps on learnable data is common practice as a smoke signal.
+References: docs/definitions.md, "Demo scenario" (why the demo's WordPiece training must be
+made deterministic, and how the tokenizer module does it); the transformers
+``save_pretrained``/``from_pretrained`` round trip and fast-tokenizer offsets are the library's
+documented behaviour; a training loss that falls over the first steps on learnable data is
+common practice as a smoke signal.
 """
 
 from __future__ import annotations
