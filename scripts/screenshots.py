@@ -64,8 +64,7 @@ def run(window: MainWindow, text: str, what: str) -> None:
     """Run ``text`` and wait for its analysis and evidence (a new run, not the last one)."""
     old = window.state.analysis
     window.run_text(text)
-    wait(lambda: window.state.analysis is not old and window.state.evidence is not None,
-         what=what)
+    wait(lambda: window.state.analysis is not old and window.state.evidence is not None, what=what)
 
 
 def sample_set(tmp: Path) -> Path:

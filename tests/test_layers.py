@@ -16,8 +16,10 @@ def test_import_contracts_hold():
 
 def test_cli_imports_qt_only_lazily():
     """`headlight --help` must not import Qt, torch or transformers (fast start, headless use)."""
-    code = ("import sys, viewer.cli; viewer.cli.build_parser(); "
-            "print(sorted(m for m in ('PySide6','torch','transformers') if m in sys.modules))")
+    code = (
+        "import sys, viewer.cli; viewer.cli.build_parser(); "
+        "print(sorted(m for m in ('PySide6','torch','transformers') if m in sys.modules))"
+    )
     run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT)
     assert run.stdout.strip() == "[]", run.stdout + run.stderr
 

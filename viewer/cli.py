@@ -33,8 +33,9 @@ def _source(args: argparse.Namespace):
     """The text set of ``--texts`` with its read options (split, columns)."""
     from viewer.reports.textsets import TextSource
 
-    return TextSource(Path(args.texts), split=args.split, text_column=args.text_column,
-                      label_column=args.label_column)
+    return TextSource(
+        Path(args.texts), split=args.split, text_column=args.text_column, label_column=args.label_column
+    )
 
 
 def cores() -> int:
@@ -51,23 +52,26 @@ def _run_options(args: argparse.Namespace):
     from viewer.reports.shards import RunOptions
 
     if args.cluster and args.workers is not None:
-        raise HeadlightError("give either --workers or --cluster, not both (a cluster's size is "
-                             "its workers')")
+        raise HeadlightError(
+            "give either --workers or --cluster, not both (a cluster's size is its workers')"
+        )
     workers = cores() if args.workers is None else args.workers
     if workers < 1:
         raise HeadlightError(f"--workers must be at least 1, got {workers}")
     if args.shard_size < 1:
         raise HeadlightError(f"--shard-size must be at least 1, got {args.shard_size}")
     work = Path(args.work).expanduser() if args.work else default_work_dir()
-    return RunOptions(workers=workers, cluster=args.cluster, work=work, fresh=args.fresh,
-                      shard_size=args.shard_size)
+    return RunOptions(
+        workers=workers, cluster=args.cluster, work=work, fresh=args.fresh, shard_size=args.shard_size
+    )
 
 
 def _open(args: argparse.Namespace):
     from viewer.model.loader import open_model
 
-    return open_model(args.model, base=getattr(args, "base", None),
-                      allow_pickle=getattr(args, "allow_pickle", False))
+    return open_model(
+        args.model, base=getattr(args, "base", None), allow_pickle=getattr(args, "allow_pickle", False)
+    )
 
 
 # -- commands --------------------------------------------------------------------------------
@@ -85,8 +89,10 @@ def cmd_check(args: argparse.Namespace) -> int:
         survey(texts)  # bad input is reported before the model is opened
     loaded = _open(args)
     data = check_data(loaded, texts, args.tolerance, run=_run_options(args))
-    print(f"re-derivation check: {data['family']} · {loaded.n_layers} layers × "
-          f"{loaded.n_heads} heads · {data['texts']} text(s)")
+    print(
+        f"re-derivation check: {data['family']} · {loaded.n_layers} layers × "
+        f"{loaded.n_heads} heads · {data['texts']} text(s)"
+    )
     print(f"{'layer':>5}  {'max abs error':>13}")
     for row in data["layers"]:
         print(f"{row['layer']:>5}  {row['max_abs_error']:>13.3e}")
@@ -103,8 +109,10 @@ def _grid(title: str, grid, fmt: str = "{:6.3f}") -> str:
 
     a = np.asarray(grid, dtype=float)
     head = "layer " + " ".join(f"{'h' + str(h):>6}" for h in range(a.shape[1]))
-    rows = [f"{layer:>5} " + " ".join(fmt.format(v) if np.isfinite(v) else f"{'-':>6}"
-                                      for v in a[layer]) for layer in range(a.shape[0])]
+    rows = [
+        f"{layer:>5} " + " ".join(fmt.format(v) if np.isfinite(v) else f"{'-':>6}" for v in a[layer])
+        for layer in range(a.shape[0])
+    ]
     return "\n".join([title, head, *rows])
 
 
@@ -113,16 +121,25 @@ def cmd_heads(args: argparse.Namespace) -> int:
 
     run = _run_options(args)
     loaded = _open(args)
-    data = heads_data(loaded, _source(args), batch_size=args.batch_size,
-                      importance=not args.skip_importance, knockout=args.knockout_heads,
-                      quiet=args.quiet, run=run)
+    data = heads_data(
+        loaded,
+        _source(args),
+        batch_size=args.batch_size,
+        importance=not args.skip_importance,
+        knockout=args.knockout_heads,
+        quiet=args.quiet,
+        run=run,
+    )
     print(_grid("mean entropy (0 = one key, 1 = uniform over the visible keys)", data["entropy"]))
     if "importance" in data:
-        print(_grid("head importance (Michel et al. 2019), unit norm per layer",
-                    data["importance"]))
+        print(_grid("head importance (Michel et al. 2019), unit norm per layer", data["importance"]))
     if "knockout_prob_drop" in data:
-        print(_grid("predicted-class probability drop when the head alone is knocked out",
-                    data["knockout_prob_drop"]))
+        print(
+            _grid(
+                "predicted-class probability drop when the head alone is knocked out",
+                data["knockout_prob_drop"],
+            )
+        )
     if args.json:
         write_json(args.json, data)
     return 0
@@ -136,11 +153,17 @@ def cmd_links(args: argparse.Namespace) -> int:
     run = _run_options(args)
     loaded = _open(args)
     data = links_data(loaded, args.pairs, batch_size=args.batch_size, quiet=args.quiet, run=run)
-    print(_grid(f"link accuracy over {data['pairs']} pairs (target strictly above every "
-                "distractor)", data["accuracy"]))
+    print(
+        _grid(
+            f"link accuracy over {data['pairs']} pairs (target strictly above every distractor)",
+            data["accuracy"],
+        )
+    )
     best = data["best"]
-    print(f"best head: layer {best['layer']} · head {best['head']} accuracy {best['accuracy']:.3f}"
-          f"; nearest-candidate baseline {data['nearest_baseline']:.3f}")
+    print(
+        f"best head: layer {best['layer']} · head {best['head']} accuracy {best['accuracy']:.3f}"
+        f"; nearest-candidate baseline {data['nearest_baseline']:.3f}"
+    )
     if args.json:
         write_json(args.json, data)
     return 0
@@ -151,17 +174,24 @@ def cmd_shortcuts(args: argparse.Namespace) -> int:
 
     run = _run_options(args)
     loaded = _open(args)
-    data = shortcuts_data(loaded, _source(args), batch_size=args.batch_size,
-                          phrases=not args.no_phrases, quiet=args.quiet, run=run)
+    data = shortcuts_data(
+        loaded,
+        _source(args),
+        batch_size=args.batch_size,
+        phrases=not args.no_phrases,
+        quiet=args.quiet,
+        run=run,
+    )
     for title, rows in (("words", data["tokens"]), ("two-word phrases", data["phrases"])):
         if title != "words" and args.no_phrases:
             continue
         print(f"shortcut search, {title} (seen in >= 3 of {data['texts']} texts), strongest first")
-        print(f"{'word':<24} {'count':>6} {'flip rate':>9} {'flip low':>8} {'mean drop':>9} "
-              f"{'focus':>6}")
+        print(f"{'word':<24} {'count':>6} {'flip rate':>9} {'flip low':>8} {'mean drop':>9} {'focus':>6}")
         for r in rows[: args.top]:
-            print(f"{r['token'][:24]:<24} {r['count']:>6} {r['flip_rate']:>9.3f} "
-                  f"{r['flip_low']:>8.3f} {r['mean_drop']:>9.3f} {r['focus']:>6.3f}")
+            print(
+                f"{r['token'][:24]:<24} {r['count']:>6} {r['flip_rate']:>9.3f} "
+                f"{r['flip_low']:>8.3f} {r['mean_drop']:>9.3f} {r['focus']:>6.3f}"
+            )
     if args.json:
         write_json(args.json, data)
     return 0
@@ -172,19 +202,33 @@ def cmd_insert(args: argparse.Namespace) -> int:
 
     loaded = _open(args)
     run = _run_options(args)
-    data = insertion_data(loaded, _source(args), args.word, target=args.target,
-                          seed=args.seed, batch_size=args.batch_size, quiet=args.quiet, run=run)
+    data = insertion_data(
+        loaded,
+        _source(args),
+        args.word,
+        target=args.target,
+        seed=args.seed,
+        batch_size=args.batch_size,
+        quiet=args.quiet,
+        run=run,
+    )
     how = "given" if data["class_chosen_by"] == "given" else "by knockout"
-    print(f"insertion test: '{data['phrase']}' into texts not predicted {data['class']} "
-          f"(class {how}); {data['skipped']} of {data['texts']} texts already are")
-    print(f"{'position':<9} {'tried':>6} {'flips':>6} {'flip rate':>9} {'95% low':>8} "
-          f"{'95% high':>8} {'mean gain':>9}")
+    print(
+        f"insertion test: '{data['phrase']}' into texts not predicted {data['class']} "
+        f"(class {how}); {data['skipped']} of {data['texts']} texts already are"
+    )
+    print(
+        f"{'position':<9} {'tried':>6} {'flips':>6} {'flip rate':>9} {'95% low':>8} "
+        f"{'95% high':>8} {'mean gain':>9}"
+    )
     for row in data["positions"]:
         if not row["tried"]:
             print(f"{row['position']:<9} {0:>6}")
             continue
-        print(f"{row['position']:<9} {row['tried']:>6} {row['flips']:>6} {row['flip_rate']:>9.3f} "
-              f"{row['flip_low']:>8.3f} {row['flip_high']:>8.3f} {row['mean_gain']:>+9.3f}")
+        print(
+            f"{row['position']:<9} {row['tried']:>6} {row['flips']:>6} {row['flip_rate']:>9.3f} "
+            f"{row['flip_low']:>8.3f} {row['flip_high']:>8.3f} {row['mean_gain']:>+9.3f}"
+        )
     if args.json:
         write_json(args.json, data)
     return 0
@@ -199,8 +243,12 @@ def cmd_evidence(args: argparse.Namespace) -> int:
     if ev.target_label is not None:
         print(f"prediction: {ev.target_label}")
     if ev.probabilities.size:
-        print("  " + "  ".join(f"{lab} {p:.3f}" for lab, p in zip(ev.recording.labels,
-                                                                ev.probabilities, strict=True)))
+        print(
+            "  "
+            + "  ".join(
+                f"{lab} {p:.3f}" for lab, p in zip(ev.recording.labels, ev.probabilities, strict=True)
+            )
+        )
     width = max(len(t) for t in ev.recording.tokens)
     print(f"{'token':<{width}} " + " ".join(f"{k[:10]:>10}" for k in KINDS))
     for i, tok in enumerate(ev.recording.tokens):
@@ -232,8 +280,17 @@ def cmd_card(args: argparse.Namespace) -> int:
     run = _run_options(args)
     loaded = _open(args)
     command = ["headlight", *(args.argv or [])]
-    export_card(loaded, source, out, pairs_path=args.pairs, force=args.force,
-                command=command, batch_size=args.batch_size, quiet=args.quiet, run=run)
+    export_card(
+        loaded,
+        source,
+        out,
+        pairs_path=args.pairs,
+        force=args.force,
+        command=command,
+        batch_size=args.batch_size,
+        quiet=args.quiet,
+        run=run,
+    )
     print(f"card written to {out}/ (card.md, card.json, figures/)")
     return 0
 
@@ -258,44 +315,79 @@ def build_parser() -> argparse.ArgumentParser:
     def model_command(name: str, help_text: str) -> argparse.ArgumentParser:
         p = sub.add_parser(name, help=help_text, description=help_text)
         p.add_argument("model", metavar="DIR", help="local model folder")
-        p.add_argument("--allow-pickle", action="store_true",
-                       help="accept pickle weights (loaded with weights_only=True)")
-        p.add_argument("--base", metavar="DIR",
-                       help="base model folder of an adapter folder (when its own is not local)")
+        p.add_argument(
+            "--allow-pickle",
+            action="store_true",
+            help="accept pickle weights (loaded with weights_only=True)",
+        )
+        p.add_argument(
+            "--base", metavar="DIR", help="base model folder of an adapter folder (when its own is not local)"
+        )
         p.add_argument("--json", metavar="FILE", help="also write the result as JSON")
         return p
 
     def run_options(p: argparse.ArgumentParser) -> None:
-        g = p.add_argument_group("large sets (README, \"Large evaluation sets\")")
-        g.add_argument("--workers", type=int, metavar="N",
-                       help="worker processes on this machine (default: all cores, one torch "
-                       "thread each; 1 runs in this process)")
-        g.add_argument("--cluster", metavar="ADDRESS",
-                       help="run the shards on a Dask cluster, e.g. tcp://10.0.0.5:8786 (the "
-                       "model folder must be at the same path on every worker)")
-        g.add_argument("--work", metavar="DIR", help="where run folders are kept (default: "
-                       "$XDG_CACHE_HOME/headlight/runs or ~/.cache/headlight/runs)")
-        g.add_argument("--fresh", action="store_true",
-                       help="ignore the finished shards of an earlier run and start over")
-        g.add_argument("--shard-size", type=int, default=SHARD_SIZE, metavar="N",
-                       help=f"texts per shard (default {SHARD_SIZE}); part of a run's identity")
+        g = p.add_argument_group('large sets (README, "Large evaluation sets")')
+        g.add_argument(
+            "--workers",
+            type=int,
+            metavar="N",
+            help="worker processes on this machine (default: all cores, one torch "
+            "thread each; 1 runs in this process)",
+        )
+        g.add_argument(
+            "--cluster",
+            metavar="ADDRESS",
+            help="run the shards on a Dask cluster, e.g. tcp://10.0.0.5:8786 (the "
+            "model folder must be at the same path on every worker)",
+        )
+        g.add_argument(
+            "--work",
+            metavar="DIR",
+            help="where run folders are kept (default: "
+            "$XDG_CACHE_HOME/headlight/runs or ~/.cache/headlight/runs)",
+        )
+        g.add_argument(
+            "--fresh", action="store_true", help="ignore the finished shards of an earlier run and start over"
+        )
+        g.add_argument(
+            "--shard-size",
+            type=int,
+            default=SHARD_SIZE,
+            metavar="N",
+            help=f"texts per shard (default {SHARD_SIZE}); part of a run's identity",
+        )
 
     def text_set(p: argparse.ArgumentParser, required: bool = True) -> None:
-        p.add_argument("--texts", metavar="FILE", required=required,
-                       help="text set: .txt, .jsonl, .csv, .parquet or a folder saved by "
-                       "datasets' save_to_disk")
+        p.add_argument(
+            "--texts",
+            metavar="FILE",
+            required=required,
+            help="text set: .txt, .jsonl, .csv, .parquet or a folder saved by datasets' save_to_disk",
+        )
         p.add_argument("--split", help="split of a saved DatasetDict")
-        p.add_argument("--text-column", metavar="NAME",
-                       help="column (field) holding the texts (default: text)")
-        p.add_argument("--label-column", metavar="NAME",
-                       help="column (field) holding the labels (default: label, when present)")
+        p.add_argument(
+            "--text-column", metavar="NAME", help="column (field) holding the texts (default: text)"
+        )
+        p.add_argument(
+            "--label-column",
+            metavar="NAME",
+            help="column (field) holding the labels (default: label, when present)",
+        )
 
-    p = model_command("check", "re-derive attention from the captured Q/K for every layer and "
-                      "head and compare with the model's own probabilities")
+    p = model_command(
+        "check",
+        "re-derive attention from the captured Q/K for every layer and "
+        "head and compare with the model's own probabilities",
+    )
     p.add_argument("--text", help="text to check (default: a built-in sentence)")
     text_set(p, required=False)
-    p.add_argument("--tolerance", type=float, default=DEFAULT_TOLERANCE,
-                   help=f"max abs error (default {DEFAULT_TOLERANCE:g})")
+    p.add_argument(
+        "--tolerance",
+        type=float,
+        default=DEFAULT_TOLERANCE,
+        help=f"max abs error (default {DEFAULT_TOLERANCE:g})",
+    )
     run_options(p)
     p.set_defaults(func=cmd_check)
 
@@ -309,32 +401,41 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = set_command("heads", "head summaries over a text set", cmd_heads)
     text_set(p)
-    p.add_argument("--skip-importance", action="store_true",
-                   help="leave out head importance (gradients; slower)")
-    p.add_argument("--knockout-heads", action="store_true",
-                   help="also knock out each head alone (one pass over the set per head)")
+    p.add_argument(
+        "--skip-importance", action="store_true", help="leave out head importance (gradients; slower)"
+    )
+    p.add_argument(
+        "--knockout-heads",
+        action="store_true",
+        help="also knock out each head alone (one pass over the set per head)",
+    )
     p = set_command("links", "per-head link accuracy over a link-pairs file", cmd_links)
     p.add_argument("--pairs", metavar="FILE", required=True, help="link pairs (.jsonl)")
-    p = set_command("shortcuts", "shortcut search by word knockout over a text set",
-                    cmd_shortcuts)
+    p = set_command("shortcuts", "shortcut search by word knockout over a text set", cmd_shortcuts)
     text_set(p)
     p.add_argument("--no-phrases", action="store_true", help="skip the two-word phrase search")
     p.add_argument("--top", type=int, default=15, help="rows to print (default 15)")
-    p = set_command("insert", "insertion test: insert a word or phrase into the texts of other "
-                    "classes and count flips into its class", cmd_insert)
+    p = set_command(
+        "insert",
+        "insertion test: insert a word or phrase into the texts of other "
+        "classes and count flips into its class",
+        cmd_insert,
+    )
     text_set(p)
     p.add_argument("--word", required=True, help="the word or phrase to insert, as written")
-    p.add_argument("--class", dest="target", metavar="C",
-                   help="the class it should push texts into (default: the class knocking it "
-                        "out most often flips texts away from)")
-    p.add_argument("--seed", type=int, default=0,
-                   help="seed of the random insertion points (default 0)")
+    p.add_argument(
+        "--class",
+        dest="target",
+        metavar="C",
+        help="the class it should push texts into (default: the class knocking it "
+        "out most often flips texts away from)",
+    )
+    p.add_argument("--seed", type=int, default=0, help="seed of the random insertion points (default 0)")
     p = model_command("evidence", "per-token evidence for one prediction (the evidence strip)")
     p.add_argument("--text", required=True, help="the text to explain")
     p.add_argument("--steps", type=int, default=50, help="integrated-gradients steps (default 50)")
     p.set_defaults(func=cmd_evidence)
-    p = set_command("card", "card export: Markdown section, figures and numbers for a model card",
-                    cmd_card)
+    p = set_command("card", "card export: Markdown section, figures and numbers for a model card", cmd_card)
     text_set(p)
     p.add_argument("--pairs", metavar="FILE", help="link pairs (.jsonl)")
     p.add_argument("--out", metavar="FOLDER", required=True, help="folder to create")

@@ -24,8 +24,13 @@ from tests.benchmarks.bench_recording import measure  # noqa: E402
 from tests.model import tiny  # noqa: E402
 from viewer.model.loader import open_model  # noqa: E402
 
-SIZE = dict(hidden_size=256, num_attention_heads=4, num_hidden_layers=4, intermediate_size=1024,
-            max_position_embeddings=512)
+SIZE = dict(
+    hidden_size=256,
+    num_attention_heads=4,
+    num_hidden_layers=4,
+    intermediate_size=1024,
+    max_position_embeddings=512,
+)
 KINDS = {
     "deberta-v2": dict(**SIZE, position_buckets=256, max_relative_positions=512),
     "modernbert": dict(**SIZE, local_attention=64),
@@ -46,13 +51,14 @@ def main(repeats: int = 15, n_tokens: int = 128) -> None:
     with tempfile.TemporaryDirectory() as root:
         for kind, overrides in KINDS.items():
             loaded = open_model(tiny.save(Path(root) / kind, kind, **overrides))
-            (rec_m, bare_m, check_m), rec, result = measure(loaded, text_of(loaded, n_tokens),
-                                                            repeats)
-            print(f"{loaded.family.name:11s} {rec.n_tokens:4d} tokens, terms "
-                  f"{','.join(rec.terms.names()) or '-':18s}: recording {rec_m*1e3:6.1f} ms, "
-                  f"bare forward {bare_m*1e3:6.1f} ms, ratio {rec_m / bare_m:.2f}x (goal <= 1.25x);"
-                  f" check {check_m*1e3:6.1f} ms = {check_m / bare_m:.2f}x, max error "
-                  f"{result.max_abs_error:.1e} ({'passed' if result.passed else 'FAILED'})")
+            (rec_m, bare_m, check_m), rec, result = measure(loaded, text_of(loaded, n_tokens), repeats)
+            print(
+                f"{loaded.family.name:11s} {rec.n_tokens:4d} tokens, terms "
+                f"{','.join(rec.terms.names()) or '-':18s}: recording {rec_m * 1e3:6.1f} ms, "
+                f"bare forward {bare_m * 1e3:6.1f} ms, ratio {rec_m / bare_m:.2f}x (goal <= 1.25x);"
+                f" check {check_m * 1e3:6.1f} ms = {check_m / bare_m:.2f}x, max error "
+                f"{result.max_abs_error:.1e} ({'passed' if result.passed else 'FAILED'})"
+            )
 
 
 if __name__ == "__main__":

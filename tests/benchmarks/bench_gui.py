@@ -42,8 +42,10 @@ from PySide6.QtCore import QElapsedTimer, QEventLoop, QSettings, QTimer  # noqa:
 # takes the GIL from the render thread; paint times are read off the paint itself (PaintProbe).
 POLL_MS = 5
 
-WORDS = ("the mechanic at the co-op trued the rear wheel then she checked the brake cables "
-         "twice and wrote a note for the member about the worn chain").split()
+WORDS = (
+    "the mechanic at the co-op trued the rear wheel then she checked the brake cables "
+    "twice and wrote a note for the member about the worn chain"
+).split()
 
 
 def text_of(loaded, n_tokens: int) -> str:
@@ -187,8 +189,7 @@ def bench_head_switch(window, repeats: int = 24) -> tuple[float, float]:
         start = time.perf_counter()
         image.set_data(grids[j[0] % 4])
         canvas.draw_idle()
-        pump_until(lambda: bare_probe.count > before
-                   and not getattr(canvas, "_draw_pending", False))
+        pump_until(lambda: bare_probe.count > before and not getattr(canvas, "_draw_pending", False))
         return bare_probe.last - start
 
     bare()
@@ -234,9 +235,15 @@ def bench_run(window, loaded, text: str, repeats: int = 5) -> tuple[float, float
         window.run_current()
         grid.wait(lambda: window.state.analysis is not old and grid.count > g0)
         grid_painted = grid.last
-        pump_until(lambda: window.state.analysis.summarised and summarised_at[0] is not None
-                   and heads.count > summarised_at[0] and window.head_map.idle,
-                   timeout=60)
+        pump_until(
+            lambda: (
+                window.state.analysis.summarised
+                and summarised_at[0] is not None
+                and heads.count > summarised_at[0]
+                and window.head_map.idle
+            ),
+            timeout=60,
+        )
         window.state.events.analysis.disconnect(summary)
         first_paint.append(grid_painted - start)
         full_paint.append(heads.last - start)
@@ -280,8 +287,9 @@ IMPORT = "import time, transformers; print(time.time(), flush=True)"
 
 def fresh(code: str, *args: str) -> float:
     start = time.time()
-    out = subprocess.run([sys.executable, "-c", code, *args], capture_output=True, text=True,
-                         check=True, cwd=ROOT)
+    out = subprocess.run(
+        [sys.executable, "-c", code, *args], capture_output=True, text=True, check=True, cwd=ROOT
+    )
     return float(out.stdout.strip().splitlines()[-1]) - start
 
 
@@ -319,8 +327,7 @@ def bench_gaps(window, text: str) -> tuple[float, int]:
     timer.start()
     last[0] = clock.elapsed()
     window.run_current()
-    pump_until(lambda: window.state.analysis is not old and probe.count > before
-               and window.pair_grid.idle)
+    pump_until(lambda: window.state.analysis is not old and probe.count > before and window.pair_grid.idle)
     pump_until(lambda: window.state.analysis.summarised)
     idle(1.0)  # the other panes' draws
     timer.stop()
@@ -343,14 +350,16 @@ def main(argv: list[str] | None = None) -> int:
     application()
     tune_collector()  # as ``headlight`` does
     tmp = Path(tempfile.mkdtemp(prefix="headlight-bench-"))
-    window = MainWindow(settings=QSettings(str(tmp / "s.ini"), QSettings.Format.IniFormat),
-                        config_dir=tmp, restore_geometry=False)
+    window = MainWindow(
+        settings=QSettings(str(tmp / "s.ini"), QSettings.Format.IniFormat),
+        config_dir=tmp,
+        restore_geometry=False,
+    )
     window.evidence_action.setChecked(False)  # measure the run itself, not the evidence
     window.resize(1600, 1000)
     window.show()
     window.start(model=args.model, restore_last=False)
-    pump_until(lambda: window.canvases_ready and window.state.model is not None
-               and not window.worker.busy)
+    pump_until(lambda: window.canvases_ready and window.state.model is not None and not window.worker.busy)
     loaded = open_model(args.model)
     text128 = text_of(loaded, 128)
     long_text = text_of(loaded, min(512, loaded.max_tokens))
@@ -363,8 +372,15 @@ def main(argv: list[str] | None = None) -> int:
     rows.append(("run to pair grid painted, 128 tok", run_ours, run_ref, 1.5, "record() alone"))
     rows.append(("  … and head map + check painted", run_all, run_ref, None, "record() alone"))
     switch_ours, switch_ref = bench_head_switch(window)
-    rows.append((f"head switch repaint, {window.state.n_tokens}² grid", switch_ours,
-                 switch_ref, 1.5, "bare imshow draw"))
+    rows.append(
+        (
+            f"head switch repaint, {window.state.n_tokens}² grid",
+            switch_ours,
+            switch_ref,
+            1.5,
+            "bare imshow draw",
+        )
+    )
     visible, imports = bench_startup()
     rows.append(("time to a visible window", visible, imports, 0.5, "import transformers"))
     gap, n = bench_gaps(window, long_text)
@@ -375,14 +391,17 @@ def main(argv: list[str] | None = None) -> int:
     for name, ours, ref, goal, what in rows:
         ratio = ours / ref
         if goal is None:
-            print(f"{name:<34} {ours * 1000:>7.1f}ms {ref * 1000:>8.1f}ms {ratio:>6.2f}x "
-                  f"{'':>6}  {what}")
+            print(f"{name:<34} {ours * 1000:>7.1f}ms {ref * 1000:>8.1f}ms {ratio:>6.2f}x {'':>6}  {what}")
             continue
         verdict = "ok" if ratio <= goal else "MISSED"
-        print(f"{name:<34} {ours * 1000:>7.1f}ms {ref * 1000:>8.1f}ms {ratio:>6.2f}x "
-              f"{goal:>5.1f}x  {what} [{verdict}]")
-    print(f"{'longest event-loop gap, ' + str(n) + ' tokens':<34} {gap:>7.0f}ms "
-          f"{'':>10} {'':>7} {'100':>5}ms  [{'ok' if gap <= 100 else 'MISSED'}]")
+        print(
+            f"{name:<34} {ours * 1000:>7.1f}ms {ref * 1000:>8.1f}ms {ratio:>6.2f}x "
+            f"{goal:>5.1f}x  {what} [{verdict}]"
+        )
+    print(
+        f"{'longest event-loop gap, ' + str(n) + ' tokens':<34} {gap:>7.0f}ms "
+        f"{'':>10} {'':>7} {'100':>5}ms  [{'ok' if gap <= 100 else 'MISSED'}]"
+    )
     return 0
 
 

@@ -63,10 +63,12 @@ def main(repeats: int = 15) -> None:
     print(f"model: MiniLM ({loaded.n_layers} layers x {loaded.n_heads} heads), torch threads 2")
     for n in (32, 128, 512):
         (rec_m, bare_m, check_m), rec, _ = measure(loaded, text_of(loaded, n), repeats)
-        print(f"{rec.n_tokens:4d} tokens: recording {rec_m*1e3:7.1f} ms, bare forward "
-              f"{bare_m*1e3:7.1f} ms, ratio {rec_m / bare_m:.2f}x (goal <= 1.25x at 128); "
-              f"check {check_m*1e3:7.1f} ms = {check_m / bare_m:.2f}x of a forward "
-              "(goal <= 0.3x at 128, <= 1x at 512)")
+        print(
+            f"{rec.n_tokens:4d} tokens: recording {rec_m * 1e3:7.1f} ms, bare forward "
+            f"{bare_m * 1e3:7.1f} ms, ratio {rec_m / bare_m:.2f}x (goal <= 1.25x at 128); "
+            f"check {check_m * 1e3:7.1f} ms = {check_m / bare_m:.2f}x of a forward "
+            "(goal <= 0.3x at 128, <= 1x at 512)"
+        )
 
 
 if __name__ == "__main__":

@@ -33,21 +33,22 @@ from viewer.reports.heads import head_summary  # noqa: E402
 from viewer.reports.shortcuts import shortcut_search  # noqa: E402
 from viewer.reports.textsets import TextItem  # noqa: E402
 
-WORDS = ("member mechanic wheel chain invoice brake cable tandem renewal workshop portal "
-         "saddle refund gears spoke frame courier tuesday receipt puncture").split()
+WORDS = (
+    "member mechanic wheel chain invoice brake cable tandem renewal workshop portal "
+    "saddle refund gears spoke frame courier tuesday receipt puncture"
+).split()
 
 
 def texts(n: int, seed: int = 0) -> list[TextItem]:
     rng = random.Random(seed)
-    return [TextItem(" ".join(rng.choices(WORDS, k=rng.randint(6, 30))), None, i)
-            for i in range(n)]
+    return [TextItem(" ".join(rng.choices(WORDS, k=rng.randint(6, 30))), None, i) for i in range(n)]
 
 
 def bare(loaded, items, batch_size=16) -> None:
     """The same batches through the model with no hooks and nothing kept."""
     with loaded.unhooked() as model, torch.no_grad():
         for start in range(0, len(items), batch_size):
-            batch = loaded.encode([i.text for i in items[start:start + batch_size]])
+            batch = loaded.encode([i.text for i in items[start : start + batch_size]])
             model(**loaded.model_inputs(batch), output_attentions=True)
 
 
@@ -68,15 +69,19 @@ def main() -> None:
         bare(loaded, items)
         theirs.append(time.perf_counter() - t0)
     o, b = statistics.median(ours), statistics.median(theirs)
-    print(f"heads over 1000 texts: {o:.2f} s; bare forward {b:.2f} s; "
-          f"throughput ratio {b / o:.2f}x (goal >= 0.8x)")
+    print(
+        f"heads over 1000 texts: {o:.2f} s; bare forward {b:.2f} s; "
+        f"throughput ratio {b / o:.2f}x (goal >= 0.8x)"
+    )
 
     head_summary(loaded, iter(texts(1000, seed=1)))
     after_1000 = rss_mb()
     head_summary(loaded, iter(texts(4000, seed=2)))
     after_4000 = rss_mb()
-    print(f"peak RSS after 1000 texts {after_1000:.0f} MB, after 4000 texts {after_4000:.0f} MB: "
-          f"growth {after_4000 - after_1000:.1f} MB (goal < 50 MB)")
+    print(
+        f"peak RSS after 1000 texts {after_1000:.0f} MB, after 4000 texts {after_4000:.0f} MB: "
+        f"growth {after_4000 - after_1000:.1f} MB (goal < 50 MB)"
+    )
 
     folder = tiny.save(Path(tempfile.mkdtemp()) / "clf", "bert")
     clf = open_model(folder)
@@ -86,8 +91,9 @@ def main() -> None:
         t0 = time.perf_counter()
         shortcut_search(clf, items)
         dt = time.perf_counter() - t0
-        print(f"shortcut search over {n} texts ({words} words): {dt:.2f} s, "
-              f"{dt / words * 1e3:.2f} ms per word")
+        print(
+            f"shortcut search over {n} texts ({words} words): {dt:.2f} s, {dt / words * 1e3:.2f} ms per word"
+        )
 
 
 if __name__ == "__main__":

@@ -38,16 +38,17 @@ from viewer.reports.shards import RunOptions  # noqa: E402
 from viewer.reports.shortcuts import knockout_tokens, shortcut_search  # noqa: E402
 from viewer.reports.textsets import TextItem  # noqa: E402
 
-WORDS = ("member mechanic wheel chain invoice brake cable tandem renewal workshop portal "
-         "saddle refund gears spoke frame courier tuesday receipt puncture the a my is "
-         "please").split()
+WORDS = (
+    "member mechanic wheel chain invoice brake cable tandem renewal workshop portal "
+    "saddle refund gears spoke frame courier tuesday receipt puncture the a my is "
+    "please"
+).split()
 BATCH = 32
 
 
 def texts(n: int, seed: int = 0) -> list[TextItem]:
     rng = random.Random(seed)
-    return [TextItem(" ".join(rng.choices(WORDS, k=rng.randint(6, 20))), None, i + 1)
-            for i in range(n)]
+    return [TextItem(" ".join(rng.choices(WORDS, k=rng.randint(6, 20))), None, i + 1) for i in range(n)]
 
 
 def classifier(folder: Path) -> Path:
@@ -57,8 +58,12 @@ def classifier(folder: Path) -> Path:
     torch.manual_seed(0)
     labels = {0: "repair", 1: "billing", 2: "membership"}
     model = BertForSequenceClassification.from_pretrained(
-        minilm_folder(), num_labels=3, id2label=labels, label2id={v: k for k, v in labels.items()},
-        local_files_only=True)
+        minilm_folder(),
+        num_labels=3,
+        id2label=labels,
+        label2id={v: k for k, v in labels.items()},
+        local_files_only=True,
+    )
     model.save_pretrained(folder, safe_serialization=True)
     AutoTokenizer.from_pretrained(minilm_folder(), local_files_only=True).save_pretrained(folder)
     return folder
@@ -80,7 +85,7 @@ def bare(loaded, id_lists: list[list[int]]) -> None:
     knockouts are batched by 32, so batches are cut at group boundaries as here)."""
     with loaded.unhooked() as model, torch.no_grad():
         for start in range(0, len(id_lists), BATCH):
-            batch = loaded.batch_from_ids(id_lists[start:start + BATCH])
+            batch = loaded.batch_from_ids(id_lists[start : start + BATCH])
             model(**loaded.model_inputs(batch))
 
 
@@ -101,50 +106,61 @@ def main() -> None:
     params = sum(p.numel() for p in loaded.model.parameters())
     items = texts(n)
     words = sum(len(word_spans(i.text)) + len(phrase_spans(i.text)) for i in items)
-    print(f"{loaded.name}: {params / 1e6:.1f} M parameters, {loaded.n_layers} layers x "
-          f"{loaded.n_heads} heads; {n} texts, {words} knockouts (words and phrases); "
-          f"{torch.get_num_threads()} cores' torch threads available")
+    print(
+        f"{loaded.name}: {params / 1e6:.1f} M parameters, {loaded.n_layers} layers x "
+        f"{loaded.n_heads} heads; {n} texts, {words} knockouts (words and phrases); "
+        f"{torch.get_num_threads()} cores' torch threads available"
+    )
 
     cores = torch.get_num_threads()
     one = timed(lambda: shortcut_search(loaded, items, batch_size=BATCH))
-    all_threads = timed(lambda: shortcut_search(loaded, items, batch_size=BATCH,
-                                                options=RunOptions(threads=None)))
+    all_threads = timed(
+        lambda: shortcut_search(loaded, items, batch_size=BATCH, options=RunOptions(threads=None))
+    )
     torch.set_num_threads(cores)
-    two = timed(lambda: shortcut_search(loaded, items, batch_size=BATCH,
-                                        options=RunOptions(workers=2)))
+    two = timed(lambda: shortcut_search(loaded, items, batch_size=BATCH, options=RunOptions(workers=2)))
     workers.close_engines()
-    print(f"1. shortcut search: one process {one:.1f} s on 1 torch thread, {all_threads:.1f} s "
-          f"on {cores}; --workers 2 {two:.1f} s (worker start included)")
-    print(f"   throughput ratio --workers 2 / one process: {one / two:.2f}x against 1 thread, "
-          f"{all_threads / two:.2f}x against {cores} threads (goal >= 1.5x)")
+    print(
+        f"1. shortcut search: one process {one:.1f} s on 1 torch thread, {all_threads:.1f} s "
+        f"on {cores}; --workers 2 {two:.1f} s (worker start included)"
+    )
+    print(
+        f"   throughput ratio --workers 2 / one process: {one / two:.2f}x against 1 thread, "
+        f"{all_threads / two:.2f}x against {cores} threads (goal >= 1.5x)"
+    )
 
     torch.set_num_threads(1)
-    id_lists = [ids for start in range(0, n, 16)
-                for ids in knocked_out_inputs(loaded, items[start:start + 16], phrases=True)]
-    groups = [len(knocked_out_inputs(loaded, items[s:s + 16], True)) for s in range(0, n, 16)]
+    id_lists = [
+        ids
+        for start in range(0, n, 16)
+        for ids in knocked_out_inputs(loaded, items[start : start + 16], phrases=True)
+    ]
+    groups = [len(knocked_out_inputs(loaded, items[s : s + 16], True)) for s in range(0, n, 16)]
 
     def bare_grouped() -> None:
         at = 0
         for size in groups:
-            bare(loaded, id_lists[at:at + size])
+            bare(loaded, id_lists[at : at + size])
             at += size
 
-    search = min(timed(lambda: shortcut_search(loaded, items, batch_size=BATCH))
-                 for _ in range(2))
+    search = min(timed(lambda: shortcut_search(loaded, items, batch_size=BATCH)) for _ in range(2))
     reference = min(timed(bare_grouped) for _ in range(2))
-    print(f"2. knockout forwards: search {search:.1f} s, bare batched forward over the same "
-          f"{len(id_lists)} inputs {reference:.1f} s; throughput ratio {reference / search:.2f}x "
-          "(goal >= 0.8x)")
+    print(
+        f"2. knockout forwards: search {search:.1f} s, bare batched forward over the same "
+        f"{len(id_lists)} inputs {reference:.1f} s; throughput ratio {reference / search:.2f}x "
+        "(goal >= 0.8x)"
+    )
     torch.set_num_threads(cores)
 
     peaks = []
     for size in (n // 2, 2 * n):
-        shortcut_search(loaded, texts(size, seed=size), batch_size=BATCH,
-                        options=RunOptions(workers=2))
+        shortcut_search(loaded, texts(size, seed=size), batch_size=BATCH, options=RunOptions(workers=2))
         workers.close_engines()
         peaks.append(children_peak_mb())
-    print(f"3. peak RSS of a worker: {peaks[0]:.0f} MB after {n // 2} texts, {peaks[1]:.0f} MB "
-          f"after {2 * n} texts: growth {peaks[1] - peaks[0]:.1f} MB (goal: flat)")
+    print(
+        f"3. peak RSS of a worker: {peaks[0]:.0f} MB after {n // 2} texts, {peaks[1]:.0f} MB "
+        f"after {2 * n} texts: growth {peaks[1] - peaks[0]:.1f} MB (goal: flat)"
+    )
 
 
 if __name__ == "__main__":

@@ -15,8 +15,15 @@ from viewer.core.attention import check_recording
 from viewer.core.recording import Recording
 
 
-def make_recording(rng: np.random.Generator, n_layers: int = 2, n_heads: int = 4,
-                   n_kv: int = 2, t: int = 7, d: int = 8, causal: bool = False) -> Recording:
+def make_recording(
+    rng: np.random.Generator,
+    n_layers: int = 2,
+    n_heads: int = 4,
+    n_kv: int = 2,
+    t: int = 7,
+    d: int = 8,
+    causal: bool = False,
+) -> Recording:
     q = rng.normal(size=(n_layers, n_heads, t, d)).astype(np.float32)
     k = rng.normal(size=(n_layers, n_kv, t, d)).astype(np.float32)
     v = rng.normal(size=(n_layers, n_kv, t, d)).astype(np.float32)
@@ -28,10 +35,20 @@ def make_recording(rng: np.random.Generator, n_layers: int = 2, n_heads: int = 4
         scores[..., ~np.tril(np.ones((t, t), dtype=bool))] = -np.inf
     probs = scipy_softmax(scores, axis=-1)
     return Recording(
-        text="x", tokens=tuple(f"t{i}" for i in range(t)), offsets=np.zeros((t, 2), np.int64),
-        special=np.zeros(t, bool), token_ids=np.arange(t), q=q, k=k, v=v,
-        probs=probs.astype(np.float32), context=(probs @ vv).astype(np.float32), scale=scale,
-        causal=causal, logits=np.zeros(0, np.float32), head_kind="encoder",
+        text="x",
+        tokens=tuple(f"t{i}" for i in range(t)),
+        offsets=np.zeros((t, 2), np.int64),
+        special=np.zeros(t, bool),
+        token_ids=np.arange(t),
+        q=q,
+        k=k,
+        v=v,
+        probs=probs.astype(np.float32),
+        context=(probs @ vv).astype(np.float32),
+        scale=scale,
+        causal=causal,
+        logits=np.zeros(0, np.float32),
+        head_kind="encoder",
     )
 
 

@@ -51,9 +51,7 @@ def _reference(texts, causal: bool) -> dict[str, np.ndarray]:
                     if i + 1 < t and not causal:
                         cell("next").append(row[i + 1])
                     cell("confidence").append(max(row))
-    return {
-        m: np.array([[np.mean(c) if c else np.nan for c in r] for r in rows[m]]) for m in METRICS
-    }
+    return {m: np.array([[np.mean(c) if c else np.nan for c in r] for r in rows[m]]) for m in METRICS}
 
 
 @settings(max_examples=25, deadline=None, database=None)

@@ -83,9 +83,7 @@ def _networkx_flow(probs: np.ndarray, out: int) -> np.ndarray:
     return np.array(values)
 
 
-@pytest.mark.parametrize(
-    "seed,n_layers,t,causal", [(3, 2, 4, False), (4, 3, 5, False), (5, 3, 6, True)]
-)
+@pytest.mark.parametrize("seed,n_layers,t,causal", [(3, 2, 4, False), (4, 3, 5, False), (5, 3, 6, True)])
 def test_flow_matches_networkx(seed, n_layers, t, causal):
     rng = np.random.default_rng(seed)
     probs = _probs(rng, n_layers, 2, t, causal)

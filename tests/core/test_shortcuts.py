@@ -134,15 +134,16 @@ def test_per_class_breakdown_counts_flips_under_the_originally_predicted_class()
     for flipped, predicted in ((True, 1), (True, 1), (False, 1), (False, 0)):
         tally.add_text({"portal": KnockoutOutcome(flipped, 0.1, 0.2, predicted=predicted)})
     e = tally.entry("portal")
-    assert e["by_class"] == {"repair": {"count": 1, "flips": 0, "flip_rate": 0.0},
-                             "billing": {"count": 3, "flips": 2, "flip_rate": 2 / 3},
-                             "membership": {"count": 0, "flips": 0, "flip_rate": None}}
+    assert e["by_class"] == {
+        "repair": {"count": 1, "flips": 0, "flip_rate": 0.0},
+        "billing": {"count": 3, "flips": 2, "flip_rate": 2 / 3},
+        "membership": {"count": 0, "flips": 0, "flip_rate": None},
+    }
     assert e["count"] == 4 and e["flip_rate"] == 0.5
     other = KnockoutTally(("repair", "billing", "membership"))
     other.add_text({"portal": KnockoutOutcome(True, 0.1, 0.2, predicted=2)})
     tally.merge(other)
-    assert tally.entry("portal")["by_class"]["membership"] == {"count": 1, "flips": 1,
-                                                               "flip_rate": 1.0}
+    assert tally.entry("portal")["by_class"]["membership"] == {"count": 1, "flips": 1, "flip_rate": 1.0}
     with pytest.raises(ValueError):
         tally.merge(KnockoutTally(("repair", "billing")))
     with pytest.raises(ValueError):

@@ -37,8 +37,9 @@ def test_head_stats_state_round_trip():
 
 def test_knockout_tally_state_round_trip_keeps_odd_keys_and_order():
     tally = KnockoutTally()
-    tally.add_text({"portal": KnockoutOutcome(True, 0.1 + 0.2, 1 / 3),
-                    "naïve\x00": KnockoutOutcome(False, -1e-17, 0.0)})
+    tally.add_text(
+        {"portal": KnockoutOutcome(True, 0.1 + 0.2, 1 / 3), "naïve\x00": KnockoutOutcome(False, -1e-17, 0.0)}
+    )
     tally.add_text({"portal": KnockoutOutcome(False, 0.7, 0.25)})
     back = KnockoutTally.from_state(through_npz(tally.state()))
     assert list(back.keys()) == ["portal", "naïve\x00"]

@@ -21,13 +21,25 @@ from viewer.figures.export import PRINT_DPI, save_figure
 from viewer.files import atomic_write_text, sanitise_name
 
 PAIRS = [
-    {"text": "the mechanic told the courier that she replaced the chain", "source": "she",
-     "target": "mechanic", "distractors": ["courier"]},
-    {"text": "a member asked the mechanic about the invoice and she paid it", "source": "she",
-     "target": "member", "distractors": ["mechanic"]},
+    {
+        "text": "the mechanic told the courier that she replaced the chain",
+        "source": "she",
+        "target": "mechanic",
+        "distractors": ["courier"],
+    },
+    {
+        "text": "a member asked the mechanic about the invoice and she paid it",
+        "source": "she",
+        "target": "member",
+        "distractors": ["mechanic"],
+    },
 ]
-TEXTS = [("the mechanic trued the wheel", "repair"), ("the invoice for the brake pads", "billing"),
-         ("renewal of the membership", "membership"), ("the chain and the wheel", "repair")]
+TEXTS = [
+    ("the mechanic trued the wheel", "repair"),
+    ("the invoice for the brake pads", "billing"),
+    ("renewal of the membership", "membership"),
+    ("the chain and the wheel", "repair"),
+]
 
 
 @pytest.fixture(scope="module")
@@ -92,9 +104,12 @@ def test_card_numbers_equal_the_commands(card, inputs, tmp_path):
     root, model, texts, pairs = inputs
     data = json.loads((card / "card.json").read_text())
     out = {}
-    for name, extra in (("check", ["--texts", str(texts)]), ("heads", ["--texts", str(texts)]),
-                        ("links", ["--pairs", str(pairs)]),
-                        ("shortcuts", ["--texts", str(texts)])):
+    for name, extra in (
+        ("check", ["--texts", str(texts)]),
+        ("heads", ["--texts", str(texts)]),
+        ("links", ["--pairs", str(pairs)]),
+        ("shortcuts", ["--texts", str(texts)]),
+    ):
         path = tmp_path / f"{name}.json"
         quiet = [] if name == "check" else ["--quiet"]
         assert main([name, str(model), *extra, *quiet, "--json", str(path)]) == 0
@@ -111,14 +126,16 @@ def test_two_exports_differ_only_in_the_date_line(card, inputs, tmp_path):
     second.mkdir()
     assert card_in(second, str(model), "--texts", str(texts), "--pairs", str(pairs)) == 0
     a_files = sorted(p.relative_to(card) for p in card.rglob("*") if p.is_file())
-    b_files = sorted(p.relative_to(second / "card") for p in (second / "card").rglob("*")
-                     if p.is_file())
+    b_files = sorted(p.relative_to(second / "card") for p in (second / "card").rglob("*") if p.is_file())
     assert a_files == b_files
     for rel in a_files:
         a, b = (card / rel).read_bytes(), (second / "card" / rel).read_bytes()
         if rel.suffix in (".md", ".json"):
-            diff = [(x, y) for x, y in zip(a.decode().splitlines(), b.decode().splitlines(),
-                                           strict=True) if x != y]
+            diff = [
+                (x, y)
+                for x, y in zip(a.decode().splitlines(), b.decode().splitlines(), strict=True)
+                if x != y
+            ]
             assert all("date" in x for x, _ in diff), diff
         else:
             assert a == b, rel
@@ -136,8 +153,20 @@ def test_existing_folder_is_not_overwritten_without_force(card, inputs, capsys):
 
 def test_missing_parent_folder_is_a_one_line_error(inputs, tmp_path, capsys):
     root, model, texts, _ = inputs
-    assert main(["card", str(model), "--texts", str(texts), "--out",
-                 str(tmp_path / "no" / "such" / "card"), "--quiet"]) == 2
+    assert (
+        main(
+            [
+                "card",
+                str(model),
+                "--texts",
+                str(texts),
+                "--out",
+                str(tmp_path / "no" / "such" / "card"),
+                "--quiet",
+            ]
+        )
+        == 2
+    )
     err = capsys.readouterr().err
     assert "does not exist" in err and err.count("\n") == 1
 

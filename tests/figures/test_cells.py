@@ -21,8 +21,16 @@ def _figure(values, fast: bool, size, dpi, limits=None, **kwargs):
     canvas = FigureCanvasAgg(fig)
     ax = fig.add_axes((0.13, 0.11, 0.71, 0.77))
     rows, cols = values.shape
-    options = dict(cmap="viridis", interpolation="nearest", aspect="auto",
-                   extent=(-0.5, cols - 0.5, rows - 0.5, -0.5), origin="upper") | kwargs
+    options = (
+        dict(
+            cmap="viridis",
+            interpolation="nearest",
+            aspect="auto",
+            extent=(-0.5, cols - 0.5, rows - 0.5, -0.5),
+            origin="upper",
+        )
+        | kwargs
+    )
     image = cell_image(ax, values, **options) if fast else ax.imshow(values, **options)
     if limits is not None:
         ax.set_xlim(limits[0], limits[1])
@@ -41,11 +49,16 @@ def test_cell_image_draws_the_pixels_of_a_nearest_imshow(seed):
     dpi = int(rng.choice([72, 100, 144]))
     limits = None
     if seed % 2:  # zoomed in: the grid runs past the axes and is clipped
-        limits = (rng.uniform(-0.5, cols / 2), rng.uniform(cols / 2 + 0.5, cols - 0.5),
-                  rng.uniform(rows / 2 + 0.5, rows - 0.5), rng.uniform(-0.5, rows / 2))
+        limits = (
+            rng.uniform(-0.5, cols / 2),
+            rng.uniform(cols / 2 + 0.5, cols - 0.5),
+            rng.uniform(rows / 2 + 0.5, rows - 0.5),
+            rng.uniform(-0.5, rows / 2),
+        )
     origin = "lower" if seed % 3 == 0 else "upper"
-    extent = ((-0.5, cols - 0.5, -0.5, rows - 0.5) if origin == "lower"
-              else (-0.5, cols - 0.5, rows - 0.5, -0.5))
+    extent = (
+        (-0.5, cols - 0.5, -0.5, rows - 0.5) if origin == "lower" else (-0.5, cols - 0.5, rows - 0.5, -0.5)
+    )
     ours, image, _ = _figure(values, True, size, dpi, limits, origin=origin, extent=extent)
     theirs, _, _ = _figure(values, False, size, dpi, limits, origin=origin, extent=extent)
     assert isinstance(image, CellImage)
@@ -75,8 +88,7 @@ def test_cell_image_leaves_other_interpolations_to_matplotlib():
 
 
 def test_cell_image_shows_masked_cells_as_the_colour_map_bad_colour():
-    values = np.ma.masked_array(np.array([[0.0, 1.0], [0.5, 0.25]]),
-                                [[False, True], [False, False]])
+    values = np.ma.masked_array(np.array([[0.0, 1.0], [0.5, 0.25]]), [[False, True], [False, False]])
     _, image, canvas = _figure(values, True, (2, 2), 50)
     out, *_ = image.make_image(canvas.get_renderer(), 1.0)
     # output row 0 is the bottom of the picture; origin "upper" puts the first row on top

@@ -151,8 +151,7 @@ def test_token_labels_are_decimated_for_long_texts(n_tokens):
     fig = drawn(pair_grid_figure(probs, tokens, size=(6.4, 5.6), dpi=100))
     ax = fig.axes[0]
     font_px = style.FONT_SIZE * fig.dpi / 72
-    for which, room in (("x", ax.get_window_extent().width),
-                        ("y", ax.get_window_extent().height)):
+    for which, room in (("x", ax.get_window_extent().width), ("y", ax.get_window_extent().height)):
         labels = style.visible_tick_labels(ax, which)
         # no more labels than fit at one label height each (so none overlap) ...
         assert 2 <= len(labels) <= room / (font_px * style.LABEL_SPACING) + 1
@@ -167,8 +166,9 @@ def test_rendered_tick_labels_do_not_overlap():
     renderer = fig.canvas.get_renderer()
     ax = fig.axes[0]
     for axis in (ax.xaxis, ax.yaxis):
-        boxes = [t.get_window_extent(renderer) for t in axis.get_ticklabels()
-                 if t.get_text() and t.get_visible()]
+        boxes = [
+            t.get_window_extent(renderer) for t in axis.get_ticklabels() if t.get_text() and t.get_visible()
+        ]
         for a, b in zip(boxes, boxes[1:], strict=False):
             assert not a.overlaps(b)
 
@@ -224,9 +224,18 @@ def test_evidence_rows_are_normalised_and_agreement_shown():
     np.testing.assert_allclose(shown[0], [0, 1, 0.5])
     np.testing.assert_allclose(shown[1], [-1, 0.5, 0])
     assert np.isnan(shown[2, 0]) and shown[2, 1] == 1.0
-    fig = drawn(evidence_figure(["[CLS]", "a", "b"], ["x", "y", "knockout"], values,
-                                [0.5, -0.25, "reference"], labels=["p", "q"],
-                                probabilities=np.array([0.3, 0.7]), predicted=1, gold="p"))
+    fig = drawn(
+        evidence_figure(
+            ["[CLS]", "a", "b"],
+            ["x", "y", "knockout"],
+            values,
+            [0.5, -0.25, "reference"],
+            labels=["p", "q"],
+            probabilities=np.array([0.3, 0.7]),
+            predicted=1,
+            gold="p",
+        )
+    )
     ax = fig.axes[0]
     np.testing.assert_allclose(np.ma.getdata(ax.images[0].get_array())[:2], shown[:2])
     texts = [t.get_text() for t in ax.texts]
@@ -237,9 +246,16 @@ def test_link_bars_show_the_top_scores_and_keep_the_target():
     scores = np.array([0.1, 0.5, 0.05, 0.3, 0.02])
     assert list(top_links(scores, 2)) == [1, 3]
     fig = Figure(figsize=(8, 3))
-    arts = links_into(fig, ["a", "b", "c", "d", "e"], scores,
-                      per_head_to_target=np.ones((2, 2)), target=4, source_name="a",
-                      target_name="e", head_title="layer 0 · head 0")
+    arts = links_into(
+        fig,
+        ["a", "b", "c", "d", "e"],
+        scores,
+        per_head_to_target=np.ones((2, 2)),
+        target=4,
+        source_name="a",
+        target_name="e",
+        head_title="layer 0 · head 0",
+    )
     drawn(fig)
     assert 4 in arts.shown  # the selected target is always among the bars
     widths = [p.get_width() for p in arts.bars_ax.patches]
@@ -257,12 +273,26 @@ def test_relinked_bars_draw_the_same_pixels_as_a_fresh_figure(fewer, with_target
     common = dict(per_head_to_target=per_head, target=target, source_name="word0")
     reused, fresh = Figure(figsize=(7, 3), dpi=80), Figure(figsize=(7, 3), dpi=80)
     target_name = "word2" if with_target else None
-    arts = links_into(reused, names, first, target_name=target_name,
-                      head_title="layer 0 · head 0", selected=(0, 0), **common)
+    arts = links_into(
+        reused,
+        names,
+        first,
+        target_name=target_name,
+        head_title="layer 0 · head 0",
+        selected=(0, 0),
+        **common,
+    )
     FigureCanvasAgg(reused).draw()
     relink(arts, names, second, head_title="layer 2 · head 3", selected=(2, 3), **common)
-    ref = links_into(fresh, names, second, target_name=target_name,
-                     head_title="layer 2 · head 3", selected=(2, 3), **common)
+    ref = links_into(
+        fresh,
+        names,
+        second,
+        target_name=target_name,
+        head_title="layer 2 · head 3",
+        selected=(2, 3),
+        **common,
+    )
     np.testing.assert_array_equal(pixels(reused), pixels(fresh))
     assert arts.shown == ref.shown and (not with_target or 2 in arts.shown)
     widths = [p.get_width() for p in arts.bars_ax.patches]

@@ -47,7 +47,7 @@ def test_labels_name_the_strongest_and_most_attended_words_and_are_painted():
         box = label.get_window_extent(renderer)
         x0, x1 = int(box.x0), int(np.ceil(box.x1))
         y0, y1 = height - int(np.ceil(box.y1)), height - int(box.y0)
-        patch = rgba[max(y0, 0):y1, max(x0, 0):x1, :3].astype(int)
+        patch = rgba[max(y0, 0) : y1, max(x0, 0) : x1, :3].astype(int)
         # dark text pixels inside the label's box: the label is drawn where it says it is
         assert patch.size and (patch.sum(axis=2) < 300).sum() >= 3, label.get_text()
 
@@ -78,6 +78,6 @@ def test_labels_do_not_overlap():
     renderer = canvas.get_renderer()
     boxes = [t.get_window_extent(renderer) for t in arts.labels]
     for i, a in enumerate(boxes):
-        for b in boxes[i + 1:]:
+        for b in boxes[i + 1 :]:
             assert not a.overlaps(b)
     assert "alone" in [t.get_text() for t in arts.labels]

@@ -27,8 +27,10 @@ def test_a_windowed_layer_hatches_exactly_its_out_of_window_cells():
 
 
 def test_a_causal_recording_keeps_its_triangle_and_adds_its_window():
-    rec = dataclasses.replace(make_recording(np.random.default_rng(1), t=6, causal=True),
-                              terms=ScoreTerms(window=np.array([[1, -1], [-1, -1]])))
+    rec = dataclasses.replace(
+        make_recording(np.random.default_rng(1), t=6, causal=True),
+        terms=ScoreTerms(window=np.array([[1, -1], [-1, -1]])),
+    )
     i, j = np.indices((6, 6))
     np.testing.assert_array_equal(visible_cells(rec, 0), (j <= i) & (i - j <= 1))
     np.testing.assert_array_equal(visible_cells(rec, 1), j <= i)

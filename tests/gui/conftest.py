@@ -37,8 +37,7 @@ def make_window(qtbot, tmp_path: Path, name: str = "w"):
 
     application()
     settings = QSettings(str(tmp_path / f"{name}.ini"), QSettings.Format.IniFormat)
-    window = MainWindow(settings=settings, config_dir=tmp_path / f"{name}-config",
-                        restore_geometry=False)
+    window = MainWindow(settings=settings, config_dir=tmp_path / f"{name}-config", restore_geometry=False)
     qtbot.addWidget(window)
     window.resize(1400, 900)
     window.show()
@@ -58,9 +57,14 @@ def run_and_wait(qtbot, window, text: str = TEXT, *, evidence: bool = True):
     window.text_edit.setPlainText(text)
     before = window.state.analysis
     window.run_current()
-    qtbot.waitUntil(lambda: window.state.analysis is not None
-                    and window.state.analysis is not before
-                    and window.state.analysis.summarised, timeout=WAIT_MS)
+    qtbot.waitUntil(
+        lambda: (
+            window.state.analysis is not None
+            and window.state.analysis is not before
+            and window.state.analysis.summarised
+        ),
+        timeout=WAIT_MS,
+    )
     if evidence:
         window.run_evidence()  # also automatic when "Evidence after every run" is on
         qtbot.waitUntil(lambda: window.state.evidence is not None, timeout=WAIT_MS)
@@ -117,7 +121,12 @@ def hover(pane, point) -> None:
 
     canvas = pane.canvas
     local = QPointF(point)
-    event = QMouseEvent(QMouseEvent.Type.MouseMove, local, canvas.mapToGlobal(local),
-                        Qt.MouseButton.NoButton, Qt.MouseButton.NoButton,
-                        Qt.KeyboardModifier.NoModifier)
+    event = QMouseEvent(
+        QMouseEvent.Type.MouseMove,
+        local,
+        canvas.mapToGlobal(local),
+        Qt.MouseButton.NoButton,
+        Qt.MouseButton.NoButton,
+        Qt.KeyboardModifier.NoModifier,
+    )
     QApplication.sendEvent(canvas, event)

@@ -23,13 +23,25 @@ from tests.gui.conftest import WAIT_MS, run_and_wait, settle, wait_idle
 from viewer.figures.export import PRINT_DPI, PRINT_SIZE
 from viewer.gui import export as gui_export
 
-TEXTS = [("the mechanic trued the wheel", "repair"), ("the invoice for the brake pads", "billing"),
-         ("renewal of the membership", "membership"), ("the chain and the wheel", "repair")]
+TEXTS = [
+    ("the mechanic trued the wheel", "repair"),
+    ("the invoice for the brake pads", "billing"),
+    ("renewal of the membership", "membership"),
+    ("the chain and the wheel", "repair"),
+]
 PAIRS = [
-    {"text": "the mechanic told the courier that she replaced the chain", "source": "she",
-     "target": "mechanic", "distractors": ["courier"]},
-    {"text": "a member asked the mechanic about the invoice and she paid it", "source": "she",
-     "target": "member", "distractors": ["mechanic"]},
+    {
+        "text": "the mechanic told the courier that she replaced the chain",
+        "source": "she",
+        "target": "mechanic",
+        "distractors": ["courier"],
+    },
+    {
+        "text": "a member asked the mechanic about the invoice and she paid it",
+        "source": "she",
+        "target": "member",
+        "distractors": ["mechanic"],
+    },
 ]
 
 
@@ -59,7 +71,7 @@ def test_pair_grid_export_writes_all_five_files(qtbot, window, tmp_path):
     got = np.zeros_like(rec.probs[1, 2], dtype=np.float64)
     for q, _qt, k, _kt, p, _vis in rows[1:]:
         got[int(q), int(k)] = float(p)
-    assert len(rows) - 1 == rec.n_tokens ** 2
+    assert len(rows) - 1 == rec.n_tokens**2
     np.testing.assert_array_equal(got, rec.probs[1, 2].astype(np.float64))
 
 
@@ -117,8 +129,19 @@ def test_links_and_evidence_exports(qtbot, window, tmp_path):
     # the same keys and numbers as ``headlight evidence --json`` on the same folder and text
     from viewer.cli import main
 
-    assert main(["evidence", window.state.model.folder, "--text", ev.recording.text,
-                 "--json", str(tmp_path / "cli.json")]) == 0
+    assert (
+        main(
+            [
+                "evidence",
+                window.state.model.folder,
+                "--text",
+                ev.recording.text,
+                "--json",
+                str(tmp_path / "cli.json"),
+            ]
+        )
+        == 0
+    )
     cli = json.loads((tmp_path / "cli.json").read_text(encoding="utf-8"))
     assert set(cli) - {"model"} <= set(data)
     assert cli["tokens"] == data["tokens"] and cli["target"] == data["target"]
@@ -166,8 +189,10 @@ def test_copy_figure_puts_the_png_on_the_clipboard(qtbot, window):
     assert window.exporter.copy_figure(window.head_map)
     image = QApplication.clipboard().image()
     assert not image.isNull()
-    assert (image.width(), image.height()) == (round(PRINT_SIZE[0] * PRINT_DPI),
-                                               round(PRINT_SIZE[1] * PRINT_DPI))
+    assert (image.width(), image.height()) == (
+        round(PRINT_SIZE[0] * PRINT_DPI),
+        round(PRINT_SIZE[1] * PRINT_DPI),
+    )
 
 
 def test_menus_and_context_menu_have_the_export_actions(qtbot, window):
@@ -176,11 +201,9 @@ def test_menus_and_context_menu_have_the_export_actions(qtbot, window):
     assert "Export pane" in names and "Export model-card folder…" in names
     sub = next(a.menu() for a in file_menu.actions() if a.text() == "Export pane")
     panes = [a.text() for a in sub.actions() if a.menu() is not None]
-    assert panes == ["pair grid", "head map", "links", "evidence strip", "compare grid",
-                     "fixation plot"]
+    assert panes == ["pair grid", "head map", "links", "evidence strip", "compare grid", "fixation plot"]
     menu = window.exporter.context_menu(window.head_map)
-    assert [a.text() for a in menu.actions()] == ["Export head map figure and data…",
-                                                  "Copy figure"]
+    assert [a.text() for a in menu.actions()] == ["Export head map figure and data…", "Copy figure"]
     menu.close()
 
 
@@ -202,23 +225,20 @@ def test_a_right_click_on_a_canvas_opens_its_export_menu(qtbot, window):
 @pytest.fixture
 def card_inputs(tmp_path):
     texts = tmp_path / "texts.jsonl"
-    texts.write_text("".join(json.dumps({"text": t, "label": y}) + "\n" for t, y in TEXTS),
-                     encoding="utf-8")
+    texts.write_text("".join(json.dumps({"text": t, "label": y}) + "\n" for t, y in TEXTS), encoding="utf-8")
     pairs = tmp_path / "pairs.jsonl"
     pairs.write_text("".join(json.dumps(p) + "\n" for p in PAIRS), encoding="utf-8")
     return texts, pairs
 
 
-def test_window_card_export_equals_export_card(qtbot, window, tmp_path, tiny_dir, card_inputs,
-                                               monkeypatch):
+def test_window_card_export_equals_export_card(qtbot, window, tmp_path, tiny_dir, card_inputs, monkeypatch):
     from viewer.figures.card import export_card
     from viewer.model.loader import open_model
 
     texts, pairs = card_inputs
     out = tmp_path / "card"
     assert window.exporter.export_card(str(texts), str(pairs), str(out))
-    qtbot.waitUntil(lambda: window.exporter.last_card is not None or bool(window.errors),
-                    timeout=WAIT_MS)
+    qtbot.waitUntil(lambda: window.exporter.last_card is not None or bool(window.errors), timeout=WAIT_MS)
     assert not window.errors, window.errors
     assert window.exporter.last_card == str(out)
     assert "model-card folder written" in window.status_label.text()
@@ -248,8 +268,7 @@ def test_window_card_export_equals_export_card(qtbot, window, tmp_path, tiny_dir
 
 def test_card_export_errors_are_one_line(qtbot, window, tmp_path, card_inputs):
     texts, _pairs = card_inputs
-    assert not window.exporter.export_card(str(tmp_path / "missing.txt"), None,
-                                           str(tmp_path / "c"))
+    assert not window.exporter.export_card(str(tmp_path / "missing.txt"), None, str(tmp_path / "c"))
     assert "does not exist" in window.errors[-1]
     # an unwritable target (its parent folder does not exist) fails on the worker
     assert window.exporter.export_card(str(texts), None, str(tmp_path / "no" / "such" / "c"))

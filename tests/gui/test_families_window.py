@@ -26,8 +26,11 @@ def test_an_adapter_without_a_local_base_asks_for_it(qtbot, tmp_path, monkeypatc
     cfg["base_model_name_or_path"] = "some-org/tiny-llama"  # a hub name, never looked up
     cfg_path.write_text(json.dumps(cfg))
     asked = []
-    monkeypatch.setattr(window_module, "choose_base_folder",
-                        lambda parent, adapter, message: asked.append(message) or str(base))
+    monkeypatch.setattr(
+        window_module,
+        "choose_base_folder",
+        lambda parent, adapter, message: asked.append(message) or str(base),
+    )
     w = open_window(qtbot, tmp_path, folder)
     assert len(asked) == 1 and "\n" not in asked[0]  # asked once, with the one-line reason
     info = w.state.model

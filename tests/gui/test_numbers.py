@@ -35,19 +35,19 @@ def test_evidence_strip_and_head_metrics_match_the_reports(qtbot, window, loaded
     labels, values, agreement = ev.strip_rows()
     assert len(labels) == len(shown)
     for row, kind in zip(values, shown, strict=True):
-        np.testing.assert_allclose(row, reference.rows[kind], rtol=1e-5, atol=1e-7,
-                                   equal_nan=True)
+        np.testing.assert_allclose(row, reference.rows[kind], rtol=1e-5, atol=1e-7, equal_nan=True)
     for rho, kind in zip(agreement, shown, strict=True):
         if kind != "knockout":
             assert rho == pytest.approx(reference.agreement[kind], abs=1e-6)
     item = [TextItem(TEXT, None, 1)]
-    np.testing.assert_allclose(ev.head_importance, head_importance(loaded, item)["importance"],
-                               rtol=1e-5, atol=1e-7)
-    np.testing.assert_allclose(ev.head_knockout, head_knockout(loaded, item)["prob_drop"],
-                               rtol=1e-5, atol=1e-7)
+    np.testing.assert_allclose(
+        ev.head_importance, head_importance(loaded, item)["importance"], rtol=1e-5, atol=1e-7
+    )
+    np.testing.assert_allclose(
+        ev.head_knockout, head_knockout(loaded, item)["prob_drop"], rtol=1e-5, atol=1e-7
+    )
     pane = window.head_map
-    for metric, values in (("importance", ev.head_importance),
-                           ("knockout", ev.head_knockout)):
+    for metric, values in (("importance", ev.head_importance), ("knockout", ev.head_knockout)):
         pane.metric_box.setCurrentIndex(pane.metric_box.findData(metric))
         settle(qtbot, pane)
         np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), values)
@@ -77,12 +77,24 @@ def test_link_accuracy_matches_the_link_report(qtbot, window, loaded, tmp_path):
 
     path = tmp_path / "pairs.jsonl"
     pairs = [
-        {"text": "the mechanic trued the wheel and she replaced the chain",
-         "source": "she", "target": "mechanic", "distractors": ["wheel"]},
-        {"text": "a member asked about the invoice and she paid it",
-         "source": "she", "target": "member", "distractors": ["invoice"]},
-        {"text": "the courier left the frame and he fixed the tyre",
-         "source": "he", "target": "courier", "distractors": ["frame"]},
+        {
+            "text": "the mechanic trued the wheel and she replaced the chain",
+            "source": "she",
+            "target": "mechanic",
+            "distractors": ["wheel"],
+        },
+        {
+            "text": "a member asked about the invoice and she paid it",
+            "source": "she",
+            "target": "member",
+            "distractors": ["invoice"],
+        },
+        {
+            "text": "the courier left the frame and he fixed the tyre",
+            "source": "he",
+            "target": "courier",
+            "distractors": ["frame"],
+        },
     ]
     path.write_text("".join(json.dumps(p) + "\n" for p in pairs), encoding="utf-8")
     window.open_pairs(str(path))
@@ -95,12 +107,10 @@ def test_link_accuracy_matches_the_link_report(qtbot, window, loaded, tmp_path):
     pane = window.links
     assert pane.view_box.isVisible() and pane.view_box.currentData() == "file"
     settle(qtbot, pane)
-    np.testing.assert_array_equal(
-        np.ma.getdata(pane.accuracy_artists.image.get_array()), reference.accuracy)
+    np.testing.assert_array_equal(np.ma.getdata(pane.accuracy_artists.image.get_array()), reference.accuracy)
 
 
-def test_window_and_link_pairs_give_the_same_score_for_a_word_with_an_apostrophe(qtbot, window,
-                                                                                  loaded):
+def test_window_and_link_pairs_give_the_same_score_for_a_word_with_an_apostrophe(qtbot, window, loaded):
     """The window's word for a clicked token is the word a link-pairs file names.
 
     Reference: ``score_pair`` on a ``make_pair`` of the same words, which is how ``headlight

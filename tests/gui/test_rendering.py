@@ -24,9 +24,11 @@ def _spy_builds(pane, threads: list) -> None:
     def spying():
         result = render()
         if callable(result):
+
             def build():
                 threads.append(threading.current_thread())
                 result()
+
             return build
         return result
 
@@ -51,8 +53,10 @@ def test_panes_are_built_off_the_gui_thread_and_show_the_new_text(qtbot, window)
     # the frame on screen is as large as the view, and its texts are the figure's labels
     image = pane.canvas.image
     ratio = pane.canvas.device_pixel_ratio
-    assert (image.width(), image.height()) == (round(pane.canvas.width() * ratio),
-                                               round(pane.canvas.height() * ratio))
+    assert (image.width(), image.height()) == (
+        round(pane.canvas.width() * ratio),
+        round(pane.canvas.height() * ratio),
+    )
     painted = [t.text for t in pane.canvas.last_texts if isinstance(t, TextItem)]
     assert "key (attended to)" in painted and "query (attending)" in painted
     assert set(labels) <= set(painted)
@@ -113,10 +117,15 @@ def test_merged_builds_take_the_fast_path_only_if_every_build_allows_it():
             order.append(fast)
             if fast:
                 pane.fast = True
+
         return run
 
-    for first, then, expected in ((True, False, False), (False, True, False),
-                                  (True, True, True), (False, False, False)):
+    for first, then, expected in (
+        (True, False, False),
+        (False, True, False),
+        (True, True, True),
+        (False, False, False),
+    ):
         pane, order = SimpleNamespace(fast=False), []
         _chain(pane, build(first), build(then))()
         assert order == [first, then] and pane.fast is expected

@@ -51,8 +51,10 @@ def test_unreadable_files_give_dialogs(qtbot, window, tmp_path):
 
 def test_cancel_during_a_long_run_leaves_no_worker_running(qtbot, window, tmp_path):
     path = tmp_path / "many.txt"
-    path.write_text("\n".join(f"the mechanic trued wheel number {i} and she replaced the chain"
-                              for i in range(3000)), encoding="utf-8")
+    path.write_text(
+        "\n".join(f"the mechanic trued wheel number {i} and she replaced the chain" for i in range(3000)),
+        encoding="utf-8",
+    )
     progress = []
     window.worker.progress.connect(lambda kind, done, total, msg: progress.append(done))
     window.open_textset(str(path))
@@ -84,6 +86,7 @@ def test_the_window_is_visible_before_torch_and_matplotlib_are_imported(tmp_path
         heavy = [m for m in ("torch", "transformers", "matplotlib") if m in sys.modules]
         print(w.isVisible(), heavy)
     """)
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         timeout=120, check=True)
+    out = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=True
+    )
     assert out.stdout.strip().splitlines()[-1] == "True []"

@@ -55,11 +55,11 @@ def test_insertion_column_and_fixation_plot(qtbot, demo_window, messages):
     row = pane.words.index("portal")
     end = reference.tally.entry("end")
     header = [pane.table.horizontalHeaderItem(c).text() for c in range(pane.table.columnCount())]
-    assert header[6:] == ["flips · repair", "flips · billing", "flips · membership",
-                          "inserted → flips into"]
+    assert header[6:] == ["flips · repair", "flips · billing", "flips · membership", "inserted → flips into"]
     by_class = w.state.shortcuts.words.entry("portal")["by_class"]
-    assert pane.table.item(row, 7).text() == (f"{by_class['billing']['flips']}/"
-                                              f"{by_class['billing']['count']}")
+    assert pane.table.item(row, 7).text() == (
+        f"{by_class['billing']['flips']}/{by_class['billing']['count']}"
+    )
     assert by_class["billing"]["count"] > 0  # the footer's texts are predicted billing
     cell = pane.table.item(row, 9)
     assert cell.text() == f"billing {end['flip_rate']:.0%} (low {end['flip_low']:.2f})"

@@ -47,11 +47,11 @@ def test_the_library_table_is_what_the_loader_can_check():
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="X11 is a Linux matter here")
 def test_headlight_without_a_display_exits_2_with_one_line(tmp_path):
-    env = {k: v for k, v in os.environ.items()
-           if k not in ("QT_QPA_PLATFORM", "DISPLAY", "WAYLAND_DISPLAY")}
+    env = {k: v for k, v in os.environ.items() if k not in ("QT_QPA_PLATFORM", "DISPLAY", "WAYLAND_DISPLAY")}
     env["HOME"] = str(tmp_path)
-    run = subprocess.run([sys.executable, "-m", "viewer"], env=env, capture_output=True,
-                         text=True, timeout=120)
+    run = subprocess.run(
+        [sys.executable, "-m", "viewer"], env=env, capture_output=True, text=True, timeout=120
+    )
     assert run.returncode == 2, run.stderr[-2000:]
     lines = run.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("headlight: error: the window cannot start")
@@ -60,10 +60,11 @@ def test_headlight_without_a_display_exits_2_with_one_line(tmp_path):
 def test_the_window_module_loads_no_numerical_library():
     """The window appears before numpy, SciPy, matplotlib or torch load (they come later, in the
     background): importing it must not pull them in."""
-    code = ("import sys, viewer.gui.window; print(sorted(m for m in ('numpy', 'scipy', "
-            "'matplotlib', 'torch', 'transformers') if m in sys.modules))")
+    code = (
+        "import sys, viewer.gui.window; print(sorted(m for m in ('numpy', 'scipy', "
+        "'matplotlib', 'torch', 'transformers') if m in sys.modules))"
+    )
     env = {**os.environ, "QT_QPA_PLATFORM": "offscreen"}
-    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env,
-                         timeout=120)
+    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, timeout=120)
     assert run.returncode == 0, run.stderr[-2000:]
     assert run.stdout.strip() == "[]"

@@ -29,8 +29,7 @@ TEXTS = [
 @pytest.fixture
 def textset_file(tmp_path):
     path = tmp_path / "messages.jsonl"
-    path.write_text("".join(json.dumps({"text": t, "label": y}) + "\n" for t, y in TEXTS),
-                    encoding="utf-8")
+    path.write_text("".join(json.dumps({"text": t, "label": y}) + "\n" for t, y in TEXTS), encoding="utf-8")
     return path
 
 
@@ -62,8 +61,7 @@ def test_a_text_set_lists_predictions_and_filters_to_mistakes(qtbot, window, tex
     pane = window.textset_pane
     assert pane.table.rowCount() == len(TEXTS)
     # mistakes from the file's labels against transformers' own predictions
-    mistakes = [i for i, ((_, label), p) in enumerate(zip(TEXTS, predicted, strict=True))
-                if p != label]
+    mistakes = [i for i, ((_, label), p) in enumerate(zip(TEXTS, predicted, strict=True)) if p != label]
     assert mistakes, "the random tiny model should get some of these wrong"
     pane.mistakes_box.click()
     assert window.state.mistakes_only
@@ -83,8 +81,7 @@ def test_a_text_set_lists_predictions_and_filters_to_mistakes(qtbot, window, tex
     assert window.state.scope == "set"
 
 
-def test_the_shortcut_report_matches_the_search_and_lists_a_words_texts(qtbot, window,
-                                                                       textset_file):
+def test_the_shortcut_report_matches_the_search_and_lists_a_words_texts(qtbot, window, textset_file):
     from viewer.model.loader import open_model
     from viewer.reports.shortcuts import shortcut_search
     from viewer.reports.textsets import load_text_set
@@ -92,8 +89,9 @@ def test_the_shortcut_report_matches_the_search_and_lists_a_words_texts(qtbot, w
     open_set(qtbot, window, textset_file)
     window.search_shortcuts()
     qtbot.waitUntil(lambda: window.state.shortcuts is not None, timeout=WAIT_MS)
-    reference = shortcut_search(open_model(window.state.model.folder),
-                                load_text_set(textset_file)).words.ranking()
+    reference = shortcut_search(
+        open_model(window.state.model.folder), load_text_set(textset_file)
+    ).words.ranking()
     pane = window.shortcut_pane
     assert pane.words == [row["token"] for row in reference]
     assert pane.table.rowCount() == len(reference)
@@ -122,8 +120,9 @@ def test_a_phrase_search_ranks_word_pairs_as_the_command_does(qtbot, window, tex
     pane.phrases_box.setChecked(True)
     window.search_shortcuts()
     qtbot.waitUntil(lambda: window.state.shortcuts is not None, timeout=WAIT_MS)
-    reference = shortcut_search(open_model(window.state.model.folder),
-                                load_text_set(textset_file), phrases=True).phrases.ranking()
+    reference = shortcut_search(
+        open_model(window.state.model.folder), load_text_set(textset_file), phrases=True
+    ).phrases.ranking()
     assert pane.view_box.isVisibleTo(pane)
     pane.view_box.setCurrentIndex(pane.view_box.findData("phrases"))
     assert pane.table.horizontalHeaderItem(0).text() == "phrase"
@@ -134,14 +133,14 @@ def test_a_phrase_search_ranks_word_pairs_as_the_command_does(qtbot, window, tex
     pane.table.selectRow(pane.words.index(phrase))
     assert window.state.word == phrase
     assert window.textset_pane.rows_shown == [
-        i for i, (t, _) in enumerate(TEXTS) if phrase in phrase_spans(t)]
+        i for i, (t, _) in enumerate(TEXTS) if phrase in phrase_spans(t)
+    ]
     pane.view_box.setCurrentIndex(pane.view_box.findData("words"))
     assert pane.table.horizontalHeaderItem(0).text() == "word"
     assert "portal" in pane.words
 
 
-def test_a_second_text_set_replaces_the_first_ones_report_and_filter(qtbot, window,
-                                                                       textset_file, tmp_path):
+def test_a_second_text_set_replaces_the_first_ones_report_and_filter(qtbot, window, textset_file, tmp_path):
     open_set(qtbot, window, textset_file)
     window.search_shortcuts()
     qtbot.waitUntil(lambda: window.state.shortcuts is not None, timeout=WAIT_MS)
@@ -157,10 +156,10 @@ def test_a_second_text_set_replaces_the_first_ones_report_and_filter(qtbot, wind
     assert window.textset_pane.rows_shown == [0, 1]
 
 
-@pytest.mark.parametrize("metric", ["entropy", "distance", "special", "previous", "same",
-                                    "next", "confidence"])
-def test_the_set_scope_head_map_equals_headlight_heads(qtbot, window, textset_file, tmp_path,
-                                                         metric):
+@pytest.mark.parametrize(
+    "metric", ["entropy", "distance", "special", "previous", "same", "next", "confidence"]
+)
+def test_the_set_scope_head_map_equals_headlight_heads(qtbot, window, textset_file, tmp_path, metric):
     """Reference: ``headlight heads --json`` on the same folder and file."""
     import numpy as np
 
@@ -168,8 +167,21 @@ def test_the_set_scope_head_map_equals_headlight_heads(qtbot, window, textset_fi
     from viewer.cli import main
 
     out = tmp_path / "heads.json"
-    assert main(["heads", window.state.model.folder, "--texts", str(textset_file),
-                 "--skip-importance", "--quiet", "--json", str(out)]) == 0
+    assert (
+        main(
+            [
+                "heads",
+                window.state.model.folder,
+                "--texts",
+                str(textset_file),
+                "--skip-importance",
+                "--quiet",
+                "--json",
+                str(out),
+            ]
+        )
+        == 0
+    )
     expected = np.array(json.loads(out.read_text(encoding="utf-8"))[metric], dtype=float)
     open_set(qtbot, window, textset_file)
     pane = window.head_map
@@ -178,5 +190,6 @@ def test_the_set_scope_head_map_equals_headlight_heads(qtbot, window, textset_fi
     assert window.state.scope == "set"
     settle(qtbot, pane)
     assert "over the text set" in pane.title_label.text()
-    np.testing.assert_allclose(np.ma.getdata(pane.displayed_values()), expected, rtol=1e-12,
-                               atol=1e-15, equal_nan=True)
+    np.testing.assert_allclose(
+        np.ma.getdata(pane.displayed_values()), expected, rtol=1e-12, atol=1e-15, equal_nan=True
+    )

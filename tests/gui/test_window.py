@@ -29,12 +29,10 @@ def test_a_run_fills_every_pane_and_the_check_badge(qtbot, window):
     for pane in (window.pair_grid, window.head_map, window.evidence):
         settle(qtbot, pane)
         assert pane.showing_figure, pane.title
-    np.testing.assert_array_equal(np.ma.getdata(window.pair_grid.displayed_values()),
-                                  rec.probs[0, 0])
+    np.testing.assert_array_equal(np.ma.getdata(window.pair_grid.displayed_values()), rec.probs[0, 0])
     stats = HeadStats(rec.n_layers, rec.n_heads)
     stats.add(rec.probs, rec.special, rec.causal)
-    np.testing.assert_allclose(np.ma.getdata(window.head_map.displayed_values()),
-                               stats.summary().entropy)
+    np.testing.assert_allclose(np.ma.getdata(window.head_map.displayed_values()), stats.summary().entropy)
     assert window.badge.text().startswith("check passed")
     assert analysis.check.max_abs_error < 1e-5
     ev = window.state.evidence
@@ -65,8 +63,9 @@ def test_clicking_a_row_label_selects_the_layer_mean(qtbot, window):
     click(qtbot, pane, point)
     assert (window.state.layer, window.state.head) == (1, None)
     settle(qtbot, window.pair_grid)
-    np.testing.assert_allclose(np.ma.getdata(window.pair_grid.displayed_values()),
-                               rec.probs[1].mean(axis=0), rtol=1e-6)
+    np.testing.assert_allclose(
+        np.ma.getdata(window.pair_grid.displayed_values()), rec.probs[1].mean(axis=0), rtol=1e-6
+    )
     assert window.pair_grid.mean_box.isChecked()
 
 
@@ -155,8 +154,9 @@ def test_compare_mode_shows_the_metric_difference(qtbot, window, tiny_dir_b):
     assert pane.artists.diverging
     assert pane.artists.image.norm.vcenter == 0.0
     settle(qtbot, window.compare_pane.grid)
-    np.testing.assert_array_equal(np.ma.getdata(window.compare_pane.grid.displayed_values()),
-                                  other.recording.probs[0, 0])
+    np.testing.assert_array_equal(
+        np.ma.getdata(window.compare_pane.grid.displayed_values()), other.recording.probs[0, 0]
+    )
     window.clear_compare()
     settle(qtbot, pane)
     assert not pane.artists.diverging
@@ -185,9 +185,11 @@ def test_compare_with_a_second_text_shows_it_beside_the_first(qtbot, window):
     stats.add(other.recording.probs, other.recording.special, other.recording.causal)
     pane = window.head_map
     settle(qtbot, pane)
-    np.testing.assert_allclose(np.ma.getdata(pane.displayed_values()),
-                               stats.summary().entropy - current.heads.entropy)
+    np.testing.assert_allclose(
+        np.ma.getdata(pane.displayed_values()), stats.summary().entropy - current.heads.entropy
+    )
     # the main pair grid still shows the first text
     settle(qtbot, window.pair_grid)
-    np.testing.assert_array_equal(np.ma.getdata(window.pair_grid.displayed_values()),
-                                  current.recording.probs[1, 0])
+    np.testing.assert_array_equal(
+        np.ma.getdata(window.pair_grid.displayed_values()), current.recording.probs[1, 0]
+    )

@@ -28,13 +28,21 @@ from viewer.model.loader import open_model
 
 ADAPTERS = {
     # a classifier adapter: LoRA on the attention projections, the classifier head retrained
-    "bert": (AutoModelForSequenceClassification,
-             dict(r=4, lora_alpha=8, target_modules=["query", "value"], task_type="SEQ_CLS",
-                  modules_to_save=["classifier"])),
+    "bert": (
+        AutoModelForSequenceClassification,
+        dict(
+            r=4,
+            lora_alpha=8,
+            target_modules=["query", "value"],
+            task_type="SEQ_CLS",
+            modules_to_save=["classifier"],
+        ),
+    ),
     # a decoder adapter: LoRA on q, v and the output projection (where the head gates sit)
-    "llama": (AutoModelForCausalLM,
-              dict(r=4, lora_alpha=8, target_modules=["q_proj", "v_proj", "o_proj"],
-                   task_type="CAUSAL_LM")),
+    "llama": (
+        AutoModelForCausalLM,
+        dict(r=4, lora_alpha=8, target_modules=["q_proj", "v_proj", "o_proj"], task_type="CAUSAL_LM"),
+    ),
 }
 
 
@@ -85,8 +93,9 @@ def test_merged_model_equals_peft_unmerged(adapter):
     kind, base_dir, folder = adapter
     loaded = open_model(folder)
     auto, _ = ADAPTERS[kind]
-    reference = PeftModel.from_pretrained(auto.from_pretrained(base_dir, attn_implementation="eager"),
-                                          folder).eval()
+    reference = PeftModel.from_pretrained(
+        auto.from_pretrained(base_dir, attn_implementation="eager"), folder
+    ).eval()
     enc = loaded.tokenizer(tiny.TEXTS[1], return_tensors="pt")
     with torch.no_grad():
         theirs = reference(**enc).logits
@@ -166,8 +175,9 @@ def test_half_precision_checkpoint_is_upcast_and_passes(tmp_path, dtype):
     result = check_recording(rec, 1e-5)
     assert result.passed, result.to_dict()
     # reference: transformers' own eager load of the same folder, upcast to float32
-    ref = AutoModelForCausalLM.from_pretrained(folder, attn_implementation="eager",
-                                               dtype=torch.float32).eval()
+    ref = AutoModelForCausalLM.from_pretrained(
+        folder, attn_implementation="eager", dtype=torch.float32
+    ).eval()
     with torch.no_grad():
         out = ref(**loaded.tokenizer(tiny.TEXTS[1], return_tensors="pt"), output_attentions=True)
     np.testing.assert_allclose(rec.probs, torch.stack(out.attentions, 1)[0].numpy(), atol=1e-6)

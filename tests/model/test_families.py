@@ -84,8 +84,13 @@ def test_sdpa_gives_the_recorded_head_outputs(loaded):
         windowed = rec.terms.layer_window(layer) is not None
         mask = torch.from_numpy(rec.key_mask(layer)) if windowed else None
         ours = torch.nn.functional.scaled_dot_product_attention(
-            q, k, v, attn_mask=mask, is_causal=rec.causal and not windowed,
-            scale=float(rec.scale[layer]), enable_gqa=rec.n_kv_heads != rec.n_heads,
+            q,
+            k,
+            v,
+            attn_mask=mask,
+            is_causal=rec.causal and not windowed,
+            scale=float(rec.scale[layer]),
+            enable_gqa=rec.n_kv_heads != rec.n_heads,
         )[0].numpy()
         np.testing.assert_allclose(rec.context[layer], ours, atol=1e-5)
 
@@ -107,8 +112,19 @@ def test_recording_shapes_and_tokens(family_folder, loaded):
         assert 0 <= a <= b <= len(rec.text)
         if kind != "qwen2":
             assert rec.text[a:b].lower() == tok.removeprefix("##")
-    if kind in ("bert", "roberta", "xlm-roberta", "albert", "electra", "deberta-v2",
-                "modernbert", "mpnet", "gpt2-cls", "llama-cls", "qwen3"):
+    if kind in (
+        "bert",
+        "roberta",
+        "xlm-roberta",
+        "albert",
+        "electra",
+        "deberta-v2",
+        "modernbert",
+        "mpnet",
+        "gpt2-cls",
+        "llama-cls",
+        "qwen3",
+    ):
         assert rec.head_kind == "classifier"
         assert rec.labels == ("repair", "billing", "membership")
         assert rec.logits.shape == (3,)

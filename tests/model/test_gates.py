@@ -38,7 +38,7 @@ def test_gating_one_head_equals_zeroing_its_slice_by_hand(loaded):
         if loaded.family.shared_layers and calls["n"] != layer + 1:
             return None  # ALBERT: only the chosen pass through the shared layer
         x = args[0].clone()
-        x[..., head * d:(head + 1) * d] = 0.0
+        x[..., head * d : (head + 1) * d] = 0.0
         return (x, *args[1:])
 
     handle = target.register_forward_pre_hook(zero_slice)
@@ -62,11 +62,13 @@ def test_gate_gradients_exist_for_every_head(tmp_path):
     eps = 1e-4
     g = gates.ones(loaded).double()
     g[0, 2] += eps
-    plus = torch.nn.functional.cross_entropy(gates.gated_logits(loaded, batch, g),
-                                             torch.tensor([0, 1, 2]), reduction="sum")
+    plus = torch.nn.functional.cross_entropy(
+        gates.gated_logits(loaded, batch, g), torch.tensor([0, 1, 2]), reduction="sum"
+    )
     g[0, 2] -= 2 * eps
-    minus = torch.nn.functional.cross_entropy(gates.gated_logits(loaded, batch, g),
-                                              torch.tensor([0, 1, 2]), reduction="sum")
+    minus = torch.nn.functional.cross_entropy(
+        gates.gated_logits(loaded, batch, g), torch.tensor([0, 1, 2]), reduction="sum"
+    )
     assert float(grad[0, 2]) == pytest.approx(float(plus - minus) / (2 * eps), rel=1e-4)
 
 

@@ -73,8 +73,9 @@ def test_unsupported_architecture_names_the_supported(good, tmp_path, capsys):
     assert_refused(folder, capsys, r"unsupported architecture.*BERT.*DeBERTa.*GPT-2.*Llama.*Qwen3")
 
 
-@pytest.mark.parametrize(("model_type", "feature"), [
-    ("t5", "cross-attention"), ("bloom", "ALiBi"), ("mpt", "ALiBi")])
+@pytest.mark.parametrize(
+    ("model_type", "feature"), [("t5", "cross-attention"), ("bloom", "ALiBi"), ("mpt", "ALiBi")]
+)
 def test_unmodelled_attention_is_named(good, tmp_path, capsys, model_type, feature):
     folder = copy(good, tmp_path)
     edit_config(folder, model_type=model_type)
@@ -184,14 +185,18 @@ def test_no_network_needed(good, monkeypatch):
 def test_cli_exit_codes_in_a_real_process(good, tmp_path):
     """The installed entry point: exit 0 and JSON on success, exit 2 and one line on bad input."""
     out = tmp_path / "check.json"
-    ok = subprocess.run([sys.executable, "-m", "viewer", "check", str(good), "--text",
-                         "the mechanic", "--json", str(out)], capture_output=True, text=True)
+    ok = subprocess.run(
+        [sys.executable, "-m", "viewer", "check", str(good), "--text", "the mechanic", "--json", str(out)],
+        capture_output=True,
+        text=True,
+    )
     assert ok.returncode == 0, ok.stderr
     data = json.loads(out.read_text())
     assert data["passed"] is True and data["max_abs_error"] <= 1e-5
     assert [row["layer"] for row in data["layers"]] == [0, 1]
-    bad = subprocess.run([sys.executable, "-m", "viewer", "check", str(tmp_path / "none")],
-                         capture_output=True, text=True)
+    bad = subprocess.run(
+        [sys.executable, "-m", "viewer", "check", str(tmp_path / "none")], capture_output=True, text=True
+    )
     assert bad.returncode == 2
     assert bad.stderr.count("\n") == 1 and "Traceback" not in bad.stderr
 

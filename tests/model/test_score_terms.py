@@ -82,8 +82,13 @@ def deberta_rows(t: int, config) -> np.ndarray:
 
 DEBERTA_VARIANTS = {
     "v3": {},  # shared projections, 4 log buckets, c2p + p2c, layer-normed relative embeddings
-    "separate-c2p-no-buckets": dict(share_att_key=False, pos_att_type=["c2p"], position_buckets=-1,
-                                    max_relative_positions=8, norm_rel_ebd="none"),
+    "separate-c2p-no-buckets": dict(
+        share_att_key=False,
+        pos_att_type=["c2p"],
+        position_buckets=-1,
+        max_relative_positions=8,
+        norm_rel_ebd="none",
+    ),
     "separate-p2c": dict(share_att_key=False, pos_att_type=["p2c"], position_buckets=8),
 }
 
@@ -233,8 +238,7 @@ def test_windows_from_their_definition(tmp_path, kind):
     for layer in range(rec.n_layers):
         q, k = content(rec, layer)
         s = q @ k.transpose(1, 2) * float(rec.scale[layer])
-        sliding = getattr(cfg, "layer_types", None) is None or \
-            cfg.layer_types[layer] == "sliding_attention"
+        sliding = getattr(cfg, "layer_types", None) is None or cfg.layer_types[layer] == "sliding_attention"
         if kind == "modernbert":
             visible = local_window(t, cfg.local_attention // 2 if sliding else None)
         else:
@@ -277,11 +281,9 @@ def raw_queries(loaded, kind: str, text: str = TEXT) -> list[torch.Tensor]:
         else:  # q first along the last axis (Phi-3 qkv_proj, ModernBERT Wqkv)
             found.append(x[:, : h * d].reshape(x.shape[0], h, d).transpose(0, 1))
 
-    name = {"gpt-neox": "query_key_value", "phi3": "qkv_proj", "modernbert": "Wqkv",
-            "gemma3": "q_norm"}[kind]
+    name = {"gpt-neox": "query_key_value", "phi3": "qkv_proj", "modernbert": "Wqkv", "gemma3": "q_norm"}[kind]
     with loaded.unhooked() as model:
-        handles = [m.register_forward_hook(keep) for n, m in model.named_modules()
-                   if n.endswith(name)]
+        handles = [m.register_forward_hook(keep) for n, m in model.named_modules() if n.endswith(name)]
         with torch.no_grad():
             model(**loaded.tokenizer(text, return_tensors="pt"))
         for handle in handles:
@@ -319,12 +321,19 @@ def test_rotary_from_roformer(tmp_path, kind):
 def test_scaled_rotary_comes_from_the_models_own_tables(tmp_path):
     """Llama 3 rotary scaling (rope_type llama3) is neither refused nor re-implemented: the
     model's own (cos, sin) tables are captured, and the check passes at 1e-5."""
-    scaling = {"rope_type": "llama3", "factor": 8.0, "low_freq_factor": 1.0,
-               "high_freq_factor": 4.0, "original_max_position_embeddings": 8, "rope_theta": 500000.0}
+    scaling = {
+        "rope_type": "llama3",
+        "factor": 8.0,
+        "low_freq_factor": 1.0,
+        "high_freq_factor": 4.0,
+        "original_max_position_embeddings": 8,
+        "rope_theta": 500000.0,
+    }
     loaded = open_tiny(tmp_path, "llama", rope_parameters=scaling)
     rec = loaded.record(TEXT)
     np.testing.assert_allclose(rec.probs, own_probs(loaded), atol=1e-6)
     assert check_recording(rec).passed
-    plain = open_tiny(tmp_path / "plain", "llama", rope_parameters={"rope_type": "default",
-                                                                    "rope_theta": 500000.0})
+    plain = open_tiny(
+        tmp_path / "plain", "llama", rope_parameters={"rope_type": "default", "rope_theta": 500000.0}
+    )
     assert np.abs(plain.record(TEXT).probs - rec.probs).max() > 1e-4, "scaling changes attention"

@@ -86,27 +86,56 @@ def tokenizer(encoder: bool) -> PreTrainedTokenizerFast:
     tok = train_wordpiece(CORPUS, vocab_size=200, min_frequency=0)
     if encoder:
         return PreTrainedTokenizerFast(
-            tokenizer_object=tok, unk_token="[UNK]", pad_token="[PAD]", cls_token="[CLS]",
-            sep_token="[SEP]", mask_token="[MASK]",
+            tokenizer_object=tok,
+            unk_token="[UNK]",
+            pad_token="[PAD]",
+            cls_token="[CLS]",
+            sep_token="[SEP]",
+            mask_token="[MASK]",
         )
     tok.post_processor = None  # a decoder's text is not wrapped in [CLS] ... [SEP]
-    return PreTrainedTokenizerFast(tokenizer_object=tok, unk_token="[UNK]", pad_token="[PAD]",
-                                   eos_token="[SEP]", bos_token="[CLS]")
+    return PreTrainedTokenizerFast(
+        tokenizer_object=tok, unk_token="[UNK]", pad_token="[PAD]", eos_token="[SEP]", bos_token="[CLS]"
+    )
 
 
-SMALL = dict(hidden_size=32, num_attention_heads=4, num_hidden_layers=2, intermediate_size=48,
-             max_position_embeddings=64, vocab_size=200)
-LABELS = {"id2label": {0: "repair", 1: "billing", 2: "membership"},
-          "label2id": {"repair": 0, "billing": 1, "membership": 2}}
+SMALL = dict(
+    hidden_size=32,
+    num_attention_heads=4,
+    num_hidden_layers=2,
+    intermediate_size=48,
+    max_position_embeddings=64,
+    vocab_size=200,
+)
+LABELS = {
+    "id2label": {0: "repair", 1: "billing", 2: "membership"},
+    "label2id": {"repair": 0, "billing": 1, "membership": 2},
+}
 
 
 WINDOW = 4  # sliding/local windows of the tiny models: TEXTS[1] (15+ tokens) crosses them all
-DECODER = dict(hidden_size=32, num_attention_heads=4, num_key_value_heads=2, num_hidden_layers=2,
-               intermediate_size=48, vocab_size=200, max_position_embeddings=64, pad_token_id=0,
-               bos_token_id=2, eos_token_id=3)
-DEBERTA = dict(relative_attention=True, pos_att_type=["p2c", "c2p"], position_buckets=4,
-               max_relative_positions=64, share_att_key=True, norm_rel_ebd="layer_norm",
-               position_biased_input=False, type_vocab_size=0)
+DECODER = dict(
+    hidden_size=32,
+    num_attention_heads=4,
+    num_key_value_heads=2,
+    num_hidden_layers=2,
+    intermediate_size=48,
+    vocab_size=200,
+    max_position_embeddings=64,
+    pad_token_id=0,
+    bos_token_id=2,
+    eos_token_id=3,
+)
+DEBERTA = dict(
+    relative_attention=True,
+    pos_att_type=["p2c", "c2p"],
+    position_buckets=4,
+    max_relative_positions=64,
+    share_att_key=True,
+    norm_rel_ebd="layer_norm",
+    position_biased_input=False,
+    type_vocab_size=0,
+)
 
 
 def build(kind: str, **overrides):
@@ -121,16 +150,28 @@ def build(kind: str, **overrides):
             "xlm-roberta": (XLMRobertaConfig, XLMRobertaForSequenceClassification),
             "camembert": (CamembertConfig, CamembertForMaskedLM),
         }[kind]
-        cfg = config_cls(**{**SMALL, "max_position_embeddings": 66}, pad_token_id=0, **LABELS,
-                         **overrides)
+        cfg = config_cls(**{**SMALL, "max_position_embeddings": 66}, pad_token_id=0, **LABELS, **overrides)
         return model_cls(cfg), True
     if kind == "distilbert":
-        cfg = DistilBertConfig(dim=32, n_heads=4, n_layers=2, hidden_dim=48, vocab_size=200,
-                               max_position_embeddings=64, **overrides)
+        cfg = DistilBertConfig(
+            dim=32,
+            n_heads=4,
+            n_layers=2,
+            hidden_dim=48,
+            vocab_size=200,
+            max_position_embeddings=64,
+            **overrides,
+        )
         return DistilBertForMaskedLM(cfg), True
     if kind == "albert":
-        cfg = AlbertConfig(**{**SMALL, "num_hidden_layers": 3}, embedding_size=16,
-                           num_hidden_groups=1, inner_group_num=1, **LABELS, **overrides)
+        cfg = AlbertConfig(
+            **{**SMALL, "num_hidden_layers": 3},
+            embedding_size=16,
+            num_hidden_groups=1,
+            inner_group_num=1,
+            **LABELS,
+            **overrides,
+        )
         return AlbertForSequenceClassification(cfg), True
     if kind == "electra":
         cfg = ElectraConfig(**SMALL, embedding_size=16, **LABELS, **overrides)
@@ -139,20 +180,32 @@ def build(kind: str, **overrides):
         cfg = DebertaV2Config(**LABELS, pad_token_id=0, **{**SMALL, **DEBERTA, **overrides})
         return DebertaV2ForSequenceClassification(cfg), True
     if kind == "modernbert":  # layers 0, 2 global; layer 1 local (|i - j| <= WINDOW)
-        cfg = ModernBertConfig(**{**SMALL, "num_hidden_layers": 3, "local_attention": 2 * WINDOW,
-                                  **overrides},
-                               global_attn_every_n_layers=2, global_rope_theta=160000.0,
-                               local_rope_theta=10000.0, pad_token_id=0, cls_token_id=2,
-                               sep_token_id=3, bos_token_id=2, eos_token_id=3, **LABELS)
+        cfg = ModernBertConfig(
+            **{**SMALL, "num_hidden_layers": 3, "local_attention": 2 * WINDOW, **overrides},
+            global_attn_every_n_layers=2,
+            global_rope_theta=160000.0,
+            local_rope_theta=10000.0,
+            pad_token_id=0,
+            cls_token_id=2,
+            sep_token_id=3,
+            bos_token_id=2,
+            eos_token_id=3,
+            **LABELS,
+        )
         return ModernBertForSequenceClassification(cfg), True
     if kind == "mpnet":
-        cfg = MPNetConfig(**{**SMALL, "max_position_embeddings": 66}, pad_token_id=0, **LABELS,
-                          **overrides)
+        cfg = MPNetConfig(**{**SMALL, "max_position_embeddings": 66}, pad_token_id=0, **LABELS, **overrides)
         return MPNetForSequenceClassification(cfg), True
     if kind in ("gpt2", "gpt2-cls"):
-        cfg = GPT2Config(n_embd=32, n_head=4, n_layer=2, n_positions=64, vocab_size=200,
-                         **({"pad_token_id": 0, **LABELS} if kind == "gpt2-cls" else {}),
-                         **overrides)
+        cfg = GPT2Config(
+            n_embd=32,
+            n_head=4,
+            n_layer=2,
+            n_positions=64,
+            vocab_size=200,
+            **({"pad_token_id": 0, **LABELS} if kind == "gpt2-cls" else {}),
+            **overrides,
+        )
         return (GPT2ForSequenceClassification if kind == "gpt2-cls" else GPT2LMHeadModel)(cfg), False
     if kind == "llama":
         cfg = LlamaConfig(**DECODER, **overrides)
@@ -161,12 +214,17 @@ def build(kind: str, **overrides):
         cfg = LlamaConfig(**DECODER, **LABELS, **overrides)
         return LlamaForSequenceClassification(cfg), False
     if kind == "qwen2":  # q/k/v biases; layer 1 slides (max_window_layers = 1)
-        cfg = Qwen2Config(**DECODER, use_sliding_window=True, sliding_window=WINDOW,
-                          max_window_layers=1, **overrides)
+        cfg = Qwen2Config(
+            **DECODER, use_sliding_window=True, sliding_window=WINDOW, max_window_layers=1, **overrides
+        )
         return Qwen2ForCausalLM(cfg), False
     if kind == "qwen3":  # q/k RMS norms, a classifier head, layer 1 slides
-        cfg = Qwen3Config(**{**DECODER, "head_dim": 8, "sliding_window": WINDOW, **overrides},
-                          use_sliding_window=True, max_window_layers=1, **LABELS)
+        cfg = Qwen3Config(
+            **{**DECODER, "head_dim": 8, "sliding_window": WINDOW, **overrides},
+            use_sliding_window=True,
+            max_window_layers=1,
+            **LABELS,
+        )
         return Qwen3ForSequenceClassification(cfg), False
     if kind == "mistral":
         cfg = MistralConfig(**DECODER, sliding_window=WINDOW, **overrides)
@@ -175,42 +233,105 @@ def build(kind: str, **overrides):
         cfg = GemmaConfig(**DECODER, head_dim=8, **overrides)
         return GemmaForCausalLM(cfg), False
     if kind == "gemma2":  # a small cap so soft-capping changes the scores of a random model
-        cfg = Gemma2Config(**DECODER, head_dim=8, query_pre_attn_scalar=16,
-                           attn_logit_softcapping=0.5, sliding_window=WINDOW, **overrides)
+        cfg = Gemma2Config(
+            **DECODER,
+            head_dim=8,
+            query_pre_attn_scalar=16,
+            attn_logit_softcapping=0.5,
+            sliding_window=WINDOW,
+            **overrides,
+        )
         return Gemma2ForCausalLM(cfg), False
     # layer 0 local (base 10^4), layer 1 global (base 10^6), q/k norms; transformers' Gemma 3
     # attention ignores attn_logit_softcapping, so the recording must not add a cap either
     if kind == "gemma3":
-        cfg = Gemma3TextConfig(**DECODER, head_dim=8, query_pre_attn_scalar=16,
-                               sliding_window=WINDOW, sliding_window_pattern=2,
-                               attn_logit_softcapping=1.0, **overrides)
+        cfg = Gemma3TextConfig(
+            **DECODER,
+            head_dim=8,
+            query_pre_attn_scalar=16,
+            sliding_window=WINDOW,
+            sliding_window_pattern=2,
+            attn_logit_softcapping=1.0,
+            **overrides,
+        )
         return Gemma3ForCausalLM(cfg), False
     if kind == "phi3":  # fused qkv_proj with grouped K/V, half the head rotated
-        cfg = Phi3Config(**DECODER, partial_rotary_factor=0.5, sliding_window=WINDOW,
-                         **overrides)
+        cfg = Phi3Config(**DECODER, partial_rotary_factor=0.5, sliding_window=WINDOW, **overrides)
         return Phi3ForCausalLM(cfg), False
     if kind == "gpt-neox":  # per-head interleaved query_key_value, a quarter rotated
-        cfg = GPTNeoXConfig(hidden_size=32, num_attention_heads=4, num_hidden_layers=2,
-                            intermediate_size=48, vocab_size=200, max_position_embeddings=64,
-                            rotary_pct=0.25, pad_token_id=0, bos_token_id=2, eos_token_id=3,
-                            **overrides)
+        cfg = GPTNeoXConfig(
+            hidden_size=32,
+            num_attention_heads=4,
+            num_hidden_layers=2,
+            intermediate_size=48,
+            vocab_size=200,
+            max_position_embeddings=64,
+            rotary_pct=0.25,
+            pad_token_id=0,
+            bos_token_id=2,
+            eos_token_id=3,
+            **overrides,
+        )
         return GPTNeoXForCausalLM(cfg), False
     if kind == "opt":
-        cfg = OPTConfig(hidden_size=32, num_attention_heads=4, num_hidden_layers=2, ffn_dim=48,
-                        vocab_size=200, max_position_embeddings=64, word_embed_proj_dim=32,
-                        pad_token_id=0, bos_token_id=2, eos_token_id=3, **overrides)
+        cfg = OPTConfig(
+            hidden_size=32,
+            num_attention_heads=4,
+            num_hidden_layers=2,
+            ffn_dim=48,
+            vocab_size=200,
+            max_position_embeddings=64,
+            word_embed_proj_dim=32,
+            pad_token_id=0,
+            bos_token_id=2,
+            eos_token_id=3,
+            **overrides,
+        )
         return OPTForCausalLM(cfg), False
     raise ValueError(kind)
 
 
-FAMILY_KINDS = ["bert", "roberta", "xlm-roberta", "camembert", "distilbert", "albert", "electra",
-                "deberta-v2", "modernbert", "mpnet", "gpt2", "gpt2-cls", "llama", "llama-cls",
-                "qwen2", "qwen3", "mistral", "gemma", "gemma2", "gemma3", "phi3", "gpt-neox",
-                "opt"]
-CAUSAL_KINDS = {"gpt2", "gpt2-cls", "llama", "llama-cls", "qwen2", "qwen3", "mistral", "gemma",
-                "gemma2", "gemma3", "phi3", "gpt-neox", "opt"}
-GROUPED_KINDS = {"llama", "llama-cls", "qwen2", "qwen3", "mistral", "gemma", "gemma2", "gemma3",
-                 "phi3"}
+FAMILY_KINDS = [
+    "bert",
+    "roberta",
+    "xlm-roberta",
+    "camembert",
+    "distilbert",
+    "albert",
+    "electra",
+    "deberta-v2",
+    "modernbert",
+    "mpnet",
+    "gpt2",
+    "gpt2-cls",
+    "llama",
+    "llama-cls",
+    "qwen2",
+    "qwen3",
+    "mistral",
+    "gemma",
+    "gemma2",
+    "gemma3",
+    "phi3",
+    "gpt-neox",
+    "opt",
+]
+CAUSAL_KINDS = {
+    "gpt2",
+    "gpt2-cls",
+    "llama",
+    "llama-cls",
+    "qwen2",
+    "qwen3",
+    "mistral",
+    "gemma",
+    "gemma2",
+    "gemma3",
+    "phi3",
+    "gpt-neox",
+    "opt",
+}
+GROUPED_KINDS = {"llama", "llama-cls", "qwen2", "qwen3", "mistral", "gemma", "gemma2", "gemma3", "phi3"}
 
 
 def save(folder: Path, kind: str, *, safe: bool = True, seed: int = 0, **overrides) -> Path:

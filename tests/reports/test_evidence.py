@@ -33,6 +33,7 @@ def test_value_norms_equal_a_direct_torch_computation(kind, tmp_path):
     last = loaded.n_layers - 1
     grabbed = {}
     value_module = loaded.hooks.value_modules[last]  # value (or fused q|k|v) projection
+
     def grab(module, args, output):
         grabbed["x"] = args[0].detach()
 
@@ -43,8 +44,8 @@ def test_value_norms_equal_a_direct_torch_computation(kind, tmp_path):
     h, d = rec.n_heads, rec.q.shape[-1]
     g = rec.n_kv_heads
     if loaded.family.qkv:  # GPT-2 Conv1D: x @ W + b, values are the last third
-        w = value_module.weight.detach().double()[:, 2 * h * d:]
-        b = value_module.bias.detach().double()[2 * h * d:]
+        w = value_module.weight.detach().double()[:, 2 * h * d :]
+        b = value_module.bias.detach().double()[2 * h * d :]
         values = x @ w + b
     else:
         values = x @ value_module.weight.detach().double().T
@@ -57,8 +58,8 @@ def test_value_norms_equal_a_direct_torch_computation(kind, tmp_path):
     alpha = torch.from_numpy(rec.probs[last]).double()  # (H, T, T)
     total = torch.zeros(rec.n_tokens, w_o.shape[1], dtype=torch.float64)
     for head in range(h):
-        vh = values[:, (head // (h // g)) * d:(head // (h // g) + 1) * d]  # (T, d)
-        f = vh @ w_o[head * d:(head + 1) * d]  # (T, D)
+        vh = values[:, (head // (h // g)) * d : (head // (h // g) + 1) * d]  # (T, d)
+        f = vh @ w_o[head * d : (head + 1) * d]  # (T, D)
         per_head = alpha[head, s][:, None] * f
         total += per_head
     expected = torch.linalg.norm(total, dim=-1).numpy()
@@ -125,10 +126,12 @@ def test_head_importance_unit_norm_and_zero_for_a_silent_head(tmp_path):
     d = loaded.geometry.head_dim
     value = loaded.model.bert.encoder.layer[1].attention.self.value
     with torch.no_grad():
-        value.weight[2 * d:3 * d] = 0.0
-        value.bias[2 * d:3 * d] = 0.0
-    items = [TextItem(t, lab, i) for i, (t, lab) in
-             enumerate(zip(tiny.TEXTS, ["repair", "billing", "membership"], strict=True))]
+        value.weight[2 * d : 3 * d] = 0.0
+        value.bias[2 * d : 3 * d] = 0.0
+    items = [
+        TextItem(t, lab, i)
+        for i, (t, lab) in enumerate(zip(tiny.TEXTS, ["repair", "billing", "membership"], strict=True))
+    ]
     imp = head_importance(loaded, items, batch_size=2)
     raw, norm = imp["importance_raw"], imp["importance"]
     assert raw[1, 2] == 0.0

@@ -34,8 +34,9 @@ def pairs(source) -> list[tuple[str, str | None]]:
 
 
 def test_parquet_written_by_pyarrow_reads_back_as_the_jsonl(jsonl, tmp_path):
-    table = pa.table({"id": list(range(len(jsonl))), "text": [t for t, _ in jsonl],
-                      "label": [y for _, y in jsonl]})
+    table = pa.table(
+        {"id": list(range(len(jsonl))), "text": [t for t, _ in jsonl], "label": [y for _, y in jsonl]}
+    )
     path = tmp_path / "set.parquet"
     pq.write_table(table, path, row_group_size=25)  # several row groups, streamed one by one
     assert pq.ParquetFile(path).num_row_groups == 5
@@ -51,12 +52,11 @@ def test_saved_datasets_read_back_as_the_jsonl(jsonl, tmp_path):
     datasets.Dataset.from_dict({"text": texts, "label": labels}).save_to_disk(tmp_path / "one")
     assert pairs(tmp_path / "one") == jsonl
     names = ["repair", "billing", "membership"]
-    features = datasets.Features({"body": datasets.Value("string"),
-                                  "y": datasets.ClassLabel(names=names)})
-    coded = datasets.Dataset.from_dict({"body": texts, "y": [names.index(y) for y in labels]},
-                                       features=features)
-    datasets.DatasetDict({"train": coded.select(range(10)), "test": coded}).save_to_disk(
-        tmp_path / "dict")
+    features = datasets.Features({"body": datasets.Value("string"), "y": datasets.ClassLabel(names=names)})
+    coded = datasets.Dataset.from_dict(
+        {"body": texts, "y": [names.index(y) for y in labels]}, features=features
+    )
+    datasets.DatasetDict({"train": coded.select(range(10)), "test": coded}).save_to_disk(tmp_path / "dict")
     source = TextSource(tmp_path / "dict", split="test", text_column="body", label_column="y")
     assert pairs(source) == jsonl  # ClassLabel numbers come back as the class names
     with pytest.raises(HeadlightError, match="splits train, test; choose one with --split"):
@@ -70,24 +70,26 @@ def test_column_options_for_csv_and_jsonl(jsonl, tmp_path):
         w = csv.writer(fh)
         w.writerow(["message", "route"])
         w.writerows(jsonl)
-    assert pairs(TextSource(tmp_path / "s.csv", text_column="message",
-                            label_column="route")) == jsonl
-    (tmp_path / "s.jsonl").write_text("".join(json.dumps({"message": t, "route": y}) + "\n"
-                                              for t, y in jsonl), encoding="utf-8")
-    assert pairs(TextSource(tmp_path / "s.jsonl", text_column="message",
-                            label_column="route")) == jsonl
+    assert pairs(TextSource(tmp_path / "s.csv", text_column="message", label_column="route")) == jsonl
+    (tmp_path / "s.jsonl").write_text(
+        "".join(json.dumps({"message": t, "route": y}) + "\n" for t, y in jsonl), encoding="utf-8"
+    )
+    assert pairs(TextSource(tmp_path / "s.jsonl", text_column="message", label_column="route")) == jsonl
 
 
-@pytest.mark.parametrize("case, expect", [
-    ("missing-column", "no column 'text' (columns: body, label)"),
-    ("missing-label-column", "no column 'gold'"),
-    ("int-texts", "column 'text' holds int64, not text"),
-    ("null-text", "row 2: column 'text' is empty (null)"),
-    ("empty", "holds no texts"),
-    ("not-parquet", "is not a readable Parquet file"),
-    ("plain-folder", "not one saved by datasets"),
-    ("txt-columns", "a .txt text set has no columns"),
-])
+@pytest.mark.parametrize(
+    "case, expect",
+    [
+        ("missing-column", "no column 'text' (columns: body, label)"),
+        ("missing-label-column", "no column 'gold'"),
+        ("int-texts", "column 'text' holds int64, not text"),
+        ("null-text", "row 2: column 'text' is empty (null)"),
+        ("empty", "holds no texts"),
+        ("not-parquet", "is not a readable Parquet file"),
+        ("plain-folder", "not one saved by datasets"),
+        ("txt-columns", "a .txt text set has no columns"),
+    ],
+)
 def test_bad_tables_are_one_line_errors(case, expect, tmp_path):
     path = tmp_path / "t.parquet"
     kwargs = {}
@@ -118,19 +120,35 @@ def test_bad_tables_are_one_line_errors(case, expect, tmp_path):
 def test_the_commands_read_parquet_as_the_jsonl(tmp_path, capsys):
     """`headlight shortcuts` and `heads` on a Parquet file print what they print on the jsonl;
     a label the model does not know is a one-line error naming the row."""
-    rows = [json.loads(line) for line in
-            (SAMPLES / "coop_messages.jsonl").read_text("utf-8").splitlines()[:24]]
+    rows = [
+        json.loads(line) for line in (SAMPLES / "coop_messages.jsonl").read_text("utf-8").splitlines()[:24]
+    ]
     jsonl = tmp_path / "s.jsonl"
     jsonl.write_text("".join(json.dumps(r) + "\n" for r in rows), encoding="utf-8")
     parquet = tmp_path / "s.parquet"
-    pq.write_table(pa.table({"text": [r["text"] for r in rows],
-                             "label": [r["label"] for r in rows]}), parquet)
+    pq.write_table(
+        pa.table({"text": [r["text"] for r in rows], "label": [r["label"] for r in rows]}), parquet
+    )
     out = {}
     for name, path in (("jsonl", jsonl), ("parquet", parquet)):
         for cmd in ("shortcuts", "heads"):
             target = tmp_path / f"{cmd}-{name}.json"
-            assert main([cmd, str(MODEL_DIR), "--texts", str(path), "--workers", "1",
-                         "--quiet", "--json", str(target)]) == 0
+            assert (
+                main(
+                    [
+                        cmd,
+                        str(MODEL_DIR),
+                        "--texts",
+                        str(path),
+                        "--workers",
+                        "1",
+                        "--quiet",
+                        "--json",
+                        str(target),
+                    ]
+                )
+                == 0
+            )
             out[cmd, name] = json.loads(target.read_text())
     for cmd in ("shortcuts", "heads"):
         assert out[cmd, "jsonl"] == out[cmd, "parquet"], cmd
@@ -139,5 +157,4 @@ def test_the_commands_read_parquet_as_the_jsonl(tmp_path, capsys):
     capsys.readouterr()
     assert main(["heads", str(MODEL_DIR), "--texts", str(bad), "--quiet"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
-    assert err == ["headlight: error: row 2: label 'refund' is not one of repair, billing, "
-                   "membership"]
+    assert err == ["headlight: error: row 2: label 'refund' is not one of repair, billing, membership"]

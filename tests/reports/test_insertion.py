@@ -33,8 +33,11 @@ def demo():
 @pytest.fixture(scope="module")
 def others():
     """The sample repair and membership messages without the footer."""
-    return [i for i in load_text_set(SAMPLES / "coop_messages.jsonl")
-            if i.label in ("repair", "membership") and "portal" not in i.text]
+    return [
+        i
+        for i in load_text_set(SAMPLES / "coop_messages.jsonl")
+        if i.label in ("repair", "membership") and "portal" not in i.text
+    ]
 
 
 def transformers_predict(texts: list[str]) -> list[str]:
@@ -44,7 +47,7 @@ def transformers_predict(texts: list[str]) -> list[str]:
     out = []
     with torch.no_grad():
         for i in range(0, len(texts), 32):
-            batch = tok(texts[i:i + 32], padding=True, truncation=True, return_tensors="pt")
+            batch = tok(texts[i : i + 32], padding=True, truncation=True, return_tensors="pt")
             out += [model.config.id2label[int(k)] for k in model(**batch).logits.argmax(-1)]
     return out
 
@@ -102,23 +105,54 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
     from viewer.cli import main
 
     out = tmp_path / "insert.json"
-    assert main(["insert", str(MODEL_DIR), "--texts", str(SAMPLES / "coop_messages.jsonl"),
-                 "--word", FOOTER, "--quiet", "--json", str(out)]) == 0
+    assert (
+        main(
+            [
+                "insert",
+                str(MODEL_DIR),
+                "--texts",
+                str(SAMPLES / "coop_messages.jsonl"),
+                "--word",
+                FOOTER,
+                "--quiet",
+                "--json",
+                str(out),
+            ]
+        )
+        == 0
+    )
     data = json.loads(out.read_text(encoding="utf-8"))
     report = insertion_test(demo, load_text_set(SAMPLES / "coop_messages.jsonl"), FOOTER)
     assert {k: v for k, v in data.items() if k != "model"} == report.to_dict()
     printed = capsys.readouterr().out
     assert "billing" in printed and "end" in printed
-    assert main(["insert", str(MODEL_DIR), "--texts", str(SAMPLES / "coop_messages.jsonl"),
-                 "--word", FOOTER, "--class", "parking", "--quiet"]) == 2
+    assert (
+        main(
+            [
+                "insert",
+                str(MODEL_DIR),
+                "--texts",
+                str(SAMPLES / "coop_messages.jsonl"),
+                "--word",
+                FOOTER,
+                "--class",
+                "parking",
+                "--quiet",
+            ]
+        )
+        == 2
+    )
 
 
 def test_surface_form_is_how_the_texts_write_it():
     from viewer.reports.insertion import phrase_keys, surface_form
     from viewer.reports.textsets import TextItem
 
-    items = [TextItem("fix my bike [via portal]", None, 1), TextItem("thanks [via portal]", None, 2),
-             TextItem("sent via portal, thanks", None, 3)]
+    items = [
+        TextItem("fix my bike [via portal]", None, 1),
+        TextItem("thanks [via portal]", None, 2),
+        TextItem("sent via portal, thanks", None, 3),
+    ]
     assert surface_form(items, phrase_keys("via portal")) == "[via portal]"
     assert surface_form(items, phrase_keys("thanks")) == "thanks"
     assert surface_form(items, phrase_keys("zeppelin")) is None
@@ -133,18 +167,50 @@ def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_pat
     from viewer.cli import main
 
     texts = str(SAMPLES / "coop_messages.jsonl")
-    assert main(["card", str(MODEL_DIR), "--texts", texts, "--out", str(tmp_path / "card"),
-                 "--quiet", "--workers", "1"]) == 0
+    assert (
+        main(
+            [
+                "card",
+                str(MODEL_DIR),
+                "--texts",
+                texts,
+                "--out",
+                str(tmp_path / "card"),
+                "--quiet",
+                "--workers",
+                "1",
+            ]
+        )
+        == 0
+    )
     card = json.loads((tmp_path / "card" / "card.json").read_text(encoding="utf-8"))
-    assert main(["insert", str(MODEL_DIR), "--texts", texts, "--word", FOOTER, "--quiet",
-                 "--workers", "1", "--json", str(tmp_path / "insert.json")]) == 0
+    assert (
+        main(
+            [
+                "insert",
+                str(MODEL_DIR),
+                "--texts",
+                texts,
+                "--word",
+                FOOTER,
+                "--quiet",
+                "--workers",
+                "1",
+                "--json",
+                str(tmp_path / "insert.json"),
+            ]
+        )
+        == 0
+    )
     insert = json.loads((tmp_path / "insert.json").read_text(encoding="utf-8"))
     insert.pop("model")
     assert card["insertion"] == insert
     end = next(r for r in insert["positions"] if r["position"] == "end")
     md = (tmp_path / "card" / "card.md").read_text(encoding="utf-8")
-    assert (f"inserting “{FOOTER}” at the end of the {end['tried']} texts not predicted billing "
-            f"flips {end['flips']} to billing (95% Wilson low {end['flip_low']:.3f})") in md
+    assert (
+        f"inserting “{FOOTER}” at the end of the {end['tried']} texts not predicted billing "
+        f"flips {end['flips']} to billing (95% Wilson low {end['flip_low']:.3f})"
+    ) in md
     assert "![Insertion test](figures/insertion.png)" in md
     assert "![Fixation plot](figures/fixation.png)" in md
     assert (tmp_path / "card" / "figures" / "insertion.svg").is_file()

@@ -22,12 +22,24 @@ from viewer.reports.textsets import TextItem, load_text_set, read_text_set
 
 WORDS = "the mechanic trued wheel and she replaced chain a member asked about invoice".split()
 PAIRS = [
-    {"text": "the mechanic told the courier that she replaced the chain", "source": "she",
-     "target": "mechanic", "distractors": ["courier"]},
-    {"text": "a member asked the mechanic about the invoice and she paid it", "source": "she",
-     "target": "member", "distractors": ["mechanic"]},
-    {"text": "the courier left the frame at the workshop because it was bent", "source": "it",
-     "target": "frame", "distractors": ["workshop", "courier"]},
+    {
+        "text": "the mechanic told the courier that she replaced the chain",
+        "source": "she",
+        "target": "mechanic",
+        "distractors": ["courier"],
+    },
+    {
+        "text": "a member asked the mechanic about the invoice and she paid it",
+        "source": "she",
+        "target": "member",
+        "distractors": ["mechanic"],
+    },
+    {
+        "text": "the courier left the frame at the workshop because it was bent",
+        "source": "it",
+        "target": "frame",
+        "distractors": ["workshop", "courier"],
+    },
 ]
 
 
@@ -99,7 +111,7 @@ def test_planted_token_ranks_first(tmp_path):
     model.eval()  # gradients flow in eval mode too; eval turns dropout off
     opt = torch.optim.AdamW(model.parameters(), lr=3e-3)
     for step in range(60):
-        batch = texts[(step * 32) % 256:(step * 32) % 256 + 32]
+        batch = texts[(step * 32) % 256 : (step * 32) % 256 + 32]
         enc = loaded.tokenizer([t for t, _ in batch], padding=True, return_tensors="pt")
         loss = model(**enc, labels=torch.tensor([y for _, y in batch])).loss
         opt.zero_grad()
@@ -118,8 +130,7 @@ def test_planted_token_ranks_first(tmp_path):
 def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
     """count = texts a word occurs in; drop = p(pred) before minus after deleting its tokens."""
     text = "the chain and the wheel"
-    items = [TextItem(text, None, 1), TextItem("the invoice", None, 2),
-             TextItem("the member", None, 3)]
+    items = [TextItem(text, None, 1), TextItem("the invoice", None, 2), TextItem("the member", None, 3)]
     report = shortcut_search(bert, items, phrases=False)
     entry = report.words.entry("the")
     assert entry["count"] == 3
@@ -129,7 +140,8 @@ def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
     keep = [t for t, tok in zip(rec.token_ids, rec.tokens, strict=True) if tok != "chain"]
     after = bert.predict(bert.batch_from_ids([keep]))[0, pred]
     assert report.words.entry("chain")["mean_drop"] == pytest.approx(
-        rec.class_probabilities()[pred] - after, abs=1e-6)
+        rec.class_probabilities()[pred] - after, abs=1e-6
+    )
     # Per-head focus against the model's own output_attentions (transformers): the last
     # layer's attention from [CLS] (position 0) on the sub-tokens of "chain", per head.
     import torch
@@ -142,33 +154,47 @@ def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
     np.testing.assert_allclose(report.words.head_focus("chain"), want, atol=1e-6)
     assert report.words.entry("chain")["focus"] == pytest.approx(want.mean(), abs=1e-6)
     by_class = report.words.entry("chain")["by_class"]
-    assert by_class[bert.labels[pred]]["count"] == 1 and sum(
-        c["count"] for c in by_class.values()) == 1
+    assert by_class[bert.labels[pred]]["count"] == 1 and sum(c["count"] for c in by_class.values()) == 1
 
 
 def test_cli_json_contracts(bert, tmp_path, capsys):
     texts = write_jsonl(tmp_path / "t.jsonl", [{"text": t, "label": "repair"} for t in tiny.TEXTS])
     pairs = write_jsonl(tmp_path / "p.jsonl", PAIRS)
     folder = str(bert.folder)
-    assert main(["heads", folder, "--texts", str(texts), "--json", str(tmp_path / "h.json"),
-                 "--knockout-heads"]) == 0
+    assert (
+        main(["heads", folder, "--texts", str(texts), "--json", str(tmp_path / "h.json"), "--knockout-heads"])
+        == 0
+    )
     h = json.loads((tmp_path / "h.json").read_text())
     assert (h["layers"], h["heads"], h["texts"]) == (2, 4, 3)
-    for key in ("entropy", "distance", "special", "confidence", "importance",
-                "knockout_prob_drop", "knockout_accuracy"):
+    for key in (
+        "entropy",
+        "distance",
+        "special",
+        "confidence",
+        "importance",
+        "knockout_prob_drop",
+        "knockout_accuracy",
+    ):
         assert np.asarray(h[key]).shape == (2, 4), key
     assert main(["links", folder, "--pairs", str(pairs), "--json", str(tmp_path / "l.json")]) == 0
     lk = json.loads((tmp_path / "l.json").read_text())
     assert lk["pairs"] == 3 and np.asarray(lk["accuracy"]).shape == (2, 4)
     assert {"layer", "head", "accuracy"} <= set(lk["best"]) and "nearest_baseline" in lk
     more = write_jsonl(tmp_path / "m.jsonl", [{"text": t} for t in tiny.TEXTS * 2])
-    assert main(["shortcuts", folder, "--texts", str(more), "--json",
-                 str(tmp_path / "s.json")]) == 0
+    assert main(["shortcuts", folder, "--texts", str(more), "--json", str(tmp_path / "s.json")]) == 0
     sc = json.loads((tmp_path / "s.json").read_text())
     assert sc["texts"] == 6
-    assert sc["tokens"] and set(sc["tokens"][0]) == {"token", "count", "flip_rate", "flip_low",
-                                                     "mean_drop", "focus", "head_focus",
-                                                     "by_class"}
+    assert sc["tokens"] and set(sc["tokens"][0]) == {
+        "token",
+        "count",
+        "flip_rate",
+        "flip_low",
+        "mean_drop",
+        "focus",
+        "head_focus",
+        "by_class",
+    }
     assert sc["classes"] == list(bert.labels)
     assert len(sc["tokens"][0]["head_focus"]) == bert.n_heads
     assert set(sc["tokens"][0]["by_class"]) == set(bert.labels)
@@ -179,8 +205,9 @@ def test_cli_json_contracts(bert, tmp_path, capsys):
     assert "head summaries: 100%" in err and "word knockout: 100%" in err and "1/1" in err
 
 
-@pytest.mark.parametrize("case", ["empty", "not-utf8", "missing-word", "half-labelled",
-                                  "bad-label", "encoder-shortcuts"])
+@pytest.mark.parametrize(
+    "case", ["empty", "not-utf8", "missing-word", "half-labelled", "bad-label", "encoder-shortcuts"]
+)
 def test_bad_input_is_one_line_exit_2(case, bert, tmp_path, capsys, minilm_dir):
     folder = str(bert.folder)
     if case == "empty":
@@ -192,8 +219,9 @@ def test_bad_input_is_one_line_exit_2(case, bert, tmp_path, capsys, minilm_dir):
         f.write_bytes("caf\xe9 au lait\n".encode("latin-1"))
         argv, expect = ["shortcuts", folder, "--texts", str(f)], "not UTF-8"
     elif case == "missing-word":
-        rows = PAIRS + [{"text": "the frame is bent", "source": "it", "target": "frame",
-                         "distractors": ["wheel"]}]
+        rows = PAIRS + [
+            {"text": "the frame is bent", "source": "it", "target": "frame", "distractors": ["wheel"]}
+        ]
         f = write_jsonl(tmp_path / "p.jsonl", rows)
         argv, expect = ["links", folder, "--pairs", str(f)], "line 4"
     elif case == "half-labelled":

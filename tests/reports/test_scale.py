@@ -72,9 +72,10 @@ def inputs_of(name, items, pairs):
 
 
 def run_all(demo, items, pairs, options):
-    return {name: kind.state(run_shards(kind, demo, inputs_of(name, items, pairs),
-                                        options=options))
-            for name, kind in KINDS.items()}
+    return {
+        name: kind.state(run_shards(kind, demo, inputs_of(name, items, pairs), options=options))
+        for name, kind in KINDS.items()
+    }
 
 
 @pytest.fixture(scope="module")
@@ -98,8 +99,9 @@ def test_serial_run_against_one_accumulator_and_a_word_count(demo, items, serial
         whole.add(att.probs, att.special, demo.family.causal)
     merged = KINDS["heads"].load(serial["heads"]).stats.summary()
     for metric in METRICS:
-        np.testing.assert_allclose(getattr(merged, metric), getattr(whole.summary(), metric),
-                                   rtol=0, atol=1e-12, err_msg=metric)
+        np.testing.assert_allclose(
+            getattr(merged, metric), getattr(whole.summary(), metric), rtol=0, atol=1e-12, err_msg=metric
+        )
     report = KINDS["shortcuts"].load(serial["shortcuts"])
     for word in ("portal", "via", "the"):
         assert report.words.entry(word)["count"] == sum(word in word_spans(i.text) for i in items)
@@ -110,7 +112,7 @@ def test_shards_merge_in_shard_order_whatever_order_they_finish(demo, items, mon
     """An engine that hands the shards back last first still gives the shard-order merge."""
 
     class Reversed(workers.InProcess):
-        ahead = 10 ** 6
+        ahead = 10**6
 
         def run(self, kind, shards, check, may_start):
             yield from reversed(list(super().run(kind, shards, check, may_start)))
@@ -134,8 +136,9 @@ class Threads(workers._Submitting):
         self.pool = ThreadPoolExecutor(1)  # one LoadedModel runs one forward at a time
 
     def _submit(self, spec, kind, shard, run):
-        return self.pool.submit(lambda: (shard.index, len(shard.items),
-                                         kind.state(kind.map(self.loaded, shard, lambda: None))))
+        return self.pool.submit(
+            lambda: (shard.index, len(shard.items), kind.state(kind.map(self.loaded, shard, lambda: None)))
+        )
 
     def _wait(self, futures):
         from concurrent.futures import FIRST_COMPLETED, wait
@@ -146,8 +149,7 @@ class Threads(workers._Submitting):
         self.pool.shutdown()
 
 
-def test_a_run_resumed_on_submitting_workers_computes_the_rest(demo, items, tmp_path,
-                                                               monkeypatch):
+def test_a_run_resumed_on_submitting_workers_computes_the_rest(demo, items, tmp_path, monkeypatch):
     """Stopped after three shards, resumed on an engine that submits shards (as the pool and
     the cluster do): it must compute every missing shard and give the uninterrupted result."""
     kind = ShortcutKind(batch_size=16, phrases=False)
@@ -156,8 +158,15 @@ def test_a_run_resumed_on_submitting_workers_computes_the_rest(demo, items, tmp_
     inputs = {"name": "the first 48 sample messages"}
     done = []
     with pytest.raises(Cancelled):
-        run_shards(kind, demo, items, options=options, inputs=inputs,
-                   on_shard=done.append, cancelled=lambda: len(done) >= 3)
+        run_shards(
+            kind,
+            demo,
+            items,
+            options=options,
+            inputs=inputs,
+            on_shard=done.append,
+            cancelled=lambda: len(done) >= 3,
+        )
     (folder,) = tmp_path.iterdir()
     assert len(list(folder.glob("shard-*.npz"))) == 3
     monkeypatch.setattr(workers, "engine_for", lambda options, loaded, n: Threads(loaded))
@@ -181,11 +190,9 @@ def test_a_dask_cluster_gives_the_serial_numbers(demo, items, pairs, serial):
     """A real distributed.LocalCluster with two worker processes, not a mock."""
     from distributed import LocalCluster
 
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                      dashboard_address=None) as cluster:
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
         try:
-            got = run_all(demo, items, pairs,
-                          RunOptions(cluster=cluster.scheduler_address, shard_size=SHARD))
+            got = run_all(demo, items, pairs, RunOptions(cluster=cluster.scheduler_address, shard_size=SHARD))
         finally:
             workers.close_engines()
     assert_same(got, serial)
@@ -203,11 +210,24 @@ def test_a_killed_run_resumes_to_the_serial_result(demo, items, tmp_path, monkey
     texts = tmp_path / "texts.jsonl"
     texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in items), "utf-8")
     work = tmp_path / "work"
-    argv = ["shortcuts", str(MODEL_DIR), "--texts", str(texts), "--workers", "1",
-            "--shard-size", "4", "--no-phrases", "--work", str(work), "--quiet"]
+    argv = [
+        "shortcuts",
+        str(MODEL_DIR),
+        "--texts",
+        str(texts),
+        "--workers",
+        "1",
+        "--shard-size",
+        "4",
+        "--no-phrases",
+        "--work",
+        str(work),
+        "--quiet",
+    ]
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    proc = subprocess.Popen([sys.executable, "-m", "viewer", *argv], env=env,
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "viewer", *argv], env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL
+    )
     deadline = time.monotonic() + 120
     try:
         while len(list(work.glob("*/shard-*.npz"))) < 3:
@@ -233,8 +253,7 @@ def test_a_killed_run_resumes_to_the_serial_result(demo, items, tmp_path, monkey
     assert main([*argv, "--json", str(tmp_path / "resumed.json")]) == 0
     assert len(calls) == 12 - kept and not set(calls) & set(range(kept))
     assert (folder / "result.npz").exists() and not list(folder.glob("shard-*.npz"))
-    reference = shortcuts_data(demo, texts, phrases=False, run=RunOptions(shard_size=4),
-                               quiet=True)
+    reference = shortcuts_data(demo, texts, phrases=False, run=RunOptions(shard_size=4), quiet=True)
     reference.pop("model")
     resumed = json.loads((tmp_path / "resumed.json").read_text())
     resumed.pop("model")
@@ -253,12 +272,12 @@ def test_a_killed_run_resumes_to_the_serial_result(demo, items, tmp_path, monkey
 
 def test_run_folders_are_keyed_by_content_and_options_and_hold_no_code(demo, items, tmp_path):
     texts = tmp_path / "t.jsonl"
-    texts.write_text("".join(json.dumps({"text": i.text, "label": i.label}) + "\n"
-                             for i in items[:12]), encoding="utf-8")
+    texts.write_text(
+        "".join(json.dumps({"text": i.text, "label": i.label}) + "\n" for i in items[:12]), encoding="utf-8"
+    )
     work = tmp_path / "work"
     for phrases in (True, False, True):
-        shortcuts_data(demo, texts, phrases=phrases, quiet=True,
-                       run=RunOptions(work=work, shard_size=4))
+        shortcuts_data(demo, texts, phrases=phrases, quiet=True, run=RunOptions(work=work, shard_size=4))
     folders = sorted(work.iterdir())
     assert len(folders) == 2  # phrases on / off; the third run found the first folder
     key = json.loads((folders[0] / "run.json").read_text())
@@ -278,8 +297,7 @@ def test_window_scan_equals_heads_and_the_models_own_predictions(demo, items, tm
     """scan_text_set's head summary is `headlight heads`' to the bit (same kind, same shards);
     its predictions are transformers' own argmax of the classifier's logits."""
     texts = tmp_path / "t.jsonl"
-    texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in items),
-                     encoding="utf-8")
+    texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in items), encoding="utf-8")
     scan = scan_text_set(demo, items)
     heads = heads_data(demo, texts, importance=False, quiet=True)
     summary = scan.heads.to_dict()
@@ -296,8 +314,13 @@ def test_window_scan_equals_heads_and_the_models_own_predictions(demo, items, tm
 
 def test_progress_counts_texts_and_cancel_stops_between_shards(demo, items):
     seen = []
-    report = shortcut_search(demo, items[:20], phrases=False, progress=lambda d, t: seen.append(
-        (d, t)), options=RunOptions(shard_size=SHARD))
+    report = shortcut_search(
+        demo,
+        items[:20],
+        phrases=False,
+        progress=lambda d, t: seen.append((d, t)),
+        options=RunOptions(shard_size=SHARD),
+    )
     assert seen == [(8, 20), (16, 20), (20, 20)] and report.texts == 20
 
 
@@ -305,8 +328,14 @@ def test_cancel_in_process_stops_before_the_next_shard(demo, items):
     threads = torch.get_num_threads()
     done = []
     with pytest.raises(Cancelled):
-        shortcut_search(demo, items, phrases=False, options=RunOptions(shard_size=SHARD),
-                        progress=lambda d, t: done.append(d), cancelled=lambda: len(done) >= 2)
+        shortcut_search(
+            demo,
+            items,
+            phrases=False,
+            options=RunOptions(shard_size=SHARD),
+            progress=lambda d, t: done.append(d),
+            cancelled=lambda: len(done) >= 2,
+        )
     assert done == [8, 16]
     assert torch.get_num_threads() == threads  # the run's one torch thread is given back
 

@@ -43,17 +43,38 @@ class FakeView:
         self.timers: list = []
         self.evidence = True
 
-    def show_error(self, message): self.errors.append(message)
-    def set_status(self, text): self.status.append(text)
-    def editor_text(self): return self.text
-    def set_editor_text(self, text): self.text = text
-    def model_opening(self, folder): pass
-    def model_opened(self, info, remember): self.opened.append((info.folder, remember))
-    def show_panel(self, name): self.panels.append(name)
-    def evidence_after_runs(self): return self.evidence
-    def later(self, msecs, fn): self.timers.append(fn)
-    def figures_ready(self, seconds): pass
-    def card_written(self, path): pass
+    def show_error(self, message):
+        self.errors.append(message)
+
+    def set_status(self, text):
+        self.status.append(text)
+
+    def editor_text(self):
+        return self.text
+
+    def set_editor_text(self, text):
+        self.text = text
+
+    def model_opening(self, folder):
+        pass
+
+    def model_opened(self, info, remember):
+        self.opened.append((info.folder, remember))
+
+    def show_panel(self, name):
+        self.panels.append(name)
+
+    def evidence_after_runs(self):
+        return self.evidence
+
+    def later(self, msecs, fn):
+        self.timers.append(fn)
+
+    def figures_ready(self, seconds):
+        pass
+
+    def card_written(self, path):
+        pass
 
 
 def info(folder: str = "/m") -> ModelInfo:
@@ -131,10 +152,15 @@ def test_evidence_for_an_older_run_is_dropped():
 
 def test_restoring_a_session_opens_its_model_then_its_files_and_text(tmp_path):
     c, state, worker, view = make()
-    session = sessions.Session(model="/ckpt", text="a text", text_set=str(tmp_path / "t.jsonl"),
-                               item=2, link_pairs=str(tmp_path / "p.jsonl"),
-                               selection={"layer": 1, "head": None, "metric": "distance"},
-                               notes="n")
+    session = sessions.Session(
+        model="/ckpt",
+        text="a text",
+        text_set=str(tmp_path / "t.jsonl"),
+        item=2,
+        link_pairs=str(tmp_path / "p.jsonl"),
+        selection={"layer": 1, "head": None, "metric": "distance"},
+        notes="n",
+    )
     c.restore_session(session)
     assert worker.kinds() == ["open"] and worker.submitted[0][2] == ("main", "/ckpt", None)
     assert view.text == "a text" and state.notes == "n"

@@ -73,8 +73,9 @@ def _grouped(x: np.ndarray, groups: int) -> np.ndarray:
 class _LayerScores:
     """Float64 scores of one layer, block by block of query rows (terms per viewer.core.terms)."""
 
-    def __init__(self, q: np.ndarray, k: np.ndarray, scale: float, causal: bool,
-                 terms: ScoreTerms, layer: int):
+    def __init__(
+        self, q: np.ndarray, k: np.ndarray, scale: float, causal: bool, terms: ScoreTerms, layer: int
+    ):
         self.n_heads, self.n_tokens = q.shape[0], q.shape[1]
         if self.n_heads % k.shape[0]:
             raise ValueError(f"{self.n_heads} query heads cannot share {k.shape[0]} key heads")
@@ -130,8 +131,9 @@ def _row_blocks(n_rows: int, row_entries: int, row_products: int = 0):
         yield slice(start, min(n_rows, start + size))
 
 
-def attention_probabilities(q: np.ndarray, k: np.ndarray, scale: float, causal: bool,
-                            terms: ScoreTerms | None = None, layer: int = 0) -> np.ndarray:
+def attention_probabilities(
+    q: np.ndarray, k: np.ndarray, scale: float, causal: bool, terms: ScoreTerms | None = None, layer: int = 0
+) -> np.ndarray:
     """softmax(Q Kᵀ · scale + terms + M) in float64 for one layer.
 
     q: (H, T, d) queries; k: (G, T, d) keys (G divides H); ``terms`` the recording's score
@@ -172,8 +174,7 @@ class CheckResult:
     @property
     def passed(self) -> bool:
         """Both the probabilities and the head outputs agree within the tolerance."""
-        return bool(self.max_abs_error <= self.tolerance
-                    and self.max_context_error <= self.tolerance)
+        return bool(self.max_abs_error <= self.tolerance and self.max_context_error <= self.tolerance)
 
     @property
     def layer_errors(self) -> np.ndarray:
@@ -211,8 +212,7 @@ class CheckResult:
 def _layer_errors(rec: Recording, layer: int) -> tuple[np.ndarray, np.ndarray]:
     """(H,) max abs error of the re-derived probabilities and of probs @ V, for one layer."""
     n_heads, t = rec.n_heads, rec.n_tokens
-    scores = _LayerScores(rec.q[layer], rec.k[layer], rec.scale[layer], rec.causal, rec.terms,
-                          layer)
+    scores = _LayerScores(rec.q[layer], rec.k[layer], rec.scale[layer], rec.causal, rec.terms, layer)
     v = np.asarray(rec.v[layer], dtype=np.float64)  # (G, T, d)
     own, context = rec.probs[layer], rec.context[layer]  # (H, T, T), (H, T, d)
     prob_err = np.zeros(n_heads)
@@ -234,8 +234,9 @@ def _layer_errors(rec: Recording, layer: int) -> tuple[np.ndarray, np.ndarray]:
     return prob_err, ctx_err
 
 
-def check_recording(rec: Recording, tolerance: float = DEFAULT_TOLERANCE,
-                    threads: int | None = None) -> CheckResult:
+def check_recording(
+    rec: Recording, tolerance: float = DEFAULT_TOLERANCE, threads: int | None = None
+) -> CheckResult:
     """Re-derive every layer's and head's probabilities from the recording's Q/K and compare.
 
     Also checks that each captured head output equals the model's probabilities times the

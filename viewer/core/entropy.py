@@ -44,8 +44,7 @@ def row_entropy(probs: np.ndarray) -> np.ndarray:
     return entr(np.clip(a, 0.0, None)).sum(axis=-1)  # (..., T)
 
 
-def normalized_entropy(probs: np.ndarray, causal: bool,
-                       visible: np.ndarray | None = None) -> np.ndarray:
+def normalized_entropy(probs: np.ndarray, causal: bool, visible: np.ndarray | None = None) -> np.ndarray:
     """Row entropy divided by the log of the row's visible key count: (..., T, T) -> (..., T).
 
     H_i / ln n_i, with n_i = i + 1 for a causal row and n_i = T otherwise, or n_i the number of

@@ -122,8 +122,9 @@ class HeadStats:
         # (M, L) rows counted per metric and layer
         self._rows = np.zeros((len(METRICS), self.n_layers), dtype=np.int64)
 
-    def add(self, probs: np.ndarray, special: np.ndarray, causal: bool,
-            visible: np.ndarray | None = None) -> None:
+    def add(
+        self, probs: np.ndarray, special: np.ndarray, causal: bool, visible: np.ndarray | None = None
+    ) -> None:
         """Add one text's attention, probs (L, H, T, T), special (T,) bool.
 
         visible: (L, T, T) or (T, T) bool keys each query row sees (``Recording.key_masks()``);
@@ -132,9 +133,7 @@ class HeadStats:
         probs = np.asarray(probs)
         special = np.asarray(special, dtype=bool)
         if probs.ndim != 4 or probs.shape[:2] != (self.n_layers, self.n_heads):
-            raise ValueError(
-                f"probs must be (L={self.n_layers}, H={self.n_heads}, T, T), got {probs.shape}"
-            )
+            raise ValueError(f"probs must be (L={self.n_layers}, H={self.n_heads}, T, T), got {probs.shape}")
         t = probs.shape[2]
         if probs.shape[3] != t or special.shape != (t,):
             raise ValueError(f"probs {probs.shape} and special {special.shape} disagree on T")
@@ -184,15 +183,17 @@ class HeadStats:
 
     def state(self) -> dict[str, np.ndarray]:
         """The accumulator as plain arrays (no pickle needed); ``from_state`` restores it exactly."""
-        return {"texts": np.array(self.texts, dtype=np.int64), "sums": self._sums.copy(),
-                "rows": self._rows.copy()}
+        return {
+            "texts": np.array(self.texts, dtype=np.int64),
+            "sums": self._sums.copy(),
+            "rows": self._rows.copy(),
+        }
 
     @classmethod
     def from_state(cls, state: dict[str, np.ndarray]) -> HeadStats:
         sums = np.asarray(state["sums"], dtype=np.float64)  # (M, L, H)
         rows = np.asarray(state["rows"], dtype=np.int64)  # (M, L) rows counted per layer
-        if (sums.ndim != 3 or sums.shape[0] != len(METRICS)
-                or rows.shape != (len(METRICS), sums.shape[1])):
+        if sums.ndim != 3 or sums.shape[0] != len(METRICS) or rows.shape != (len(METRICS), sums.shape[1]):
             raise ValueError(f"not a head-stats state: sums {sums.shape}, rows {rows.shape}")
         stats = cls(sums.shape[1], sums.shape[2])
         stats.texts = int(state["texts"])

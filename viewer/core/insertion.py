@@ -133,8 +133,9 @@ class InsertionTally:
             "texts": np.array([self.texts, self.skipped], dtype=np.int64),
             "counts": np.array([[t.tried, t.flips] for t in tallies], np.int64).reshape(-1, 2),
             "gain": np.array([t.gain for t in tallies], dtype=np.float64),
-            "flipped": np.array([[k, i] for k, t in enumerate(tallies) for i in t.flipped],
-                                dtype=np.int64).reshape(-1, 2),
+            "flipped": np.array(
+                [[k, i] for k, t in enumerate(tallies) for i in t.flipped], dtype=np.int64
+            ).reshape(-1, 2),
         }
 
     @classmethod
@@ -143,13 +144,17 @@ class InsertionTally:
         tally = cls(names)
         tally.texts, tally.skipped = (int(v) for v in state["texts"])
         tallies = list(tally.positions.values())
-        for t, (tried, flips), gain in zip(tallies, np.asarray(state["counts"]).tolist(),
-                                           np.asarray(state["gain"]).tolist(), strict=True):
+        for t, (tried, flips), gain in zip(
+            tallies, np.asarray(state["counts"]).tolist(), np.asarray(state["gain"]).tolist(), strict=True
+        ):
             t.tried, t.flips, t.gain = tried, flips, gain
         for k, index in np.asarray(state["flipped"]).tolist():
             tallies[k].flipped.append(index)
         return tally
 
     def to_dict(self) -> dict[str, Any]:
-        return {"texts": self.texts, "skipped": self.skipped,
-                "positions": [self.entry(p) for p in self.positions]}
+        return {
+            "texts": self.texts,
+            "skipped": self.skipped,
+            "positions": [self.entry(p) for p in self.positions],
+        }

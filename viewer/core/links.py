@@ -132,9 +132,7 @@ class LinkPair:
         return f"line {self.line}" if self.line else "link pair"
 
 
-def make_pair(
-    text: str, source: str, target: str, distractors: Sequence[str], line: int = 0
-) -> LinkPair:
+def make_pair(text: str, source: str, target: str, distractors: Sequence[str], line: int = 0) -> LinkPair:
     """Locate every word of a pair in its text; HeadlightError when a word is missing.
 
     Also refused: two of the words resolving to the same occurrence (e.g. target "it" and
@@ -145,13 +143,9 @@ def make_pair(
     target_span = _locate(text, target, "target", where)
     d_spans = tuple(_locate(text, w, "distractor", where) for w in distractors)
     seen: dict[Span, str] = {}
-    for word, span in zip(
-        (source, target, *distractors), (source_span, target_span, *d_spans), strict=True
-    ):
+    for word, span in zip((source, target, *distractors), (source_span, target_span, *d_spans), strict=True):
         if span in seen:
-            raise HeadlightError(
-                f"{where}: '{word}' and '{seen[span]}' are the same word in the text"
-            )
+            raise HeadlightError(f"{where}: '{word}' and '{seen[span]}' are the same word in the text")
         seen[span] = word
     return LinkPair(
         text=text,
@@ -189,9 +183,7 @@ def _parse_line(raw: str, number: int) -> LinkPair:
     except json.JSONDecodeError as exc:
         raise HeadlightError(f"{where}: not valid JSON ({exc.msg} at column {exc.colno})") from None
     if not isinstance(obj, dict):
-        raise HeadlightError(
-            f"{where}: expected a JSON object with text, source, target and distractors"
-        )
+        raise HeadlightError(f"{where}: expected a JSON object with text, source, target and distractors")
     for name in ("text", "source", "target", "distractors"):
         if name not in obj:
             raise HeadlightError(f"{where}: missing field '{name}'")
@@ -270,9 +262,7 @@ def pair_tokens(pair: LinkPair, offsets: np.ndarray) -> PairTokens:
     candidates = tuple(word_token_indices(s, offsets) for s in pair.candidate_spans)
     for word, toks in zip((pair.source, *pair.candidates), (source, *candidates), strict=True):
         if toks.size == 0:
-            raise HeadlightError(
-                f"{pair.where}: word '{word}' has no tokens (was the text truncated?)"
-            )
+            raise HeadlightError(f"{pair.where}: word '{word}' has no tokens (was the text truncated?)")
     return PairTokens(source=source, candidates=candidates)
 
 
@@ -333,9 +323,7 @@ class LinkAccuracy:
 
     def add(self, result: PairResult) -> None:
         if result.correct.shape != (self.n_layers, self.n_heads):
-            raise ValueError(
-                f"result is {result.correct.shape}, tally is ({self.n_layers}, {self.n_heads})"
-            )
+            raise ValueError(f"result is {result.correct.shape}, tally is ({self.n_layers}, {self.n_heads})")
         self.pairs += 1
         self._correct += result.correct
         self._nearest += int(result.nearest)
@@ -350,8 +338,11 @@ class LinkAccuracy:
 
     def state(self) -> dict[str, np.ndarray]:
         """The tally as plain arrays; ``from_state`` restores it exactly."""
-        return {"pairs": np.array(self.pairs, dtype=np.int64), "correct": self._correct.copy(),
-                "nearest": np.array(self._nearest, dtype=np.int64)}
+        return {
+            "pairs": np.array(self.pairs, dtype=np.int64),
+            "correct": self._correct.copy(),
+            "nearest": np.array(self._nearest, dtype=np.int64),
+        }
 
     @classmethod
     def from_state(cls, state: dict[str, np.ndarray]) -> LinkAccuracy:

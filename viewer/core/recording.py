@@ -99,8 +99,7 @@ class Recording:
         if self.causal and self.n_tokens > 1:
             return True
         layers = range(self.n_layers) if layer is None else (layer,)
-        return any(self.terms.layer_window(i) is not None and not self.key_mask(i).all()
-                   for i in layers)
+        return any(self.terms.layer_window(i) is not None and not self.key_mask(i).all() for i in layers)
 
     def class_probabilities(self) -> np.ndarray:
         """(C,) softmax of classifier logits (float64); empty for non-classifiers."""

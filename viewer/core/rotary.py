@@ -19,9 +19,7 @@ from __future__ import annotations
 import numpy as np
 
 
-def rotary_tables(
-    n_positions: int, head_dim: int, base: float = 10000.0
-) -> tuple[np.ndarray, np.ndarray]:
+def rotary_tables(n_positions: int, head_dim: int, base: float = 10000.0) -> tuple[np.ndarray, np.ndarray]:
     """(cos, sin) tables of shape (T, d) for positions 0..T-1 (float64)."""
     if head_dim % 2:
         raise ValueError(f"rotary embedding needs an even head size, got {head_dim}")

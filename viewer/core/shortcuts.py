@@ -163,13 +163,15 @@ class KnockoutTally:
             s[3] += float(o.focus)
             if self.heads:
                 if len(o.head_focus) != self.heads:
-                    raise ValueError(f"{len(o.head_focus)} head focus values for a tally of "
-                                     f"{self.heads} heads")
+                    raise ValueError(
+                        f"{len(o.head_focus)} head focus values for a tally of {self.heads} heads"
+                    )
                 self._heads[key] += np.asarray(o.head_focus, dtype=np.float64)
             if self.labels:
                 if not 0 <= o.predicted < len(self.labels):
-                    raise ValueError(f"predicted class {o.predicted} is not one of "
-                                     f"{len(self.labels)} classes")
+                    raise ValueError(
+                        f"predicted class {o.predicted} is not one of {len(self.labels)} classes"
+                    )
                 self._classes[key][o.predicted] += (1, int(bool(o.flipped)))
 
     def merge(self, other: KnockoutTally) -> KnockoutTally:
@@ -199,10 +201,12 @@ class KnockoutTally:
             "labels": _json_bytes(list(self.labels)),
             "counts": np.array([[r[0], r[1]] for r in rows], dtype=np.int64).reshape(-1, 2),
             "sums": np.array([[r[2], r[3]] for r in rows], dtype=np.float64).reshape(-1, 2),
-            "head_focus": np.array([self._heads[k] for k in keys] if self.heads else [],
-                                   dtype=np.float64).reshape(len(keys), self.heads),
-            "classes": np.array([self._classes[k] for k in keys] if self.labels else [],
-                                dtype=np.int64).reshape(len(keys), len(self.labels), 2),
+            "head_focus": np.array(
+                [self._heads[k] for k in keys] if self.heads else [], dtype=np.float64
+            ).reshape(len(keys), self.heads),
+            "classes": np.array(
+                [self._classes[k] for k in keys] if self.labels else [], dtype=np.int64
+            ).reshape(len(keys), len(self.labels), 2),
         }
 
     @classmethod
@@ -215,7 +219,8 @@ class KnockoutTally:
         tally = cls(_from_json_bytes(state["labels"]), heads.shape[1])
         tally.texts = int(state["texts"])
         for n, (key, (count, flips), (drop, focus)) in enumerate(
-                zip(keys, counts.tolist(), sums.tolist(), strict=True)):
+            zip(keys, counts.tolist(), sums.tolist(), strict=True)
+        ):
             tally._sums[key] = [count, flips, drop, focus]
             if tally.heads:
                 tally._heads[key] = heads[n].astype(np.float64, copy=True)
@@ -254,7 +259,8 @@ class KnockoutTally:
         if self.labels:
             out["by_class"] = {
                 label: {"count": int(n), "flips": int(f), "flip_rate": f / n if n else None}
-                for label, (n, f) in zip(self.labels, self._classes[key].tolist(), strict=True)}
+                for label, (n, f) in zip(self.labels, self._classes[key].tolist(), strict=True)
+            }
         return out
 
     def ranking(self, min_count: int = MIN_TEXTS, limit: int | None = None) -> list[dict[str, Any]]:

@@ -32,8 +32,7 @@ def summary_attention(attention: np.ndarray, summary: int, head: int | None = No
     return a[:, summary, :].mean(axis=0, dtype=np.float64)
 
 
-def summary_share(attention: np.ndarray, summary: int, tokens: np.ndarray,
-                  head: int | None = None) -> float:
+def summary_share(attention: np.ndarray, summary: int, tokens: np.ndarray, head: int | None = None) -> float:
     """Share of the summary token's attention that lands on ``tokens``: Σ_{j ∈ tokens} Ā[s, j].
 
     attention (H, T, T) of the last layer. With the head mean this is a word's ``focus`` in the

@@ -67,12 +67,13 @@ class ScoreTerms:
 
 
 def _any(values: np.ndarray, layer: int | None, test) -> bool:
-    rows = values if layer is None else values[layer:layer + 1]
+    rows = values if layer is None else values[layer : layer + 1]
     return any(bool(test(np.asarray(r))) for r in rows)
 
 
-def visible_rows(rows: slice, n_tokens: int, causal: bool,
-                 window: tuple[int, int] | None) -> np.ndarray | None:
+def visible_rows(
+    rows: slice, n_tokens: int, causal: bool, window: tuple[int, int] | None
+) -> np.ndarray | None:
     """(rows, T) bool: which keys the query rows see; None when they see every key.
 
     Key j is visible from query i when j <= i (causal), i − j <= before and j − i <= after
@@ -100,11 +101,13 @@ def visible_mask(n_tokens: int, causal: bool, window: tuple[int, int] | None = N
     return np.ones((n_tokens, n_tokens), dtype=bool) if mask is None else mask
 
 
-def layer_masks(n_tokens: int, causal: bool, window: np.ndarray | None,
-                n_layers: int) -> np.ndarray | None:
+def layer_masks(n_tokens: int, causal: bool, window: np.ndarray | None, n_layers: int) -> np.ndarray | None:
     """(L, T, T) bool visible keys per layer, or None when every layer sees every key."""
-    windows = [None] * n_layers if window is None else [
-        None if (w < 0).all() else (int(w[0]), int(w[1])) for w in np.asarray(window)]
+    windows = (
+        [None] * n_layers
+        if window is None
+        else [None if (w < 0).all() else (int(w[0]), int(w[1])) for w in np.asarray(window)]
+    )
     if not causal and all(w is None for w in windows):
         return None
     return np.stack([visible_mask(n_tokens, causal, w) for w in windows])
@@ -118,8 +121,14 @@ def table_rows(terms: ScoreTerms) -> int:
     return 0
 
 
-def add_relative_terms(scores: np.ndarray, terms: ScoreTerms, layer: int, rows: slice,
-                       q_scaled: np.ndarray, p2c_table: np.ndarray | None) -> None:
+def add_relative_terms(
+    scores: np.ndarray,
+    terms: ScoreTerms,
+    layer: int,
+    rows: slice,
+    q_scaled: np.ndarray,
+    p2c_table: np.ndarray | None,
+) -> None:
     """Add the c2p, p2c and bias terms of ``rows`` to ``scores`` (H, rows, T), in place.
 
     q_scaled: (H, T, d) queries already multiplied by the layer's scale; p2c_table: (H, T, R)
@@ -131,8 +140,7 @@ def add_relative_terms(scores: np.ndarray, terms: ScoreTerms, layer: int, rows: 
     if terms.pos_key is not None:
         table = np.asarray(terms.pos_key[layer], dtype=np.float64)  # (H, R, d)
         c2p = np.matmul(q_scaled[:, rows], table.transpose(0, 2, 1))  # (H, rows, R)
-        scores += np.take_along_axis(c2p, np.broadcast_to(index, (c2p.shape[0], *index.shape)),
-                                     axis=2)
+        scores += np.take_along_axis(c2p, np.broadcast_to(index, (c2p.shape[0], *index.shape)), axis=2)
     if p2c_table is not None:
         cols = np.arange(index.shape[1])[None, :]  # (1, T) key j
         scores += p2c_table[:, cols, index]  # (H, rows, T): scale · k_j · Qʳ[δ_ij]
@@ -140,8 +148,9 @@ def add_relative_terms(scores: np.ndarray, terms: ScoreTerms, layer: int, rows: 
         scores += np.asarray(terms.bias[layer], dtype=np.float64)[:, index]  # (H, rows, T)
 
 
-def p2c_table(terms: ScoreTerms, layer: int, k: np.ndarray, scale: float,
-              n_heads: int, chunk_products: int = 1 << 18) -> np.ndarray | None:
+def p2c_table(
+    terms: ScoreTerms, layer: int, k: np.ndarray, scale: float, n_heads: int, chunk_products: int = 1 << 18
+) -> np.ndarray | None:
     """(H, T, R) scale · k_j · Qʳ[r] for one layer, or None without a p2c term.
 
     k: (G, T, d) keys; query head h reads the keys of its group h // (H / G). Computed in
@@ -155,7 +164,7 @@ def p2c_table(terms: ScoreTerms, layer: int, k: np.ndarray, scale: float,
     out = np.empty((n_heads, keys.shape[1], table.shape[2]))  # (H, T, R)
     step = max(1, chunk_products // max(1, table.shape[1] * table.shape[2]))
     for start in range(0, keys.shape[1], step):  # small products stay on the calling thread
-        np.matmul(keys[:, start:start + step], table, out=out[:, start:start + step])
+        np.matmul(keys[:, start : start + step], table, out=out[:, start : start + step])
     out *= scale
     return out
 

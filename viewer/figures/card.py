@@ -78,8 +78,9 @@ def _figure() -> Figure:
     return Figure(figsize=PRINT_SIZE, dpi=100)
 
 
-def _example_text(loaded: LoadedModel, items, shortcuts: dict | None,
-                  predicted: list[int] | None) -> str | None:
+def _example_text(
+    loaded: LoadedModel, items, shortcuts: dict | None, predicted: list[int] | None
+) -> str | None:
     """A text to show the evidence strip for: one containing the strongest shortcut word,
     preferably one the model gets wrong (labelled, predicted otherwise); else the first text."""
     if not items:
@@ -101,13 +102,24 @@ def _example_text(loaded: LoadedModel, items, shortcuts: dict | None,
 def strongest_candidate(shortcuts: dict) -> dict | None:
     """The top word or the top two-word phrase, whichever ranks higher (flip low, then mean
     drop; the word on a tie); None when knocking out neither flips anything."""
-    candidates = [rows[0] for rows in (shortcuts["tokens"], shortcuts.get("phrases") or [])
-                  if rows and rows[0]["flip_rate"] > 0]
+    candidates = [
+        rows[0]
+        for rows in (shortcuts["tokens"], shortcuts.get("phrases") or [])
+        if rows and rows[0]["flip_rate"] > 0
+    ]
     return max(candidates, key=lambda r: (r["flip_low"], r["mean_drop"]), default=None)
 
 
-def _insertion(loaded: LoadedModel, source: TextSource, items, shortcuts: dict, *,
-               batch_size: int, quiet: bool, run: RunOptions) -> dict | None:
+def _insertion(
+    loaded: LoadedModel,
+    source: TextSource,
+    items,
+    shortcuts: dict,
+    *,
+    batch_size: int,
+    quiet: bool,
+    run: RunOptions,
+) -> dict | None:
     """``headlight insert`` for the strongest candidate, or why it was not run."""
     from viewer.reports.insertion import insertion_phrase
 
@@ -116,39 +128,52 @@ def _insertion(loaded: LoadedModel, source: TextSource, items, shortcuts: dict, 
         return None
     phrase = insertion_phrase(items, best["token"])
     try:
-        return insertion_data(loaded, source, phrase, batch_size=batch_size, quiet=quiet,
-                              run=run)
+        return insertion_data(loaded, source, phrase, batch_size=batch_size, quiet=quiet, run=run)
     except HeadlightError as e:
         return {"phrase": phrase, "not_run": str(e)}
 
 
-def collect(loaded: LoadedModel, texts: Path | TextSource, pairs_path: Path | None, *,
-            batch_size: int = 16, quiet: bool = False, run: RunOptions = SERIAL) -> dict:
+def collect(
+    loaded: LoadedModel,
+    texts: Path | TextSource,
+    pairs_path: Path | None,
+    *,
+    batch_size: int = 16,
+    quiet: bool = False,
+    run: RunOptions = SERIAL,
+) -> dict:
     """All numbers of a card, computed by the same runs as the commands."""
     source = as_source(texts)
     items = load_text_set(source)
     prediction = loaded.head_kind in ("classifier", "causal-lm")
     data: dict = {
-        "model": {"folder": loaded.name, "family": loaded.family.name,
-                  "layers": loaded.n_layers, "heads": loaded.n_heads,
-                  "head_kind": loaded.head_kind, "labels": list(loaded.labels)},
-        "evaluation_data": {"texts_file": source.name, "texts": len(items),
-                            "labelled": sum(i.label is not None for i in items)},
+        "model": {
+            "folder": loaded.name,
+            "family": loaded.family.name,
+            "layers": loaded.n_layers,
+            "heads": loaded.n_heads,
+            "head_kind": loaded.head_kind,
+            "labels": list(loaded.labels),
+        },
+        "evaluation_data": {
+            "texts_file": source.name,
+            "texts": len(items),
+            "labelled": sum(i.label is not None for i in items),
+        },
         "check": check_data(loaded, source, DEFAULT_TOLERANCE, run=run),
         "heads": heads_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run),
     }
     if pairs_path is not None:
-        data["links"] = links_data(loaded, pairs_path, batch_size=batch_size, quiet=quiet,
-                                   run=run)
+        data["links"] = links_data(loaded, pairs_path, batch_size=batch_size, quiet=quiet, run=run)
         data["evaluation_data"]["pairs_file"] = pairs_path.name
         data["evaluation_data"]["pairs"] = data["links"]["pairs"]
     if prediction:
-        data["shortcuts"] = shortcuts_data(loaded, source, batch_size=batch_size, quiet=quiet,
-                                           run=run)
+        data["shortcuts"] = shortcuts_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run)
         predicted = None
         if loaded.head_kind == "classifier":
-            insertion = _insertion(loaded, source, items, data["shortcuts"],
-                                   batch_size=batch_size, quiet=quiet, run=run)
+            insertion = _insertion(
+                loaded, source, items, data["shortcuts"], batch_size=batch_size, quiet=quiet, run=run
+            )
             if insertion is not None:
                 data["insertion"] = insertion
             scan = predictions_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run)
@@ -177,31 +202,45 @@ def _figures(data: dict, out: Path) -> dict[str, str]:
 
     heads = data["heads"]
     fig = _figure()
-    head_map_into(fig, np.asarray(heads["entropy"], dtype=float),
-                  label="mean entropy (0–1, normalised)",
-                  title=f"{model} · head map · mean entropy over {heads['texts']} texts")
+    head_map_into(
+        fig,
+        np.asarray(heads["entropy"], dtype=float),
+        label="mean entropy (0–1, normalised)",
+        title=f"{model} · head map · mean entropy over {heads['texts']} texts",
+    )
     save("head_entropy", fig)
     if "importance" in heads:
         fig = _figure()
-        head_map_into(fig, np.asarray(heads["importance"], dtype=float),
-                      label="head importance (unit norm per layer)",
-                      title=f"{model} · head importance (Michel et al. 2019), "
-                            f"{heads['importance_targets']} as targets")
+        head_map_into(
+            fig,
+            np.asarray(heads["importance"], dtype=float),
+            label="head importance (unit norm per layer)",
+            title=f"{model} · head importance (Michel et al. 2019), {heads['importance_targets']} as targets",
+        )
         save("head_importance", fig)
     if "links" in data:
         links = data["links"]
         fig = _figure()
-        accuracy_into(fig, np.asarray(links["accuracy"], dtype=float),
-                      nearest_baseline=links["nearest_baseline"], pairs=links["pairs"])
+        accuracy_into(
+            fig,
+            np.asarray(links["accuracy"], dtype=float),
+            nearest_baseline=links["nearest_baseline"],
+            pairs=links["pairs"],
+        )
         save("link_accuracy", fig)
     sc = data.get("shortcuts")
     if sc and sc["tokens"]:
         rows = sc["tokens"]
         fig = _figure()
-        fixation_into(fig, [r["token"] for r in rows], [r["focus"] for r in rows],
-                      [r["mean_drop"] for r in rows], [r["count"] for r in rows],
-                      x_units=f"{X_UNITS}, head mean",
-                      title=f"{model} · fixation plot · {len(rows)} words, {sc['texts']} texts")
+        fixation_into(
+            fig,
+            [r["token"] for r in rows],
+            [r["focus"] for r in rows],
+            [r["mean_drop"] for r in rows],
+            [r["count"] for r in rows],
+            x_units=f"{X_UNITS}, head mean",
+            title=f"{model} · fixation plot · {len(rows)} words, {sc['texts']} texts",
+        )
         save("fixation", fig)
     ins = data.get("insertion")
     if ins and "not_run" not in ins and any(r["tried"] for r in ins["positions"]):
@@ -214,19 +253,27 @@ def _figures(data: dict, out: Path) -> dict[str, str]:
         rho = [ex["agreement_with_knockout"].get(k) for k in KINDS]
         labels = list(ex["probabilities"])
         fig = Figure(figsize=(9.0, 3.6), dpi=100)
-        evidence_into(fig, ex["tokens"], [KIND_TITLES[k] for k in KINDS], values, rho,
-                      labels=labels, probabilities=np.array(list(ex["probabilities"].values())),
-                      predicted=ex["target"] if labels else None,
-                      title=f"{model} · evidence strip · predicted {ex['target_label']}")
+        evidence_into(
+            fig,
+            ex["tokens"],
+            [KIND_TITLES[k] for k in KINDS],
+            values,
+            rho,
+            labels=labels,
+            probabilities=np.array(list(ex["probabilities"].values())),
+            predicted=ex["target"] if labels else None,
+            title=f"{model} · evidence strip · predicted {ex['target_label']}",
+        )
         save("evidence_example", fig)
     return made
 
 
 def _by_class(row: dict) -> str:
-    """"billing 52/56, repair 0/2": flips of the texts holding the word, per originally
+    """ "billing 52/56, repair 0/2": flips of the texts holding the word, per originally
     predicted class that has any."""
-    parts = [f"{label} {c['flips']}/{c['count']}"
-             for label, c in (row.get("by_class") or {}).items() if c["count"]]
+    parts = [
+        f"{label} {c['flips']}/{c['count']}" for label, c in (row.get("by_class") or {}).items() if c["count"]
+    ]
     return ", ".join(parts) or "–"
 
 
@@ -237,133 +284,199 @@ def _insertion_line(ins: dict) -> str:
     rows = {r["position"]: r for r in ins["positions"]}
     tried = ins["texts"] - ins["skipped"]
     if not tried:
-        return (f"- Insertion test of “{ins['phrase']}”: every text is already predicted "
-                f"{ins['class']}, so there was nothing to flip.")
+        return (
+            f"- Insertion test of “{ins['phrase']}”: every text is already predicted "
+            f"{ins['class']}, so there was nothing to flip."
+        )
     end = rows.get("end") or next(iter(rows.values()))
-    others = [f"{POSITION_NAMES.get(p, p)} {r['flips']} of {r['tried']} (95% low "
-              f"{_fmt(r['flip_low'])})" for p, r in rows.items() if r is not end and r["tried"]]
+    others = [
+        f"{POSITION_NAMES.get(p, p)} {r['flips']} of {r['tried']} (95% low {_fmt(r['flip_low'])})"
+        for p, r in rows.items()
+        if r is not end and r["tried"]
+    ]
     where = POSITION_NAMES.get(end["position"], end["position"])
-    line = (f"- Insertion test: inserting “{ins['phrase']}” {where} of the {end['tried']} "
-            f"texts not predicted {ins['class']} flips {end['flips']} to {ins['class']} "
-            f"(95% Wilson low {_fmt(end['flip_low'])})")
+    line = (
+        f"- Insertion test: inserting “{ins['phrase']}” {where} of the {end['tried']} "
+        f"texts not predicted {ins['class']} flips {end['flips']} to {ins['class']} "
+        f"(95% Wilson low {_fmt(end['flip_low'])})"
+    )
     return line + (f"; {'; '.join(others)}." if others else ".")
 
 
 def _markdown(data: dict, figures: dict[str, str]) -> str:
     m, ev, chk, heads = data["model"], data["evaluation_data"], data["check"], data["heads"]
-    lines = ["## Attention inspection (Headlight)", "",
-             "*This section contributes to the Metrics, Evaluation data, Quantitative analyses "
-             "and Caveats and recommendations of the model card (Mitchell et al. 2019).*", ""]
-    kind = {"classifier": "sequence classifier", "causal-lm": "causal language model",
-            "masked-lm": "masked language model", "encoder": "bare encoder"}[m["head_kind"]]
+    lines = [
+        "## Attention inspection (Headlight)",
+        "",
+        "*This section contributes to the Metrics, Evaluation data, Quantitative analyses "
+        "and Caveats and recommendations of the model card (Mitchell et al. 2019).*",
+        "",
+    ]
+    kind = {
+        "classifier": "sequence classifier",
+        "causal-lm": "causal language model",
+        "masked-lm": "masked language model",
+        "encoder": "bare encoder",
+    }[m["head_kind"]]
     classes = f" with classes {', '.join(m['labels'])}" if m["labels"] else ""
-    lines += ["### What was inspected", "",
-              f"- Model: `{m['folder']}`, {m['family']} family, {m['layers']} layers × "
-              f"{m['heads']} heads, {kind}{classes}.",
-              f"- Evaluation data: `{ev['texts_file']}`, {ev['texts']} texts "
-              f"({ev['labelled']} labelled)."]
+    lines += [
+        "### What was inspected",
+        "",
+        f"- Model: `{m['folder']}`, {m['family']} family, {m['layers']} layers × "
+        f"{m['heads']} heads, {kind}{classes}.",
+        f"- Evaluation data: `{ev['texts_file']}`, {ev['texts']} texts ({ev['labelled']} labelled).",
+    ]
     if "pairs_file" in ev:
         lines.append(f"- Link pairs: `{ev['pairs_file']}`, {ev['pairs']} pairs.")
     lines += ["- Layers and heads are counted from 0.", "", "### Metrics", ""]
     verdict = "passed" if chk["passed"] else "FAILED"
-    lines.append(f"- Re-derivation check {verdict}: attention recomputed from the captured "
-                 f"queries and keys matches the model's own probabilities to a max absolute "
-                 f"error of {chk['max_abs_error']:.1e} over {chk['texts']} texts "
-                 f"(tolerance {chk['tolerance']:g}).")
+    lines.append(
+        f"- Re-derivation check {verdict}: attention recomputed from the captured "
+        f"queries and keys matches the model's own probabilities to a max absolute "
+        f"error of {chk['max_abs_error']:.1e} over {chk['texts']} texts "
+        f"(tolerance {chk['tolerance']:g})."
+    )
     acc = data.get("accuracy")
     if acc and acc.get("labelled"):
-        lines.append(f"- Accuracy on the labelled texts: {_fmt(acc['accuracy'])} "
-                     f"({acc['correct']} of {acc['labelled']}).")
+        lines.append(
+            f"- Accuracy on the labelled texts: {_fmt(acc['accuracy'])} "
+            f"({acc['correct']} of {acc['labelled']})."
+        )
     if "links" in data:
         b = data["links"]["best"]
-        lines.append(f"- Link accuracy: best head layer {b['layer']} · head {b['head']} at "
-                     f"{_fmt(b['accuracy'])}; nearest-candidate baseline "
-                     f"{_fmt(data['links']['nearest_baseline'])}.")
+        lines.append(
+            f"- Link accuracy: best head layer {b['layer']} · head {b['head']} at "
+            f"{_fmt(b['accuracy'])}; nearest-candidate baseline "
+            f"{_fmt(data['links']['nearest_baseline'])}."
+        )
     sc = data.get("shortcuts")
     if sc and (not sc["tokens"] or sc["tokens"][0]["flip_rate"] == 0):
-        lines.append("- Shortcut search: knocking out no single word seen in at least 3 texts "
-                     "changed a prediction.")
+        lines.append(
+            "- Shortcut search: knocking out no single word seen in at least 3 texts changed a prediction."
+        )
     elif sc:
         t = strongest_candidate(sc) or sc["tokens"][0]
         what = "the two-word phrase " if t is not sc["tokens"][0] else ""
-        line = (f"- Strongest shortcut candidate: {what}“{t['token']}” — knocking it out flips "
-                f"the prediction in {_fmt(100 * t['flip_rate'], 0)}% of the {t['count']} "
-                f"texts containing it (95% Wilson lower bound {_fmt(t['flip_low'])}).")
+        line = (
+            f"- Strongest shortcut candidate: {what}“{t['token']}” — knocking it out flips "
+            f"the prediction in {_fmt(100 * t['flip_rate'], 0)}% of the {t['count']} "
+            f"texts containing it (95% Wilson lower bound {_fmt(t['flip_low'])})."
+        )
         if what:
             w = sc["tokens"][0]
-            line += (f" The strongest single word is “{w['token']}” "
-                     f"({_fmt(100 * w['flip_rate'], 0)}% of {w['count']}, lower bound "
-                     f"{_fmt(w['flip_low'])}).")
+            line += (
+                f" The strongest single word is “{w['token']}” "
+                f"({_fmt(100 * w['flip_rate'], 0)}% of {w['count']}, lower bound "
+                f"{_fmt(w['flip_low'])})."
+            )
         lines.append(line)
     ins = data.get("insertion")
     if ins:
         lines.append(_insertion_line(ins))
     lines += ["", "### Quantitative analyses", ""]
-    lines += [f"![Head map of mean attention entropy]({figures['head_entropy']})", "",
-              "Mean attention entropy per head, normalised by the log of the number of visible "
-              "keys (0: all weight on one key; 1: uniform).", ""]
+    lines += [
+        f"![Head map of mean attention entropy]({figures['head_entropy']})",
+        "",
+        "Mean attention entropy per head, normalised by the log of the number of visible "
+        "keys (0: all weight on one key; 1: uniform).",
+        "",
+    ]
     if "head_importance" in figures:
-        lines += [f"![Head importance]({figures['head_importance']})", "",
-                  "Head importance (Michel et al. 2019, Eq. 2): mean |∂L/∂ξ_h| of the "
-                  f"cross-entropy against the {heads['importance_targets']}, unit ℓ2 norm per "
-                  "layer.", ""]
+        lines += [
+            f"![Head importance]({figures['head_importance']})",
+            "",
+            "Head importance (Michel et al. 2019, Eq. 2): mean |∂L/∂ξ_h| of the "
+            f"cross-entropy against the {heads['importance_targets']}, unit ℓ2 norm per "
+            "layer.",
+            "",
+        ]
     if "links" in data:
         links = data["links"]
         accs = np.asarray(links["accuracy"], dtype=float)
-        lines += [f"![Link accuracy per head]({figures['link_accuracy']})", "",
-                  "| layer | best head | link accuracy |", "|---:|---:|---:|"]
+        lines += [
+            f"![Link accuracy per head]({figures['link_accuracy']})",
+            "",
+            "| layer | best head | link accuracy |",
+            "|---:|---:|---:|",
+        ]
         for layer, row in enumerate(accs):
             h = int(np.nanargmax(row))
             lines.append(f"| {layer} | {h} | {_fmt(row[h])} |")
         lines += [f"| nearest-candidate baseline | | {_fmt(links['nearest_baseline'])} |", ""]
     if sc:
-        lines += [f"Shortcut search by word knockout over {sc['texts']} texts (words seen in at "
-                  "least 3 texts, ranked by the lower end of the 95% Wilson interval of the flip "
-                  "rate):", "",
-                  "| word | texts | flip rate | flip rate, 95% low | mean drop | focus | "
-                  "flips / texts by predicted class |",
-                  "|---|---:|---:|---:|---:|---:|---|"]
+        lines += [
+            f"Shortcut search by word knockout over {sc['texts']} texts (words seen in at "
+            "least 3 texts, ranked by the lower end of the 95% Wilson interval of the flip "
+            "rate):",
+            "",
+            "| word | texts | flip rate | flip rate, 95% low | mean drop | focus | "
+            "flips / texts by predicted class |",
+            "|---|---:|---:|---:|---:|---:|---|",
+        ]
         for r in sc["tokens"][:10]:
-            lines.append(f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
-                         f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} | {_fmt(r['focus'])} | "
-                         f"{_by_class(r)} |")
+            lines.append(
+                f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
+                f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} | {_fmt(r['focus'])} | "
+                f"{_by_class(r)} |"
+            )
         if sc["phrases"]:
-            lines += ["", "| two-word phrase | texts | flip rate | 95% low | mean drop |",
-                      "|---|---:|---:|---:|---:|"]
+            lines += [
+                "",
+                "| two-word phrase | texts | flip rate | 95% low | mean drop |",
+                "|---|---:|---:|---:|---:|",
+            ]
             for r in sc["phrases"][:5]:
-                lines.append(f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
-                             f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} |")
+                lines.append(
+                    f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
+                    f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} |"
+                )
         lines.append("")
     if "fixation" in figures:
-        lines += [f"![Fixation plot]({figures['fixation']})", "",
-                  "Fixation plot: per word, the summary token's last-layer attention share "
-                  "(head mean) against the mean drop in the predicted class's probability when "
-                  "the word is knocked out. Upper left: ignored but decisive; lower right: "
-                  "attended but harmless.", ""]
+        lines += [
+            f"![Fixation plot]({figures['fixation']})",
+            "",
+            "Fixation plot: per word, the summary token's last-layer attention share "
+            "(head mean) against the mean drop in the predicted class's probability when "
+            "the word is knocked out. Upper left: ignored but decisive; lower right: "
+            "attended but harmless.",
+            "",
+        ]
     if "insertion" in figures:
-        lines += [f"![Insertion test]({figures['insertion']})", "",
-                  f"Insertion test of “{ins['phrase']}”: flip-into rate per insertion point "
-                  "with its 95% Wilson interval.", ""]
+        lines += [
+            f"![Insertion test]({figures['insertion']})",
+            "",
+            f"Insertion test of “{ins['phrase']}”: flip-into rate per insertion point "
+            "with its 95% Wilson interval.",
+            "",
+        ]
     if "evidence_example" in figures:
         ex = data["example"]
-        lines += [f"![Evidence strip for one text]({figures['evidence_example']})", "",
-                  f"Per-token evidence for one text (predicted: {ex['target_label']}). Rank "
-                  "agreement with knockout (Spearman ρ): " + ", ".join(
-                      f"{KIND_TITLES[k]} {_fmt(v, 2)}"
-                      for k, v in ex["agreement_with_knockout"].items()) + ".", ""]
+        lines += [
+            f"![Evidence strip for one text]({figures['evidence_example']})",
+            "",
+            f"Per-token evidence for one text (predicted: {ex['target_label']}). Rank "
+            "agreement with knockout (Spearman ρ): "
+            + ", ".join(f"{KIND_TITLES[k]} {_fmt(v, 2)}" for k, v in ex["agreement_with_knockout"].items())
+            + ".",
+            "",
+        ]
     lines += ["### Caveats and recommendations", ""]
     lines += [f"- {c}" for c in CAUTIONS]
     if sc and sc["tokens"] and sc["tokens"][0]["flip_low"] > 0.2:
         t = sc["tokens"][0]
-        lines.append(f"- The predictions depend strongly on “{t['token']}”. Check whether this "
-                     "word carries the meaning of the class or only correlates with it in the "
-                     "training data, and test on texts where it appears with other classes.")
+        lines.append(
+            f"- The predictions depend strongly on “{t['token']}”. Check whether this "
+            "word carries the meaning of the class or only correlates with it in the "
+            "training data, and test on texts where it appears with other classes."
+        )
     ins = data.get("insertion")
     end = next((r for r in (ins or {}).get("positions", []) if r["position"] == "end"), None)
     if end and end["tried"] and end["flip_low"] > 0.5:
-        lines.append(f"- “{ins['phrase']}” alone moves most texts of other classes into "
-                     f"{ins['class']}: the model treats it as sufficient for that class. Texts "
-                     "that carry it for another reason will be misclassified.")
+        lines.append(
+            f"- “{ins['phrase']}” alone moves most texts of other classes into "
+            f"{ins['class']}: the model treats it as sufficient for that class. Texts "
+            "that carry it for another reason will be misclassified."
+        )
     rep = data["reproducibility"]
     lines += ["", "### Reproducibility", "", "| item | value |", "|---|---|"]
     for name, digest in rep["sha256"].items():
@@ -373,10 +486,19 @@ def _markdown(data: dict, figures: dict[str, str]) -> str:
     return "\n".join(lines)
 
 
-def export_card(loaded: LoadedModel, texts: str | Path | TextSource, out: str | Path, *,
-                pairs_path: str | Path | None = None, force: bool = False,
-                command: Sequence[str] = (), batch_size: int = 16, quiet: bool = False,
-                date: str | None = None, run: RunOptions = SERIAL) -> Path:
+def export_card(
+    loaded: LoadedModel,
+    texts: str | Path | TextSource,
+    out: str | Path,
+    *,
+    pairs_path: str | Path | None = None,
+    force: bool = False,
+    command: Sequence[str] = (),
+    batch_size: int = 16,
+    quiet: bool = False,
+    date: str | None = None,
+    run: RunOptions = SERIAL,
+) -> Path:
     """Write the card folder at `out` (refusing to replace an existing one without `force`)."""
     source = as_source(texts)
     pairs_path = Path(pairs_path) if pairs_path is not None else None

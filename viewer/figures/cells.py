@@ -30,14 +30,21 @@ class CellImage(AxesImage):
 
     def _cells_to_pixels(self, magnification: float):
         A = self.get_array()
-        if (A is None or A.ndim != 2 or A.size == 0 or self.get_interpolation() != "nearest"
-                or np.ndim(self.get_alpha()) > 0 or not self.get_transform().is_affine):
+        if (
+            A is None
+            or A.ndim != 2
+            or A.size == 0
+            or self.get_interpolation() != "nearest"
+            or np.ndim(self.get_alpha()) > 0
+            or not self.get_transform().is_affine
+        ):
             return None
         # the output box exactly as ``_ImageBase._make_image`` rounds it
         x1, x2, y1, y2 = self.get_extent()
         out_bbox = TransformedBbox(Bbox([[x1, y1], [x2, y2]]), self.get_transform())
-        clip = ((self.get_clip_box() or self.axes.bbox) if self.get_clip_on()
-                else self.get_figure(root=True).bbox)
+        clip = (
+            (self.get_clip_box() or self.axes.bbox) if self.get_clip_on() else self.get_figure(root=True).bbox
+        )
         clipped = Bbox.intersection(out_bbox, clip)
         if clipped is None:
             return None, 0, 0, None
@@ -51,12 +58,14 @@ class CellImage(AxesImage):
             return None, 0, 0, None
         # cell (array) coordinates → output pixels, as there: origin flip, extent, data transform
         rows, cols = A.shape
-        t0 = (Affine2D().translate(0, -rows).scale(1, -1) if self.origin == "upper"
-              else Affine2D())
+        t0 = Affine2D().translate(0, -rows).scale(1, -1) if self.origin == "upper" else Affine2D()
         in_w, in_h = (x2 - x1), (y2 - y1)
-        t = (t0 + Affine2D().scale(in_w / cols, in_h / rows).translate(x1, y1)
-             + self.get_transform()
-             + Affine2D().scale(magnification).translate(-x0, -y0))
+        t = (
+            t0
+            + Affine2D().scale(in_w / cols, in_h / rows).translate(x1, y1)
+            + self.get_transform()
+            + Affine2D().scale(magnification).translate(-x0, -y0)
+        )
         m = t.get_matrix()
         if abs(m[0, 1]) > 1e-12 or abs(m[1, 0]) > 1e-12:
             return None  # rotated or skewed: matplotlib's resampler
@@ -72,7 +81,7 @@ class CellImage(AxesImage):
         # one transparent cell for pixels off the grid (none while the axes show only the grid)
         flat = np.zeros(rows * cols + 1, dtype=np.uint32)
         flat[:-1] = rgba.view(np.uint32).reshape(-1)
-        index = (np.where(inside_r, row, 0)[:, None] * cols + np.where(inside_c, col, 0)[None, :])
+        index = np.where(inside_r, row, 0)[:, None] * cols + np.where(inside_c, col, 0)[None, :]
         index[~inside_r, :] = rows * cols
         index[:, ~inside_c] = rows * cols
         out = flat[index].view(np.uint8).reshape(height, width, 4)

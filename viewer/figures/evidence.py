@@ -79,8 +79,16 @@ def draw_evidence_strip(
         cmap, norm = style.sequential_cmap(), style.sequential_norm(np.array([0.0, 1.0]))
     extent = (-0.5, n_tokens - 0.5, n_kinds - 0.5, -0.5)
     style.mask_background(ax, extent)
-    image = ax.imshow(np.ma.masked_invalid(shown), cmap=cmap, norm=norm, aspect="auto",
-                      interpolation="nearest", extent=extent, origin="upper", zorder=1)
+    image = ax.imshow(
+        np.ma.masked_invalid(shown),
+        cmap=cmap,
+        norm=norm,
+        aspect="auto",
+        interpolation="nearest",
+        extent=extent,
+        origin="upper",
+        zorder=1,
+    )
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
     style.style_axes(ax)
@@ -89,12 +97,21 @@ def draw_evidence_strip(
     ax.tick_params(axis="y", length=0, labelsize=style.FONT_SIZE)
     agreement = list(agreement) if agreement is not None else [None] * n_kinds
     for row, rho in enumerate(agreement):
-        ax.text(1.012, row, agreement_text(rho), transform=ax.get_yaxis_transform(),
-                ha="left", va="center", fontsize=style.FONT_SIZE, color="#222222")
+        ax.text(
+            1.012,
+            row,
+            agreement_text(rho),
+            transform=ax.get_yaxis_transform(),
+            ha="left",
+            va="center",
+            fontsize=style.FONT_SIZE,
+            color="#222222",
+        )
     if title:
         ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left")
-    marker = Rectangle((0, -0.5), 1, n_kinds, fill=False, edgecolor=style.SELECTION,
-                       linewidth=1.6, visible=False, zorder=3)
+    marker = Rectangle(
+        (0, -0.5), 1, n_kinds, fill=False, edgecolor=style.SELECTION, linewidth=1.6, visible=False, zorder=3
+    )
     ax.add_patch(marker)
     colorbar = None
     if cax is not None:
@@ -133,16 +150,24 @@ def draw_class_probabilities(
     style.style_axes(ax)
     for i, value in enumerate(p):
         inside = value > 0.62
-        ax.text(value - 0.03 if inside else value + 0.03, i, f"{value:.2f}",
-                ha="right" if inside else "left", va="center", fontsize=style.FONT_SIZE,
-                color="white" if inside else "#222222", zorder=3)
+        ax.text(
+            value - 0.03 if inside else value + 0.03,
+            i,
+            f"{value:.2f}",
+            ha="right" if inside else "left",
+            va="center",
+            fontsize=style.FONT_SIZE,
+            color="white" if inside else "#222222",
+            zorder=3,
+        )
     ax.set_xlabel("class probability", fontsize=style.LABEL_SIZE)
     if gold is not None:
         ax.set_title("● = label", fontsize=style.FONT_SIZE, loc="left", color=style.MUTED)
 
 
-def prediction_line(labels: Sequence[str], probabilities: np.ndarray, predicted: int | None,
-                    gold: str | None = None) -> str:
+def prediction_line(
+    labels: Sequence[str], probabilities: np.ndarray, predicted: int | None, gold: str | None = None
+) -> str:
     """``predicted billing (0.91) · label repair: wrong`` for titles and status lines."""
     if predicted is None or not len(probabilities):
         return "no classifier head: nothing predicted"
@@ -218,6 +243,16 @@ def evidence_figure(
     dpi: float = 100,
 ) -> Figure:
     fig = Figure(figsize=size, dpi=dpi)
-    evidence_into(fig, tokens, kinds, values, agreement, labels=labels,
-                  probabilities=probabilities, predicted=predicted, gold=gold, title=title)
+    evidence_into(
+        fig,
+        tokens,
+        kinds,
+        values,
+        agreement,
+        labels=labels,
+        probabilities=probabilities,
+        predicted=predicted,
+        gold=gold,
+        title=title,
+    )
     return fig

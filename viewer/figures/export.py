@@ -38,16 +38,25 @@ def figure_bytes(fig: Figure, fmt: str, dpi: int = PRINT_DPI) -> bytes:
     return buf.getvalue()
 
 
-def save_figure(fig: Figure, stem: str | Path, formats: Sequence[str] = FIGURE_FORMATS, *,
-                dpi: int = PRINT_DPI, force: bool = True) -> list[Path]:
+def save_figure(
+    fig: Figure,
+    stem: str | Path,
+    formats: Sequence[str] = FIGURE_FORMATS,
+    *,
+    dpi: int = PRINT_DPI,
+    force: bool = True,
+) -> list[Path]:
     """Write `fig` as stem.png / stem.svg / stem.pdf; returns the paths written."""
     stem = Path(stem)
-    return [atomic_write_bytes(stem.with_suffix(f".{fmt}"), figure_bytes(fig, fmt, dpi),
-                               force=force) for fmt in formats]
+    return [
+        atomic_write_bytes(stem.with_suffix(f".{fmt}"), figure_bytes(fig, fmt, dpi), force=force)
+        for fmt in formats
+    ]
 
 
-def save_rows(path: str | Path, header: Sequence[str], rows: Iterable[Sequence[Any]], *,
-              force: bool = True) -> Path:
+def save_rows(
+    path: str | Path, header: Sequence[str], rows: Iterable[Sequence[Any]], *, force: bool = True
+) -> Path:
     """A CSV table (UTF-8, header row first)."""
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
@@ -56,15 +65,17 @@ def save_rows(path: str | Path, header: Sequence[str], rows: Iterable[Sequence[A
     return atomic_write_text(path, buf.getvalue(), force=force)
 
 
-def save_data(stem: str | Path, data: dict, header: Sequence[str],
-              rows: Iterable[Sequence[Any]], *, force: bool = True) -> list[Path]:
+def save_data(
+    stem: str | Path, data: dict, header: Sequence[str], rows: Iterable[Sequence[Any]], *, force: bool = True
+) -> list[Path]:
     """A pane's data as stem.json (everything) and stem.csv (the table)."""
     stem = Path(stem)
-    return [write_json(stem.with_suffix(".json"), data, force=force),
-            save_rows(stem.with_suffix(".csv"), header, rows, force=force)]
+    return [
+        write_json(stem.with_suffix(".json"), data, force=force),
+        save_rows(stem.with_suffix(".csv"), header, rows, force=force),
+    ]
 
 
 def grid_rows(grid: Sequence[Sequence[float]]) -> list[list[Any]]:
     """(L, H) values as CSV rows: layer, head, value (layers and heads counted from 0)."""
-    return [[layer, head, value] for layer, row in enumerate(grid)
-            for head, value in enumerate(row)]
+    return [[layer, head, value] for layer, row in enumerate(grid) for head, value in enumerate(row)]

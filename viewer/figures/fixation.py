@@ -55,8 +55,15 @@ def labelled_words(x: np.ndarray, y: np.ndarray, k: int = LABELS) -> tuple[int, 
     return tuple(chosen) + tuple(i for i in by_effect if i not in chosen)
 
 
-def _free_labels(candidates: Sequence[int], words: Sequence[str], x: np.ndarray, y: np.ndarray,
-                 box: Box, limits: tuple[float, float, float, float], k: int) -> tuple[int, ...]:
+def _free_labels(
+    candidates: Sequence[int],
+    words: Sequence[str],
+    x: np.ndarray,
+    y: np.ndarray,
+    box: Box,
+    limits: tuple[float, float, float, float],
+    k: int,
+) -> tuple[int, ...]:
     """Up to ``k`` candidates whose labels, estimated at the axes' size in inches, do not
     overlap each other and stay inside the axes' width."""
     left, bottom, width, height = box
@@ -81,9 +88,17 @@ def _free_labels(candidates: Sequence[int], words: Sequence[str], x: np.ndarray,
     return tuple(keep)
 
 
-def fixation_into(fig: Figure, words: Sequence[str], focus: np.ndarray, effect: np.ndarray,
-                  counts: Sequence[int], *, title: str = "", highlight: str | None = None,
-                  x_units: str = X_UNITS) -> FixationArtists:
+def fixation_into(
+    fig: Figure,
+    words: Sequence[str],
+    focus: np.ndarray,
+    effect: np.ndarray,
+    counts: Sequence[int],
+    *,
+    title: str = "",
+    highlight: str | None = None,
+    x_units: str = X_UNITS,
+) -> FixationArtists:
     """Clear ``fig`` and draw one labelled point per word: ``focus`` (x) against ``effect`` (y)."""
     fig.clear()
     x = np.asarray(focus, dtype=np.float64)
@@ -97,38 +112,59 @@ def fixation_into(fig: Figure, words: Sequence[str], focus: np.ndarray, effect: 
     top = line_height_in(style.TITLE_SIZE, 1.8)
 
     def place(width: float, height: float) -> dict[Axes, Box]:
-        return {ax: (left, bottom, max(width - left - 0.25, 0.1), max(height - bottom - top,
-                                                                        0.1))}
+        return {ax: (left, bottom, max(width - left - 0.25, 0.1), max(height - bottom - top, 0.1))}
 
     fig.set_layout_engine(InchLayout(place))
     width_in, height_in = fig.get_size_inches()
     sizes = 14.0 + 46.0 * np.sqrt(n / max(float(n.max()), 1.0)) if n.size else n
     points = ax.scatter(x, y, s=sizes, color=style.ACCENT, alpha=0.55, linewidths=0, zorder=2)
     if x.size:
-        ax.axvline(float(np.median(x)), color=style.MUTED, linewidth=0.8, linestyle="--",
-                   zorder=1)
-        ax.axhline(float(np.median(y)), color=style.MUTED, linewidth=0.8, linestyle="--",
-                   zorder=1)
+        ax.axvline(float(np.median(x)), color=style.MUTED, linewidth=0.8, linestyle="--", zorder=1)
+        ax.axhline(float(np.median(y)), color=style.MUTED, linewidth=0.8, linestyle="--", zorder=1)
         pad_x = max(float(np.ptp(x)) * 0.08, 1e-3)
         pad_y = max(float(np.ptp(y)) * 0.08, 1e-3)
         ax.set_xlim(float(x.min()) - pad_x, float(x.max()) + pad_x * 3)
         ax.set_ylim(float(y.min()) - pad_y, float(y.max()) + pad_y * 2)
-        ax.text(0.01, 0.99, "ignored but decisive", transform=ax.transAxes, ha="left",
-                va="top", fontsize=style.FONT_SIZE - 0.5, color=style.MUTED)
-        ax.text(0.99, 0.01, "attended but harmless", transform=ax.transAxes, ha="right",
-                va="bottom", fontsize=style.FONT_SIZE - 0.5, color=style.MUTED)
+        ax.text(
+            0.01,
+            0.99,
+            "ignored but decisive",
+            transform=ax.transAxes,
+            ha="left",
+            va="top",
+            fontsize=style.FONT_SIZE - 0.5,
+            color=style.MUTED,
+        )
+        ax.text(
+            0.99,
+            0.01,
+            "attended but harmless",
+            transform=ax.transAxes,
+            ha="right",
+            va="bottom",
+            fontsize=style.FONT_SIZE - 0.5,
+            color=style.MUTED,
+        )
     limits = (*ax.get_xlim(), *ax.get_ylim())
-    chosen = _free_labels(labelled_words(x, y), words, x, y, place(width_in, height_in)[ax], limits,
-                          LABELS)
-    labels = [ax.annotate(style.token_label(words[i]), (x[i], y[i]), xytext=(4, 3),
-                          textcoords="offset points", fontsize=style.FONT_SIZE,
-                          color="#1d2b36", zorder=3)
-              for i in chosen]
+    chosen = _free_labels(labelled_words(x, y), words, x, y, place(width_in, height_in)[ax], limits, LABELS)
+    labels = [
+        ax.annotate(
+            style.token_label(words[i]),
+            (x[i], y[i]),
+            xytext=(4, 3),
+            textcoords="offset points",
+            fontsize=style.FONT_SIZE,
+            color="#1d2b36",
+            zorder=3,
+        )
+        for i in chosen
+    ]
     mark = None
     if highlight is not None and highlight in words:
         i = list(words).index(highlight)
-        mark = ax.scatter([x[i]], [y[i]], s=90, facecolors="none", edgecolors=style.SELECTION,
-                          linewidths=1.8, zorder=4)
+        mark = ax.scatter(
+            [x[i]], [y[i]], s=90, facecolors="none", edgecolors=style.SELECTION, linewidths=1.8, zorder=4
+        )
     style.style_axes(ax)
     ax.set_xlabel(x_units, fontsize=style.LABEL_SIZE)
     ax.set_ylabel(Y_UNITS, fontsize=style.LABEL_SIZE)
@@ -137,8 +173,7 @@ def fixation_into(fig: Figure, words: Sequence[str], focus: np.ndarray, effect: 
     return FixationArtists(ax, points, labels, chosen, x, y, mark)
 
 
-def point_at(artists: FixationArtists, x_px: float, y_px: float,
-             radius_px: float = 8.0) -> int | None:
+def point_at(artists: FixationArtists, x_px: float, y_px: float, radius_px: float = 8.0) -> int | None:
     """The word whose point is nearest to display position (x_px, y_px), within ``radius_px``."""
     if artists.x.size == 0:
         return None

@@ -70,13 +70,21 @@ def draw_head_map(
     n_layers, n_heads = data.shape
     extent = (-0.5, n_heads - 0.5, n_layers - 0.5, -0.5)
     style.mask_background(ax, extent)
-    image = cell_image(ax, grid, cmap=cmap, norm=norm, interpolation="nearest", aspect="auto",
-                       extent=extent, origin="upper", zorder=1)
+    image = cell_image(
+        ax,
+        grid,
+        cmap=cmap,
+        norm=norm,
+        interpolation="nearest",
+        aspect="auto",
+        extent=extent,
+        origin="upper",
+        zorder=1,
+    )
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
     style.style_axes(ax)
-    ax.set_xticks(range(n_heads), [f"head {h}" if n_heads <= 8 else str(h)
-                                   for h in range(n_heads)])
+    ax.set_xticks(range(n_heads), [f"head {h}" if n_heads <= 8 else str(h) for h in range(n_heads)])
     ax.set_yticks(range(n_layers), [f"layer {layer}" for layer in range(n_layers)])
     ax.tick_params(axis="both", length=0, labelsize=style.FONT_SIZE)
     ax.xaxis.set_ticks_position("top")
@@ -94,18 +102,27 @@ def draw_head_map(
         for layer in range(n_layers):
             for head in range(n_heads):
                 v = data[layer, head]
-                cell_texts.append(ax.text(head, layer, format_value(v), ha="center",
-                                          va="center", fontsize=font,
-                                          color=_text_colour(cmap, norm, v), zorder=2))
-    marker = Rectangle((0, 0), 1, 1, fill=False, edgecolor=style.SELECTION, linewidth=2.2,
-                       visible=False, zorder=3)
+                cell_texts.append(
+                    ax.text(
+                        head,
+                        layer,
+                        format_value(v),
+                        ha="center",
+                        va="center",
+                        fontsize=font,
+                        color=_text_colour(cmap, norm, v),
+                        zorder=2,
+                    )
+                )
+    marker = Rectangle(
+        (0, 0), 1, 1, fill=False, edgecolor=style.SELECTION, linewidth=2.2, visible=False, zorder=3
+    )
     ax.add_patch(marker)
     colorbar = None
     if cax is not None:
         colorbar = ax.figure.colorbar(image, cax=cax)
         style.style_colorbar(colorbar, label)
-    artists = HeadMapArtists(ax, image, colorbar, marker, n_layers, n_heads, diverging,
-                             cell_texts)
+    artists = HeadMapArtists(ax, image, colorbar, marker, n_layers, n_heads, diverging, cell_texts)
     mark_head(artists, selected)
     return artists
 
@@ -135,8 +152,9 @@ def update_head_map(artists: HeadMapArtists, values: np.ndarray) -> None:
     would draw, without rebuilding axes, ticks and colour bar."""
     data, grid, cmap, norm = _scaled(values, artists.diverging)
     if data.shape != (artists.n_layers, artists.n_heads):
-        raise ValueError(f"values {data.shape} do not fit the drawn "
-                         f"{artists.n_layers}×{artists.n_heads} head map")
+        raise ValueError(
+            f"values {data.shape} do not fit the drawn {artists.n_layers}×{artists.n_heads} head map"
+        )
     artists.image.set_data(grid)
     artists.image.set_clim(norm.vmin, norm.vmax)
     for text, v in zip(artists.cell_texts, data.ravel(), strict=False):
@@ -184,14 +202,22 @@ def head_map_into(
     cax = fig.add_axes((0.85, 0.1, 0.03, 0.8))
     n_layers = np.asarray(values).shape[0]
     left = text_width_in(len(f"layer {n_layers - 1}")) + 0.15
-    top = line_height_in(style.FONT_SIZE, 1.6) + (line_height_in(style.TITLE_SIZE, 1.8)
-                                                 if title else 0.0)
+    top = line_height_in(style.FONT_SIZE, 1.6) + (line_height_in(style.TITLE_SIZE, 1.8) if title else 0.0)
     if np.asarray(values).shape[1] > 8:
         top += line_height_in(style.LABEL_SIZE)
-    fig.set_layout_engine(InchLayout(main_with_colorbar(
-        ax, cax, left=left, bottom=0.1, top=top, right_label=0.66)))
-    return draw_head_map(ax, values, label=label, diverging=diverging, selected=selected,
-                         title=title, cax=cax, annotate=annotate)
+    fig.set_layout_engine(
+        InchLayout(main_with_colorbar(ax, cax, left=left, bottom=0.1, top=top, right_label=0.66))
+    )
+    return draw_head_map(
+        ax,
+        values,
+        label=label,
+        diverging=diverging,
+        selected=selected,
+        title=title,
+        cax=cax,
+        annotate=annotate,
+    )
 
 
 def head_map_figure(

@@ -44,26 +44,44 @@ def insertion_into(fig: Figure, data: Mapping[str, Any], *, title: str = "") -> 
     top = line_height_in(style.TITLE_SIZE, 1.8)
 
     def place(width: float, height: float) -> dict[Axes, Box]:
-        return {ax: (left, bottom, max(width - left - 0.9, 0.1), max(height - bottom - top,
-                                                                       0.1))}
+        return {ax: (left, bottom, max(width - left - 0.9, 0.1), max(height - bottom - top, 0.1))}
 
     fig.set_layout_engine(InchLayout(place))
     y = np.arange(len(rows))
     bars = ax.barh(y, rates, height=0.6, color=style.ACCENT, alpha=0.8, zorder=2)
     if len(rows):
-        ax.errorbar(rates, y, xerr=np.vstack([rates - low, high - rates]), fmt="none",
-                    ecolor="#1d2b36", elinewidth=1.2, capsize=4, zorder=3)
+        ax.errorbar(
+            rates,
+            y,
+            xerr=np.vstack([rates - low, high - rates]),
+            fmt="none",
+            ecolor="#1d2b36",
+            elinewidth=1.2,
+            capsize=4,
+            zorder=3,
+        )
     for k, r in enumerate(rows):
-        ax.annotate(f"{r['flips']} of {r['tried']}", (high[k], k), xytext=(6, 0),
-                    textcoords="offset points", va="center", fontsize=style.FONT_SIZE,
-                    color="#1d2b36", annotation_clip=False)
+        ax.annotate(
+            f"{r['flips']} of {r['tried']}",
+            (high[k], k),
+            xytext=(6, 0),
+            textcoords="offset points",
+            va="center",
+            fontsize=style.FONT_SIZE,
+            color="#1d2b36",
+            annotation_clip=False,
+        )
     ax.set_yticks(y, names, fontsize=style.FONT_SIZE)
     ax.invert_yaxis()
     ax.set_xlim(0.0, 1.0)
     style.style_axes(ax)
-    ax.set_xlabel(f"texts flipping into {data['class']} (95% Wilson interval)",
-                  fontsize=style.LABEL_SIZE)
-    ax.set_title(title or f"inserting “{data['phrase']}” into "
-                 f"{data['texts'] - data['skipped']} texts not predicted {data['class']}",
-                 fontsize=style.TITLE_SIZE, loc="left", y=1.0)
+    ax.set_xlabel(f"texts flipping into {data['class']} (95% Wilson interval)", fontsize=style.LABEL_SIZE)
+    ax.set_title(
+        title
+        or f"inserting “{data['phrase']}” into "
+        f"{data['texts'] - data['skipped']} texts not predicted {data['class']}",
+        fontsize=style.TITLE_SIZE,
+        loc="left",
+        y=1.0,
+    )
     return InsertionArtists(ax, bars, tuple(r["position"] for r in rows), rates)

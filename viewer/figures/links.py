@@ -72,9 +72,19 @@ def draw_link_bars(
     style.style_axes(ax)
     ax.tick_params(axis="y", length=0)
     ax.set_xlabel(LINK_UNITS, fontsize=style.LABEL_SIZE)
-    values = [ax.text(s[i] + peak * 0.02, row, f"{s[i]:.3f}", va="center", ha="left",
-                      fontsize=style.FONT_SIZE - 0.5, color="#222222", zorder=3)
-              for row, i in enumerate(chosen)]
+    values = [
+        ax.text(
+            s[i] + peak * 0.02,
+            row,
+            f"{s[i]:.3f}",
+            va="center",
+            ha="left",
+            fontsize=style.FONT_SIZE - 0.5,
+            color="#222222",
+            zorder=3,
+        )
+        for row, i in enumerate(chosen)
+    ]
     style.pin_empty_axis_labels(ax)
     if title:
         # y given: no ticks on top, so where matplotlib would put it anyway, without measuring
@@ -128,15 +138,26 @@ def links_into(
 
     fig.set_layout_engine(InchLayout(place))
     drawn: list = []
-    shown = draw_link_bars(bars, names, head_scores, highlight=target, exclude=exclude,
-                           title=_bars_title(source_name, head_title), drawn=drawn)
+    shown = draw_link_bars(
+        bars,
+        names,
+        head_scores,
+        highlight=target,
+        exclude=exclude,
+        title=_bars_title(source_name, head_title),
+        drawn=drawn,
+    )
     map_artists = None
     if has_map:
         map_artists = draw_head_map(
-            hax, per_head_to_target, label="link score", selected=selected, cax=cax,
+            hax,
+            per_head_to_target,
+            label="link score",
+            selected=selected,
+            cax=cax,
             annotate=False,
             title=f"'{style.token_label(source_name)}' → '{style.token_label(target_name or '')}'"
-                  " in every head",
+            " in every head",
         )
     return LinksArtists(bars, map_artists, shown, drawn)
 
@@ -169,9 +190,15 @@ def relink(
     for artist in artists.bar_artists:
         artist.remove()
     artists.bar_artists.clear()
-    artists.shown = draw_link_bars(ax, names, head_scores, highlight=target, exclude=exclude,
-                                   title=_bars_title(source_name, head_title),
-                                   drawn=artists.bar_artists)
+    artists.shown = draw_link_bars(
+        ax,
+        names,
+        head_scores,
+        highlight=target,
+        exclude=exclude,
+        title=_bars_title(source_name, head_title),
+        drawn=artists.bar_artists,
+    )
     if artists.map_artists is not None:
         mark_head(artists.map_artists, selected)
     return artists
@@ -189,7 +216,10 @@ def accuracy_into(
     from viewer.figures.head_map import head_map_into
 
     artists = head_map_into(
-        fig, accuracy, label="link accuracy", selected=selected,
+        fig,
+        accuracy,
+        label="link accuracy",
+        selected=selected,
         title=f"link accuracy over {pairs} pairs · nearest baseline {nearest_baseline:.2f}",
     )
     if artists.colorbar is not None:

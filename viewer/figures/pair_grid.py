@@ -121,8 +121,15 @@ def draw_pair_grid(
     background = style.mask_background(ax, extent)
     _hatch_if_masked(background, grid)
     image = cell_image(
-        ax, grid, cmap=style.sequential_cmap(), norm=_norm(grid), interpolation="nearest",
-        aspect="auto", extent=extent, origin="upper", zorder=1,
+        ax,
+        grid,
+        cmap=style.sequential_cmap(),
+        norm=_norm(grid),
+        interpolation="nearest",
+        aspect="auto",
+        extent=extent,
+        origin="upper",
+        zorder=1,
     )
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
@@ -134,8 +141,9 @@ def draw_pair_grid(
     place_axis_labels(ax, query_tokens, key_tokens)
     if title:
         _set_title(ax, title)
-    marker = Rectangle((0, 0), 1, 1, fill=False, edgecolor=style.SELECTION, linewidth=1.6,
-                       visible=False, zorder=3)
+    marker = Rectangle(
+        (0, 0), 1, 1, fill=False, edgecolor=style.SELECTION, linewidth=1.6, visible=False, zorder=3
+    )
     ax.add_patch(marker)
     colorbar = None
     if cax is not None:
@@ -155,8 +163,7 @@ def update_pair_grid(
     """Replace the grid's values (same token count) without rebuilding axes or labels."""
     grid = masked_grid(probs, visible)
     if grid.shape != (artists.n_rows, artists.n_cols):
-        raise ValueError(
-            f"grid {grid.shape} does not fit the drawn {artists.n_rows}×{artists.n_cols}")
+        raise ValueError(f"grid {grid.shape} does not fit the drawn {artists.n_rows}×{artists.n_cols}")
     artists.image.set_data(grid)
     _hatch_if_masked(artists.background, grid)
     _set_scale(artists, _norm(grid))
@@ -192,8 +199,9 @@ def retoken_pair_grid(
     if title is not None:
         _set_title(ax, title)
     cax = artists.colorbar.ax if artists.colorbar is not None else None
-    ax.figure.set_layout_engine(InchLayout(main_with_colorbar(
-        ax, cax, **pair_grid_margins(query_tokens, key_tokens))))
+    ax.figure.set_layout_engine(
+        InchLayout(main_with_colorbar(ax, cax, **pair_grid_margins(query_tokens, key_tokens)))
+    )
     artists.n_rows, artists.n_cols = n_rows, n_cols
     artists.marker.set_visible(False)
     return artists
@@ -243,10 +251,12 @@ def place_axis_labels(ax: Axes, query_tokens: Sequence[str], key_tokens: Sequenc
     q, k = _longest_labels(query_tokens, key_tokens)
     down = text_width_in(k) * 72.0 + TICK_ROOM_PT
     left = text_width_in(q) * 72.0 + TICK_ROOM_PT
-    ax.xaxis.set_label_coords(0.5, 0.0, transform=offset_copy(
-        ax.transAxes, fig=ax.figure, y=-down, units="points"))
-    ax.yaxis.set_label_coords(0.0, 0.5, transform=offset_copy(
-        ax.transAxes, fig=ax.figure, x=-left, units="points"))
+    ax.xaxis.set_label_coords(
+        0.5, 0.0, transform=offset_copy(ax.transAxes, fig=ax.figure, y=-down, units="points")
+    )
+    ax.yaxis.set_label_coords(
+        0.0, 0.5, transform=offset_copy(ax.transAxes, fig=ax.figure, x=-left, units="points")
+    )
 
 
 def pair_grid_margins(query_tokens: Sequence[str], key_tokens: Sequence[str]) -> dict[str, float]:
@@ -274,10 +284,10 @@ def pair_grid_into(
     fig.clear()
     ax = fig.add_axes((0.1, 0.1, 0.8, 0.8))
     cax = fig.add_axes((0.92, 0.1, 0.02, 0.8)) if colorbar else None
-    fig.set_layout_engine(InchLayout(main_with_colorbar(
-        ax, cax, **pair_grid_margins(query_tokens, key_tokens))))
-    return draw_pair_grid(ax, probs, query_tokens, key_tokens, visible=visible, title=title,
-                          cax=cax)
+    fig.set_layout_engine(
+        InchLayout(main_with_colorbar(ax, cax, **pair_grid_margins(query_tokens, key_tokens)))
+    )
+    return draw_pair_grid(ax, probs, query_tokens, key_tokens, visible=visible, title=title, cax=cax)
 
 
 def pair_grid_figure(

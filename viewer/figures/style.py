@@ -87,8 +87,14 @@ def mask_background(ax: Axes, extent: tuple[float, float, float, float]) -> Rect
     """
     left, right, bottom, top = extent
     patch = Rectangle(
-        (min(left, right), min(bottom, top)), abs(right - left), abs(top - bottom),
-        facecolor=MASK_FACE, edgecolor=MASK_EDGE, hatch=MASK_HATCH, linewidth=0, zorder=0,
+        (min(left, right), min(bottom, top)),
+        abs(right - left),
+        abs(top - bottom),
+        facecolor=MASK_FACE,
+        edgecolor=MASK_EDGE,
+        hatch=MASK_HATCH,
+        linewidth=0,
+        zorder=0,
     )
     ax.add_patch(patch)
     return patch
@@ -96,6 +102,7 @@ def mask_background(ax: Axes, extent: tuple[float, float, float, float]) -> Rect
 
 def text_colour_for(rgba: Sequence[float]) -> str:
     """Black or white, whichever reads better on a cell of colour ``rgba`` (WCAG luminance)."""
+
     def channel(c: float) -> float:
         return c / 12.92 if c <= 0.03928 else ((c + 0.055) / 1.055) ** 2.4
 
@@ -184,8 +191,9 @@ class TokenLocator(Locator):
         return self.tick_values(vmin, vmax)
 
 
-def set_token_axis(ax: Axes, which: str, tokens: Sequence[str], rotate: bool = False,
-                   restyle: bool = True) -> None:
+def set_token_axis(
+    ax: Axes, which: str, tokens: Sequence[str], rotate: bool = False, restyle: bool = True
+) -> None:
     """Label ``ax``'s x or y axis with ``tokens`` through a ``TokenLocator``.
 
     ``restyle`` False keeps the tick style of an axis this function already set up (restyling
@@ -246,12 +254,20 @@ def style_colorbar(cbar, label: str) -> None:
     cbar.ax.tick_params(labelsize=FONT_SIZE, width=0.6, length=2)
     cbar.outline.set_linewidth(0.6)
     pin_empty_axis_labels(cbar.ax)
-    place = offset_copy(cbar.ax.transAxes, fig=cbar.ax.figure, x=COLORBAR_LABEL_GAP,
-                        units="points")
+    place = offset_copy(cbar.ax.transAxes, fig=cbar.ax.figure, x=COLORBAR_LABEL_GAP, units="points")
     # rotated a quarter turn: the glyph tops face the bar, so "top" is the side at the anchor
-    cbar.units = cbar.ax.text(1.0, 0.5, label, transform=place, rotation=90, ha="center",
-                              va="top", fontsize=LABEL_SIZE, rotation_mode="anchor",
-                              multialignment="center")
+    cbar.units = cbar.ax.text(
+        1.0,
+        0.5,
+        label,
+        transform=place,
+        rotation=90,
+        ha="center",
+        va="top",
+        fontsize=LABEL_SIZE,
+        rotation_mode="anchor",
+        multialignment="center",
+    )
 
 
 def rescale_by_ticks(cbar) -> None:
@@ -271,8 +287,9 @@ def rescale_by_ticks(cbar) -> None:
     if cbar.solids is not None:
         # the mesh keeps the colours and places of the range it was built for
         cbar.solids.set_norm(Normalize(vmin=lo, vmax=hi))
-        cbar.solids.set_transform(Affine2D().translate(0.0, -lo).scale(1.0, 1.0 / (hi - lo))
-                                  + cbar.ax.transAxes)
+        cbar.solids.set_transform(
+            Affine2D().translate(0.0, -lo).scale(1.0, 1.0 / (hi - lo)) + cbar.ax.transAxes
+        )
 
 
 def set_colorbar_range(cbar, vmin: float, vmax: float) -> None:

@@ -41,8 +41,10 @@ class ZoomPan:
             return False
         x0, x1 = self.ax.get_xlim()
         return abs((x1 - x0) - (self.extent.x1 - self.extent.x0)) > 1e-6 or (
-            self.both and abs(abs(self.ax.get_ylim()[0] - self.ax.get_ylim()[1])
-                              - abs(self.extent.y1 - self.extent.y0)) > 1e-6)
+            self.both
+            and abs(abs(self.ax.get_ylim()[0] - self.ax.get_ylim()[1]) - abs(self.extent.y1 - self.extent.y0))
+            > 1e-6
+        )
 
     def reset(self) -> None:
         if self.ax is None or self.extent is None:

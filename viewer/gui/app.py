@@ -72,8 +72,7 @@ def missing_xcb_libraries(loads: Callable[[str], bool] = _loads) -> list[str]:
     return [name for name in XCB_LIBRARIES if not loads(name)]
 
 
-def check_display(environ: dict[str, str] | None = None,
-                  loads: Callable[[str], bool] = _loads) -> None:
+def check_display(environ: dict[str, str] | None = None, loads: Callable[[str], bool] = _loads) -> None:
     """Refuse, in one line, to start Qt where it would abort with a core dump.
 
     Without this, a Linux desktop lacking one of Qt's xcb libraries gets Qt's own multi-line
@@ -87,10 +86,14 @@ def check_display(environ: dict[str, str] | None = None,
         packages = " ".join(XCB_LIBRARIES[name] for name in missing)
         raise HeadlightError(
             f"the window cannot start: Qt's X11 (xcb) plugin needs {', '.join(missing)}; on "
-            f"Debian or Ubuntu install them with: sudo apt install {packages}")
+            f"Debian or Ubuntu install them with: sudo apt install {packages}"
+        )
     if not env.get("DISPLAY"):
-        raise HeadlightError("the window cannot start: no X display (DISPLAY is not set); run "
-                             "it on a desktop, or use the headless commands (headlight --help)")
+        raise HeadlightError(
+            "the window cannot start: no X display (DISPLAY is not set); run "
+            "it on a desktop, or use the headless commands (headlight --help)"
+        )
+
 
 FULL_COLLECTION_EVERY = 1_000_000  # gen-1 collections between automatic full collections
 

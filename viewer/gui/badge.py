@@ -20,8 +20,7 @@ from PySide6.QtWidgets import (
 from viewer.session.state import Selection
 
 PASSED_STYLE = "QToolButton { color: #1b5e20; font-weight: bold; padding: 1px 6px; }"
-FAILED_STYLE = ("QToolButton { color: white; background: #b71c1c; font-weight: bold; "
-                "padding: 1px 6px; }")
+FAILED_STYLE = "QToolButton { color: white; background: #b71c1c; font-weight: bold; padding: 1px 6px; }"
 IDLE_STYLE = "QToolButton { color: #555555; padding: 1px 6px; }"
 
 
@@ -83,7 +82,8 @@ class CheckDialog(QDialog):
             f"The check {verdict}: the largest difference between the re-derived and the "
             f"model's own attention probabilities is {check.max_abs_error:.3e} "
             f"(tolerance {check.tolerance:g}), over {len(check.layer_errors)} layers × "
-            f"{check.head_errors.shape[1]} heads.")
+            f"{check.head_errors.shape[1]} heads."
+        )
         summary.setWordWrap(True)
         layout.addWidget(summary)
         self.table = QTableWidget(len(check.layer_errors), 3)

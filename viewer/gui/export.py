@@ -46,15 +46,24 @@ def build_export(pane) -> PaneExport:
     state = pane.state
     model = state.model
     analysis = state.analysis
-    source = Source(model.name if model is not None else
-                    getattr(getattr(analysis, "recording", None), "model_name", "") or "model",
-                    model.folder if model is not None else None)
+    source = Source(
+        model.name
+        if model is not None
+        else getattr(getattr(analysis, "recording", None), "model_name", "") or "model",
+        model.folder if model is not None else None,
+    )
     if isinstance(pane, PairGridPane):
         name = "compare grid" if pane.slot == "compare" else "pair grid"
         marked = name == "pair grid"
-        return exports.pair_grid_export(pane.analysis, source, layer=state.layer, head=state.head,
-                                        query=state.source if marked else None,
-                                        key=state.target if marked else None, pane=name)
+        return exports.pair_grid_export(
+            pane.analysis,
+            source,
+            layer=state.layer,
+            head=state.head,
+            query=state.source if marked else None,
+            key=state.target if marked else None,
+            pane=name,
+        )
     if isinstance(pane, HeadMapPane):
         from viewer.session.metrics import head_values
 
@@ -64,21 +73,35 @@ def build_export(pane) -> PaneExport:
         text = analysis.recording.text if analysis is not None else state.text
         ts = state.textset
         over_set = state.scope == "set" and ts is not None and "text set" in values.title
-        return exports.head_map_export(values, source, metric=state.metric, text=text,
-                                       layer=state.layer, head=state.head, scope=state.scope,
-                                       text_set=(ts.path, len(ts.rows)) if over_set else None)
+        return exports.head_map_export(
+            values,
+            source,
+            metric=state.metric,
+            text=text,
+            layer=state.layer,
+            head=state.head,
+            scope=state.scope,
+            text_set=(ts.path, len(ts.rows)) if over_set else None,
+        )
     if isinstance(pane, LinksPane):
         if pane.view_box.currentData() == "file" and state.link_pairs is not None:
-            return exports.link_accuracy_export(state.link_pairs, source, layer=state.layer,
-                                                head=state.head, text=state.text)
-        return exports.links_export(analysis, source, layer=state.layer, head=state.head,
-                                    query=state.source, key=state.target)
+            return exports.link_accuracy_export(
+                state.link_pairs, source, layer=state.layer, head=state.head, text=state.text
+            )
+        return exports.links_export(
+            analysis, source, layer=state.layer, head=state.head, query=state.source, key=state.target
+        )
     if isinstance(pane, EvidencePane):
         return exports.evidence_export(analysis, state.evidence, source, token=state.source)
     if isinstance(pane, FixationPane):
         ts = state.textset
-        return exports.fixation_export(state.shortcuts, source, head=pane.focus_head(),
-                                       word=state.word, text_set=None if ts is None else ts.path)
+        return exports.fixation_export(
+            state.shortcuts,
+            source,
+            head=pane.focus_head(),
+            word=state.word,
+            text_set=None if ts is None else ts.path,
+        )
     raise HeadlightError(f"the {pane.title} pane has no export")
 
 
@@ -89,9 +112,12 @@ def confirm_overwrite(parent: QWidget | None, paths: list[Path]) -> bool:
     """Ask before replacing existing files or a folder (tests patch this function)."""
     names = "\n".join(str(p) for p in paths[:6]) + ("\n…" if len(paths) > 6 else "")
     answer = QMessageBox.question(
-        parent, "Headlight", f"Replace what already exists?\n\n{names}",
+        parent,
+        "Headlight",
+        f"Replace what already exists?\n\n{names}",
         QMessageBox.StandardButton.Yes | QMessageBox.StandardButton.No,
-        QMessageBox.StandardButton.No)
+        QMessageBox.StandardButton.No,
+    )
     return answer == QMessageBox.StandardButton.Yes
 
 
@@ -114,8 +140,9 @@ class CardDialog(QDialog):
         self.texts_edit = self._row(form, "text set", texts, self._pick_texts)
         self.pairs_edit = self._row(form, "link pairs (optional)", pairs, self._pick_pairs)
         self.out_edit = self._row(form, "card folder", out, self._pick_out)
-        buttons = QDialogButtonBox(QDialogButtonBox.StandardButton.Ok
-                                   | QDialogButtonBox.StandardButton.Cancel)
+        buttons = QDialogButtonBox(
+            QDialogButtonBox.StandardButton.Ok | QDialogButtonBox.StandardButton.Cancel
+        )
         buttons.accepted.connect(self.accept)
         buttons.rejected.connect(self.reject)
         form.addRow(buttons)
@@ -132,21 +159,23 @@ class CardDialog(QDialog):
         return edit
 
     def _pick_texts(self) -> None:
-        path, _ = QFileDialog.getOpenFileName(self, "Text set", self.texts_edit.text(),
-                                              "Text sets (*.txt *.jsonl *.csv)")
+        path, _ = QFileDialog.getOpenFileName(
+            self, "Text set", self.texts_edit.text(), "Text sets (*.txt *.jsonl *.csv)"
+        )
         if path:
             self.texts_edit.setText(path)
 
     def _pick_pairs(self) -> None:
-        path, _ = QFileDialog.getOpenFileName(self, "Link pairs", self.pairs_edit.text(),
-                                              "Link pairs (*.jsonl)")
+        path, _ = QFileDialog.getOpenFileName(
+            self, "Link pairs", self.pairs_edit.text(), "Link pairs (*.jsonl)"
+        )
         if path:
             self.pairs_edit.setText(path)
 
     def _pick_out(self) -> None:
         path, _ = QFileDialog.getSaveFileName(
-            self, "Card folder", self.out_edit.text(), "",
-            options=QFileDialog.Option.DontConfirmOverwrite)
+            self, "Card folder", self.out_edit.text(), "", options=QFileDialog.Option.DontConfirmOverwrite
+        )
         if path:
             self.out_edit.setText(path)
 
@@ -180,22 +209,21 @@ class PaneExporter(QObject):
         menu = file_menu.addMenu("Export pane")
         self.export_menu = menu
         self.current_action = menu.addAction("Export last-clicked pane…")
-        self.current_action.triggered.connect(lambda _c=False: self.export_dialog(
-            self.current_pane()))
+        self.current_action.triggered.connect(lambda _c=False: self.export_dialog(self.current_pane()))
         self.copy_current_action = menu.addAction("Copy last-clicked pane's figure")
-        self.copy_current_action.triggered.connect(lambda _c=False: self.copy_figure(
-            self.current_pane()))
+        self.copy_current_action.triggered.connect(lambda _c=False: self.copy_figure(self.current_pane()))
         menu.addSeparator()
         for pane in self.panes():
             sub = menu.addMenu(self.pane_name(pane))
             sub.addAction("Export figure and data…").triggered.connect(
-                lambda _c=False, p=pane: self.export_dialog(p))
-            sub.addAction("Copy figure").triggered.connect(
-                lambda _c=False, p=pane: self.copy_figure(p))
+                lambda _c=False, p=pane: self.export_dialog(p)
+            )
+            sub.addAction("Copy figure").triggered.connect(lambda _c=False, p=pane: self.copy_figure(p))
         menu.aboutToShow.connect(self._label_current)
         self.card_action = file_menu.addAction("Export model-card folder…")
-        self.card_action.setStatusTip("card.md, figures and card.json for a model card, from the "
-                                      "open model and a text set")
+        self.card_action.setStatusTip(
+            "card.md, figures and card.json for a model card, from the open model and a text set"
+        )
         self.card_action.triggered.connect(lambda _c=False: self.card_dialog())
 
     def current_pane(self):
@@ -228,8 +256,7 @@ class PaneExporter(QObject):
                 self.current = pane
                 if event.button() == Qt.MouseButton.RightButton:
                     self._press[id(obj)] = event.position().toPoint()
-        elif (kind == QEvent.Type.MouseButtonRelease
-              and event.button() == Qt.MouseButton.RightButton):
+        elif kind == QEvent.Type.MouseButtonRelease and event.button() == Qt.MouseButton.RightButton:
             start = self._press.pop(id(obj), None)
             pos = event.position().toPoint()
             # a right-drag pans the pair grid; only a right click opens the menu
@@ -249,7 +276,8 @@ class PaneExporter(QObject):
         menu.setAttribute(Qt.WidgetAttribute.WA_DeleteOnClose)
         name = self.pane_name(pane)
         menu.addAction(f"Export {name} figure and data…").triggered.connect(
-            lambda _c=False: self.export_dialog(pane))
+            lambda _c=False: self.export_dialog(pane)
+        )
         menu.addAction("Copy figure").triggered.connect(lambda _c=False: self.copy_figure(pane))
         return menu
 
@@ -272,14 +300,16 @@ class PaneExporter(QObject):
             return
         start = str(self.default_folder() / f"{export.stem}.png")
         path, _ = QFileDialog.getSaveFileName(
-            self.window, f"Export {self.pane_name(pane)} (PNG, SVG, PDF, CSV and JSON)", start,
+            self.window,
+            f"Export {self.pane_name(pane)} (PNG, SVG, PDF, CSV and JSON)",
+            start,
             "Figure and data (*.png *.svg *.pdf *.csv *.json)",
-            options=QFileDialog.Option.DontConfirmOverwrite)
+            options=QFileDialog.Option.DontConfirmOverwrite,
+        )
         if path:
             self.export_to(pane, path, export=export)
 
-    def export_to(self, pane, path: str | Path, *,
-                  export: PaneExport | None = None) -> list[Path] | None:
+    def export_to(self, pane, path: str | Path, *, export: PaneExport | None = None) -> list[Path] | None:
         """Write ``pane``'s export at ``path`` (its suffix, if a known one, is dropped).
 
         Existing files are replaced only after ``confirm_overwrite``; returns the files written,
@@ -302,8 +332,7 @@ class PaneExporter(QObject):
             self.window.show_error(str(exc))
             return None
         self.window.settings.setValue("export/folder", str(path.parent))
-        self.window.set_status(f"exported {self.pane_name(pane)} to {path}.png/.svg/.pdf/.csv/"
-                               ".json")
+        self.window.set_status(f"exported {self.pane_name(pane)} to {path}.png/.svg/.pdf/.csv/.json")
         return written
 
     def copy_figure(self, pane) -> bool:
@@ -315,8 +344,9 @@ class PaneExporter(QObject):
             self.window.show_error("could not copy the figure: the PNG did not decode")
             return False
         QApplication.clipboard().setImage(image)
-        self.window.set_status(f"copied the {self.pane_name(pane)} figure "
-                               f"({image.width()}×{image.height()} px, 300 dpi)")
+        self.window.set_status(
+            f"copied the {self.pane_name(pane)} figure ({image.width()}×{image.height()} px, 300 dpi)"
+        )
         return True
 
     # -- card export

@@ -69,15 +69,19 @@ class MainWindow(QMainWindow):
 
     error_shown = Signal(str)
 
-    def __init__(self, *, settings: QSettings | None = None, config_dir: Path | None = None,
-                 restore_geometry: bool = True) -> None:
+    def __init__(
+        self,
+        *,
+        settings: QSettings | None = None,
+        config_dir: Path | None = None,
+        restore_geometry: bool = True,
+    ) -> None:
         super().__init__()
         self.state = Selection()
         self.worker = Worker(self)
         self.settings = settings or QSettings("Headlight", "Headlight")
         if config_dir is None:
-            base = QStandardPaths.writableLocation(
-                QStandardPaths.StandardLocation.AppConfigLocation)
+            base = QStandardPaths.writableLocation(QStandardPaths.StandardLocation.AppConfigLocation)
             config_dir = Path(base or Path.home() / ".config" / "headlight")
         self.config_dir = Path(config_dir)
         self.errors: list[str] = []
@@ -121,40 +125,54 @@ class MainWindow(QMainWindow):
         return action
 
     def _build_actions(self) -> None:
-        self.open_model_action = self._action("Open model folder…", self.open_model_dialog,
-                                              QKeySequence.StandardKey.Open,
-                                              "open a local checkpoint folder (Ctrl+O)")
-        self.run_action = self._action("Run", self.run_current, None,
-                                       "record the text and show it in every pane (Ctrl+Enter)")
-        self.cancel_action = self._action("Cancel", self.cancel, "Esc",
-                                          "stop the model work in progress")
+        self.open_model_action = self._action(
+            "Open model folder…",
+            self.open_model_dialog,
+            QKeySequence.StandardKey.Open,
+            "open a local checkpoint folder (Ctrl+O)",
+        )
+        self.run_action = self._action(
+            "Run", self.run_current, None, "record the text and show it in every pane (Ctrl+Enter)"
+        )
+        self.cancel_action = self._action("Cancel", self.cancel, "Esc", "stop the model work in progress")
         self.cancel_action.setEnabled(False)
-        self.open_set_action = self._action("Open text set…", self.open_textset_dialog, None,
-                                            "list a .txt, .jsonl or .csv file's predictions")
-        self.open_pairs_action = self._action("Open link pairs…", self.open_pairs_dialog, None,
-                                              "per-head link accuracy over a link-pairs file")
-        self.shortcuts_action = self._action("Search shortcuts", self.search_shortcuts, None,
-                                             "knock each word out of every text of the set")
+        self.open_set_action = self._action(
+            "Open text set…", self.open_textset_dialog, None, "list a .txt, .jsonl or .csv file's predictions"
+        )
+        self.open_pairs_action = self._action(
+            "Open link pairs…", self.open_pairs_dialog, None, "per-head link accuracy over a link-pairs file"
+        )
+        self.shortcuts_action = self._action(
+            "Search shortcuts", self.search_shortcuts, None, "knock each word out of every text of the set"
+        )
         self.insert_action = self._action(
-            "Insertion test", self.run_insertions, None,
+            "Insertion test",
+            self.run_insertions,
+            None,
             "insert each of the report's top words into the texts of other classes and count "
-            "the flips into its class (does the word alone drive the prediction?)")
-        self.compare_action = self._action("Compare", self.run_compare, None,
-                                           "run the second text or checkpoint")
-        self.clear_compare_action = self._action("Clear", self.clear_compare, None,
-                                                 "leave compare mode")
-        self.save_session_action = self._action("Save session…", self.save_session_dialog,
-                                                QKeySequence.StandardKey.Save)
+            "the flips into its class (does the word alone drive the prediction?)",
+        )
+        self.compare_action = self._action(
+            "Compare", self.run_compare, None, "run the second text or checkpoint"
+        )
+        self.clear_compare_action = self._action("Clear", self.clear_compare, None, "leave compare mode")
+        self.save_session_action = self._action(
+            "Save session…", self.save_session_dialog, QKeySequence.StandardKey.Save
+        )
         self.open_session_action = self._action("Open session…", self.open_session_dialog)
         self.quit_action = self._action("Quit", self.close, QKeySequence.StandardKey.Quit)
         self.evidence_action = self._action(
-            "Evidence after every run", self.run_evidence, None,
+            "Evidence after every run",
+            self.run_evidence,
+            None,
             "compute the evidence strip, head importance and knockout after each run "
-            "(off: only on demand, for large models)")
+            "(off: only on demand, for large models)",
+        )
         self.evidence_action.setCheckable(True)
         self.evidence_action.setChecked(True)
-        self.evidence_now_action = self._action("Compute evidence", self.run_evidence, None,
-                                                "compute the evidence strip for this text now")
+        self.evidence_now_action = self._action(
+            "Compute evidence", self.run_evidence, None, "compute the evidence strip for this text now"
+        )
 
     def _build_central(self) -> None:
         central = QWidget()
@@ -217,12 +235,10 @@ class MainWindow(QMainWindow):
         self.compare_pane = ComparePane(self.state, self.compare_action, self.clear_compare_action)
         self.notes_edit = _NotesEdit()
         self.notes_edit.setPlaceholderText("notes saved with the session")
-        self.notes_edit.textChanged.connect(
-            lambda: self.state.set_notes(self.notes_edit.toPlainText()))
+        self.notes_edit.textChanged.connect(lambda: self.state.set_notes(self.notes_edit.toPlainText()))
         bottom = Qt.DockWidgetArea.BottomDockWidgetArea
         self.textset_dock = self._dock("text set", self.textset_pane, "textsetDock", bottom)
-        self.shortcut_dock = self._dock("shortcut report", self.shortcut_pane, "shortcutDock",
-                                        bottom)
+        self.shortcut_dock = self._dock("shortcut report", self.shortcut_pane, "shortcutDock", bottom)
         self.fixation_dock = self._dock("fixation plot", self.fixation, "fixationDock", bottom)
         self.compare_dock = self._dock("compare", self.compare_pane, "compareDock", bottom)
         self.notes_dock = self._dock("notes", self.notes_edit, "notesDock", bottom)
@@ -259,8 +275,13 @@ class MainWindow(QMainWindow):
         run_menu.addAction(self.insert_action)
         run_menu.addAction(self.compare_action)
         view_menu = self.menuBar().addMenu("&View")
-        for dock in (self.textset_dock, self.shortcut_dock, self.fixation_dock, self.compare_dock,
-                     self.notes_dock):
+        for dock in (
+            self.textset_dock,
+            self.shortcut_dock,
+            self.fixation_dock,
+            self.compare_dock,
+            self.notes_dock,
+        ):
             view_menu.addAction(dock.toggleViewAction())
         self._fill_recent()
 
@@ -296,22 +317,29 @@ class MainWindow(QMainWindow):
 
     @property
     def figure_panes(self) -> list:
-        return [self.head_map, self.links, self.pair_grid, self.evidence, self.compare_pane.grid,
-                self.fixation]
+        return [
+            self.head_map,
+            self.links,
+            self.pair_grid,
+            self.evidence,
+            self.compare_pane.grid,
+            self.fixation,
+        ]
 
     def showEvent(self, event) -> None:  # noqa: N802
         super().showEvent(event)
         if not self._docks_sized and not self.settings.value("window/state"):
             self._docks_sized = True
-            QTimer.singleShot(0, lambda: self.resizeDocks([self.textset_dock], [170],
-                                                          Qt.Orientation.Vertical))
+            QTimer.singleShot(
+                0, lambda: self.resizeDocks([self.textset_dock], [170], Qt.Orientation.Vertical)
+            )
 
     # -- start-up
-    def start(self, model: str | None = None, text: str | None = None,
-              restore_last: bool = True) -> None:
+    def start(self, model: str | None = None, text: str | None = None, restore_last: bool = True) -> None:
         """After the window is on screen: load the drawing library and a model, in background."""
-        self.controller.start(model=model, text=text,
-                              last_session=self.last_session_path if restore_last else None)
+        self.controller.start(
+            model=model, text=text, last_session=self.last_session_path if restore_last else None
+        )
 
     @property
     def canvases_ready(self) -> bool:
@@ -334,8 +362,9 @@ class MainWindow(QMainWindow):
             self._add_recent(info.folder)
 
     def show_panel(self, name: str) -> None:
-        dock = {"textset": self.textset_dock, "shortcuts": self.shortcut_dock,
-                "compare": self.compare_dock}[name]
+        dock = {"textset": self.textset_dock, "shortcuts": self.shortcut_dock, "compare": self.compare_dock}[
+            name
+        ]
         dock.raise_()
         if name == "compare" and dock.height() < 300:
             self.resizeDocks([dock], [340], Qt.Orientation.Vertical)
@@ -368,8 +397,7 @@ class MainWindow(QMainWindow):
         self.set_status(f"error: {message}")
         if self.error_dialog is not None:
             self.error_dialog.close()
-        box = QMessageBox(QMessageBox.Icon.Warning, "Headlight", message,
-                          QMessageBox.StandardButton.Ok, self)
+        box = QMessageBox(QMessageBox.Icon.Warning, "Headlight", message, QMessageBox.StandardButton.Ok, self)
         box.setWindowModality(Qt.WindowModality.WindowModal)
         self.error_dialog = box
         box.open()
@@ -462,8 +490,7 @@ class MainWindow(QMainWindow):
         self.controller.cancel()
 
     def open_textset_dialog(self) -> None:
-        path, _ = QFileDialog.getOpenFileName(self, "Open a text set", "",
-                                              "Text sets (*.txt *.jsonl *.csv)")
+        path, _ = QFileDialog.getOpenFileName(self, "Open a text set", "", "Text sets (*.txt *.jsonl *.csv)")
         if path:
             self.open_textset(path)
 
@@ -510,8 +537,9 @@ class MainWindow(QMainWindow):
         sessions.save(path, self.controller.capture_session())
 
     def save_session_dialog(self) -> None:
-        path, _ = QFileDialog.getSaveFileName(self, "Save session", "session.headlight.json",
-                                              "Headlight sessions (*.json)")
+        path, _ = QFileDialog.getSaveFileName(
+            self, "Save session", "session.headlight.json", "Headlight sessions (*.json)"
+        )
         if path:
             try:
                 self.save_session(path)
@@ -520,8 +548,7 @@ class MainWindow(QMainWindow):
                 self.show_error(str(exc))
 
     def open_session_dialog(self) -> None:
-        path, _ = QFileDialog.getOpenFileName(self, "Open session", "",
-                                              "Headlight sessions (*.json)")
+        path, _ = QFileDialog.getOpenFileName(self, "Open session", "", "Headlight sessions (*.json)")
         if path:
             self.open_session(path)
 
@@ -555,8 +582,11 @@ class MainWindow(QMainWindow):
 
 def choose_base_folder(parent: QWidget, adapter: str, message: str) -> str | None:
     """The base model folder for an adapter, from a folder dialog (tests patch this)."""
-    QMessageBox.information(parent, "Headlight", f"{message}\n\nChoose the base model's "
-                            f"folder for the adapter {Path(adapter).name}.")
+    QMessageBox.information(
+        parent,
+        "Headlight",
+        f"{message}\n\nChoose the base model's folder for the adapter {Path(adapter).name}.",
+    )
     folder = QFileDialog.getExistingDirectory(parent, f"Base model for {Path(adapter).name}")
     return folder or None
 
@@ -564,7 +594,10 @@ def choose_base_folder(parent: QWidget, adapter: str, message: str) -> str | Non
 def confirm_close_unsaved(parent: QWidget, reason: str) -> bool:
     """Ask whether to close although the session could not be saved (tests patch this)."""
     answer = QMessageBox.warning(
-        parent, "Headlight", f"The session could not be saved: {reason}\n\nClose anyway?",
+        parent,
+        "Headlight",
+        f"The session could not be saved: {reason}\n\nClose anyway?",
         QMessageBox.StandardButton.Close | QMessageBox.StandardButton.Cancel,
-        QMessageBox.StandardButton.Cancel)
+        QMessageBox.StandardButton.Cancel,
+    )
     return answer == QMessageBox.StandardButton.Close

@@ -32,8 +32,15 @@ from viewer.session.jobs import Cancelled, JobContext
 class Job(QRunnable):
     """One call of a job function on the worker thread; reports through ``outbox``."""
 
-    def __init__(self, kind: str, fn: Callable[..., Any], args: tuple, models: dict,
-                 outbox: queue.Queue, wake: Callable[[], None]) -> None:
+    def __init__(
+        self,
+        kind: str,
+        fn: Callable[..., Any],
+        args: tuple,
+        models: dict,
+        outbox: queue.Queue,
+        wake: Callable[[], None],
+    ) -> None:
         super().__init__()
         self.setAutoDelete(False)
         self.kind = kind
@@ -59,8 +66,7 @@ class Job(QRunnable):
         self._post("progress", int(done), int(total), str(message))
 
     def run(self) -> None:  # worker thread
-        ctx = JobContext(progress=self._progress, cancelled=self.cancel_flag.is_set,
-                         models=self.models)
+        ctx = JobContext(progress=self._progress, cancelled=self.cancel_flag.is_set, models=self.models)
         try:
             ctx.check()
             result = self.fn(ctx, *self.args)
@@ -72,8 +78,11 @@ class Job(QRunnable):
         except Exception as exc:  # noqa: BLE001 - any failure must reach the user as a dialog
             traceback.print_exc(file=sys.stderr)
             first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
-            self._post("failed", f"internal error in {self.kind}: {type(exc).__name__}"
-                                 + (f": {first[:200]}" if first else ""))
+            self._post(
+                "failed",
+                f"internal error in {self.kind}: {type(exc).__name__}"
+                + (f": {first[:200]}" if first else ""),
+            )
         else:
             self._post("finished", result)
         finally:
@@ -102,8 +111,7 @@ class Worker(QObject):
         self._posted.connect(self.deliver, Qt.ConnectionType.QueuedConnection)
 
     # -- submitting and cancelling ---------------------------------------------------------
-    def submit(self, kind: str, fn: Callable[..., Any], *args: Any,
-               replace: bool = True) -> Job:
+    def submit(self, kind: str, fn: Callable[..., Any], *args: Any, replace: bool = True) -> Job:
         """Queue ``fn(ctx, *args)``; ``replace`` cancels pending jobs of the same kind."""
         if replace:
             for job in self._jobs:

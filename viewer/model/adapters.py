@@ -23,7 +23,7 @@ def _first_line(exc: BaseException) -> str:
 
 
 def describe(adapter: AdapterFolder) -> str:
-    """"LoRA r=8" style description from adapter_config.json."""
+    """ "LoRA r=8" style description from adapter_config.json."""
     kind = str(adapter.config.get("peft_type", "adapter"))
     kind = {"LORA": "LoRA"}.get(kind.upper(), kind)
     rank = adapter.config.get("r")
@@ -48,7 +48,6 @@ def merge_adapter(model: Any, adapter: AdapterFolder) -> Any:
     try:
         merged = peft_model.merge_and_unload()
     except (ValueError, RuntimeError, NotImplementedError) as exc:
-        raise HeadlightError(f"adapter {adapter.path.name} cannot be merged: {_first_line(exc)}") \
-            from None
+        raise HeadlightError(f"adapter {adapter.path.name} cannot be merged: {_first_line(exc)}") from None
     merged.eval()
     return merged

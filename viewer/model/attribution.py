@@ -28,8 +28,9 @@ def _target_fn(loaded: LoadedModel, batch: Batch, target: int) -> Callable[[torc
 
     def f(embeds: torch.Tensor) -> torch.Tensor:
         n = embeds.shape[0]
-        out, _ = loaded.forward(batch, inputs_embeds=embeds, grad=True,
-                                input_ids=None, attention_mask=mask.expand(n, -1))
+        out, _ = loaded.forward(
+            batch, inputs_embeds=embeds, grad=True, input_ids=None, attention_mask=mask.expand(n, -1)
+        )
         probs = loaded.target_probabilities(
             Batch(batch.encoding, batch.lengths * n, batch.truncated_from * n, batch.texts * n),
             out,
@@ -59,9 +60,16 @@ class GradientEvidence:
         return completeness_gap(self.integrated, self.f_input, self.f_baseline)
 
 
-def gradient_evidence(loaded: LoadedModel, text: str, target: int, *, steps: int = 50,
-                      max_steps: int = 800, tolerance: float = 0.01,
-                      chunk: int = 25) -> GradientEvidence:
+def gradient_evidence(
+    loaded: LoadedModel,
+    text: str,
+    target: int,
+    *,
+    steps: int = 50,
+    max_steps: int = 800,
+    tolerance: float = 0.01,
+    chunk: int = 25,
+) -> GradientEvidence:
     """Gradient × input and integrated gradients on the input embeddings of one text.
 
     Baseline x': the word embedding of every ordinary token replaced by zeros; special tokens
@@ -98,23 +106,32 @@ def gradient_evidence(loaded: LoadedModel, text: str, target: int, *, steps: int
     return GradientEvidence(gi, attr.sum(-1), f_x, f_b, n)
 
 
-def predict_without(loaded: LoadedModel, cases: Sequence[tuple[Sequence[int], Sequence[int]]],
-                    batch_size: int = 32) -> np.ndarray:
+def predict_without(
+    loaded: LoadedModel, cases: Sequence[tuple[Sequence[int], Sequence[int]]], batch_size: int = 32
+) -> np.ndarray:
     """(N, C) target probabilities for N (token ids, positions to delete) cases, batched.
 
     The one definition of knockout by deletion (docs/definitions.md, "Word knockout"): the
     listed sub-tokens are removed from the text's input ids and the shortened input is run
     again. Cases may come from different texts, so a report can batch across texts.
     """
-    variants = [np.delete(np.asarray(ids, dtype=np.int64), np.asarray(gone, dtype=np.int64))
-                .tolist() for ids, gone in cases]
+    variants = [
+        np.delete(np.asarray(ids, dtype=np.int64), np.asarray(gone, dtype=np.int64)).tolist()
+        for ids, gone in cases
+    ]
     if not variants:
         return np.zeros((0, 0))
     return loaded.predict_ids(variants, batch_size=batch_size)
 
 
-def token_knockout(loaded: LoadedModel, token_ids: Sequence[int], special: np.ndarray,
-                   target: int, p_before: float, batch_size: int = 32) -> np.ndarray:
+def token_knockout(
+    loaded: LoadedModel,
+    token_ids: Sequence[int],
+    special: np.ndarray,
+    target: int,
+    p_before: float,
+    batch_size: int = 32,
+) -> np.ndarray:
     """(T,) drop in the target probability when each ordinary token is deleted from the input.
 
     Special tokens are never deleted (NaN in their place). drop = p(target | text) −
@@ -129,9 +146,13 @@ def token_knockout(loaded: LoadedModel, token_ids: Sequence[int], special: np.nd
     return drops
 
 
-def head_importance_sums(loaded: LoadedModel, texts: Sequence[str], targets: Sequence[int],
-                         batch_size: int = 16, progress: Callable[[int], None] | None = None
-                         ) -> np.ndarray:
+def head_importance_sums(
+    loaded: LoadedModel,
+    texts: Sequence[str],
+    targets: Sequence[int],
+    batch_size: int = 16,
+    progress: Callable[[int], None] | None = None,
+) -> np.ndarray:
     """Σ over texts of |∂L/∂ξ_h| with L the cross-entropy against `targets` (L, H).
 
     Michel et al. 2019, Eq. 2: I_h = E_x |∂L(x)/∂ξ_h|; each text gets its own gates (B, L, H)
@@ -140,12 +161,12 @@ def head_importance_sums(loaded: LoadedModel, texts: Sequence[str], targets: Seq
     total = np.zeros((loaded.n_layers, loaded.n_heads))
     size = max(1, min(batch_size, loaded.max_batch))
     for start in range(0, len(texts), size):
-        batch = loaded.encode(texts[start:start + size])
+        batch = loaded.encode(texts[start : start + size])
         n = len(batch.lengths)
         g = torch.ones(n, loaded.n_layers, loaded.n_heads, requires_grad=True)
         out, _ = loaded.forward(batch, gates=g, grad=True)
         probs = loaded.target_probabilities(batch, out)
-        y = torch.as_tensor(list(targets[start:start + n]), dtype=torch.long)
+        y = torch.as_tensor(list(targets[start : start + n]), dtype=torch.long)
         loss = torch.nn.functional.nll_loss(torch.log(probs.clamp_min(1e-30)), y, reduction="sum")
         (grad,) = torch.autograd.grad(loss, g)
         total += grad.abs().sum(dim=0).double().numpy()
@@ -154,16 +175,20 @@ def head_importance_sums(loaded: LoadedModel, texts: Sequence[str], targets: Seq
     return total
 
 
-def head_knockout_effects(loaded: LoadedModel, texts: Sequence[str], labels: Sequence[int] | None,
-                          batch_size: int = 16, progress: Callable[[int], None] | None = None
-                          ) -> dict[str, np.ndarray]:
+def head_knockout_effects(
+    loaded: LoadedModel,
+    texts: Sequence[str],
+    labels: Sequence[int] | None,
+    batch_size: int = 16,
+    progress: Callable[[int], None] | None = None,
+) -> dict[str, np.ndarray]:
     """Knock out each head alone; measure accuracy and the predicted-class probability.
 
     Returns (L, H) arrays: ``prob_drop`` (mean over texts of p(original prediction) before minus
     after) and, when labels are given, ``accuracy`` after knockout, with ``base_accuracy``.
     """
     size = max(1, min(batch_size, loaded.max_batch))
-    batches = [loaded.encode(texts[i:i + size]) for i in range(0, len(texts), size)]
+    batches = [loaded.encode(texts[i : i + size]) for i in range(0, len(texts), size)]
     base = np.concatenate([loaded.predict(b) for b in batches], axis=0)  # (N, C)
     pred = base.argmax(axis=1)
     p_before = base[np.arange(len(pred)), pred]

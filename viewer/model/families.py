@@ -349,17 +349,35 @@ GPT2 = Family(
 
 LLAMA = _decoder("Llama", ("llama",))
 QWEN2 = _decoder("Qwen2", ("qwen2",), windows=_sliding_typed)
-QWEN3 = _decoder("Qwen3", ("qwen3",), q=_ATTN + r"\.q_norm$", k=_ATTN + r"\.k_norm$",
-                 qk_layout="bthd", windows=_sliding_typed)
+QWEN3 = _decoder(
+    "Qwen3",
+    ("qwen3",),
+    q=_ATTN + r"\.q_norm$",
+    k=_ATTN + r"\.k_norm$",
+    qk_layout="bthd",
+    windows=_sliding_typed,
+)
 MISTRAL = _decoder("Mistral", ("mistral",), windows=_sliding_all)
 GEMMA = _decoder("Gemma", ("gemma",), refuse=_refuse_bidirectional)
-GEMMA2 = _decoder("Gemma 2", ("gemma2",), scale=_gemma2_scale, windows=_sliding_typed,
-                  softcap=_gemma2_softcap, refuse=_refuse_bidirectional)
-GEMMA3 = _decoder("Gemma 3", ("gemma3_text",), q=_ATTN + r"\.q_norm$", k=_ATTN + r"\.k_norm$",
-                  qk_layout="bhtd", scale=_gemma2_scale, windows=_sliding_typed,
-                  refuse=_refuse_bidirectional)  # its attention passes no soft-cap (transformers 5)
-PHI3 = _decoder("Phi-3", ("phi3",), q=None, k=None, v=None, qkv=_ATTN + r"\.qkv_proj$",
-                windows=_sliding_all)
+GEMMA2 = _decoder(
+    "Gemma 2",
+    ("gemma2",),
+    scale=_gemma2_scale,
+    windows=_sliding_typed,
+    softcap=_gemma2_softcap,
+    refuse=_refuse_bidirectional,
+)
+GEMMA3 = _decoder(
+    "Gemma 3",
+    ("gemma3_text",),
+    q=_ATTN + r"\.q_norm$",
+    k=_ATTN + r"\.k_norm$",
+    qk_layout="bhtd",
+    scale=_gemma2_scale,
+    windows=_sliding_typed,
+    refuse=_refuse_bidirectional,
+)  # its attention passes no soft-cap (transformers 5)
+PHI3 = _decoder("Phi-3", ("phi3",), q=None, k=None, v=None, qkv=_ATTN + r"\.qkv_proj$", windows=_sliding_all)
 OPT = _decoder("OPT", ("opt",), out=_ATTN + r"\.out_proj$", rotary=None, geometry=None)
 GPT_NEOX = Family(
     name="GPT-NeoX",
@@ -375,8 +393,27 @@ GPT_NEOX = Family(
 )
 
 FAMILIES: tuple[Family, ...] = (
-    BERT, ROBERTA, XLM_ROBERTA, CAMEMBERT, DISTILBERT, ALBERT, ELECTRA, DEBERTA_V2, MODERNBERT,
-    MPNET, GPT2, LLAMA, QWEN2, QWEN3, MISTRAL, GEMMA, GEMMA2, GEMMA3, PHI3, GPT_NEOX, OPT,
+    BERT,
+    ROBERTA,
+    XLM_ROBERTA,
+    CAMEMBERT,
+    DISTILBERT,
+    ALBERT,
+    ELECTRA,
+    DEBERTA_V2,
+    MODERNBERT,
+    MPNET,
+    GPT2,
+    LLAMA,
+    QWEN2,
+    QWEN3,
+    MISTRAL,
+    GEMMA,
+    GEMMA2,
+    GEMMA3,
+    PHI3,
+    GPT_NEOX,
+    OPT,
 )
 
 # architectures whose attention has something Headlight does not model, named in the refusal

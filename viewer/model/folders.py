@@ -134,9 +134,13 @@ def check_safetensors(path: Path) -> dict:
 
 
 def _stored_half_type(headers: list[dict]) -> str | None:
-    """"bfloat16" or "float16" when the floating-point tensors are stored in that type."""
-    kinds = {info.get("dtype") for h in headers for name, info in h.items()
-             if name != "__metadata__" and isinstance(info, dict)}
+    """ "bfloat16" or "float16" when the floating-point tensors are stored in that type."""
+    kinds = {
+        info.get("dtype")
+        for h in headers
+        for name, info in h.items()
+        if name != "__metadata__" and isinstance(info, dict)
+    }
     halves = sorted(HALF_TYPES[k] for k in kinds if k in HALF_TYPES)
     return halves[0] if halves else None
 
@@ -195,8 +199,7 @@ def is_adapter_folder(path: Path) -> bool:
     return (path / "adapter_config.json").is_file() and not (path / "config.json").is_file()
 
 
-def adapter_folder(path: Path, base: str | os.PathLike | None,
-                   allow_pickle: bool = False) -> AdapterFolder:
+def adapter_folder(path: Path, base: str | os.PathLike | None, allow_pickle: bool = False) -> AdapterFolder:
     """Check a PEFT adapter folder and resolve its base model folder.
 
     The base is ``base`` when given, else the adapter's ``base_model_name_or_path`` when that is

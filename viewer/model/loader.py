@@ -71,6 +71,7 @@ HEAD_KINDS = {
     "LMHeadModel": ("causal-lm", AutoModelForCausalLM),
 }
 
+
 def _head_kind(config: dict) -> tuple[str, Any, str | None]:
     archs = config.get("architectures") or []
     arch = archs[0] if archs else ""
@@ -127,8 +128,16 @@ class Attention:
 class LoadedModel:
     """A checkpoint opened for recording: the torch model, its tokenizer and attention hooks."""
 
-    def __init__(self, folder: Path, model: Any, tokenizer: Any, family: Family,
-                 geometry: Geometry, head_kind: str, notes: tuple[str, ...]):
+    def __init__(
+        self,
+        folder: Path,
+        model: Any,
+        tokenizer: Any,
+        family: Family,
+        geometry: Geometry,
+        head_kind: str,
+        notes: tuple[str, ...],
+    ):
         self.folder = folder
         # the model line: "folder", "base + adapter" for a merged adapter
         self.name = _folder_name(folder)
@@ -143,9 +152,7 @@ class LoadedModel:
         self.config = model.config
         self.n_layers = _layer_count(self.config)
         self.max_tokens = _max_tokens(self.config, tokenizer, family)
-        self.scales = np.array(
-            [layer_scale(family, self.config, i, geometry) for i in range(self.n_layers)]
-        )
+        self.scales = np.array([layer_scale(family, self.config, i, geometry) for i in range(self.n_layers)])
         self.windows = _window_array(family.windows(self.config, self.n_layers), self.n_layers)
         cap = float(family.softcap(self.config))
         self.softcaps = np.full(self.n_layers, cap) if cap > 0 else None
@@ -170,8 +177,11 @@ class LoadedModel:
                 tokenizer.pad_token = fallback
             if head_kind == "classifier" and getattr(self.config, "pad_token_id", None) is None:
                 self.max_batch = 1
-        if (family.causal and head_kind == "classifier"
-                and tokenizer.pad_token_id != getattr(self.config, "pad_token_id", None)):
+        if (
+            family.causal
+            and head_kind == "classifier"
+            and tokenizer.pad_token_id != getattr(self.config, "pad_token_id", None)
+        ):
             # the classifier reads the last token that is not its pad id: pad with nothing else
             self.max_batch = 1
 
@@ -228,8 +238,9 @@ class LoadedModel:
             ids[i, : len(row)] = torch.as_tensor(list(row), dtype=torch.long)
             mask[i, : len(row)] = 1
         lengths = [len(r) for r in id_lists]
-        return Batch({"input_ids": ids, "attention_mask": mask}, lengths, [None] * len(lengths),
-                     [""] * len(lengths))
+        return Batch(
+            {"input_ids": ids, "attention_mask": mask}, lengths, [None] * len(lengths), [""] * len(lengths)
+        )
 
     def target_probabilities(self, batch: Batch, out: Any) -> torch.Tensor:
         """(B, C) the distribution a prediction is read from.
@@ -255,8 +266,10 @@ class LoadedModel:
 
     def predict_ids(self, id_lists: Sequence[Sequence[int]], batch_size: int = 32) -> np.ndarray:
         """(N, C) target probabilities for many token-id lists, in padded batches."""
-        parts = [self.predict(self.batch_from_ids(id_lists[i:i + batch_size]))
-                 for i in range(0, len(id_lists), max(1, min(batch_size, self.max_batch)))]
+        parts = [
+            self.predict(self.batch_from_ids(id_lists[i : i + batch_size]))
+            for i in range(0, len(id_lists), max(1, min(batch_size, self.max_batch)))
+        ]
         return np.concatenate(parts, axis=0)
 
     def output_projection(self, layer: int) -> np.ndarray:
@@ -287,11 +300,12 @@ class LoadedModel:
         """
         size = max(1, min(batch_size, self.max_batch))
         for start in range(0, len(texts), size):
-            batch = self.encode(texts[start:start + size])
+            batch = self.encode(texts[start : start + size])
             out, _ = self.forward(batch, output_attentions=True)
             probs = torch.stack(out.attentions, dim=1).float().numpy()  # (B, L, H, T, T)
-            predicts = (self.head_kind in ("classifier", "causal-lm")
-                        and getattr(out, "logits", None) is not None)
+            predicts = (
+                self.head_kind in ("classifier", "causal-lm") and getattr(out, "logits", None) is not None
+            )
             targets = self.target_probabilities(batch, out).double().numpy() if predicts else None
             enc = batch.encoding
             for i, n in enumerate(batch.lengths):
@@ -308,12 +322,19 @@ class LoadedModel:
                 )
 
     def model_inputs(self, batch: Batch) -> dict:
-        return {"input_ids": batch.encoding["input_ids"],
-                "attention_mask": batch.encoding["attention_mask"]}
+        return {"input_ids": batch.encoding["input_ids"], "attention_mask": batch.encoding["attention_mask"]}
 
     # -- running ------------------------------------------------------------------------
-    def forward(self, batch: Batch, *, capture: bool = False, gates: torch.Tensor | None = None,
-                output_attentions: bool = False, grad: bool = False, **extra: Any):
+    def forward(
+        self,
+        batch: Batch,
+        *,
+        capture: bool = False,
+        gates: torch.Tensor | None = None,
+        output_attentions: bool = False,
+        grad: bool = False,
+        **extra: Any,
+    ):
         """One forward pass over a batch; returns (model output, capture or None).
 
         gates: (L, H) multiplicative per-head gates on the head outputs (1 = untouched,
@@ -344,7 +365,7 @@ class LoadedModel:
         """Record many texts in padded batches; yields one recording per text, in order."""
         size = max(1, min(batch_size, self.max_batch))
         for start in range(0, len(texts), size):
-            yield from self.record_batch(self.encode(texts[start:start + size]))
+            yield from self.record_batch(self.encode(texts[start : start + size]))
 
     def _recordings(self, batch: Batch, out: Any, cap: Capture) -> list[Recording]:
         attentions = out.attentions
@@ -387,28 +408,30 @@ class LoadedModel:
                     f"(the model reads at most {self.max_tokens})"
                 )
             tok_ids = ids[i, :n].copy()
-            recs.append(Recording(
-                text=batch.texts[i],
-                tokens=tuple(self.tokenizer.convert_ids_to_tokens(tok_ids.tolist())),
-                offsets=offsets[i, :n].copy(),
-                special=specials[i, :n].copy(),
-                token_ids=tok_ids,
-                q=np.ascontiguousarray(qi, dtype=np.float32),
-                k=np.ascontiguousarray(ki, dtype=np.float32),
-                v=v[i, :, :, :n].copy(),
-                probs=probs[i, :, :, :n, :n].copy(),
-                context=ctx[i, :, :, :n].copy(),
-                scale=self.scales.copy(),
-                causal=self.family.causal,
-                logits=lg,
-                head_kind=self.head_kind,
-                labels=self.labels,
-                family=self.family.name,
-                model_name=self.name,
-                truncated_from=batch.truncated_from[i],
-                notes=tuple(notes),
-                terms=_text_terms(terms, n),
-            ))
+            recs.append(
+                Recording(
+                    text=batch.texts[i],
+                    tokens=tuple(self.tokenizer.convert_ids_to_tokens(tok_ids.tolist())),
+                    offsets=offsets[i, :n].copy(),
+                    special=specials[i, :n].copy(),
+                    token_ids=tok_ids,
+                    q=np.ascontiguousarray(qi, dtype=np.float32),
+                    k=np.ascontiguousarray(ki, dtype=np.float32),
+                    v=v[i, :, :, :n].copy(),
+                    probs=probs[i, :, :, :n, :n].copy(),
+                    context=ctx[i, :, :, :n].copy(),
+                    scale=self.scales.copy(),
+                    causal=self.family.causal,
+                    logits=lg,
+                    head_kind=self.head_kind,
+                    labels=self.labels,
+                    family=self.family.name,
+                    model_name=self.name,
+                    truncated_from=batch.truncated_from[i],
+                    notes=tuple(notes),
+                    terms=_text_terms(terms, n),
+                )
+            )
         return recs
 
     def _rotary_tables(self, cap: Capture) -> list[tuple[list[int], tuple[np.ndarray, ...]]]:
@@ -439,12 +462,18 @@ class LoadedModel:
             table = cap.bias.float().numpy()  # (H, R), one table for every layer
             bias = np.broadcast_to(table, (self.n_layers, *table.shape))
         index = None
-        if (pos_key is not None or pos_query is not None or bias is not None):
+        if pos_key is not None or pos_query is not None or bias is not None:
             if cap.rel_index is None:
                 raise RuntimeError(f"{self.family.name}: relative positions were not captured")
             index = cap.rel_index.numpy().astype(np.int64)
-        return ScoreTerms(rel_index=index, pos_key=pos_key, pos_query=pos_query, bias=bias,
-                          softcap=self.softcaps, window=self.windows)
+        return ScoreTerms(
+            rel_index=index,
+            pos_key=pos_key,
+            pos_query=pos_query,
+            bias=bias,
+            softcap=self.softcaps,
+            window=self.windows,
+        )
 
 
 def _stack_layers(parts: list[torch.Tensor], n_layers: int, what: str) -> np.ndarray:
@@ -482,8 +511,9 @@ def _layer_count(config: Any) -> int:
     return int(n)
 
 
-def open_model(folder: str | os.PathLike, *, base: str | os.PathLike | None = None,
-               allow_pickle: bool = False) -> LoadedModel:
+def open_model(
+    folder: str | os.PathLike, *, base: str | os.PathLike | None = None, allow_pickle: bool = False
+) -> LoadedModel:
     """Open a local Hugging Face-format folder for recording (offline, eager attention).
 
     A PEFT adapter folder (``adapter_config.json``) opens on its base model: ``base`` when
@@ -495,8 +525,9 @@ def open_model(folder: str | os.PathLike, *, base: str | os.PathLike | None = No
         adapter = adapter_folder(path, base, allow_pickle)
         return _open_checked(model_folder(adapter.base, allow_pickle), adapter)
     if base is not None:
-        raise HeadlightError(f"{path} is a model folder, not an adapter; a base model folder "
-                             "applies to adapter folders only")
+        raise HeadlightError(
+            f"{path} is a model folder, not an adapter; a base model folder applies to adapter folders only"
+        )
     return _open_checked(model_folder(path, allow_pickle))
 
 
@@ -513,11 +544,9 @@ def _open_checked(checked: ModelFolder, adapter: AdapterFolder | None = None) ->
     geometry = family.head_geometry(config)
     tok_path = adapter.path if adapter is not None and adapter.has_tokenizer else path
     try:
-        tokenizer = AutoTokenizer.from_pretrained(tok_path, local_files_only=True,
-                                                  trust_remote_code=False)
+        tokenizer = AutoTokenizer.from_pretrained(tok_path, local_files_only=True, trust_remote_code=False)
     except (ValueError, OSError, TypeError, KeyError, AttributeError, RuntimeError) as exc:
-        raise HeadlightError(f"tokenizer in {tok_path} cannot be loaded: {_first_line(exc)}") \
-            from None
+        raise HeadlightError(f"tokenizer in {tok_path} cannot be loaded: {_first_line(exc)}") from None
     if not getattr(tokenizer, "is_fast", False):
         raise HeadlightError(f"tokenizer in {tok_path} is not a fast tokenizer (needed for offsets)")
     tokenizer.padding_side = "right"
@@ -553,10 +582,12 @@ def _open_checked(checked: ModelFolder, adapter: AdapterFolder | None = None) ->
     notes = [n for n in (note, _upcast_note(checked)) if n]
     if adapter is not None:
         model = merge_adapter(model, adapter)
-        notes.append(f"adapter {adapter.path.name} ({describe(adapter)}) merged into base "
-                     f"{_folder_name(path)}")
-    loaded = LoadedModel(adapter.path if adapter else path, model, tokenizer, family, geometry,
-                         head_kind, tuple(notes))
+        notes.append(
+            f"adapter {adapter.path.name} ({describe(adapter)}) merged into base {_folder_name(path)}"
+        )
+    loaded = LoadedModel(
+        adapter.path if adapter else path, model, tokenizer, family, geometry, head_kind, tuple(notes)
+    )
     loaded.weight_files = checked.weights
     if adapter is not None:
         loaded.name = f"{_folder_name(path)} + {_folder_name(adapter.path)}"

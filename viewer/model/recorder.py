@@ -127,8 +127,13 @@ class AttentionHooks:
     def _is_relative_table(self, x: torch.Tensor) -> bool:
         """Whether a projection input is DeBERTa's relative embedding table (shared q/k)."""
         table = self._relative_table
-        return table is not None and x.data_ptr() == table.data_ptr() and x.dim() == 3 \
-            and x.shape[0] == 1 and x.shape[-1] == table.shape[-1]
+        return (
+            table is not None
+            and x.data_ptr() == table.data_ptr()
+            and x.dim() == 3
+            and x.shape[0] == 1
+            and x.shape[-1] == table.shape[-1]
+        )
 
     def _on_proj(self, which: str, n_heads: int, query_or_key: bool):
         layout = self.family.qk_layout if query_or_key else "flat"
@@ -184,8 +189,7 @@ class AttentionHooks:
         if self.capture.rel_index is None:
             span = int(module.pos_ebd_size)
             # the row of the 2·span position tables each pair reads: clamp(δ + span, 0, 2span − 1)
-            index = torch.clamp(rel.detach().reshape(rel.shape[-2], rel.shape[-1]) + span,
-                                0, 2 * span - 1)
+            index = torch.clamp(rel.detach().reshape(rel.shape[-2], rel.shape[-1]) + span, 0, 2 * span - 1)
             self.capture.rel_index = index
 
     def _on_position(self, which: str):

@@ -39,8 +39,7 @@ from viewer.errors import HeadlightError
 from viewer.model.attribution import gradient_evidence, token_knockout
 from viewer.model.loader import LoadedModel
 
-KINDS = ("attention", "rollout", "flow", "value_norm", "grad_input", "integrated_gradients",
-         "knockout")
+KINDS = ("attention", "rollout", "flow", "value_norm", "grad_input", "integrated_gradients", "knockout")
 KIND_TITLES = {
     "attention": "summary-token attention (last layer, head mean)",
     "rollout": "attention rollout",
@@ -88,8 +87,7 @@ class Evidence:
         """
         kinds = [k for k in KINDS if np.isfinite(self.rows[k]).any()]
         values = np.stack([np.asarray(self.rows[k], dtype=np.float64) for k in kinds])
-        agreement = tuple("reference" if k == "knockout" else self.agreement.get(k)
-                          for k in kinds)
+        agreement = tuple("reference" if k == "knockout" else self.agreement.get(k) for k in kinds)
         return tuple(KIND_LABELS[k] for k in kinds), values, agreement
 
     def to_dict(self) -> dict:
@@ -105,16 +103,19 @@ class Evidence:
             "summary_token": rec.summary_index(),
             "target": self.target,
             "target_label": self.target_label,
-            "probabilities": {lab: float(p) for lab, p in zip(rec.labels, self.probabilities,
-                                                               strict=False)},
+            "probabilities": {lab: float(p) for lab, p in zip(rec.labels, self.probabilities, strict=False)},
             "rows": {k: [num(v) for v in self.rows[k]] for k in KINDS},
             "agreement_with_knockout": {k: num(v) for k, v in self.agreement.items()},
             "integrated_gradients_completeness_gap": num(self.completeness_gap),
             "integrated_gradients_steps": self.ig_steps,
             "notes": list(self.notes),
-            **{name: None if grid is None else [[num(v) for v in row] for row in grid]
-               for name, grid in (("head_importance", self.head_importance),
-                                  ("head_knockout", self.head_knockout))},
+            **{
+                name: None if grid is None else [[num(v) for v in row] for row in grid]
+                for name, grid in (
+                    ("head_importance", self.head_importance),
+                    ("head_knockout", self.head_knockout),
+                )
+            },
         }
 
 
@@ -132,8 +133,14 @@ def value_norm_row(loaded: LoadedModel, rec: Recording, summary: int) -> np.ndar
     return value_weighted_norms(rec.probs[layer], f).head_sum[summary]
 
 
-def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
-                 recording: Recording | None = None, knockout_batch: int = 32) -> Evidence:
+def evidence_for(
+    loaded: LoadedModel,
+    text: str,
+    *,
+    steps: int = 50,
+    recording: Recording | None = None,
+    knockout_batch: int = 32,
+) -> Evidence:
     """All evidence rows for one text (the model is run several times; use a worker thread)."""
     rec = recording if recording is not None else loaded.record(text)
     s = rec.summary_index()
@@ -152,40 +159,48 @@ def evidence_for(loaded: LoadedModel, text: str, *, steps: int = 50,
     probs = rec.class_probabilities()
     gap = ig_steps = None
     if loaded.head_kind in ("classifier", "causal-lm"):
-        dist = (probs if loaded.head_kind == "classifier"
-                else softmax(rec.logits[-1]))
+        dist = probs if loaded.head_kind == "classifier" else softmax(rec.logits[-1])
         target = int(np.argmax(dist))
-        label = (rec.labels[target] if loaded.head_kind == "classifier"
-                 else loaded.tokenizer.convert_ids_to_tokens(target))
+        label = (
+            rec.labels[target]
+            if loaded.head_kind == "classifier"
+            else loaded.tokenizer.convert_ids_to_tokens(target)
+        )
         grads = gradient_evidence(loaded, text, target, steps=steps)
         rows["grad_input"] = grads.grad_input
         rows["integrated_gradients"] = grads.integrated
         gap = grads.completeness_gap
         ig_steps = grads.steps
         if grads.steps > steps:
-            notes.append(f"integrated gradients needed {grads.steps} steps to add up to the "
-                         "change in probability (the prediction switches abruptly on the path)")
-        rows["knockout"] = token_knockout(loaded, rec.token_ids, rec.special, target,
-                                          float(dist[target]), batch_size=knockout_batch)
+            notes.append(
+                f"integrated gradients needed {grads.steps} steps to add up to the "
+                "change in probability (the prediction switches abruptly on the path)"
+            )
+        rows["knockout"] = token_knockout(
+            loaded, rec.token_ids, rec.special, target, float(dist[target]), batch_size=knockout_batch
+        )
     else:
-        notes.append(f"{loaded.name} has a {loaded.head_kind} head: no prediction to explain, so "
-                     "no gradient or knockout rows")
+        notes.append(
+            f"{loaded.name} has a {loaded.head_kind} head: no prediction to explain, so "
+            "no gradient or knockout rows"
+        )
 
     ordinary = ~rec.special
     agreement = {}
     if target is not None and ordinary.sum() >= 2:
         for kind in KINDS[:-1]:
-            agreement[kind] = spearman(rows[kind][ordinary], rows["knockout"][ordinary]) \
-                if np.all(np.isfinite(rows[kind][ordinary])) else float("nan")
+            agreement[kind] = (
+                spearman(rows[kind][ordinary], rows["knockout"][ordinary])
+                if np.all(np.isfinite(rows[kind][ordinary]))
+                else float("nan")
+            )
     per_head = rec.probs[-1][:, s, :].astype(np.float64)  # (H, T) last layer, per head
-    return Evidence(rec, rows, per_head, agreement, target, label, probs, gap, ig_steps,
-                    tuple(notes))
+    return Evidence(rec, rows, per_head, agreement, target, label, probs, gap, ig_steps, tuple(notes))
 
 
-
-def head_evidence(loaded: LoadedModel, text: str,
-                  tick: Callable[[int], None] | None = None
-                  ) -> tuple[np.ndarray | None, np.ndarray | None]:
+def head_evidence(
+    loaded: LoadedModel, text: str, tick: Callable[[int], None] | None = None
+) -> tuple[np.ndarray | None, np.ndarray | None]:
     """(L, H) head importance (Michel et al. 2019, Eq. 2) and each head's knockout effect
     (drop in the predicted class's probability) for one text; None where a model has no
     prediction. ``tick`` is called between heads (a window uses it to cancel)."""

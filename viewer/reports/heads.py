@@ -126,7 +126,7 @@ class HeadsKind:
         predicted, confidence, tokens = [], [], []
         for start in range(0, len(texts), self.batch_size):
             check()
-            for att in loaded.attentions(texts[start:start + self.batch_size], self.batch_size):
+            for att in loaded.attentions(texts[start : start + self.batch_size], self.batch_size):
                 stats.add(att.probs, att.special, att.causal, visible=att.key_masks())
                 k = -1 if att.target is None else int(np.argmax(att.target))
                 predicted.append(k)
@@ -137,7 +137,7 @@ class HeadsKind:
             extras["predicted"] = np.array(predicted, dtype=np.int64)
             extras["confidence"] = np.array(confidence, dtype=np.float64)
             extras["tokens"] = np.array(tokens, dtype=np.int64)
-        labels = ([label_index(loaded, i) for i in shard.items] if self.use_labels else None)
+        labels = [label_index(loaded, i) for i in shard.items] if self.use_labels else None
         if self.importance:
             check()
             targets = labels if labels is not None else predicted
@@ -154,21 +154,27 @@ class HeadsKind:
         return HeadsPartial(stats, extras)
 
     def state(self, partial: HeadsPartial) -> State:
-        return {**{f"stats.{k}": v for k, v in partial.stats.state().items()},
-                **{f"extra.{k}": v for k, v in partial.extras.items()}}
+        return {
+            **{f"stats.{k}": v for k, v in partial.stats.state().items()},
+            **{f"extra.{k}": v for k, v in partial.extras.items()},
+        }
 
     def load(self, state: State) -> HeadsPartial:
-        stats = HeadStats.from_state({k[6:]: v for k, v in state.items()
-                                      if k.startswith("stats.")})
+        stats = HeadStats.from_state({k[6:]: v for k, v in state.items() if k.startswith("stats.")})
         return HeadsPartial(stats, {k[6:]: v for k, v in state.items() if k.startswith("extra.")})
 
 
 def predictions(loaded: LoadedModel, partial: HeadsPartial) -> tuple[TextPrediction, ...]:
     """Per-text predictions from a merged ``HeadsKind(rows=True)`` run."""
     rows = []
-    for index, (k, p, t) in enumerate(zip(partial.extras["predicted"].tolist(),
-                                          partial.extras["confidence"].tolist(),
-                                          partial.extras["tokens"].tolist(), strict=True)):
+    for index, (k, p, t) in enumerate(
+        zip(
+            partial.extras["predicted"].tolist(),
+            partial.extras["confidence"].tolist(),
+            partial.extras["tokens"].tolist(),
+            strict=True,
+        )
+    ):
         if k < 0:
             rows.append(TextPrediction(index, None, None, None, t))
             continue
@@ -180,10 +186,15 @@ def predictions(loaded: LoadedModel, partial: HeadsPartial) -> tuple[TextPredict
     return tuple(rows)
 
 
-def scan_text_set(loaded: LoadedModel, items: Iterable[TextItem], *, batch_size: int = 16,
-                  progress: Callable[[int, int | None], None] | None = None,
-                  cancelled: Callable[[], bool] | None = None,
-                  options: RunOptions = SERIAL) -> TextSetScan:
+def scan_text_set(
+    loaded: LoadedModel,
+    items: Iterable[TextItem],
+    *,
+    batch_size: int = 16,
+    progress: Callable[[int, int | None], None] | None = None,
+    cancelled: Callable[[], bool] | None = None,
+    options: RunOptions = SERIAL,
+) -> TextSetScan:
     """The window's text-set pass: every text's prediction and the set's ``HeadSummary``.
 
     One pass of the model over the set, shard by shard, in this process unless ``options`` say
@@ -193,26 +204,39 @@ def scan_text_set(loaded: LoadedModel, items: Iterable[TextItem], *, batch_size:
     None for a stream of unknown length); ``cancelled()`` is asked between shards and batches
     and ends the run with ``viewer.reports.shards.Cancelled``.
     """
-    part = run_report(HeadsKind(batch_size, rows=True), loaded, items, options=options,
-                      progress=progress, cancelled=cancelled)
+    part = run_report(
+        HeadsKind(batch_size, rows=True),
+        loaded,
+        items,
+        options=options,
+        progress=progress,
+        cancelled=cancelled,
+    )
     return TextSetScan(part.stats.summary(), predictions(loaded, part))
 
 
-def head_summary(loaded: LoadedModel, items: Iterable[TextItem], batch_size: int = 16,
-                 progress: Callable[..., None] | None = None,
-                 cancelled: Callable[[], bool] | None = None) -> HeadSummary:
+def head_summary(
+    loaded: LoadedModel,
+    items: Iterable[TextItem],
+    batch_size: int = 16,
+    progress: Callable[..., None] | None = None,
+    cancelled: Callable[[], bool] | None = None,
+) -> HeadSummary:
     """Entropy, distance, special share, previous/same/next share and confidence per head.
 
     The texts are streamed shard by shard: memory depends on the shard size and the model, not
     on the number of texts (the accumulator holds a few (L, H) sums).
     """
-    part = run_report(HeadsKind(batch_size), loaded, items, progress=progress,
-                      cancelled=cancelled)
+    part = run_report(HeadsKind(batch_size), loaded, items, progress=progress, cancelled=cancelled)
     return part.stats.summary()
 
 
-def head_importance(loaded: LoadedModel, items: Sequence[TextItem], batch_size: int = 16,
-                    progress: Callable[[int], None] | None = None) -> dict[str, np.ndarray]:
+def head_importance(
+    loaded: LoadedModel,
+    items: Sequence[TextItem],
+    batch_size: int = 16,
+    progress: Callable[[int], None] | None = None,
+) -> dict[str, np.ndarray]:
     """Head importance (Michel et al. 2019, Eq. 2), ℓ2-normalised per layer as in their §4.
 
     Targets are the file's labels when present, else the model's own predictions.
@@ -225,11 +249,11 @@ def head_importance(loaded: LoadedModel, items: Sequence[TextItem], batch_size: 
         source = "predictions"
         targets = []
         for start in range(0, len(texts), batch_size):
-            targets.extend(loaded.predict(loaded.encode(texts[start:start + batch_size]))
-                           .argmax(axis=1).tolist())
+            targets.extend(
+                loaded.predict(loaded.encode(texts[start : start + batch_size])).argmax(axis=1).tolist()
+            )
     raw = head_importance_sums(loaded, texts, targets, batch_size, progress) / len(texts)
-    return {"importance": normalise_importance(raw), "importance_raw": raw,
-            "importance_targets": source}
+    return {"importance": normalise_importance(raw), "importance_raw": raw, "importance_targets": source}
 
 
 def normalise_importance(raw: np.ndarray) -> np.ndarray:
@@ -238,8 +262,12 @@ def normalise_importance(raw: np.ndarray) -> np.ndarray:
     return np.divide(raw, norms, out=np.zeros_like(raw), where=norms > 0)
 
 
-def head_knockout(loaded: LoadedModel, items: Sequence[TextItem], batch_size: int = 16,
-                  progress: Callable[[int], None] | None = None) -> dict[str, np.ndarray]:
+def head_knockout(
+    loaded: LoadedModel,
+    items: Sequence[TextItem],
+    batch_size: int = 16,
+    progress: Callable[[int], None] | None = None,
+) -> dict[str, np.ndarray]:
     """Each head knocked out alone: mean drop of the predicted-class probability, accuracy."""
     _require_prediction(loaded, "head knockout")
     labels = label_indices(loaded, items) if loaded.head_kind == "classifier" else None

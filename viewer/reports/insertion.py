@@ -37,7 +37,8 @@ def _require_classifier(loaded: LoadedModel) -> None:
     if loaded.head_kind != "classifier":
         raise HeadlightError(
             f"the insertion test counts texts flipping into a class; {loaded.name} has a "
-            f"{loaded.head_kind} head, not a sequence classifier")
+            f"{loaded.head_kind} head, not a sequence classifier"
+        )
 
 
 def phrase_keys(phrase: str) -> tuple[str, ...]:
@@ -64,8 +65,8 @@ def phrase_occurrences(text: str, keys: Sequence[str]) -> list[tuple[int, int]]:
     n = len(keys)
     spans: list[tuple[int, int]] = []
     for i in range(len(words) - n + 1):
-        if tuple(w[2] for w in words[i:i + n]) == tuple(keys):
-            spans.extend((a, b) for a, b, _ in words[i:i + n])
+        if tuple(w[2] for w in words[i : i + n]) == tuple(keys):
+            spans.extend((a, b) for a, b, _ in words[i : i + n])
     return spans
 
 
@@ -82,7 +83,7 @@ def surface_form(items: Iterable[TextItem], keys: Sequence[str]) -> str | None:
     for item in items:
         spans = phrase_occurrences(item.text, keys)
         for k in range(0, len(spans), n):
-            forms[" ".join(item.text[a:b] for a, b in spans[k:k + n])] += 1
+            forms[" ".join(item.text[a:b] for a, b in spans[k : k + n])] += 1
     return forms.most_common(1)[0][0] if forms else None
 
 
@@ -127,15 +128,20 @@ class PointedTally:
 
         Ties go to the class with more texts containing the phrase, then to the lower index."""
         if self.having.sum() == 0:
-            raise HeadlightError(f"'{phrase}' occurs in no text of the set; name the class it "
-                                 "should push texts into (--class)")
+            raise HeadlightError(
+                f"'{phrase}' occurs in no text of the set; name the class it should push texts into (--class)"
+            )
         if self.flips.sum() == 0:
-            raise HeadlightError(f"knocking '{phrase}' out flips no prediction in this set, so "
-                                 "it points to no class; name one (--class)")
+            raise HeadlightError(
+                f"knocking '{phrase}' out flips no prediction in this set, so "
+                "it points to no class; name one (--class)"
+            )
         order = sorted(range(len(labels)), key=lambda k: (-self.flips[k], -self.having[k], k))
-        return PointedClass(order[0],
-                            {labels[k]: int(self.flips[k]) for k in range(len(labels))},
-                            {labels[k]: int(self.having[k]) for k in range(len(labels))})
+        return PointedClass(
+            order[0],
+            {labels[k]: int(self.flips[k]) for k in range(len(labels))},
+            {labels[k]: int(self.having[k]) for k in range(len(labels))},
+        )
 
 
 @dataclass(frozen=True)
@@ -175,43 +181,56 @@ class PointedKind:
         return {"having": partial.having, "flips": partial.flips}
 
     def load(self, state: State) -> PointedTally:
-        return PointedTally(np.asarray(state["having"], np.int64),
-                            np.asarray(state["flips"], np.int64))
+        return PointedTally(np.asarray(state["having"], np.int64), np.asarray(state["flips"], np.int64))
 
 
-def pointed_class(loaded: LoadedModel, items: Iterable[TextItem], phrase: str,
-                  batch_size: int = 32, *, options: RunOptions = SERIAL,
-                  cancelled: Callable[[], bool] | None = None) -> PointedClass:
+def pointed_class(
+    loaded: LoadedModel,
+    items: Iterable[TextItem],
+    phrase: str,
+    batch_size: int = 32,
+    *,
+    options: RunOptions = SERIAL,
+    cancelled: Callable[[], bool] | None = None,
+) -> PointedClass:
     """The class that knocking ``phrase`` out most often flips texts away from (``PointedTally``)."""
     _require_classifier(loaded)
     phrase_keys(phrase)
-    tally = run_report(PointedKind(phrase, batch_size), loaded, items, options=options,
-                       cancelled=cancelled)
+    tally = run_report(PointedKind(phrase, batch_size), loaded, items, options=options, cancelled=cancelled)
     return tally.pointed(list(loaded.labels), phrase)
 
 
-def insertion_shard(loaded: LoadedModel, items: Sequence[tuple[int, TextItem]], phrase: str,
-                    target: int, *, seed: int = 0, positions: Sequence[str] = POSITIONS,
-                    batch_size: int = 32) -> InsertionTally:
+def insertion_shard(
+    loaded: LoadedModel,
+    items: Sequence[tuple[int, TextItem]],
+    phrase: str,
+    target: int,
+    *,
+    seed: int = 0,
+    positions: Sequence[str] = POSITIONS,
+    batch_size: int = 32,
+) -> InsertionTally:
     """The insertion test over one shard: ``items`` are (index in the set, text) pairs."""
     tally = InsertionTally(positions)
     texts = [item.text for _, item in items]
     if not texts:
         return tally
-    before = np.concatenate([loaded.predict(loaded.encode(texts[i:i + batch_size]))
-                             for i in range(0, len(texts), batch_size)])  # (N, C)
+    before = np.concatenate(
+        [loaded.predict(loaded.encode(texts[i : i + batch_size])) for i in range(0, len(texts), batch_size)]
+    )  # (N, C)
     tally.texts = len(texts)
     todo = [(k, index) for k, (index, _) in enumerate(items) if before[k].argmax() != target]
     tally.skipped = len(texts) - len(todo)
-    variants = [(position, k, index, insert_at(texts[k], phrase, position, seed=seed,
-                                               index=index))
-                for position in positions for k, index in todo]
+    variants = [
+        (position, k, index, insert_at(texts[k], phrase, position, seed=seed, index=index))
+        for position in positions
+        for k, index in todo
+    ]
     for start in range(0, len(variants), batch_size):
-        part = variants[start:start + batch_size]
+        part = variants[start : start + batch_size]
         after = loaded.predict(loaded.encode([v[3] for v in part]))  # (B, C)
         for (position, k, index, _), p in zip(part, after, strict=True):
-            tally.add(position, index, bool(p.argmax() == target),
-                      float(p[target] - before[k, target]))
+            tally.add(position, index, bool(p.argmax() == target), float(p[target] - before[k, target]))
     return tally
 
 
@@ -226,8 +245,14 @@ class InsertionReport:
     pointed: PointedClass | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        out = {"phrase": self.phrase, "class": self.target_label, "class_index": self.target,
-               "class_chosen_by": self.chosen_by, "seed": self.seed, **self.tally.to_dict()}
+        out = {
+            "phrase": self.phrase,
+            "class": self.target_label,
+            "class_index": self.target,
+            "class_chosen_by": self.chosen_by,
+            "seed": self.seed,
+            **self.tally.to_dict(),
+        }
         if self.pointed is not None:
             out["knockout_flips_from"] = dict(self.pointed.flips_from)
             out["texts_with_phrase"] = dict(self.pointed.texts_with)
@@ -250,9 +275,15 @@ class InsertionKind:
 
     def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> InsertionTally:
         check()
-        return insertion_shard(loaded, list(shard.indexed()), self.phrase, self.target,
-                               seed=self.seed, positions=self.positions,
-                               batch_size=self.batch_size)
+        return insertion_shard(
+            loaded,
+            list(shard.indexed()),
+            self.phrase,
+            self.target,
+            seed=self.seed,
+            positions=self.positions,
+            batch_size=self.batch_size,
+        )
 
     def state(self, partial: InsertionTally) -> State:
         return partial.state()
@@ -261,8 +292,14 @@ class InsertionKind:
         return InsertionTally.from_state(state)
 
 
-def run_insertion(loaded: LoadedModel, phrase: str, target: str | int | None, seed: int,
-                  batch_size: int, run: Callable[[Any, str], Any]) -> InsertionReport:
+def run_insertion(
+    loaded: LoadedModel,
+    phrase: str,
+    target: str | int | None,
+    seed: int,
+    batch_size: int,
+    run: Callable[[Any, str], Any],
+) -> InsertionReport:
     """The insertion test with ``run(kind, label)`` mapping a report kind over the whole set
     (the engine call of the caller: the window's, or the command's with its progress bar)."""
     _require_classifier(loaded)
@@ -280,11 +317,18 @@ def run_insertion(loaded: LoadedModel, phrase: str, target: str | int | None, se
     return InsertionReport(phrase, index, loaded.labels[index], chosen, seed, tally, pointed)
 
 
-def insertion_test(loaded: LoadedModel, items: Iterable[TextItem] | TextSource, phrase: str,
-                   target: str | int | None = None, *, seed: int = 0, batch_size: int = 32,
-                   progress: Callable[..., None] | None = None,
-                   cancelled: Callable[[], bool] | None = None,
-                   options: RunOptions = SERIAL) -> InsertionReport:
+def insertion_test(
+    loaded: LoadedModel,
+    items: Iterable[TextItem] | TextSource,
+    phrase: str,
+    target: str | int | None = None,
+    *,
+    seed: int = 0,
+    batch_size: int = 32,
+    progress: Callable[..., None] | None = None,
+    cancelled: Callable[[], bool] | None = None,
+    options: RunOptions = SERIAL,
+) -> InsertionReport:
     """The whole insertion test over the shards of the set (``viewer.reports.shards``).
 
     Without ``target`` the set is read twice (the knockout that finds the pointed class, then
@@ -295,8 +339,13 @@ def insertion_test(loaded: LoadedModel, items: Iterable[TextItem] | TextSource, 
         items = list(items)
 
     def run(kind: Any, _label: str) -> Any:
-        return run_report(kind, loaded, items.items() if isinstance(items, TextSource) else items,
-                          options=options, cancelled=cancelled,
-                          progress=progress if isinstance(kind, InsertionKind) else None)
+        return run_report(
+            kind,
+            loaded,
+            items.items() if isinstance(items, TextSource) else items,
+            options=options,
+            cancelled=cancelled,
+            progress=progress if isinstance(kind, InsertionKind) else None,
+        )
 
     return run_insertion(loaded, phrase, target, seed, batch_size, run)

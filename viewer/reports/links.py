@@ -30,7 +30,7 @@ class LinksKind:
         pairs = list(shard.items)
         for start in range(0, len(pairs), self.batch_size):
             check()
-            chunk = pairs[start:start + self.batch_size]
+            chunk = pairs[start : start + self.batch_size]
             atts = loaded.attentions([p.text for p in chunk], batch_size=self.batch_size)
             for pair, att in zip(chunk, atts, strict=True):
                 acc.add(score_pair(att.probs, att.offsets, pair))
@@ -43,10 +43,14 @@ class LinksKind:
         return LinkAccuracy.from_state(state)
 
 
-def link_report(loaded: LoadedModel, pairs: Iterable[LinkPair], batch_size: int = 16,
-                progress: Callable[..., None] | None = None,
-                cancelled: Callable[[], bool] | None = None,
-                options: RunOptions = SERIAL) -> LinkAccuracy:
+def link_report(
+    loaded: LoadedModel,
+    pairs: Iterable[LinkPair],
+    batch_size: int = 16,
+    progress: Callable[..., None] | None = None,
+    cancelled: Callable[[], bool] | None = None,
+    options: RunOptions = SERIAL,
+) -> LinkAccuracy:
     """Score every pair in every head: the reports' ``LinkAccuracy`` (accuracy (L, H), the
     nearest baseline, ``best()``, ``to_dict()``), for the window and ``headlight links``.
 
@@ -54,5 +58,12 @@ def link_report(loaded: LoadedModel, pairs: Iterable[LinkPair], batch_size: int 
     ``cancelled()`` is asked between shards and batches and ends the run with
     ``viewer.reports.shards.Cancelled``.
     """
-    return run_report(LinksKind(batch_size), loaded, pairs, options=options, progress=progress,
-                      cancelled=cancelled, empty="the link-pairs file holds no pairs")
+    return run_report(
+        LinksKind(batch_size),
+        loaded,
+        pairs,
+        options=options,
+        progress=progress,
+        cancelled=cancelled,
+        empty="the link-pairs file holds no pairs",
+    )

@@ -14,9 +14,16 @@ from tqdm import tqdm
 
 
 @contextmanager
-def shard_bar(label: str, shards: int | None, *, quiet: bool = False
-              ) -> Iterator[Callable[[int], None]]:
+def shard_bar(label: str, shards: int | None, *, quiet: bool = False) -> Iterator[Callable[[int], None]]:
     """``with shard_bar("heads", n) as on_shard:`` and call ``on_shard(items)`` per shard."""
-    with tqdm(total=shards, desc=label, unit="shard", file=sys.stderr, disable=quiet,
-              dynamic_ncols=True, mininterval=0.25, leave=True) as bar:
+    with tqdm(
+        total=shards,
+        desc=label,
+        unit="shard",
+        file=sys.stderr,
+        disable=quiet,
+        dynamic_ncols=True,
+        mininterval=0.25,
+        leave=True,
+    ) as bar:
         yield lambda _items: bar.update(1)

@@ -31,8 +31,17 @@ from viewer.files import atomic_write_bytes, write_json
 from viewer.reports.shardtypes import ShardKind, State
 
 FORMAT = 3  # the state layout of the accumulators; change it when one changes
-MODEL_FILES = ("config.json", "tokenizer.json", "tokenizer_config.json", "special_tokens_map.json",
-               "vocab.txt", "vocab.json", "merges.txt", "tokenizer.model", "spiece.model")
+MODEL_FILES = (
+    "config.json",
+    "tokenizer.json",
+    "tokenizer_config.json",
+    "special_tokens_map.json",
+    "vocab.txt",
+    "vocab.json",
+    "merges.txt",
+    "tokenizer.model",
+    "spiece.model",
+)
 _SHARD = re.compile(r"shard-(\d{6,})\.npz")
 
 
@@ -94,8 +103,9 @@ def _unpack(path: Path) -> State:
         with np.load(path, allow_pickle=False) as npz:
             return {k: npz[k] for k in npz.files}
     except (OSError, ValueError, EOFError) as exc:
-        raise HeadlightError(f"run folder file {path} cannot be read ({exc}); run again with "
-                             "--fresh") from None
+        raise HeadlightError(
+            f"run folder file {path} cannot be read ({exc}); run again with --fresh"
+        ) from None
 
 
 class RunFolder:
@@ -105,11 +115,25 @@ class RunFolder:
         self.path = path
 
     @classmethod
-    def open(cls, work: Path, kind: ShardKind, loaded: Any, inputs: dict[str, Any],
-             shard_size: int, *, fresh: bool = False) -> RunFolder:
-        key = {"format": FORMAT, "kind": kind.name, "options": kind.options(),
-               "shard_size": shard_size, "model": model_digests(loaded), "input": inputs,
-               "versions": _versions()}
+    def open(
+        cls,
+        work: Path,
+        kind: ShardKind,
+        loaded: Any,
+        inputs: dict[str, Any],
+        shard_size: int,
+        *,
+        fresh: bool = False,
+    ) -> RunFolder:
+        key = {
+            "format": FORMAT,
+            "kind": kind.name,
+            "options": kind.options(),
+            "shard_size": shard_size,
+            "model": model_digests(loaded),
+            "input": inputs,
+            "versions": _versions(),
+        }
         digest = hashlib.sha256(json.dumps(key, sort_keys=True).encode("utf-8")).hexdigest()
         path = Path(work).expanduser() / f"{kind.name}-{digest[:24]}"
         try:

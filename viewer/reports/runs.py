@@ -45,16 +45,25 @@ from viewer.reports.shortcuts import ShortcutKind
 from viewer.reports.textsets import TextItem, TextSource, as_source, survey
 
 
-def _run(kind: ShardKind, loaded: LoadedModel, items: Iterable[Any], total: int, label: str,
-         inputs: Callable[[], dict[str, Any]] | None, run: RunOptions, quiet: bool) -> Any:
+def _run(
+    kind: ShardKind,
+    loaded: LoadedModel,
+    items: Iterable[Any],
+    total: int,
+    label: str,
+    inputs: Callable[[], dict[str, Any]] | None,
+    run: RunOptions,
+    quiet: bool,
+) -> Any:
     """One report over a set with a progress bar (shards) on stderr.
 
     ``inputs()`` identifies the input for the run folder (hashing it only when there is one).
     """
     key = inputs() if inputs is not None and run.work is not None else None
     with shard_bar(label, shard_count(total, run.shard_size), quiet=quiet) as on_shard:
-        return require_some(run_shards(kind, loaded, items, options=run, total=total,
-                                       inputs=key, on_shard=on_shard))
+        return require_some(
+            run_shards(kind, loaded, items, options=run, total=total, inputs=key, on_shard=on_shard)
+        )
 
 
 @dataclass(frozen=True)
@@ -70,22 +79,36 @@ class CheckKind:
 
     def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> CheckResult:
         check()
-        return check_recordings(loaded.record_many([i.text for i in shard.items],
-                                                   batch_size=self.batch_size), self.tolerance)
+        return check_recordings(
+            loaded.record_many([i.text for i in shard.items], batch_size=self.batch_size), self.tolerance
+        )
 
     def state(self, partial: CheckResult) -> State:
-        return {"max_abs_error": np.array(partial.max_abs_error),
-                "head_errors": partial.head_errors, "context_errors": partial.context_errors,
-                "texts": np.array(partial.texts, dtype=np.int64)}
+        return {
+            "max_abs_error": np.array(partial.max_abs_error),
+            "head_errors": partial.head_errors,
+            "context_errors": partial.context_errors,
+            "texts": np.array(partial.texts, dtype=np.int64),
+        }
 
     def load(self, state: State) -> CheckResult:
-        return CheckResult(float(state["max_abs_error"]), self.tolerance,
-                           np.asarray(state["head_errors"]), np.asarray(state["context_errors"]),
-                           int(state["texts"]))
+        return CheckResult(
+            float(state["max_abs_error"]),
+            self.tolerance,
+            np.asarray(state["head_errors"]),
+            np.asarray(state["context_errors"]),
+            int(state["texts"]),
+        )
 
 
-def check_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource | list[str],
-               tolerance: float, *, run: RunOptions = SERIAL, quiet: bool = True) -> dict:
+def check_data(
+    loaded: LoadedModel,
+    texts: str | os.PathLike | TextSource | list[str],
+    tolerance: float,
+    *,
+    run: RunOptions = SERIAL,
+    quiet: bool = True,
+) -> dict:
     """The re-derivation check over a list of texts or a whole text set."""
     if not (tolerance > 0):
         raise HeadlightError(f"tolerance must be positive, got {tolerance}")
@@ -99,18 +122,23 @@ def check_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource | list
     return {"model": str(loaded.folder), "family": loaded.family.name, **result.to_dict()}
 
 
-def heads_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, *,
-               batch_size: int = 16, importance: bool = True, knockout: bool = False,
-               quiet: bool = False, run: RunOptions = SERIAL) -> dict:
+def heads_data(
+    loaded: LoadedModel,
+    texts: str | os.PathLike | TextSource,
+    *,
+    batch_size: int = 16,
+    importance: bool = True,
+    knockout: bool = False,
+    quiet: bool = False,
+    run: RunOptions = SERIAL,
+) -> dict:
     source = as_source(texts)
     info = survey(source)
     prediction = loaded.head_kind in ("classifier", "causal-lm")
     importance, knockout = prediction and importance, prediction and knockout
     use_labels = check_labels(loaded, info) if (importance or knockout) else False
-    kind = HeadsKind(batch_size, importance=importance, knockout=knockout,
-                     use_labels=use_labels)
-    part = _run(kind, loaded, source.items(), info.texts, "head summaries", source.key, run,
-                quiet)
+    kind = HeadsKind(batch_size, importance=importance, knockout=knockout, use_labels=use_labels)
+    part = _run(kind, loaded, source.items(), info.texts, "head summaries", source.key, run, quiet)
     data = {"model": str(loaded.folder), **part.stats.summary().to_dict()}
     n = info.texts
     if importance:
@@ -126,44 +154,91 @@ def heads_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, *,
     return data
 
 
-def predictions_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, *,
-                     batch_size: int = 16, quiet: bool = False,
-                     run: RunOptions = SERIAL) -> TextSetScan:
+def predictions_data(
+    loaded: LoadedModel,
+    texts: str | os.PathLike | TextSource,
+    *,
+    batch_size: int = 16,
+    quiet: bool = False,
+    run: RunOptions = SERIAL,
+) -> TextSetScan:
     """Every text's prediction and the head summary, as the window's ``scan_text_set``."""
     source = as_source(texts)
     total = survey(source).texts
-    part = _run(HeadsKind(batch_size, rows=True), loaded, source.items(), total, "predictions",
-                source.key, run, quiet)
+    part = _run(
+        HeadsKind(batch_size, rows=True), loaded, source.items(), total, "predictions", source.key, run, quiet
+    )
     return TextSetScan(part.stats.summary(), predictions(loaded, part))
 
 
-def links_data(loaded: LoadedModel, pairs_path: str | Path, *, batch_size: int = 16,
-               quiet: bool = False, run: RunOptions = SERIAL) -> dict:
+def links_data(
+    loaded: LoadedModel,
+    pairs_path: str | Path,
+    *,
+    batch_size: int = 16,
+    quiet: bool = False,
+    run: RunOptions = SERIAL,
+) -> dict:
     total = len(read_link_pairs(pairs_path))
-    acc = _run(LinksKind(batch_size), loaded, iter_link_pairs(pairs_path), total, "link scores",
-               lambda: {"sha256": input_digest(Path(pairs_path))}, run, quiet)
+    acc = _run(
+        LinksKind(batch_size),
+        loaded,
+        iter_link_pairs(pairs_path),
+        total,
+        "link scores",
+        lambda: {"sha256": input_digest(Path(pairs_path))},
+        run,
+        quiet,
+    )
     return {"model": str(loaded.folder), **acc.to_dict()}
 
 
-def shortcuts_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, *,
-                   batch_size: int = 16, phrases: bool = True, quiet: bool = False,
-                   run: RunOptions = SERIAL) -> dict:
+def shortcuts_data(
+    loaded: LoadedModel,
+    texts: str | os.PathLike | TextSource,
+    *,
+    batch_size: int = 16,
+    phrases: bool = True,
+    quiet: bool = False,
+    run: RunOptions = SERIAL,
+) -> dict:
     _require_prediction(loaded, "shortcut search")
     source = as_source(texts)
     total = survey(source).texts
-    report = _run(ShortcutKind(batch_size, phrases), loaded, source.items(), total,
-                  "word knockout", source.key, run, quiet)
+    report = _run(
+        ShortcutKind(batch_size, phrases),
+        loaded,
+        source.items(),
+        total,
+        "word knockout",
+        source.key,
+        run,
+        quiet,
+    )
     return {"model": str(loaded.folder), **report.to_dict()}
 
 
-def insertion_data(loaded: LoadedModel, texts: str | os.PathLike | TextSource, phrase: str, *,
-                   target: str | None = None, seed: int = 0, batch_size: int = 16,
-                   quiet: bool = False, run: RunOptions = SERIAL) -> dict:
+def insertion_data(
+    loaded: LoadedModel,
+    texts: str | os.PathLike | TextSource,
+    phrase: str,
+    *,
+    target: str | None = None,
+    seed: int = 0,
+    batch_size: int = 16,
+    quiet: bool = False,
+    run: RunOptions = SERIAL,
+) -> dict:
     from viewer.reports.insertion import run_insertion
 
     source = as_source(texts)
     total = survey(source).texts
-    report = run_insertion(loaded, phrase, target, seed, batch_size,
-                           lambda kind, label: _run(kind, loaded, source.items(), total, label,
-                                                    source.key, run, quiet))
+    report = run_insertion(
+        loaded,
+        phrase,
+        target,
+        seed,
+        batch_size,
+        lambda kind, label: _run(kind, loaded, source.items(), total, label, source.key, run, quiet),
+    )
     return {"model": str(loaded.folder), **report.to_dict()}

@@ -43,8 +43,9 @@ from viewer.reports.shardtypes import (  # noqa: F401  (re-exported: the engine'
 )
 
 
-def progress_callback(progress: Callable[[int, int | None], None] | None,
-                      total: int | None) -> Callable[[int], None] | None:
+def progress_callback(
+    progress: Callable[[int, int | None], None] | None, total: int | None
+) -> Callable[[int], None] | None:
     """Turn a caller's ``progress(done, total)`` into the engine's per-shard ``on_shard(n)``."""
     if progress is None:
         return None
@@ -61,11 +62,17 @@ def sized(items: Iterable[Any]) -> int | None:
     return len(items) if isinstance(items, Sized) else None
 
 
-def run_shards(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
-               options: RunOptions = SERIAL, total: int | None = None,
-               inputs: dict[str, Any] | None = None,
-               on_shard: Callable[[int], None] | None = None,
-               cancelled: Callable[[], bool] | None = None) -> Any | None:
+def run_shards(
+    kind: ShardKind,
+    loaded: Any,
+    items: Iterable[Any],
+    *,
+    options: RunOptions = SERIAL,
+    total: int | None = None,
+    inputs: dict[str, Any] | None = None,
+    on_shard: Callable[[int], None] | None = None,
+    cancelled: Callable[[], bool] | None = None,
+) -> Any | None:
     """Map ``kind`` over the shards of ``items`` and merge the partials in shard order.
 
     ``loaded`` is the model opened in this process; workers open the same folder themselves.
@@ -79,8 +86,9 @@ def run_shards(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
         total = sized(items)
     folder = None
     if options.work is not None and inputs is not None:
-        folder = runfolder.RunFolder.open(options.work, kind, loaded, inputs,
-                                          options.shard_size, fresh=options.fresh)
+        folder = runfolder.RunFolder.open(
+            options.work, kind, loaded, inputs, options.shard_size, fresh=options.fresh
+        )
         finished = folder.result()
         if finished is not None:
             if on_shard and total:
@@ -132,8 +140,9 @@ def run_shards(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
         workers.release(engine, failed)
     drain()
     if ready or (n_shards is not None and next_index != n_shards):
-        raise RuntimeError(f"merged {next_index} of {n_shards} shards; shards {sorted(ready)} "
-                           "are waiting for a missing one")
+        raise RuntimeError(
+            f"merged {next_index} of {n_shards} shards; shards {sorted(ready)} are waiting for a missing one"
+        )
     if folder is not None and merged is not None:
         folder.finish(kind.state(merged))
     return merged
@@ -145,12 +154,19 @@ def require_some(partial: Any, what: str = "the text set holds no texts") -> Any
     return partial
 
 
-def run_report(kind: ShardKind, loaded: Any, items: Iterable[Any], *,
-               options: RunOptions = SERIAL, progress: Callable[..., None] | None = None,
-               cancelled: Callable[[], bool] | None = None,
-               empty: str = "the text set holds no texts") -> Any:
+def run_report(
+    kind: ShardKind,
+    loaded: Any,
+    items: Iterable[Any],
+    *,
+    options: RunOptions = SERIAL,
+    progress: Callable[..., None] | None = None,
+    cancelled: Callable[[], bool] | None = None,
+    empty: str = "the text set holds no texts",
+) -> Any:
     """``run_shards`` for callers holding the items (the window): ``progress(done, total)``
     with the items done after every shard, and a HeadlightError(``empty``) for an empty set."""
     on_shard = progress_callback(progress, sized(items))
-    return require_some(run_shards(kind, loaded, items, options=options, on_shard=on_shard,
-                                   cancelled=cancelled), empty)
+    return require_some(
+        run_shards(kind, loaded, items, options=options, on_shard=on_shard, cancelled=cancelled), empty
+    )

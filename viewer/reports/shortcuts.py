@@ -67,14 +67,14 @@ class ShortcutReport:
         }
 
 
-def knockout_tokens(att: Attention, spans: dict[str, list[tuple[int, int]]]
-                    ) -> dict[str, np.ndarray]:
+def knockout_tokens(att: Attention, spans: dict[str, list[tuple[int, int]]]) -> dict[str, np.ndarray]:
     """Key -> sorted sub-token indices of all its occurrences' spans, special tokens left out:
     what knocking it out deletes. Keys with nothing to delete, or with every token, are dropped."""
     out = {}
     for key, key_spans in spans.items():
-        idx = np.unique(np.concatenate(
-            [word_token_indices(s, att.offsets) for s in key_spans] or [np.zeros(0, np.int64)]))
+        idx = np.unique(
+            np.concatenate([word_token_indices(s, att.offsets) for s in key_spans] or [np.zeros(0, np.int64)])
+        )
         idx = idx[~att.special[idx]] if idx.size else idx
         if idx.size and idx.size < len(att.token_ids):
             out[key] = idx
@@ -102,11 +102,11 @@ class ShortcutKind:
             plans = []  # per text: [(kind, key, token indices)] in the order of `cases`
             cases = []  # (token ids, sub-tokens to delete), one per knockout
             for att in atts:
-                plan = [("w", key, idx)
-                        for key, idx in knockout_tokens(att, word_spans(att.text)).items()]
+                plan = [("w", key, idx) for key, idx in knockout_tokens(att, word_spans(att.text)).items()]
                 if self.phrases:
-                    plan += [("p", key, idx)
-                             for key, idx in knockout_tokens(att, phrase_spans(att.text)).items()]
+                    plan += [
+                        ("p", key, idx) for key, idx in knockout_tokens(att, phrase_spans(att.text)).items()
+                    ]
                 cases.extend((att.token_ids, idx) for _, _, idx in plan)
                 plans.append(plan)
             after = predict_without(loaded, cases, self.batch_size) if cases else None
@@ -132,22 +132,27 @@ class ShortcutKind:
         return ShortcutReport(words, pairs, words.texts)
 
     def state(self, partial: ShortcutReport) -> State:
-        return {**{f"words.{k}": v for k, v in partial.words.state().items()},
-                **{f"phrases.{k}": v for k, v in partial.phrases.state().items()}}
+        return {
+            **{f"words.{k}": v for k, v in partial.words.state().items()},
+            **{f"phrases.{k}": v for k, v in partial.phrases.state().items()},
+        }
 
     def load(self, state: State) -> ShortcutReport:
-        words = KnockoutTally.from_state({k[6:]: v for k, v in state.items()
-                                          if k.startswith("words.")})
-        pairs = KnockoutTally.from_state({k[8:]: v for k, v in state.items()
-                                          if k.startswith("phrases.")})
+        words = KnockoutTally.from_state({k[6:]: v for k, v in state.items() if k.startswith("words.")})
+        pairs = KnockoutTally.from_state({k[8:]: v for k, v in state.items() if k.startswith("phrases.")})
         return ShortcutReport(words, pairs, words.texts)
 
 
-def shortcut_search(loaded: LoadedModel, items: Iterable[TextItem], *, batch_size: int = 32,
-                    phrases: bool = True,
-                    progress: Callable[..., None] | None = None,
-                    cancelled: Callable[[], bool] | None = None,
-                    options: RunOptions = SERIAL) -> ShortcutReport:
+def shortcut_search(
+    loaded: LoadedModel,
+    items: Iterable[TextItem],
+    *,
+    batch_size: int = 32,
+    phrases: bool = True,
+    progress: Callable[..., None] | None = None,
+    cancelled: Callable[[], bool] | None = None,
+    options: RunOptions = SERIAL,
+) -> ShortcutReport:
     """Word (and phrase) knockout over a text set; the window's and the command's search.
 
     Streams the texts shard by shard, in this process unless ``options`` say otherwise, and
@@ -158,5 +163,11 @@ def shortcut_search(loaded: LoadedModel, items: Iterable[TextItem], *, batch_siz
     ``viewer.reports.shards.Cancelled``.
     """
     _require_prediction(loaded, "shortcut search")
-    return run_report(ShortcutKind(batch_size=batch_size, phrases=phrases), loaded, items,
-                      options=options, progress=progress, cancelled=cancelled)
+    return run_report(
+        ShortcutKind(batch_size=batch_size, phrases=phrases),
+        loaded,
+        items,
+        options=options,
+        progress=progress,
+        cancelled=cancelled,
+    )

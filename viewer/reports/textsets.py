@@ -77,8 +77,12 @@ class TextSource:
         """What identifies this input for a run folder: its content hash and the read options."""
         from viewer.reports.runfolder import input_digest
 
-        return {"sha256": input_digest(self.path), "split": self.split,
-                "text_column": self.text_column, "label_column": self.label_column}
+        return {
+            "sha256": input_digest(self.path),
+            "split": self.split,
+            "text_column": self.text_column,
+            "label_column": self.label_column,
+        }
 
 
 def as_source(source: str | os.PathLike | TextSource) -> TextSource:
@@ -142,8 +146,7 @@ def read_text_set(source: str | os.PathLike | TextSource) -> Iterator[TextItem]:
         )
 
 
-def _read_jsonl(path: Path, text_col: str, label_col: str, label_given: bool
-                ) -> Iterator[TextItem]:
+def _read_jsonl(path: Path, text_col: str, label_col: str, label_given: bool) -> Iterator[TextItem]:
     seen_label = False
     for number, line in _lines(path):
         if not line.strip():
@@ -153,19 +156,20 @@ def _read_jsonl(path: Path, text_col: str, label_col: str, label_given: bool
         except json.JSONDecodeError as exc:
             raise HeadlightError(f"{path.name} line {number}: not valid JSON ({exc.msg})") from None
         if not isinstance(obj, dict) or not isinstance(obj.get(text_col), str):
-            raise HeadlightError(f"{path.name} line {number}: needs a \"{text_col}\" string")
+            raise HeadlightError(f'{path.name} line {number}: needs a "{text_col}" string')
         seen_label = seen_label or label_col in obj
         if obj[text_col].strip():
             yield TextItem(obj[text_col], _label(obj.get(label_col)), number)
     if label_given and not seen_label:
-        raise HeadlightError(f"{path.name}: no line has a \"{label_col}\" field")
+        raise HeadlightError(f'{path.name}: no line has a "{label_col}" field')
 
 
-def _columns(name: str, present: list[str], text_col: str, label_col: str,
-             label_given: bool) -> list[str]:
+def _columns(name: str, present: list[str], text_col: str, label_col: str, label_given: bool) -> list[str]:
     if text_col not in present:
-        raise HeadlightError(f"{name}: no column '{text_col}' (columns: {', '.join(present)}); "
-                             "name the text column with --text-column")
+        raise HeadlightError(
+            f"{name}: no column '{text_col}' (columns: {', '.join(present)}); "
+            "name the text column with --text-column"
+        )
     if label_col in present:
         return [text_col, label_col]
     if label_given:
@@ -173,8 +177,9 @@ def _columns(name: str, present: list[str], text_col: str, label_col: str,
     return [text_col]
 
 
-def _table_items(name: str, batches: Iterable[list[list[Any]]], text_col: str,
-                 label_names: list[str] | None = None) -> Iterator[TextItem]:
+def _table_items(
+    name: str, batches: Iterable[list[list[Any]]], text_col: str, label_names: list[str] | None = None
+) -> Iterator[TextItem]:
     """Items from column batches ([texts, labels?]); rows are numbered from 1."""
     row = 0
     for columns in batches:
@@ -185,14 +190,17 @@ def _table_items(name: str, batches: Iterable[list[list[Any]]], text_col: str,
             if text is None:
                 raise HeadlightError(f"{name} row {row}: column '{text_col}' is empty (null)")
             if not isinstance(text, str):
-                raise HeadlightError(f"{name} row {row}: column '{text_col}' holds "
-                                     f"{type(text).__name__}, not text")
+                raise HeadlightError(
+                    f"{name} row {row}: column '{text_col}' holds {type(text).__name__}, not text"
+                )
             if label_names is not None and label is not None:
                 if label < 0:  # datasets' ClassLabel writes -1 for "no label"
                     label = None
                 elif label >= len(label_names):
-                    raise HeadlightError(f"{name} row {row}: class {label} is not one of the "
-                                         f"column's {len(label_names)} class names")
+                    raise HeadlightError(
+                        f"{name} row {row}: class {label} is not one of the "
+                        f"column's {len(label_names)} class names"
+                    )
                 else:
                     label = label_names[label]
             if text.strip():
@@ -211,12 +219,18 @@ def _read_parquet(source: TextSource, text_col: str, label_col: str) -> Iterator
     schema = pf.schema_arrow
     cols = _columns(name, schema.names, text_col, label_col, source.label_column is not None)
     kind = schema.field(text_col).type
-    if not (pa.types.is_string(kind) or pa.types.is_large_string(kind)
-            or pa.types.is_dictionary(kind) and pa.types.is_string(kind.value_type)):
+    if not (
+        pa.types.is_string(kind)
+        or pa.types.is_large_string(kind)
+        or pa.types.is_dictionary(kind)
+        and pa.types.is_string(kind.value_type)
+    ):
         raise HeadlightError(f"{name}: column '{text_col}' holds {kind}, not text")
     try:
-        batches = ([b.column(c).to_pylist() for c in cols]
-                   for b in pf.iter_batches(batch_size=ARROW_BATCH, columns=cols))
+        batches = (
+            [b.column(c).to_pylist() for c in cols]
+            for b in pf.iter_batches(batch_size=ARROW_BATCH, columns=cols)
+        )
         yield from _table_items(name, batches, text_col)
     except pa.ArrowException as exc:
         raise HeadlightError(f"{name} cannot be read ({exc})") from None
@@ -238,8 +252,7 @@ def _read_saved_dataset(source: TextSource) -> Iterator[TextItem]:
     if isinstance(ds, datasets.DatasetDict):
         splits = list(ds)
         if source.split is None and len(splits) != 1:
-            raise HeadlightError(f"{name} holds the splits {', '.join(splits)}; choose one with "
-                                 "--split")
+            raise HeadlightError(f"{name} holds the splits {', '.join(splits)}; choose one with --split")
         split = source.split or splits[0]
         if split not in ds:
             raise HeadlightError(f"{name} has no split '{split}' (splits: {', '.join(splits)})")
@@ -248,8 +261,7 @@ def _read_saved_dataset(source: TextSource) -> Iterator[TextItem]:
         raise HeadlightError(f"{name} is a single dataset with no splits; leave out --split")
     text_col = source.text_column or "text"
     label_col = source.label_column or "label"
-    cols = _columns(name, list(ds.column_names), text_col, label_col,
-                    source.label_column is not None)
+    cols = _columns(name, list(ds.column_names), text_col, label_col, source.label_column is not None)
     feature = ds.features[text_col]
     if getattr(feature, "dtype", None) not in ("string", "large_string"):
         raise HeadlightError(f"{name}: column '{text_col}' holds {feature}, not text")
@@ -289,8 +301,7 @@ def survey(source: str | os.PathLike | TextSource) -> Survey:
     return Survey(texts, labelled, first_unlabelled, labels)
 
 
-def load_text_set(source: str | os.PathLike | TextSource, *,
-                  need_labels: bool = False) -> list[TextItem]:
+def load_text_set(source: str | os.PathLike | TextSource, *, need_labels: bool = False) -> list[TextItem]:
     """Read a whole text set into a list; refuses an empty set (and, if asked, missing labels)."""
     source = as_source(source)
     items = list(read_text_set(source))

@@ -63,8 +63,10 @@ def worker_model(spec: ModelSpec) -> Any:
         from viewer.model.loader import open_model
 
         if spec.version != __version__:
-            raise HeadlightError(f"worker {socket.gethostname()} runs Headlight {__version__}, "
-                                 f"the command {spec.version}; install the same version")
+            raise HeadlightError(
+                f"worker {socket.gethostname()} runs Headlight {__version__}, "
+                f"the command {spec.version}; install the same version"
+            )
         try:
             loaded = open_model(spec.folder, allow_pickle=spec.allow_pickle)
         except HeadlightError as exc:
@@ -125,8 +127,13 @@ class InProcess:
         self.threads = threads
         self._before: int | None = None
 
-    def run(self, kind: ShardKind, shards: Iterator[Shard], check: Callable[[], None],
-            may_start: Callable[[int], bool]) -> Iterator[Result]:
+    def run(
+        self,
+        kind: ShardKind,
+        shards: Iterator[Shard],
+        check: Callable[[], None],
+        may_start: Callable[[int], bool],
+    ) -> Iterator[Result]:
         import torch
 
         if self.threads is not None and torch.get_num_threads() != self.threads:
@@ -160,8 +167,13 @@ class _Submitting:
         for f in futures:
             f.cancel()
 
-    def run(self, kind: ShardKind, shards: Iterator[Shard], check: Callable[[], None],
-            may_start: Callable[[int], bool]) -> Iterator[Result]:
+    def run(
+        self,
+        kind: ShardKind,
+        shards: Iterator[Shard],
+        check: Callable[[], None],
+        may_start: Callable[[int], bool],
+    ) -> Iterator[Result]:
         pending: set[Any] = set()
         index: dict[Any, int] = {}
         waiting: Shard | None = None
@@ -200,9 +212,12 @@ class LocalPool(_Submitting):
 
         self.spec = model_spec(loaded, threads=threads or 1)
         self.ahead = 2 * workers
-        self.pool = ProcessPoolExecutor(max_workers=workers,
-                                        mp_context=multiprocessing.get_context("spawn"),
-                                        initializer=_init_pool_worker, initargs=(self.spec,))
+        self.pool = ProcessPoolExecutor(
+            max_workers=workers,
+            mp_context=multiprocessing.get_context("spawn"),
+            initializer=_init_pool_worker,
+            initargs=(self.spec,),
+        )
 
     def _submit(self, spec: ModelSpec, kind: ShardKind, shard: Shard, run: str) -> Any:
         return self.pool.submit(map_shard, spec, kind, shard)
@@ -223,8 +238,9 @@ class DaskCluster(_Submitting):
         try:
             from distributed import Client
         except ImportError:  # pragma: no cover - a dependency of headlight
-            raise HeadlightError("--cluster needs dask.distributed: pip install "
-                                 "'dask[distributed]'") from None
+            raise HeadlightError(
+                "--cluster needs dask.distributed: pip install 'dask[distributed]'"
+            ) from None
         try:
             self.client = Client(address, timeout=timeout, set_as_default=False)
         except (OSError, TimeoutError, ValueError) as exc:
@@ -234,8 +250,9 @@ class DaskCluster(_Submitting):
             self.client.wait_for_workers(1, timeout=timeout)
         except (OSError, TimeoutError):
             self.client.close()
-            raise HeadlightError(f"the Dask scheduler at {address} has no workers; start some "
-                                 f"with: dask worker {address}") from None
+            raise HeadlightError(
+                f"the Dask scheduler at {address} has no workers; start some with: dask worker {address}"
+            ) from None
         slots = sum(self.client.nthreads().values())
         self.spec = model_spec(loaded, threads=threads)
         self.ahead = 2 * max(1, slots)

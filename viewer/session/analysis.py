@@ -58,7 +58,7 @@ def word_units(rec: Recording) -> WordUnits:
         idx = idx[of_token[idx] < 0] if idx.size else idx
         if idx.size:
             of_token[idx] = 0
-            groups.append((int(idx[0]), idx, rec.text[span[0]:span[1]]))
+            groups.append((int(idx[0]), idx, rec.text[span[0] : span[1]]))
     for i in np.flatnonzero(of_token < 0):
         groups.append((int(i), np.array([i], dtype=np.int64), rec.tokens[i]))
     groups.sort(key=lambda g: g[0])
@@ -117,8 +117,14 @@ class TextAnalysis:
         return self.recording.probs[layer, head]
 
 
-def analyse(rec: Recording, *, label: str | None = None, seconds: float = 0.0,
-            origin: str = "", summarised: bool = False) -> TextAnalysis:
+def analyse(
+    rec: Recording,
+    *,
+    label: str | None = None,
+    seconds: float = 0.0,
+    origin: str = "",
+    summarised: bool = False,
+) -> TextAnalysis:
     """A recording as the panes' analysis; head means and word units follow when first asked
     for (with ``summarised`` the check and head metrics are added now)."""
     analysis = TextAnalysis(rec, label, seconds, origin, tuple(rec.notes))

@@ -27,9 +27,11 @@ from viewer.session import session_file as sessions
 from viewer.session.preload import load_figures
 from viewer.session.state import ModelInfo, Selection
 
-DEMO_TEXT = ("Hi, the rear derailleur on my cargo bike keeps slipping and the chain jumps "
-             "when I climb. Could someone at the Oldmere depot look at it on Tuesday? "
-             "Thanks, Wren. [via portal]")
+DEMO_TEXT = (
+    "Hi, the rear derailleur on my cargo bike keeps slipping and the chain jumps "
+    "when I climb. Could someone at the Oldmere depot look at it on Tuesday? "
+    "Thanks, Wren. [via portal]"
+)
 # The check, head metrics and evidence of a run start once the pair grid has painted it (numpy
 # work on the worker would take the render thread's core and GIL meanwhile), or after this long.
 FOLLOW_UP_MS = 400
@@ -65,8 +67,9 @@ class Controller:
         self._figures_requested = False
 
     # -- start-up -------------------------------------------------------------------------------
-    def start(self, model: str | None = None, text: str | None = None,
-              last_session: Path | None = None) -> None:
+    def start(
+        self, model: str | None = None, text: str | None = None, last_session: Path | None = None
+    ) -> None:
         """Load the drawing library, then a model: ``model``, else the last session (when
         ``last_session`` is a file), else the embedded demo with its demo text."""
         self.load_figures()
@@ -87,8 +90,7 @@ class Controller:
                 self.view.set_editor_text(DEMO_TEXT)
             self.open_model(str(demo), run_after=True, remember=False)
         else:
-            self.view.set_status("no demo model in this installation; open a model folder "
-                                 "(Ctrl+O)")
+            self.view.set_status("no demo model in this installation; open a model folder (Ctrl+O)")
 
     def load_figures(self) -> None:
         """Queue the matplotlib import as the worker's first job (once)."""
@@ -100,16 +102,16 @@ class Controller:
         self.view.figures_ready(seconds)
 
     # -- models ---------------------------------------------------------------------------------
-    def open_model(self, folder: str, *, run_after: bool = False, remember: bool = True,
-                   base: str | None = None) -> None:
+    def open_model(
+        self, folder: str, *, run_after: bool = False, remember: bool = True, base: str | None = None
+    ) -> None:
         """Open a model folder, or an adapter folder (on ``base`` when given)."""
         self.worker.cancel("run")
         self.worker.cancel("evidence")
         self._after_open = [self.run_current] if run_after else []
         self._remember = remember
         self.view.model_opening(str(folder))
-        self.worker.submit("open", jobs.open_model, "main", str(folder),
-                           None if base is None else str(base))
+        self.worker.submit("open", jobs.open_model, "main", str(folder), None if base is None else str(base))
 
     def _done_open(self, info: ModelInfo | jobs.BaseNeeded) -> None:
         if isinstance(info, jobs.BaseNeeded):
@@ -219,8 +221,9 @@ class Controller:
         if pending is not None and pending < len(result.rows):
             self.state.select_item(pending)
         acc = result.accuracy
-        self.view.set_status(f"text set: {len(result.rows)} texts"
-                             + (f", accuracy {acc:.1%}" if acc is not None else ""))
+        self.view.set_status(
+            f"text set: {len(result.rows)} texts" + (f", accuracy {acc:.1%}" if acc is not None else "")
+        )
 
     def item_chosen(self, index: int | None) -> None:
         """A text-set row was selected: run its text (with its label)."""
@@ -239,14 +242,15 @@ class Controller:
     def _done_pairs(self, run) -> None:
         self.state.set_link_pairs(run)
         layer, head, acc = run.report.best()
-        self.view.set_status(f"link pairs: best layer {layer} · head {head} ({acc:.2f}), "
-                             f"nearest baseline {run.report.nearest_baseline:.2f}")
+        self.view.set_status(
+            f"link pairs: best layer {layer} · head {head} ({acc:.2f}), "
+            f"nearest baseline {run.report.nearest_baseline:.2f}"
+        )
 
     def search_shortcuts(self, phrases: bool = False) -> None:
         ts = self.state.textset
         if ts is None:
-            self.view.show_error("open a text set first; the shortcut search knocks words out "
-                                 "of it")
+            self.view.show_error("open a text set first; the shortcut search knocks words out of it")
             return
         self.worker.submit("shortcuts", jobs.run_shortcuts, "main", ts, bool(phrases))
         self.view.show_panel("shortcuts")
@@ -254,8 +258,7 @@ class Controller:
     def _done_shortcuts(self, report) -> None:
         self.state.set_shortcuts(report)
         words = len(report.words.ranking())
-        phrases = (f" and {len(report.phrases.ranking())} phrases" if report.phrases.texts
-                   else "")
+        phrases = f" and {len(report.phrases.ranking())} phrases" if report.phrases.texts else ""
         self.view.set_status(f"shortcut report: {words} words{phrases}")
 
     def run_insertions(self, words) -> None:
@@ -263,8 +266,9 @@ class Controller:
         text set per word and position)."""
         ts, report = self.state.textset, self.state.shortcuts
         if ts is None or report is None:
-            self.view.show_error("search the text set for shortcuts first; the insertion test "
-                                 "takes the report's top words")
+            self.view.show_error(
+                "search the text set for shortcuts first; the insertion test takes the report's top words"
+            )
             return
         words = tuple(words)
         if not words:
@@ -277,50 +281,49 @@ class Controller:
         if report is not self.state.shortcuts:
             return  # a newer search replaced the report these words came from
         self.state.set_insertions(results)
-        best = max(results.values(), key=lambda r: r.tally.entry("end")["flip_rate"] or 0,
-                   default=None)
+        best = max(results.values(), key=lambda r: r.tally.entry("end")["flip_rate"] or 0, default=None)
         if best is None:
             self.view.set_status("insertion tests: no top word points to a class")
             return
         end = best.tally.entry("end")
-        self.view.set_status(f"insertion tests: '{best.phrase}' at the end flips "
-                             f"{end['flips']} of {end['tried']} texts into {best.target_label}")
+        self.view.set_status(
+            f"insertion tests: '{best.phrase}' at the end flips "
+            f"{end['flips']} of {end['tried']} texts into {best.target_label}"
+        )
 
     # -- compare --------------------------------------------------------------------------------
     def run_compare(self) -> None:
         target = self.state.compare_target
         if target is None:
-            self.view.show_error("give a second text or a second checkpoint folder to compare "
-                                 "with")
+            self.view.show_error("give a second text or a second checkpoint folder to compare with")
             return
         kind, value = target
         if kind == "text":
             if self.state.model is None:
                 self.view.show_error("no model is open yet; open a model folder first (Ctrl+O)")
                 return
-            self.worker.submit("compare", jobs.run_text, "main", value, None, "second text",
-                               True)
+            self.worker.submit("compare", jobs.run_text, "main", value, None, "second text", True)
         else:
             text = self.state.text or self.view.editor_text()
             if not text.strip():
                 self.view.show_error("run a text first; the second checkpoint is compared on it")
                 return
             self.worker.submit("compare-open", jobs.open_model, "compare", value)
-            self.worker.submit("compare", jobs.run_text, "compare", text, None, "", True,
-                               replace=False)
+            self.worker.submit("compare", jobs.run_text, "compare", text, None, "", True, replace=False)
         self.view.show_panel("compare")
 
     def _done_compare_open(self, info: ModelInfo | jobs.BaseNeeded) -> None:
         if isinstance(info, jobs.BaseNeeded):
             self.worker.cancel("compare")
-            self.view.show_error(f"{info.message} (open the compared adapter as the main model "
-                                 "first to choose its base)")
+            self.view.show_error(
+                f"{info.message} (open the compared adapter as the main model first to choose its base)"
+            )
             return
         model = self.state.model
-        if model is not None and (info.n_layers, info.n_heads) != (model.n_layers,
-                                                                   model.n_heads):
-            self.view.set_status(f"compared checkpoint {info.name} has a different shape; the "
-                                 "difference view is off")
+        if model is not None and (info.n_layers, info.n_heads) != (model.n_layers, model.n_heads):
+            self.view.set_status(
+                f"compared checkpoint {info.name} has a different shape; the difference view is off"
+            )
 
     def _done_compare(self, analysis) -> None:
         self.state.set_compare(analysis)
@@ -332,8 +335,9 @@ class Controller:
 
     # -- card export ----------------------------------------------------------------------------
     def export_card(self, texts: str, pairs: str | None, out: str, force: bool) -> None:
-        self.worker.submit("card", jobs.card_job, "main", str(texts),
-                           str(pairs) if pairs else None, str(out), bool(force))
+        self.worker.submit(
+            "card", jobs.card_job, "main", str(texts), str(pairs) if pairs else None, str(out), bool(force)
+        )
         self.view.set_status(f"writing the model-card folder {out}…")
 
     def _done_card(self, path: str) -> None:
@@ -348,8 +352,7 @@ class Controller:
         self.view.set_editor_text(session.text)
         self.state.set_notes(session.notes)
         compare = session.compare
-        self.state.set_compare_target(None if compare is None else
-                                      (compare["kind"], compare["value"]))
+        self.state.set_compare_target(None if compare is None else (compare["kind"], compare["value"]))
         self._pending_selection = dict(session.selection)
         self._pending_item = session.item
         if session.model is None:
@@ -374,8 +377,10 @@ class Controller:
         s.select_head(layer, head)
         n = s.n_tokens
         source, target = sel.get("source"), sel.get("target")
-        s.select_tokens(source if source is not None and source < n else None,
-                        target if target is not None and target < n else None)
+        s.select_tokens(
+            source if source is not None and source < n else None,
+            target if target is not None and target < n else None,
+        )
         s.set_metric(sel.get("metric", "entropy"))
         if sel.get("scope") == "set" and s.textset is not None:
             s.set_scope("set")

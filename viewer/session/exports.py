@@ -108,8 +108,16 @@ def add_heading(fig, lines: tuple[str, ...]) -> None:
     if placer is not None:
         fig.set_layout_engine(InchLayout(lambda w, h: placer(w, max(h - extra, 0.5))))
     width, height = fig.get_size_inches()
-    fig.text(0.12 / width, 1 - 0.08 / height, "\n".join(lines), ha="left", va="top",
-             fontsize=HEADING_SIZE, color="#1d2b36", linespacing=1.3)
+    fig.text(
+        0.12 / width,
+        1 - 0.08 / height,
+        "\n".join(lines),
+        ha="left",
+        va="top",
+        fontsize=HEADING_SIZE,
+        color="#1d2b36",
+        linespacing=1.3,
+    )
 
 
 def _heading(model: str, pane: str, where: str, metric: str, text: str) -> tuple[str, ...]:
@@ -117,16 +125,28 @@ def _heading(model: str, pane: str, where: str, metric: str, text: str) -> tuple
 
 
 def _base_data(pane: str, source: Source, text: str) -> dict:
-    return {"pane": pane, "model": source.name, "model_folder": source.folder, "text": text,
-            "layers_and_heads_count_from": 0}
+    return {
+        "pane": pane,
+        "model": source.name,
+        "model_folder": source.folder,
+        "text": text,
+        "layers_and_heads_count_from": 0,
+    }
 
 
 # -- builders ---------------------------------------------------------------------------------------
 
 
-def pair_grid_export(analysis, source: Source, *, layer: int, head: int | None,
-                     query: int | None = None, key: int | None = None,
-                     pane: str = "pair grid") -> PaneExport:
+def pair_grid_export(
+    analysis,
+    source: Source,
+    *,
+    layer: int,
+    head: int | None,
+    query: int | None = None,
+    key: int | None = None,
+    pane: str = "pair grid",
+) -> PaneExport:
     """One head's (or the head mean's) attention as the pair grid draws it; ``query``/``key``
     mark the selected cell."""
     import numpy as np
@@ -143,30 +163,53 @@ def pair_grid_export(analysis, source: Source, *, layer: int, head: int | None,
     visible = visible_cells(rec, layer)
     where = head_name(layer, head)
     fig = print_figure()
-    arts = pair_grid_into(fig, grid, rec.tokens, visible=visible,
-                          title=f"{where} · {ATTENTION_UNITS}")
+    arts = pair_grid_into(fig, grid, rec.tokens, visible=visible, title=f"{where} · {ATTENTION_UNITS}")
     if query is not None and query < rec.n_tokens:
         mark_cell(arts, query, key if key is not None and key < rec.n_tokens else None)
     heading = _heading(source.name, pane, where, ATTENTION_UNITS, rec.text)
     add_heading(fig, heading)
     data = _base_data(pane, source, rec.text)
-    data.update({
-        "layer": layer, "head": head, "metric": ATTENTION_UNITS, "units": ATTENTION_UNITS,
-        "rows": "query tokens", "columns": "key tokens",
-        "tokens": list(rec.tokens), "causal": bool(rec.causal),
-        "values": plain(grid.astype(np.float64)),
-        "visible": None if visible is None else plain(np.asarray(visible, bool)),
-    })
-    rows = [[i, rec.tokens[i], j, rec.tokens[j], float(grid[i, j]),
-             bool(visible[i, j]) if visible is not None else True]
-            for i in range(grid.shape[0]) for j in range(grid.shape[1])]
+    data.update(
+        {
+            "layer": layer,
+            "head": head,
+            "metric": ATTENTION_UNITS,
+            "units": ATTENTION_UNITS,
+            "rows": "query tokens",
+            "columns": "key tokens",
+            "tokens": list(rec.tokens),
+            "causal": bool(rec.causal),
+            "values": plain(grid.astype(np.float64)),
+            "visible": None if visible is None else plain(np.asarray(visible, bool)),
+        }
+    )
+    rows = [
+        [
+            i,
+            rec.tokens[i],
+            j,
+            rec.tokens[j],
+            float(grid[i, j]),
+            bool(visible[i, j]) if visible is not None else True,
+        ]
+        for i in range(grid.shape[0])
+        for j in range(grid.shape[1])
+    ]
     header = ["query", "query_token", "key", "key_token", "attention_probability", "visible"]
     return PaneExport(fig, data, header, rows, export_stem(rec.text, pane), heading)
 
 
-def head_map_export(values, source: Source, *, metric: str, text: str, layer: int,
-                    head: int | None, scope: str = "text",
-                    text_set: tuple[str, int] | None = None) -> PaneExport:
+def head_map_export(
+    values,
+    source: Source,
+    *,
+    metric: str,
+    text: str,
+    layer: int,
+    head: int | None,
+    scope: str = "text",
+    text_set: tuple[str, int] | None = None,
+) -> PaneExport:
     """The head map: exactly the (L, H) ``HeadValues`` the pane shows (``viewer.session.metrics``).
 
     ``text_set`` is (file, number of texts) when the values summarise a text set.
@@ -179,51 +222,78 @@ def head_map_export(values, source: Source, *, metric: str, text: str, layer: in
 
     title = values.title
     fig = print_figure()
-    head_map_into(fig, values.values, label=values.label, diverging=values.diverging,
-                  selected=(layer, head), title=f"head map · {title}")
+    head_map_into(
+        fig,
+        values.values,
+        label=values.label,
+        diverging=values.diverging,
+        selected=(layer, head),
+        title=f"head map · {title}",
+    )
     if text_set is not None:
         path, n = text_set
-        heading = (f"{source.name} · head map · selected {head_name(layer, head)} · "
-                   f"{values.label}", f"text set: {Path(path).name} ({n} texts)")
+        heading = (
+            f"{source.name} · head map · selected {head_name(layer, head)} · {values.label}",
+            f"text set: {Path(path).name} ({n} texts)",
+        )
     else:
-        heading = _heading(source.name, "head map", f"selected {head_name(layer, head)}",
-                           values.label, text)
+        heading = _heading(source.name, "head map", f"selected {head_name(layer, head)}", values.label, text)
     add_heading(fig, heading)
     data = _base_data("head map", source, text)
-    data.update({"metric": metric, "title": title, "units": values.label,
-                 "diverging": bool(values.diverging), "scope": scope,
-                 "selected": {"layer": layer, "head": head},
-                 "values": plain(np.asarray(values.values, dtype=np.float64))})
+    data.update(
+        {
+            "metric": metric,
+            "title": title,
+            "units": values.label,
+            "diverging": bool(values.diverging),
+            "scope": scope,
+            "selected": {"layer": layer, "head": head},
+            "values": plain(np.asarray(values.values, dtype=np.float64)),
+        }
+    )
     rows = [[la, h, _cell(v)] for la, h, v in grid_rows(values.values)]
-    return PaneExport(fig, data, ["layer", "head", metric], rows,
-                      export_stem(text, "head map"), heading)
+    return PaneExport(fig, data, ["layer", "head", metric], rows, export_stem(text, "head map"), heading)
 
 
-def link_accuracy_export(run, source: Source, *, layer: int, head: int | None,
-                         text: str = "") -> PaneExport:
+def link_accuracy_export(run, source: Source, *, layer: int, head: int | None, text: str = "") -> PaneExport:
     """Per-head accuracy over a link-pairs file (``LinkPairsRun``) with the nearest baseline."""
     from viewer.figures.export import grid_rows
     from viewer.figures.links import accuracy_into
 
     report = run.report
     fig = print_figure()
-    accuracy_into(fig, report.accuracy, nearest_baseline=report.nearest_baseline,
-                  pairs=report.pairs, selected=(layer, head))
+    accuracy_into(
+        fig,
+        report.accuracy,
+        nearest_baseline=report.nearest_baseline,
+        pairs=report.pairs,
+        selected=(layer, head),
+    )
     best_layer, best_head, best = report.best()
-    heading = (f"{source.name} · links · link accuracy per head · best layer {best_layer} · "
-               f"head {best_head} ({best:.2f})",
-               f"link pairs: {Path(run.path).name} ({report.pairs} pairs)")
+    heading = (
+        f"{source.name} · links · link accuracy per head · best layer {best_layer} · "
+        f"head {best_head} ({best:.2f})",
+        f"link pairs: {Path(run.path).name} ({report.pairs} pairs)",
+    )
     add_heading(fig, heading)
     data = _base_data("links", source, text)
-    data.update({"view": "link-pairs file", "pairs_file": run.path, **report.to_dict(),
-                 "metric": "link accuracy", "units": "share of pairs right"})
+    data.update(
+        {
+            "view": "link-pairs file",
+            "pairs_file": run.path,
+            **report.to_dict(),
+            "metric": "link accuracy",
+            "units": "share of pairs right",
+        }
+    )
     rows = [[la, h, _cell(v)] for la, h, v in grid_rows(report.accuracy)]
     stem = f"{sanitise_name(Path(run.path).stem)}-link-accuracy"
     return PaneExport(fig, data, ["layer", "head", "link_accuracy"], rows, stem, heading)
 
 
-def links_export(analysis, source: Source, *, layer: int, head: int | None,
-                 query: int | None, key: int | None) -> PaneExport:
+def links_export(
+    analysis, source: Source, *, layer: int, head: int | None, query: int | None, key: int | None
+) -> PaneExport:
     """Link scores from the query token's word: bars per word and, with a key token, the
     per-head score to its word."""
     import numpy as np
@@ -236,8 +306,9 @@ def links_export(analysis, source: Source, *, layer: int, head: int | None,
         raise HeadlightError("nothing to export in the links pane yet: run a text first")
     rec = analysis.recording
     if query is None or query >= rec.n_tokens:
-        raise HeadlightError("nothing to export in the links pane: pick a source token first "
-                             "(click a pair-grid cell)")
+        raise HeadlightError(
+            "nothing to export in the links pane: pick a source token first (click a pair-grid cell)"
+        )
     u = analysis.units
     scores = unit_links(analysis, layer, head, query)
     per_head = target_unit = None
@@ -248,28 +319,44 @@ def links_export(analysis, source: Source, *, layer: int, head: int | None,
     target_name = u.names[target_unit] if target_unit is not None else None
     where = head_name(layer, head)
     fig = print_figure()
-    links_into(fig, u.names, scores, per_head_to_target=per_head, target=target_unit,
-               source_name=source_name, target_name=target_name, head_title=where,
-               selected=(layer, head), exclude=None)
+    links_into(
+        fig,
+        u.names,
+        scores,
+        per_head_to_target=per_head,
+        target=target_unit,
+        source_name=source_name,
+        target_name=target_name,
+        head_title=where,
+        selected=(layer, head),
+        exclude=None,
+    )
     pair = f"'{source_name}'" + (f" → '{target_name}'" if target_name else "")
     heading = _heading(source.name, f"links from {pair}", where, LINK_UNITS, rec.text)
     add_heading(fig, heading)
     data = _base_data("links", source, rec.text)
-    data.update({"view": "this text", "metric": "link score", "units": LINK_UNITS,
-                 "layer": layer, "head": head, "source": {"token": query, "word": source_name},
-                 "target": None if target_name is None else {"token": key, "word": target_name},
-                 "words": list(u.names),
-                 "word_tokens": [plain(np.asarray(idx)) for idx in u.tokens],
-                 "scores": plain(scores),
-                 "per_head_to_target": None if per_head is None else plain(
-                     np.asarray(per_head, dtype=np.float64))})
+    data.update(
+        {
+            "view": "this text",
+            "metric": "link score",
+            "units": LINK_UNITS,
+            "layer": layer,
+            "head": head,
+            "source": {"token": query, "word": source_name},
+            "target": None if target_name is None else {"token": key, "word": target_name},
+            "words": list(u.names),
+            "word_tokens": [plain(np.asarray(idx)) for idx in u.tokens],
+            "scores": plain(scores),
+            "per_head_to_target": None if per_head is None else plain(np.asarray(per_head, dtype=np.float64)),
+        }
+    )
     rows = [[k, name, _cell(v)] for k, (name, v) in enumerate(zip(u.names, scores, strict=True))]
-    return PaneExport(fig, data, ["word_index", "word", "link_score"], rows,
-                      export_stem(rec.text, "links"), heading)
+    return PaneExport(
+        fig, data, ["word_index", "word", "link_score"], rows, export_stem(rec.text, "links"), heading
+    )
 
 
-def evidence_export(analysis, evidence, source: Source, *, token: int | None = None
-                    ) -> PaneExport:
+def evidence_export(analysis, evidence, source: Source, *, token: int | None = None) -> PaneExport:
     """The evidence strip; its data holds the keys of ``headlight evidence --json``."""
 
     from viewer.figures.evidence import ROW_UNITS, evidence_into, mark_token, prediction_line
@@ -277,57 +364,92 @@ def evidence_export(analysis, evidence, source: Source, *, token: int | None = N
     if analysis is None:
         raise HeadlightError("nothing to export in the evidence strip yet: run a text first")
     if evidence is None:
-        raise HeadlightError("the evidence for this text is not computed yet (Run → Compute "
-                             "evidence)")
+        raise HeadlightError("the evidence for this text is not computed yet (Run → Compute evidence)")
     rec = analysis.recording
     probs = rec.class_probabilities()
     line = prediction_line(rec.labels, probs, rec.predicted(), analysis.label)
     kinds, values, agreement = evidence.strip_rows()
     fig = print_figure()
-    arts = evidence_into(fig, rec.tokens, kinds, values, agreement, labels=rec.labels,
-                         probabilities=probs if len(probs) else None,
-                         predicted=rec.predicted(), gold=analysis.label, title=line)
+    arts = evidence_into(
+        fig,
+        rec.tokens,
+        kinds,
+        values,
+        agreement,
+        labels=rec.labels,
+        probabilities=probs if len(probs) else None,
+        predicted=rec.predicted(),
+        gold=analysis.label,
+        title=line,
+    )
     mark_token(arts, token)
     units = " ".join(ROW_UNITS.split())
-    heading = _heading(source.name, "evidence strip", "all layers and heads",
-                       f"{len(kinds)} kinds, colours: {units}", rec.text)
+    heading = _heading(
+        source.name,
+        "evidence strip",
+        "all layers and heads",
+        f"{len(kinds)} kinds, colours: {units}",
+        rec.text,
+    )
     add_heading(fig, heading)
     data = _base_data("evidence strip", source, rec.text)
     data.update(evidence.to_dict())
-    data.update({"prediction": line, "gold": analysis.label, "strip_rows": list(kinds),
-                 "figure_colours": units + " (each row divided by its largest |value|)"})
-    rows = [[i, tok, *(_cell(values[k, i]) for k in range(len(kinds)))]
-            for i, tok in enumerate(rec.tokens)]
-    return PaneExport(fig, data, ["token", "token_text", *kinds], rows,
-                      export_stem(rec.text, "evidence strip"), heading)
+    data.update(
+        {
+            "prediction": line,
+            "gold": analysis.label,
+            "strip_rows": list(kinds),
+            "figure_colours": units + " (each row divided by its largest |value|)",
+        }
+    )
+    rows = [[i, tok, *(_cell(values[k, i]) for k in range(len(kinds)))] for i, tok in enumerate(rec.tokens)]
+    return PaneExport(
+        fig, data, ["token", "token_text", *kinds], rows, export_stem(rec.text, "evidence strip"), heading
+    )
 
 
-def fixation_export(report, source: Source, *, head: int | None = None, word: str | None = None,
-                    text_set: str | None = None) -> PaneExport:
+def fixation_export(
+    report, source: Source, *, head: int | None = None, word: str | None = None, text_set: str | None = None
+) -> PaneExport:
     """The fixation plot of a shortcut report: every ranked word's attention share (last
     layer, head mean or ``head``) against its knockout effect, as the pane draws it."""
     from viewer.figures.fixation import X_UNITS, fixation_into
 
     if report is None:
-        raise HeadlightError("nothing to export in the fixation plot yet: search a text set "
-                             "for shortcuts first")
+        raise HeadlightError(
+            "nothing to export in the fixation plot yet: search a text set for shortcuts first"
+        )
     rows, focus = report.fixation(head)
     where = "head mean" if head is None else f"head {head}"
     fig = print_figure()
-    fixation_into(fig, [r["token"] for r in rows], focus, [r["mean_drop"] for r in rows],
-                  [r["count"] for r in rows], highlight=word, x_units=f"{X_UNITS}, {where}",
-                  title=f"fixation plot · {len(rows)} words · last layer, {where}")
+    fixation_into(
+        fig,
+        [r["token"] for r in rows],
+        focus,
+        [r["mean_drop"] for r in rows],
+        [r["count"] for r in rows],
+        highlight=word,
+        x_units=f"{X_UNITS}, {where}",
+        title=f"fixation plot · {len(rows)} words · last layer, {where}",
+    )
     name = Path(text_set).name if text_set else "text set"
-    heading = (f"{source.name} · fixation plot · {where}",
-               f"text set: {name} ({report.texts} texts)")
+    heading = (f"{source.name} · fixation plot · {where}", f"text set: {name} ({report.texts} texts)")
     add_heading(fig, heading)
     data = _base_data("fixation plot", source, "")
-    data.update({"text_set": text_set, "texts": report.texts, "head": head,
-                 "x": f"{X_UNITS}, {where}", "y": "mean drop in p(predicted) on knockout",
-                 "words": [{**r, "attention_share": float(f)} for r, f in zip(rows, focus,
-                                                                              strict=True)]})
-    table = [[r["token"], r["count"], _cell(f), _cell(r["mean_drop"]), _cell(r["flip_rate"]),
-              _cell(r["flip_low"])] for r, f in zip(rows, focus, strict=True)]
+    data.update(
+        {
+            "text_set": text_set,
+            "texts": report.texts,
+            "head": head,
+            "x": f"{X_UNITS}, {where}",
+            "y": "mean drop in p(predicted) on knockout",
+            "words": [{**r, "attention_share": float(f)} for r, f in zip(rows, focus, strict=True)],
+        }
+    )
+    table = [
+        [r["token"], r["count"], _cell(f), _cell(r["mean_drop"]), _cell(r["flip_rate"]), _cell(r["flip_low"])]
+        for r, f in zip(rows, focus, strict=True)
+    ]
     header = ["word", "count", "attention_share", "mean_drop", "flip_rate", "flip_low"]
     stem = f"{sanitise_name(Path(text_set).stem if text_set else 'text-set')}-fixation-plot"
     return PaneExport(fig, data, header, table, stem, heading)

@@ -22,7 +22,6 @@ from viewer.errors import Cancelled, HeadlightError
 from viewer.session.state import ModelInfo
 
 if TYPE_CHECKING:
-
     from viewer.session.analysis import TextAnalysis
 
 
@@ -84,9 +83,15 @@ def info_of(loaded: Any) -> ModelInfo:
     folder = Path(loaded.folder)
     name = DEMO_NAME if folder.resolve() == demo_folder().resolve() else loaded.name
     return ModelInfo(
-        folder=str(loaded.folder), name=name, family=loaded.family.name,
-        n_layers=int(loaded.n_layers), n_heads=int(loaded.n_heads), labels=tuple(loaded.labels),
-        head_kind=loaded.head_kind, max_tokens=int(loaded.max_tokens), notes=tuple(loaded.notes),
+        folder=str(loaded.folder),
+        name=name,
+        family=loaded.family.name,
+        n_layers=int(loaded.n_layers),
+        n_heads=int(loaded.n_heads),
+        labels=tuple(loaded.labels),
+        head_kind=loaded.head_kind,
+        max_tokens=int(loaded.max_tokens),
+        notes=tuple(loaded.notes),
         base=None if loaded.base_folder is None else str(loaded.base_folder),
     )
 
@@ -100,8 +105,7 @@ class BaseNeeded:
     message: str
 
 
-def open_model(ctx: JobContext, slot: str, folder: str,
-               base: str | None = None) -> ModelInfo | BaseNeeded:
+def open_model(ctx: JobContext, slot: str, folder: str, base: str | None = None) -> ModelInfo | BaseNeeded:
     """Open ``folder`` (an adapter folder on ``base``) into ``slot``, importing torch and
     transformers the first time; ``BaseNeeded`` when an adapter's base must be chosen."""
     ctx.progress(0, 0, "loading torch and transformers…")
@@ -123,8 +127,14 @@ def open_model(ctx: JobContext, slot: str, folder: str,
     return info_of(loaded)
 
 
-def run_text(ctx: JobContext, slot: str, text: str, label: str | None = None,
-             origin: str = "", summarised: bool = False) -> TextAnalysis:
+def run_text(
+    ctx: JobContext,
+    slot: str,
+    text: str,
+    label: str | None = None,
+    origin: str = "",
+    summarised: bool = False,
+) -> TextAnalysis:
     """Record one text (with ``summarised`` also the check and head metrics; otherwise
     ``summarise_run`` adds them in a second job)."""
     if not text.strip():
@@ -137,8 +147,13 @@ def run_text(ctx: JobContext, slot: str, text: str, label: str | None = None,
     ctx.check()
     from viewer.session.analysis import analyse
 
-    result = analyse(rec, label=label, seconds=seconds, summarised=summarised,
-                     origin=origin or (loaded.name if slot != "main" else "text"))
+    result = analyse(
+        rec,
+        label=label,
+        seconds=seconds,
+        summarised=summarised,
+        origin=origin or (loaded.name if slot != "main" else "text"),
+    )
     ctx.progress(2, 2, "recorded")
     return result
 
@@ -206,13 +221,19 @@ def run_textset(ctx: JobContext, slot: str, path: str) -> TextSetResult:
     loaded = ctx.model(slot)
     total = len(items)
     ctx.progress(0, total, f"recording {total} texts…")
-    scan = scan_text_set(loaded, items, progress=ctx.counter("recorded texts"),
-                         cancelled=ctx.cancelled)
+    scan = scan_text_set(loaded, items, progress=ctx.counter("recorded texts"), cancelled=ctx.cancelled)
     classifier = loaded.head_kind == "classifier"
-    rows = tuple(TextSetRow(index=p.index, text=item.text, label=item.label,
-                            predicted=p.label if classifier else None,
-                            confidence=p.confidence if classifier else None, tokens=p.tokens)
-                 for p, item in zip(scan.rows, items, strict=True))
+    rows = tuple(
+        TextSetRow(
+            index=p.index,
+            text=item.text,
+            label=item.label,
+            predicted=p.label if classifier else None,
+            confidence=p.confidence if classifier else None,
+            tokens=p.tokens,
+        )
+        for p, item in zip(scan.rows, items, strict=True)
+    )
     return TextSetResult(str(path), rows, scan.heads)
 
 
@@ -234,9 +255,10 @@ def run_link_pairs(ctx: JobContext, slot: str, path: str) -> LinkPairsRun:
 
     pairs = read_link_pairs(path)
     loaded = ctx.model(slot)
-    return LinkPairsRun(str(path), link_report(loaded, pairs,
-                                               progress=ctx.counter("scored link pairs"),
-                                               cancelled=ctx.cancelled))
+    return LinkPairsRun(
+        str(path),
+        link_report(loaded, pairs, progress=ctx.counter("scored link pairs"), cancelled=ctx.cancelled),
+    )
 
 
 # -- evidence -------------------------------------------------------------------------------------
@@ -258,10 +280,14 @@ def run_evidence(ctx: JobContext, slot: str, analysis: TextAnalysis) -> Any:
     if ev.target is None:
         return ev
     if rec.n_tokens > HEAD_EVIDENCE_TOKENS:
-        return dataclasses.replace(ev, notes=(*ev.notes, "head importance and knockout are "
-                                              f"computed up to {HEAD_EVIDENCE_TOKENS} tokens"))
-    ctx.progress(1, 3, f"head importance and knockout ({loaded.n_layers * loaded.n_heads} "
-                       "heads)…")
+        return dataclasses.replace(
+            ev,
+            notes=(
+                *ev.notes,
+                f"head importance and knockout are computed up to {HEAD_EVIDENCE_TOKENS} tokens",
+            ),
+        )
+    ctx.progress(1, 3, f"head importance and knockout ({loaded.n_layers * loaded.n_heads} heads)…")
     importance, knockout = head_evidence(loaded, rec.text, tick=lambda _n=1: ctx.check())
     ctx.progress(3, 3, "evidence done")
     return dataclasses.replace(ev, head_importance=importance, head_knockout=knockout)
@@ -270,8 +296,7 @@ def run_evidence(ctx: JobContext, slot: str, analysis: TextAnalysis) -> Any:
 # -- shortcut search ------------------------------------------------------------------------------
 
 
-def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult,
-                  phrases: bool = False) -> Any:
+def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult, phrases: bool = False) -> Any:
     """Word knockout (with ``phrases`` also two-word phrases) over the open text set, by the
     reports' own search (``viewer.reports.shortcuts.ShortcutReport``)."""
     from viewer.reports.shortcuts import shortcut_search
@@ -280,12 +305,18 @@ def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult,
     items = textset.items()
     what = "word and two-word phrase" if phrases else "word"
     ctx.progress(0, len(items), f"shortcut search: knocking out every {what}…")
-    return shortcut_search(loaded, items, progress=ctx.counter("shortcut search, texts"),
-                           cancelled=ctx.cancelled, phrases=phrases)
+    return shortcut_search(
+        loaded,
+        items,
+        progress=ctx.counter("shortcut search, texts"),
+        cancelled=ctx.cancelled,
+        phrases=phrases,
+    )
 
 
-def run_insertions(ctx: JobContext, slot: str, textset: TextSetResult, report: Any,
-                   words: tuple[str, ...]) -> tuple[Any, dict[str, Any]]:
+def run_insertions(
+    ctx: JobContext, slot: str, textset: TextSetResult, report: Any, words: tuple[str, ...]
+) -> tuple[Any, dict[str, Any]]:
     """The insertion test (``viewer.reports.insertion``) for each of ``words`` over the open
     text set, into the class knocking it out flips texts away from; a phrase is inserted as
     the texts most often write it (``insertion_phrase``: "via portal" as "[via portal]"). A word
@@ -302,8 +333,9 @@ def run_insertions(ctx: JobContext, slot: str, textset: TextSetResult, report: A
         ctx.check()
         ctx.progress(k, len(words), f"insertion test: '{word}' ({k + 1} of {len(words)})")
         try:
-            results[word] = insertion_test(loaded, items, insertion_phrase(items, word),
-                                           cancelled=ctx.cancelled)
+            results[word] = insertion_test(
+                loaded, items, insertion_phrase(items, word), cancelled=ctx.cancelled
+            )
         except HeadlightError:
             continue  # e.g. knocking it out flips nothing: it points to no class
     ctx.progress(len(words), len(words), "insertion tests done")
@@ -313,8 +345,7 @@ def run_insertions(ctx: JobContext, slot: str, textset: TextSetResult, report: A
 # -- card export ----------------------------------------------------------------------------------
 
 
-def card_command(folder: str, texts: str, pairs: str | None, out: str,
-                 force: bool) -> tuple[str, ...]:
+def card_command(folder: str, texts: str, pairs: str | None, out: str, force: bool) -> tuple[str, ...]:
     """The ``headlight card`` command that writes the same folder as the window's export."""
     cmd = ["headlight", "card", folder, "--texts", texts]
     if pairs:
@@ -325,14 +356,12 @@ def card_command(folder: str, texts: str, pairs: str | None, out: str,
     return tuple(cmd)
 
 
-def card_job(ctx: JobContext, slot: str, texts: str, pairs: str | None, out: str,
-             force: bool) -> str:
+def card_job(ctx: JobContext, slot: str, texts: str, pairs: str | None, out: str, force: bool) -> str:
     """``export_card`` with the window's open model; returns the folder written."""
     loaded = ctx.model(slot)
     ctx.progress(0, 0, "writing the model-card folder (check, heads, links, shortcuts)…")
     from viewer.figures.card import export_card
 
     command = card_command(str(loaded.folder), texts, pairs, out, force)
-    path = export_card(loaded, texts, out, pairs_path=pairs, force=force, command=command,
-                       quiet=True)
+    path = export_card(loaded, texts, out, pairs_path=pairs, force=force, command=command, quiet=True)
     return str(path)

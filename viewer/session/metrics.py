@@ -26,8 +26,9 @@ class HeadValues:
     title: str
 
 
-def _one(state: Selection, analysis: TextAnalysis | None, evidence, name: str,
-         scope: str) -> np.ndarray | str:
+def _one(
+    state: Selection, analysis: TextAnalysis | None, evidence, name: str, scope: str
+) -> np.ndarray | str:
     """The metric for one run (the current text, the compared one, or the text set)."""
     if name in STAT_METRICS:
         if scope == "set":
@@ -46,8 +47,10 @@ def _one(state: Selection, analysis: TextAnalysis | None, evidence, name: str,
         s, t = state.source, state.target
         n = analysis.recording.n_tokens
         if s is None or t is None or s >= n or t >= n:
-            return ("link scores need a source and a target: click a cell of the pair grid "
-                    "(its row is the source token, its column the target)")
+            return (
+                "link scores need a source and a target: click a cell of the pair grid "
+                "(its row is the source token, its column the target)"
+            )
         return per_head_link(analysis, s, t)
     if name in ("importance", "knockout"):
         if evidence is None:
@@ -81,6 +84,7 @@ def head_values(state: Selection) -> HeadValues | str:
             return other
         if np.shape(other) != np.shape(base):
             return "the compared checkpoint has a different number of layers or heads"
-        return HeadValues(np.asarray(other) - base, f"Δ {label}", True,
-                          f"{METRICS[name][0]}: compared − current")
+        return HeadValues(
+            np.asarray(other) - base, f"Δ {label}", True, f"{METRICS[name][0]}: compared − current"
+        )
     return HeadValues(np.asarray(base), label, False, f"{METRICS[name][0]} · {where}")

@@ -51,8 +51,7 @@ class Session:
         return {"format": FORMAT, "version": VERSION, **asdict(self)}
 
 
-def capture(state: Selection, *, text_set: str | None = None,
-            link_pairs: str | None = None) -> Session:
+def capture(state: Selection, *, text_set: str | None = None, link_pairs: str | None = None) -> Session:
     """The session for the current state."""
     model = state.model.folder if state.model is not None else None
     target = state.compare_target
@@ -60,11 +59,13 @@ def capture(state: Selection, *, text_set: str | None = None,
         model=model,
         base=state.model.base if state.model is not None else None,
         text=state.text,
-        text_set=text_set if text_set is not None else (
-            state.textset.path if state.textset is not None else None),
+        text_set=text_set
+        if text_set is not None
+        else (state.textset.path if state.textset is not None else None),
         item=state.item,
-        link_pairs=link_pairs if link_pairs is not None else (
-            state.link_pairs.path if state.link_pairs is not None else None),
+        link_pairs=link_pairs
+        if link_pairs is not None
+        else (state.link_pairs.path if state.link_pairs is not None else None),
         compare=None if target is None else {"kind": target[0], "value": target[1]},
         selection=state.snapshot(),
         notes=state.notes,
@@ -82,10 +83,12 @@ def _int_or_none(value: Any, name: str) -> int | None:
 def from_dict(data: Any) -> Session:
     """Validate a parsed session file; HeadlightError with a one-line message when it is wrong."""
     if not isinstance(data, dict) or data.get("format") != FORMAT:
-        raise HeadlightError("not a Headlight session file (no \"format\": \"headlight-session\")")
+        raise HeadlightError('not a Headlight session file (no "format": "headlight-session")')
     if data.get("version") != VERSION:
-        raise HeadlightError(f"session version {data.get('version')!r} is not supported "
-                             f"(this Headlight reads version {VERSION})")
+        raise HeadlightError(
+            f"session version {data.get('version')!r} is not supported "
+            f"(this Headlight reads version {VERSION})"
+        )
     sel = data.get("selection") or {}
     if not isinstance(sel, dict):
         raise HeadlightError("session field selection must be an object")
@@ -104,10 +107,12 @@ def from_dict(data: Any) -> Session:
     clean["word"] = word if isinstance(word, str) and word else None
     compare = data.get("compare")
     if compare is not None:
-        if (not isinstance(compare, dict) or compare.get("kind") not in ("text", "model")
-                or not isinstance(compare.get("value"), str)):
-            raise HeadlightError("session field compare must be {\"kind\": \"text\" | \"model\", "
-                                 "\"value\": ...}")
+        if (
+            not isinstance(compare, dict)
+            or compare.get("kind") not in ("text", "model")
+            or not isinstance(compare.get("value"), str)
+        ):
+            raise HeadlightError('session field compare must be {"kind": "text" | "model", "value": ...}')
         compare = {"kind": compare["kind"], "value": compare["value"]}
     strings = {}
     for name in ("model", "base", "text_set", "link_pairs"):
@@ -119,9 +124,17 @@ def from_dict(data: Any) -> Session:
     notes = data.get("notes", "")
     if not isinstance(text, str) or not isinstance(notes, str):
         raise HeadlightError("session fields text and notes must be strings")
-    return Session(model=strings["model"], base=strings["base"], text=text, text_set=strings["text_set"],
-                   item=_int_or_none(data.get("item"), "item"), link_pairs=strings["link_pairs"],
-                   compare=compare, selection=clean, notes=notes)
+    return Session(
+        model=strings["model"],
+        base=strings["base"],
+        text=text,
+        text_set=strings["text_set"],
+        item=_int_or_none(data.get("item"), "item"),
+        link_pairs=strings["link_pairs"],
+        compare=compare,
+        selection=clean,
+        notes=notes,
+    )
 
 
 def save(path: str | Path, session: Session) -> None:
@@ -145,6 +158,5 @@ def load(path: str | Path) -> Session:
     try:
         data = json.loads(raw)
     except json.JSONDecodeError as exc:
-        raise HeadlightError(f"{path.name} is not valid JSON ({exc.msg}, line {exc.lineno})") \
-            from None
+        raise HeadlightError(f"{path.name} is not valid JSON ({exc.msg}, line {exc.lineno})") from None
     return from_dict(data)

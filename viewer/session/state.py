@@ -42,34 +42,74 @@ from viewer.session.events import Event, same
 
 # name -> (label in the chooser, colour-bar label with units, explanation for the tooltip)
 METRICS: dict[str, tuple[str, str, str]] = {
-    "entropy": ("entropy", "entropy (0–1)",
-                "mean attention entropy per query, divided by its maximum: 0 = all weight on one "
-                "key, 1 = spread evenly over the visible keys"),
-    "distance": ("distance", "distance (tokens)",
-                 "mean number of tokens between a query and the keys it attends to"),
-    "special": ("special-token share", "weight on specials",
-                "mean share of attention on special tokens such as [CLS] and [SEP]"),
-    "confidence": ("confidence", "largest weight",
-                   "mean of each query's largest attention weight (Voita et al. 2019)"),
-    "previous": ("previous token", "weight on previous",
-                 "mean attention on the token just before the query"),
+    "entropy": (
+        "entropy",
+        "entropy (0–1)",
+        "mean attention entropy per query, divided by its maximum: 0 = all weight on one "
+        "key, 1 = spread evenly over the visible keys",
+    ),
+    "distance": (
+        "distance",
+        "distance (tokens)",
+        "mean number of tokens between a query and the keys it attends to",
+    ),
+    "special": (
+        "special-token share",
+        "weight on specials",
+        "mean share of attention on special tokens such as [CLS] and [SEP]",
+    ),
+    "confidence": (
+        "confidence",
+        "largest weight",
+        "mean of each query's largest attention weight (Voita et al. 2019)",
+    ),
+    "previous": ("previous token", "weight on previous", "mean attention on the token just before the query"),
     "same": ("own token", "weight on own token", "mean attention of a query on itself"),
-    "next": ("next token", "weight on next",
-             "mean attention on the token just after the query (not defined for causal models)"),
-    "link": ("link score", "link score",
-             "attention from the source word's first sub-token summed over the target word's "
-             "sub-tokens, in every head"),
-    "importance": ("head importance", "head importance",
-                   "|∂loss/∂gate| of each head for this prediction, normalised per layer "
-                   "(Michel et al. 2019)"),
-    "knockout": ("knockout effect", "Δ p(predicted)",
-                 "drop in the predicted class's probability when the head is knocked out"),
+    "next": (
+        "next token",
+        "weight on next",
+        "mean attention on the token just after the query (not defined for causal models)",
+    ),
+    "link": (
+        "link score",
+        "link score",
+        "attention from the source word's first sub-token summed over the target word's "
+        "sub-tokens, in every head",
+    ),
+    "importance": (
+        "head importance",
+        "head importance",
+        "|∂loss/∂gate| of each head for this prediction, normalised per layer (Michel et al. 2019)",
+    ),
+    "knockout": (
+        "knockout effect",
+        "Δ p(predicted)",
+        "drop in the predicted class's probability when the head is knocked out",
+    ),
 }
 
 FIELDS = (
-    "model", "text", "item", "analysis", "evidence", "layer", "head", "source", "target",
-    "metric", "scope", "textset", "mistakes_only", "compare_target", "compare", "difference",
-    "link_pairs", "shortcuts", "insertions", "word", "notes",
+    "model",
+    "text",
+    "item",
+    "analysis",
+    "evidence",
+    "layer",
+    "head",
+    "source",
+    "target",
+    "metric",
+    "scope",
+    "textset",
+    "mistakes_only",
+    "compare_target",
+    "compare",
+    "difference",
+    "link_pairs",
+    "shortcuts",
+    "insertions",
+    "word",
+    "notes",
 )
 
 
@@ -93,8 +133,7 @@ class ModelInfo:
         weights were loaded when that is not as stored (e.g. "upcast from bfloat16 ...")."""
         kind = "classifier" if self.head_kind == "classifier" else self.head_kind
         loaded = "".join(f" · {n}" for n in self.notes if n.startswith("upcast from"))
-        return (f"{self.name} · {self.family} {kind} · {self.n_layers} layers × "
-                f"{self.n_heads} heads{loaded}")
+        return f"{self.name} · {self.family} {kind} · {self.n_layers} layers × {self.n_heads} heads{loaded}"
 
 
 class Selection:
@@ -103,11 +142,25 @@ class Selection:
     def __init__(self) -> None:
         self.events = SimpleNamespace(**{name: Event(name) for name in FIELDS})
         self._values: dict[str, Any] = {
-            "model": None, "text": "", "item": None, "analysis": None, "evidence": None,
-            "layer": 0, "head": 0, "source": None, "target": None, "metric": "entropy",
-            "scope": "text", "textset": None, "mistakes_only": False, "compare_target": None,
+            "model": None,
+            "text": "",
+            "item": None,
+            "analysis": None,
+            "evidence": None,
+            "layer": 0,
+            "head": 0,
+            "source": None,
+            "target": None,
+            "metric": "entropy",
+            "scope": "text",
+            "textset": None,
+            "mistakes_only": False,
+            "compare_target": None,
             "compare": None,
-            "difference": False, "link_pairs": None, "shortcuts": None, "insertions": None,
+            "difference": False,
+            "link_pairs": None,
+            "shortcuts": None,
+            "insertions": None,
             "word": None,
             "notes": "",
         }
@@ -128,8 +181,20 @@ class Selection:
 
     def snapshot(self) -> dict[str, Any]:
         """The selection fields that a session stores (plain values only)."""
-        return {k: self._values[k] for k in ("layer", "head", "source", "target", "metric",
-                                             "scope", "mistakes_only", "difference", "word")}
+        return {
+            k: self._values[k]
+            for k in (
+                "layer",
+                "head",
+                "source",
+                "target",
+                "metric",
+                "scope",
+                "mistakes_only",
+                "difference",
+                "word",
+            )
+        }
 
     # -- sizes -----------------------------------------------------------------------------
     @property

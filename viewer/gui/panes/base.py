@@ -60,15 +60,22 @@ class ElidedLabel(QLabel):
 
     def shown_text(self) -> str:
         """The text as painted at the label's current width."""
-        return self.fontMetrics().elidedText(self.text(), Qt.TextElideMode.ElideRight,
-                                             max(0, self.contentsRect().width()))
+        return self.fontMetrics().elidedText(
+            self.text(), Qt.TextElideMode.ElideRight, max(0, self.contentsRect().width())
+        )
 
     def paintEvent(self, event) -> None:  # noqa: N802 - Qt name
         painter = QPainter(self)
         align = self.alignment() | Qt.AlignmentFlag.AlignVCenter
-        self.style().drawItemText(painter, self.contentsRect(), int(align), self.palette(),
-                                  self.isEnabled(), self.shown_text(),
-                                  QPalette.ColorRole.WindowText)
+        self.style().drawItemText(
+            painter,
+            self.contentsRect(),
+            int(align),
+            self.palette(),
+            self.isEnabled(),
+            self.shown_text(),
+            QPalette.ColorRole.WindowText,
+        )
         painter.end()
 
 

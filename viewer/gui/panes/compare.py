@@ -27,8 +27,13 @@ from viewer.session.state import Selection
 class ComparePane(QWidget):
     title = "compare"
 
-    def __init__(self, state: Selection, compare_action: QAction | None = None,
-                 clear_action: QAction | None = None, parent: QWidget | None = None) -> None:
+    def __init__(
+        self,
+        state: Selection,
+        compare_action: QAction | None = None,
+        clear_action: QAction | None = None,
+        parent: QWidget | None = None,
+    ) -> None:
         super().__init__(parent)
         self.state = state
         layout = QVBoxLayout(self)
@@ -53,8 +58,9 @@ class ComparePane(QWidget):
         self.text_edit = QLineEdit()
         self.text_edit.setPlaceholderText("a second text to run through the same checkpoint")
         self.folder_edit = QLineEdit()
-        self.folder_edit.setPlaceholderText("a second checkpoint folder (same tokenizer), "
-                                            "compared on the current text")
+        self.folder_edit.setPlaceholderText(
+            "a second checkpoint folder (same tokenizer), compared on the current text"
+        )
         self.browse = QToolButton()
         self.browse.setText("…")
         self.browse.setToolTip("choose the second checkpoint's folder")

@@ -49,9 +49,16 @@ class EvidencePane(FigurePane):
                 self.blitter.detach()
             kinds, values, agreement = ev.strip_rows()
             self.artists = evidence_into(
-                self.figure, rec.tokens, kinds, values, agreement, labels=rec.labels,
-                probabilities=probs if len(probs) else None, predicted=rec.predicted(),
-                gold=a.label, title=line,
+                self.figure,
+                rec.tokens,
+                kinds,
+                values,
+                agreement,
+                labels=rec.labels,
+                probabilities=probs if len(probs) else None,
+                predicted=rec.predicted(),
+                gold=a.label,
+                title=line,
             )
             n = rec.n_tokens
             self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(kinds) - 0.5))

@@ -24,13 +24,15 @@ class FixationPane(FigurePane):
         self.head_box = QComboBox()
         self.head_box.addItem("head mean", "mean")
         self.head_box.addItem("selected head", "head")
-        self.head_box.setToolTip("summary-token attention of the last layer's head mean, or of "
-                                 "the head selected in the head map")
+        self.head_box.setToolTip(
+            "summary-token attention of the last layer's head mean, or of the head selected in the head map"
+        )
         self.head_box.currentIndexChanged.connect(lambda _i: self.schedule())
         self.header.addWidget(self.head_box)
         self.observe("shortcuts", "word", "head")
-        self.message.setText("Search a text set for shortcuts to see attention beside "
-                             "knockout for every word.")
+        self.message.setText(
+            "Search a text set for shortcuts to see attention beside knockout for every word."
+        )
 
     def values(self, report, head: int | None):
         """(rows, x, y, counts) from the report's own per-word numbers."""
@@ -52,8 +54,10 @@ class FixationPane(FigurePane):
         report = self.state.shortcuts
         if report is None:
             self.set_title(self.title)
-            return ("Search a text set for shortcuts (shortcut report) to see, for every word, "
-                    "the attention it receives beside what knocking it out does.")
+            return (
+                "Search a text set for shortcuts (shortcut report) to see, for every word, "
+                "the attention it receives beside what knocking it out does."
+            )
         head = self.focus_head()
         rows, x, y, counts = self.values(report, head)
         if not rows:
@@ -67,8 +71,9 @@ class FixationPane(FigurePane):
             from viewer.figures.fixation import X_UNITS, fixation_into
 
             self.rows = rows
-            self.artists = fixation_into(self.figure, words, x, y, counts, highlight=word,
-                                         x_units=X_UNITS + f", {where}")
+            self.artists = fixation_into(
+                self.figure, words, x, y, counts, highlight=word, x_units=X_UNITS + f", {where}"
+            )
 
         return build
 
@@ -84,9 +89,11 @@ class FixationPane(FigurePane):
         if i is None or i >= len(self.rows):
             return None
         r = self.rows[i]
-        return (f"'{r['token']}' in {r['count']} texts\nflip rate {r['flip_rate']:.3f} "
-                f"(95% low {r['flip_low']:.3f})\nmean drop {r['mean_drop']:+.4f}\n"
-                f"attention share {float(self.artists.x[i]):.4f}\nclick to list its texts")
+        return (
+            f"'{r['token']}' in {r['count']} texts\nflip rate {r['flip_rate']:.3f} "
+            f"(95% low {r['flip_low']:.3f})\nmean drop {r['mean_drop']:+.4f}\n"
+            f"attention share {float(self.artists.x[i]):.4f}\nclick to list its texts"
+        )
 
     def on_press(self, event) -> None:
         if event.button == 1:

@@ -27,8 +27,7 @@ class HeadMapPane(FigurePane):
         self.metric_box = QComboBox()
         for name, (label, _units, explanation) in METRICS.items():
             self.metric_box.addItem(label, name)
-            self.metric_box.setItemData(self.metric_box.count() - 1, explanation,
-                                        Qt.ItemDataRole.ToolTipRole)
+            self.metric_box.setItemData(self.metric_box.count() - 1, explanation, Qt.ItemDataRole.ToolTipRole)
         self.metric_box.setToolTip("metric that colours the head map")
         self.metric_box.currentIndexChanged.connect(self._metric_chosen)
         self.scope_box = QComboBox()
@@ -44,8 +43,7 @@ class HeadMapPane(FigurePane):
         self.header.addWidget(self.metric_box)
         self.header.addWidget(self.scope_box)
         self.header.addWidget(self.diff_box)
-        self.observe("analysis", "evidence", "layer", "head", "source", "target", "textset",
-                     "compare")
+        self.observe("analysis", "evidence", "layer", "head", "source", "target", "textset", "compare")
         for name in ("metric", "scope", "difference", "textset", "compare"):
             self.listen(name, lambda _v: self._sync_controls())
             self.listen(name, lambda _v: self.schedule())
@@ -63,8 +61,7 @@ class HeadMapPane(FigurePane):
         self.state.set_scope(self.scope_box.itemData(index))
 
     def _sync_controls(self) -> None:
-        for box, value in ((self.metric_box, self.state.metric),
-                           (self.scope_box, self.state.scope)):
+        for box, value in ((self.metric_box, self.state.metric), (self.scope_box, self.state.scope)):
             box.blockSignals(True)
             box.setCurrentIndex(max(0, box.findData(value)))
             box.blockSignals(False)
@@ -88,8 +85,11 @@ class HeadMapPane(FigurePane):
         selected = (self.state.layer, self.state.head)
         width, height = self.size_inches
         n_layers, n_heads = result.values.shape
-        annotate = (n_layers * n_heads <= ANNOTATE_CELLS and (width - 1.6) / n_heads >= 0.36
-                    and (height - 0.6) / n_layers >= 0.2)
+        annotate = (
+            n_layers * n_heads <= ANNOTATE_CELLS
+            and (width - 1.6) / n_heads >= 0.36
+            and (height - 0.6) / n_layers >= 0.2
+        )
         key = (result.label, result.diverging, annotate)
         self.set_title(f"head map · {result.title}")
 
@@ -98,8 +98,12 @@ class HeadMapPane(FigurePane):
 
             from viewer.figures.head_map import head_map_into, mark_head, update_head_map
 
-            same_kind = (self.shown is not None and self.artists is not None
-                         and self._key == key and self.shown.values.shape == result.values.shape)
+            same_kind = (
+                self.shown is not None
+                and self.artists is not None
+                and self._key == key
+                and self.shown.values.shape == result.values.shape
+            )
             if same_kind and np.array_equal(self.shown.values, result.values, equal_nan=True):
                 mark_head(self.artists, selected)  # only the selection moved
                 self.fast = True
@@ -112,9 +116,14 @@ class HeadMapPane(FigurePane):
             self._key = key
             if self.blitter is not None:
                 self.blitter.detach()
-            self.artists = head_map_into(self.figure, result.values, label=result.label,
-                                         diverging=result.diverging, selected=selected,
-                                         annotate=annotate)
+            self.artists = head_map_into(
+                self.figure,
+                result.values,
+                label=result.label,
+                diverging=result.diverging,
+                selected=selected,
+                annotate=annotate,
+            )
             self.blitter = Blitter(self.agg, [self.artists.marker])
 
         return build

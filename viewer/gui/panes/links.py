@@ -59,8 +59,12 @@ class LinksPane(FigurePane):
                 self.scores = self.per_head = None
                 self.artists = self._drawn_for = None
                 self.accuracy_artists = accuracy_into(
-                    self.figure, pairs.accuracy, nearest_baseline=pairs.nearest_baseline,
-                    pairs=pairs.pairs, selected=selected)
+                    self.figure,
+                    pairs.accuracy,
+                    nearest_baseline=pairs.nearest_baseline,
+                    pairs=pairs.pairs,
+                    selected=selected,
+                )
 
             return build_accuracy
         a = self.state.analysis
@@ -69,8 +73,10 @@ class LinksPane(FigurePane):
         s, t = self.state.source, self.state.target
         n = a.recording.n_tokens
         if s is None or s >= n:
-            return ("Click a pair-grid cell: its row becomes the source token and its column "
-                    "the target. Links show where the source's word attends.")
+            return (
+                "Click a pair-grid cell: its row becomes the source token and its column "
+                "the target. Links show where the source's word attends."
+            )
         layer, head = self.state.layer, self.state.head
         u = a.units
         scores = unit_links(a, layer, head, s)
@@ -92,15 +98,29 @@ class LinksPane(FigurePane):
             self.scores, self.per_head = scores, per_head
             self.accuracy_artists = None
             if same:  # another head: new bars and outline, the axes and ticks stay
-                relink(self.artists, u.names, scores, per_head_to_target=per_head,
-                       target=target_unit, source_name=source_name, head_title=head_title,
-                       selected=(layer, head), exclude=None)
+                relink(
+                    self.artists,
+                    u.names,
+                    scores,
+                    per_head_to_target=per_head,
+                    target=target_unit,
+                    source_name=source_name,
+                    head_title=head_title,
+                    selected=(layer, head),
+                    exclude=None,
+                )
             else:
                 self.artists = links_into(
-                    self.figure, u.names, scores, per_head_to_target=per_head,
-                    target=target_unit, source_name=source_name,
+                    self.figure,
+                    u.names,
+                    scores,
+                    per_head_to_target=per_head,
+                    target=target_unit,
+                    source_name=source_name,
                     target_name=u.names[target_unit] if target_unit is not None else None,
-                    head_title=head_title, selected=(layer, head), exclude=None,
+                    head_title=head_title,
+                    selected=(layer, head),
+                    exclude=None,
                 )
             self._drawn_for = drawn_for
 
@@ -130,9 +150,11 @@ class LinksPane(FigurePane):
                 return f"layer {layer} · head {head}\nlink score {self.per_head[layer, head]:.6f}"
             run = self.state.link_pairs
             if run is not None:
-                return (f"layer {layer} · head {head}\nlink accuracy "
-                        f"{run.report.accuracy[layer, head]:.3f} (nearest baseline "
-                        f"{run.report.nearest_baseline:.3f})")
+                return (
+                    f"layer {layer} · head {head}\nlink accuracy "
+                    f"{run.report.accuracy[layer, head]:.3f} (nearest baseline "
+                    f"{run.report.nearest_baseline:.3f})"
+                )
         unit = self._bar(event)
         if unit is not None and self.scores is not None:
             name = self.state.analysis.units.names[unit]

@@ -118,15 +118,15 @@ class PairGridPane(FigurePane):
         else:
             if self.blitter is not None:
                 self.blitter.detach()
-            self.artists = pair_grid_into(self.figure, grid, tokens, visible=visible,
-                                          title=title)
+            self.artists = pair_grid_into(self.figure, grid, tokens, visible=visible, title=title)
             # token labels and tick marks are painted by ``overlay_texts``: the same labels
             # and marks, in a fraction of the time matplotlib takes to lay out and draw ticks
-            self.artists.ax.tick_params(labelbottom=False, labelleft=False, bottom=False,
-                                        left=False)
+            self.artists.ax.tick_params(labelbottom=False, labelleft=False, bottom=False, left=False)
             arts = self.artists
-            self.blitter = Blitter(self.agg, [arts.image, arts.marker, arts.ax.title,
-                                              arts.colorbar.ax if arts.colorbar else None])
+            self.blitter = Blitter(
+                self.agg,
+                [arts.image, arts.marker, arts.ax.title, arts.colorbar.ax if arts.colorbar else None],
+            )
         n = len(tokens)
         self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
 
@@ -162,13 +162,18 @@ class PairGridPane(FigurePane):
         rec = self.analysis.recording
         grid, layer, head = self.current_grid()
         if not rec.key_mask(layer)[row, col]:
-            why = ("a causal query cannot see later keys" if rec.causal and col > row
-                   else "outside this layer's attention window")
+            why = (
+                "a causal query cannot see later keys"
+                if rec.causal and col > row
+                else "outside this layer's attention window"
+            )
             value = f"masked ({why})"
         else:
             value = f"{float(grid[row, col]):.6f}"
-        return (f"{_head_name(layer, head)}\nquery {row} '{rec.tokens[row]}' → "
-                f"key {col} '{rec.tokens[col]}'\nattention probability {value}")
+        return (
+            f"{_head_name(layer, head)}\nquery {row} '{rec.tokens[row]}' → "
+            f"key {col} '{rec.tokens[col]}'\nattention probability {value}"
+        )
 
     def on_press(self, event) -> None:
         shift = bool(event.key and "shift" in str(event.key))

@@ -45,8 +45,7 @@ from PySide6.QtCore import QEvent, QLineF, QObject, QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import QColor, QFont, QFontDatabase, QFontMetricsF, QImage, QPainter, QPen
 from PySide6.QtWidgets import QWidget
 
-BUTTONS = {Qt.MouseButton.LeftButton: 1, Qt.MouseButton.MiddleButton: 2,
-           Qt.MouseButton.RightButton: 3}
+BUTTONS = {Qt.MouseButton.LeftButton: 1, Qt.MouseButton.MiddleButton: 2, Qt.MouseButton.RightButton: 3}
 
 
 @dataclass
@@ -107,11 +106,21 @@ def _capture_text(renderer, draw_text, gc, x, y, s, prop, angle, ismath=False, m
         clip = (x0, renderer.height - y1, x1, renderer.height - y0)
     weight = prop.get_weight()
     bold = weight in ("bold", "heavy", "extra bold", "black", "semibold", "demibold") or (
-        isinstance(weight, int | float) and weight >= 600)
-    renderer.texts.append(TextItem(
-        float(x), float(y), s, prop.get_size_in_points() * renderer.dpi / 72.0, float(angle),
-        (float(r), float(g), float(b), float(1.0 if alpha is None else alpha)), bool(bold),
-        prop.get_style() != "normal", clip))
+        isinstance(weight, int | float) and weight >= 600
+    )
+    renderer.texts.append(
+        TextItem(
+            float(x),
+            float(y),
+            s,
+            prop.get_size_in_points() * renderer.dpi / 72.0,
+            float(angle),
+            (float(r), float(g), float(b), float(1.0 if alpha is None else alpha)),
+            bool(bold),
+            prop.get_style() != "normal",
+            clip,
+        )
+    )
     return None
 
 
@@ -126,8 +135,9 @@ def text_recording_renderer(agg) -> Any:
     return renderer
 
 
-def _chain(pane: Any, first: Callable[[], None] | None,
-           then: Callable[[], None] | None) -> Callable[[], None] | None:
+def _chain(
+    pane: Any, first: Callable[[], None] | None, then: Callable[[], None] | None
+) -> Callable[[], None] | None:
     """Both builds, in order (builds are cheap next to the draw they share); the fast path
     (``pane.fast``) only if both builds allow it."""
     if first is None or then is None:
@@ -160,8 +170,12 @@ class Renderer(QObject):
         self._thread.start()
 
     # -- GUI thread ------------------------------------------------------------------------------
-    def submit(self, pane: Any, build: Callable[[], None] | None = None,
-               size: tuple[float, float, float] | None = None) -> None:
+    def submit(
+        self,
+        pane: Any,
+        build: Callable[[], None] | None = None,
+        size: tuple[float, float, float] | None = None,
+    ) -> None:
         """Ask for ``build`` (if any) and a fresh frame of ``pane``'s figure."""
         job = RenderJob(pane, build, size)
         if self._holding:
@@ -232,15 +246,13 @@ class Renderer(QObject):
                 width, height, ratio = job.size
                 agg._set_device_pixel_ratio(ratio)
                 dpi = pane.figure.dpi
-                pane.figure.set_size_inches(width * ratio / dpi, height * ratio / dpi,
-                                            forward=False)
+                pane.figure.set_size_inches(width * ratio / dpi, height * ratio / dpi, forward=False)
             pane.fast = False
             if job.build is not None:
                 job.build()
             blitter = pane.blitter
             renderer = text_recording_renderer(agg)
-            if not (pane.fast and job.size is None and blitter is not None
-                    and blitter.update()):
+            if not (pane.fast and job.size is None and blitter is not None and blitter.update()):
                 renderer.texts = []
                 FigureCanvasAgg.draw(agg)
             width, height = agg.get_width_height(physical=True)
@@ -377,8 +389,7 @@ def token_axis_items(ax, which: str) -> list[TextItem | MarkItem]:
     if which == "x":
         along = ax.transData.transform(np.column_stack([values, np.zeros_like(values)]))[:, 0]
     else:
-        along = height - ax.transData.transform(
-            np.column_stack([np.zeros_like(values), values]))[:, 1]
+        along = height - ax.transData.transform(np.column_stack([np.zeros_like(values), values]))[:, 1]
     fmt = axis.get_major_formatter()
     marks: list[TextItem | MarkItem] = []
     labels: list[TextItem | MarkItem] = []
@@ -388,14 +399,16 @@ def token_axis_items(ax, which: str) -> list[TextItem | MarkItem]:
             y = float(height - box.y0)
             marks.append(MarkItem(at, y, at, y + length, width, colour))
             if label:
-                labels.append(TextItem(at, y + pad, label, size, 90.0, ink, False, False,
-                                       None, "right", "center"))
+                labels.append(
+                    TextItem(at, y + pad, label, size, 90.0, ink, False, False, None, "right", "center")
+                )
         else:
             x = float(box.x0)
             marks.append(MarkItem(x, at, x - length, at, width, colour))
             if label:
-                labels.append(TextItem(x - pad, at, label, size, 0.0, ink, False, False,
-                                       None, "right", "center"))
+                labels.append(
+                    TextItem(x - pad, at, label, size, 0.0, ink, False, False, None, "right", "center")
+                )
     return marks + labels
 
 
@@ -464,12 +477,16 @@ class PaneView(QWidget):
         x = point.x() * self.device_pixel_ratio
         y = self.figure.bbox.height - point.y() * self.device_pixel_ratio
         mods = event.modifiers()
-        keys = [name for flag, name in ((Qt.KeyboardModifier.ControlModifier, "ctrl"),
-                                        (Qt.KeyboardModifier.AltModifier, "alt"),
-                                        (Qt.KeyboardModifier.ShiftModifier, "shift"))
-                if mods & flag]
-        info: dict[str, Any] = {"x": x, "y": y, "key": "+".join(keys) or None,
-                                "modifiers": frozenset(keys)}
+        keys = [
+            name
+            for flag, name in (
+                (Qt.KeyboardModifier.ControlModifier, "ctrl"),
+                (Qt.KeyboardModifier.AltModifier, "alt"),
+                (Qt.KeyboardModifier.ShiftModifier, "shift"),
+            )
+            if mods & flag
+        ]
+        info: dict[str, Any] = {"x": x, "y": y, "key": "+".join(keys) or None, "modifiers": frozenset(keys)}
         if name == "scroll_event":
             info["step"] = event.angleDelta().y() / 120
             info["button"] = "up" if info["step"] >= 0 else "down"
@@ -485,8 +502,9 @@ class PaneView(QWidget):
     def _dispatch(self, name: str, event, info: dict[str, Any]) -> None:
         if self.pane.drawing:  # the figure is the render thread's until the frame arrives
             if name in ("motion_notify_event", "figure_leave_event"):
-                self._deferred = [d for d in self._deferred
-                                  if d[0] not in ("motion_notify_event", "figure_leave_event")]
+                self._deferred = [
+                    d for d in self._deferred if d[0] not in ("motion_notify_event", "figure_leave_event")
+                ]
             self._deferred.append((name, info))
             return
         self._process(name, info)
@@ -501,10 +519,17 @@ class PaneView(QWidget):
             if name == "figure_leave_event":
                 LocationEvent(name, agg, None, None)._process()
             else:
-                MouseEvent(name, agg, info["x"], info["y"], info.get("button"),
-                           info.get("key"), step=info.get("step", 0),
-                           dblclick=info.get("dblclick", False),
-                           modifiers=info.get("modifiers"))._process()
+                MouseEvent(
+                    name,
+                    agg,
+                    info["x"],
+                    info["y"],
+                    info.get("button"),
+                    info.get("key"),
+                    step=info.get("step", 0),
+                    dblclick=info.get("dblclick", False),
+                    modifiers=info.get("modifiers"),
+                )._process()
         finally:
             r.release()
 

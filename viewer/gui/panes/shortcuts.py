@@ -43,17 +43,24 @@ def insertion_cell(report) -> tuple[str, str]:
     lines = [f"inserting '{report.phrase}' into texts not predicted {report.target_label}:"]
     for position in report.tally.positions:
         e = report.tally.entry(position)
-        lines.append(f"  {position}: {e['flips']} of {e['tried']} flip "
-                     f"({e['flip_rate']:.0%}, 95% low {e['flip_low']:.2f}), "
-                     f"mean gain {e['mean_gain']:+.3f}")
+        lines.append(
+            f"  {position}: {e['flips']} of {e['tried']} flip "
+            f"({e['flip_rate']:.0%}, 95% low {e['flip_low']:.2f}), "
+            f"mean gain {e['mean_gain']:+.3f}"
+        )
     return text, "\n".join(lines)
 
 
 class ShortcutPane(TableDock):
     title = "shortcut report"
 
-    def __init__(self, state: Selection, search_action: QAction | None = None,
-                 insert_action: QAction | None = None, parent: QWidget | None = None) -> None:
+    def __init__(
+        self,
+        state: Selection,
+        search_action: QAction | None = None,
+        insert_action: QAction | None = None,
+        parent: QWidget | None = None,
+    ) -> None:
         super().__init__(parent)
         self.state = state
         self.words: list[str] = []
@@ -70,8 +77,10 @@ class ShortcutPane(TableDock):
             button.setDefaultAction(insert_action)
             top.addWidget(button)
         self.phrases_box = QCheckBox("two-word phrases")
-        self.phrases_box.setToolTip("also knock out every pair of adjacent words (about twice "
-                                    "the work); takes effect at the next search")
+        self.phrases_box.setToolTip(
+            "also knock out every pair of adjacent words (about twice "
+            "the work); takes effect at the next search"
+        )
         top.addWidget(self.phrases_box)
         self.view_box = QComboBox()
         self.view_box.addItem("words", "words")
@@ -101,8 +110,13 @@ class ShortcutPane(TableDock):
         classes = list(report.words.labels) if report is not None else []
         self.table.setColumnCount(len(COLUMNS) + len(classes) + 1)
         self.table.setHorizontalHeaderLabels(
-            ["phrase" if phrases else "word", *COLUMNS[1:],
-             *(f"flips · {c}" for c in classes), INSERTION_COLUMN])
+            [
+                "phrase" if phrases else "word",
+                *COLUMNS[1:],
+                *(f"flips · {c}" for c in classes),
+                INSERTION_COLUMN,
+            ]
+        )
         self.table.blockSignals(True)
         self.table.setRowCount(0)
         self.words = []
@@ -110,32 +124,39 @@ class ShortcutPane(TableDock):
             if self.state.textset is None:
                 self.summary.setText("Open a text set, then search it for shortcut words.")
             else:
-                self.summary.setText("Search the open text set for words the prediction "
-                                     "depends on too much (word knockout).")
+                self.summary.setText(
+                    "Search the open text set for words the prediction depends on too much (word knockout)."
+                )
             self.table.blockSignals(False)
             return
         from viewer.core.shortcuts import MIN_TEXTS  # not at start-up: it brings numpy
 
         rows = self._ranking(report, phrases)
         what = "phrases" if phrases else "words"
-        self.summary.setText(f"{len(rows)} {what} seen in at least {MIN_TEXTS} of "
-                             f"{report.texts} texts, ranked by flip low (Wilson 95%)")
+        self.summary.setText(
+            f"{len(rows)} {what} seen in at least {MIN_TEXTS} of "
+            f"{report.texts} texts, ranked by flip low (Wilson 95%)"
+        )
         self.table.setRowCount(len(rows))
         insertions = self.state.insertions or {}
         for r, row in enumerate(rows):
             for c, key in enumerate(KEYS):
                 value = row[key]
-                text = value if isinstance(value, str) else (
-                    str(value) if isinstance(value, int) else f"{value:.3f}")
+                text = (
+                    value
+                    if isinstance(value, str)
+                    else (str(value) if isinstance(value, int) else f"{value:.3f}")
+                )
                 self.table.setItem(r, c, QTableWidgetItem(text))
             for c, label in enumerate(classes, start=len(KEYS)):
                 part = row["by_class"][label]
-                cell = QTableWidgetItem(f"{part['flips']}/{part['count']}" if part["count"]
-                                        else "–")
+                cell = QTableWidgetItem(f"{part['flips']}/{part['count']}" if part["count"] else "–")
                 if part["count"]:
-                    cell.setToolTip(f"of {part['count']} texts predicted {label} holding "
-                                    f"'{row['token']}', knocking it out flips {part['flips']} "
-                                    f"({part['flip_rate']:.0%})")
+                    cell.setToolTip(
+                        f"of {part['count']} texts predicted {label} holding "
+                        f"'{row['token']}', knocking it out flips {part['flips']} "
+                        f"({part['flip_rate']:.0%})"
+                    )
                 self.table.setItem(r, c, cell)
             result = insertions.get(row["token"])
             cell = QTableWidgetItem("")

@@ -29,8 +29,9 @@ WRONG = QColor("#fde2e1")
 class TextSetPane(TableDock):
     title = "text set"
 
-    def __init__(self, state: Selection, open_action: QAction | None = None,
-                 parent: QWidget | None = None) -> None:
+    def __init__(
+        self, state: Selection, open_action: QAction | None = None, parent: QWidget | None = None
+    ) -> None:
         super().__init__(parent)
         self.state = state
         self.rows_shown: list[int] = []  # text-set indices in table order
@@ -99,8 +100,9 @@ class TextSetPane(TableDock):
             self.summary.setText("Open a text set (.txt, .jsonl or .csv) to list its predictions.")
             self.table.blockSignals(False)
             return
-        rows = [r for r in ts.rows if (not self.state.mistakes_only or r.correct is False)
-                and self._has_word(r)]
+        rows = [
+            r for r in ts.rows if (not self.state.mistakes_only or r.correct is False) and self._has_word(r)
+        ]
         acc = ts.accuracy
         name = ts.path.replace("\\", "/").rsplit("/", 1)[-1]
         text = f"{name}: {len(ts.rows)} texts"
@@ -113,8 +115,14 @@ class TextSetPane(TableDock):
         self.table.setRowCount(len(rows))
         for r, row in enumerate(rows):
             mark = {True: "✓", False: "✗", None: ""}[row.correct]
-            cells = (str(row.index), row.text, row.label or "", row.predicted or "",
-                     "" if row.confidence is None else f"{row.confidence:.2f}", mark)
+            cells = (
+                str(row.index),
+                row.text,
+                row.label or "",
+                row.predicted or "",
+                "" if row.confidence is None else f"{row.confidence:.2f}",
+                mark,
+            )
             for c, value in enumerate(cells):
                 item = QTableWidgetItem(value)
                 if c == 1:
