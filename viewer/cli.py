@@ -69,9 +69,16 @@ def _run_options(args: argparse.Namespace):
 def _open(args: argparse.Namespace):
     from viewer.model.loader import open_model
 
-    return open_model(
+    loaded = open_model(
         args.model, base=getattr(args, "base", None), allow_pickle=getattr(args, "allow_pickle", False)
     )
+    loaded.text.limit(getattr(args, "max_tokens", None))
+    return loaded
+
+
+def _print_notes(data: dict) -> None:
+    for note in data.get("notes", []):
+        print(f"note: {note}")
 
 
 # -- commands --------------------------------------------------------------------------------
@@ -98,6 +105,7 @@ def cmd_check(args: argparse.Namespace) -> int:
         print(f"{row['layer']:>5}  {row['max_abs_error']:>13.3e}")
     verdict = "passed" if data["passed"] else "FAILED"
     print(f"{verdict}: max abs error {data['max_abs_error']:.3e} (tolerance {args.tolerance:g})")
+    _print_notes(data)
     if args.json:
         write_json(args.json, data)
     return 0 if data["passed"] else 1
@@ -140,6 +148,7 @@ def cmd_heads(args: argparse.Namespace) -> int:
                 data["knockout_prob_drop"],
             )
         )
+    _print_notes(data)
     if args.json:
         write_json(args.json, data)
     return 0
@@ -164,6 +173,7 @@ def cmd_links(args: argparse.Namespace) -> int:
         f"best head: layer {best['layer']} · head {best['head']} accuracy {best['accuracy']:.3f}"
         f"; nearest-candidate baseline {data['nearest_baseline']:.3f}"
     )
+    _print_notes(data)
     if args.json:
         write_json(args.json, data)
     return 0
@@ -192,6 +202,7 @@ def cmd_shortcuts(args: argparse.Namespace) -> int:
                 f"{r['token'][:24]:<24} {r['count']:>6} {r['flip_rate']:>9.3f} "
                 f"{r['flip_low']:>8.3f} {r['mean_drop']:>9.3f} {r['focus']:>6.3f}"
             )
+    _print_notes(data)
     if args.json:
         write_json(args.json, data)
     return 0
@@ -324,6 +335,12 @@ def build_parser() -> argparse.ArgumentParser:
             "--base", metavar="DIR", help="base model folder of an adapter folder (when its own is not local)"
         )
         p.add_argument("--json", metavar="FILE", help="also write the result as JSON")
+        p.add_argument(
+            "--max-tokens",
+            type=int,
+            metavar="N",
+            help="cut every text to N tokens (default: what the model reads); said in the output",
+        )
         return p
 
     def run_options(p: argparse.ArgumentParser) -> None:

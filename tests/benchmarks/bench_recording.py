@@ -25,6 +25,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from tests.conftest import minilm_folder  # noqa: E402
 from viewer.core.attention import check_recording  # noqa: E402
 from viewer.model.loader import open_model  # noqa: E402
+from viewer.model.runs import model_inputs  # noqa: E402
 
 
 def text_of(loaded, n_tokens: int) -> str:
@@ -38,7 +39,7 @@ def text_of(loaded, n_tokens: int) -> str:
 def measure(loaded, text: str, repeats: int):
     """(recording, bare forward, check) medians in seconds, alternated, and the last
     recording and check result."""
-    inputs = loaded.model_inputs(loaded.encode([text]))
+    inputs = model_inputs(loaded, loaded.encode([text]))
     rec_t, bare_t, check_t = [], [], []
     loaded.record(text)  # warm-up
     for _ in range(repeats):

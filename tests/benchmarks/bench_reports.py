@@ -29,6 +29,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from tests.conftest import minilm_folder  # noqa: E402
 from tests.model import tiny  # noqa: E402
 from viewer.model.loader import open_model  # noqa: E402
+from viewer.model.runs import model_inputs  # noqa: E402
 from viewer.reports.heads import head_summary  # noqa: E402
 from viewer.reports.shortcuts import shortcut_search  # noqa: E402
 from viewer.reports.textsets import TextItem  # noqa: E402
@@ -49,7 +50,7 @@ def bare(loaded, items, batch_size=16) -> None:
     with loaded.unhooked() as model, torch.no_grad():
         for start in range(0, len(items), batch_size):
             batch = loaded.encode([i.text for i in items[start : start + batch_size]])
-            model(**loaded.model_inputs(batch), output_attentions=True)
+            model(**model_inputs(loaded, batch), output_attentions=True)
 
 
 def rss_mb() -> float:

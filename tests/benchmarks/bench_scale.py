@@ -33,6 +33,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from tests.conftest import minilm_folder  # noqa: E402
 from viewer.core.shortcuts import phrase_spans, word_spans  # noqa: E402
 from viewer.model.loader import open_model  # noqa: E402
+from viewer.model.runs import model_inputs  # noqa: E402
 from viewer.reports import workers  # noqa: E402
 from viewer.reports.shards import RunOptions  # noqa: E402
 from viewer.reports.shortcuts import knockout_tokens, shortcut_search  # noqa: E402
@@ -85,8 +86,8 @@ def bare(loaded, id_lists: list[list[int]]) -> None:
     knockouts are batched by 32, so batches are cut at group boundaries as here)."""
     with loaded.unhooked() as model, torch.no_grad():
         for start in range(0, len(id_lists), BATCH):
-            batch = loaded.batch_from_ids(id_lists[start : start + BATCH])
-            model(**loaded.model_inputs(batch))
+            batch = loaded.text.from_ids(id_lists[start : start + BATCH])
+            model(**model_inputs(loaded, batch))
 
 
 def timed(fn) -> float:

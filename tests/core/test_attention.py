@@ -1,7 +1,9 @@
 """The re-derivation check on hand-built recordings (numpy only, no model).
 
 The model's probabilities are stood in for by SciPy's softmax of Q Kᵀ · scale (reference:
-``scipy.special.softmax``; Vaswani et al. 2017, Eq. 1), and the head outputs by probs @ V.
+``scipy.special.softmax``; Vaswani et al. 2017, Eq. 1), and the head outputs by probs @ V. A
+recording without the model's own probabilities (a long text's) is checked on its head outputs
+alone, and must fail just the same when something is wrong.
 """
 
 from __future__ import annotations
@@ -9,6 +11,7 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
+import pytest
 from scipy.special import softmax as scipy_softmax
 
 from viewer.core.attention import check_recording
@@ -23,6 +26,7 @@ def make_recording(
     t: int = 7,
     d: int = 8,
     causal: bool = False,
+    own: bool = True,
 ) -> Recording:
     q = rng.normal(size=(n_layers, n_heads, t, d)).astype(np.float32)
     k = rng.normal(size=(n_layers, n_kv, t, d)).astype(np.float32)
@@ -43,7 +47,7 @@ def make_recording(
         q=q,
         k=k,
         v=v,
-        probs=probs.astype(np.float32),
+        own_probs=probs.astype(np.float32) if own else None,
         context=(probs @ vv).astype(np.float32),
         scale=scale,
         causal=causal,
@@ -66,7 +70,7 @@ def test_head_outputs_that_are_not_probs_times_values_fail_the_check():
     context[1, 2, 3] += 1e-3  # layer 1 · head 2, one query row off
     bad = dataclasses.replace(rec, context=context)
     result = check_recording(bad)
-    assert result.max_abs_error < 1e-6, "the probabilities themselves still agree"
+    assert result.max_probability_error < 1e-6, "the probabilities themselves still agree"
     assert not result.passed
     assert result.context_errors[1, 2] > 1e-4 and result.context_errors[0].max() < 1e-5
     data = result.to_dict()
@@ -81,3 +85,43 @@ def test_merged_results_keep_a_head_output_failure():
     bad = check_recording(dataclasses.replace(rec, context=rec.context * 1.01))
     assert good.passed and not bad.passed
     assert not good.merge(bad).passed and not bad.merge(good).passed
+
+
+def test_without_the_models_probabilities_the_head_outputs_decide():
+    """The route of long texts: only P·V against the model's head outputs is compared."""
+    rec = make_recording(np.random.default_rng(3), causal=True, own=False)
+    result = check_recording(rec)
+    assert result.passed and result.max_probability_error is None
+    assert result.to_dict()["max_probability_error"] is None
+    # a wrong scale, heads out of order, a lost causal mask: each fails on the outputs alone
+    for bad in (
+        dataclasses.replace(rec, scale=rec.scale * 1.5),
+        dataclasses.replace(rec, q=rec.q[:, ::-1].copy()),
+        dataclasses.replace(rec, causal=False),
+    ):
+        verdict = check_recording(bad)
+        assert not verdict.passed and verdict.max_context_error > 1e-3
+
+
+def test_context_error_is_on_the_scale_of_the_values():
+    """Worked example: one head output off by 0.01 where the largest |value| of its group is
+    2.0 gives an error of 0.01 / 2.0 = 0.005 (docs/definitions.md, "Re-derivation check")."""
+    rec = make_recording(np.random.default_rng(4), n_layers=1, n_heads=2, n_kv=1, own=False)
+    v = rec.v.copy()
+    v /= np.abs(v).max()
+    v *= 2.0  # the group's largest |value| is now exactly 2.0
+    kk = np.repeat(rec.k.astype(np.float64), 2, axis=1)
+    vv = np.repeat(v.astype(np.float64), 2, axis=1)
+    probs = scipy_softmax(rec.q.astype(np.float64) @ kk.transpose(0, 1, 3, 2) * rec.scale[0], axis=-1)
+    context = (probs @ vv).astype(np.float64)
+    context[0, 1, 2, 3] += 0.01
+    result = check_recording(dataclasses.replace(rec, v=v, context=context.astype(np.float32)))
+    assert result.context_errors[0, 1] == pytest.approx(0.005, rel=1e-3)
+    assert result.context_errors[0, 0] < 1e-6
+
+
+def test_a_nan_in_the_models_output_fails():
+    rec = make_recording(np.random.default_rng(5), own=False)
+    context = rec.context.copy()
+    context[0, 0, 0, 0] = np.nan
+    assert not check_recording(dataclasses.replace(rec, context=context)).passed

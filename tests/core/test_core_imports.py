@@ -7,7 +7,7 @@ from pathlib import Path
 import pytest
 
 CORE = Path(__file__).resolve().parents[2] / "viewer" / "core"
-ALLOWED = {"numpy", "scipy", "viewer"} | set(sys.stdlib_module_names)
+ALLOWED = {"numpy", "scipy", "threadpoolctl", "viewer"} | set(sys.stdlib_module_names)
 ALLOWED_VIEWER = ("viewer.core", "viewer.errors")
 
 

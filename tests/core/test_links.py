@@ -76,7 +76,7 @@ def test_scores_against_brute_force():
     probs = rng.random((3, 4, t, t))
     probs /= probs.sum(axis=-1, keepdims=True)
     pair = make_pair(TEXT, "she", "Mechanic", ["courier", "bicycle"])
-    result = score_pair(probs, offsets, pair)
+    result = score_pair(lambda i: probs[:, :, i], offsets, pair)
     ref = _brute_force_scores(probs, offsets, TEXT, "she", ["mechanic", "courier", "bicycle"])
     assert result.scores.shape == (3, 3, 4)
     np.testing.assert_allclose(result.scores, ref, rtol=1e-12)
@@ -101,8 +101,8 @@ def test_multi_token_words_sum_all_candidate_tokens_and_use_first_source_token()
     c0, c1 = toks.candidates[1]
     probs[0, 0, s0, [m0, m1, c0]] = [0.2, 0.2, 0.3]  # target 0.4 beats distractor 0.3
     probs[0, 1, s0, [m0, c0, c1]] = [0.3, 0.2, 0.2]  # distractor 0.4 beats target 0.3
-    probs[0, :, s1, c0] = 1.0  # the second source piece must be ignored
-    scores = link_scores(probs, toks)
+    probs[0, :, s1, c0] = 1.0  # the second source piece's row is never read
+    scores = link_scores(probs[:, :, s0], toks)
     np.testing.assert_allclose(scores[:, 0, :], [[0.4, 0.3], [0.3, 0.4]])
     np.testing.assert_array_equal(heads_correct(scores), [[True, False]])
 

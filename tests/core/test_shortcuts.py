@@ -120,11 +120,11 @@ def test_merge_equals_one_pass(texts, split):
 
 def test_summary_share():
     # by hand: head mean of row 0 is [0.25, 0.5, 0.25]; tokens 1 and 2 get 0.75
-    att = np.zeros((2, 3, 3))
-    att[0, 0] = [0.5, 0.5, 0.0]
-    att[1, 0] = [0.0, 0.5, 0.5]
-    assert summary_share(att, 0, np.array([1, 2])) == pytest.approx(0.75)
-    assert summary_share(att, 0, np.array([], dtype=int)) == 0.0
+    row = np.zeros((2, 3))  # (H, T) the summary token's row in two heads
+    row[0] = [0.5, 0.5, 0.0]
+    row[1] = [0.0, 0.5, 0.5]
+    assert summary_share(row, np.array([1, 2])) == pytest.approx(0.75)
+    assert summary_share(row, np.array([], dtype=int)) == 0.0
 
 
 def test_per_class_breakdown_counts_flips_under_the_originally_predicted_class():

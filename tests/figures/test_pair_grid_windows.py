@@ -18,11 +18,11 @@ def test_a_windowed_layer_hatches_exactly_its_out_of_window_cells():
     i, j = np.indices((9, 9))
     np.testing.assert_array_equal(local, np.abs(i - j) <= 2)  # the window's definition
     assert visible_cells(rec, 1) is None  # a global encoder layer hides nothing
-    fig = pair_grid_figure(rec.probs[0, 0] * local, list(rec.tokens), visible=local)
+    fig = pair_grid_figure(rec.own_probs[0, 0] * local, list(rec.tokens), visible=local)
     image, background = fig.axes[0].images[0], fig.axes[0].patches[0]
     np.testing.assert_array_equal(np.ma.getmaskarray(image.get_array()), ~local)
     assert background.get_visible(), "masked cells show the hatched background"
-    fig = pair_grid_figure(rec.probs[1, 0], list(rec.tokens), visible=visible_cells(rec, 1))
+    fig = pair_grid_figure(rec.own_probs[1, 0], list(rec.tokens), visible=visible_cells(rec, 1))
     assert not fig.axes[0].patches[0].get_visible()
 
 

@@ -1,6 +1,6 @@
 """Pane export and the window's card export, on the real window with the tiny model.
 
-References: the recording's own probabilities (``Recording.probs``), the head map's metric from
+References: the recording's own probabilities (``Recording.own_probs``), the head map's metric from
 ``viewer.session.metrics.head_values`` (what the pane draws), readers that are not ours (Pillow,
 ElementTree, pypdf, csv, json), and ``viewer.figures.card.export_card`` run directly on the same
 inputs for the card folder.
@@ -65,14 +65,14 @@ def test_pair_grid_export_writes_all_five_files(qtbot, window, tmp_path):
     data = json.loads(stem.with_suffix(".json").read_text(encoding="utf-8"))
     assert (data["layer"], data["head"]) == (1, 2)
     assert data["tokens"] == list(rec.tokens)
-    np.testing.assert_array_equal(np.array(data["values"]), rec.probs[1, 2].astype(np.float64))
+    np.testing.assert_array_equal(np.array(data["values"]), rec.own_probs[1, 2].astype(np.float64))
     rows = read_csv(stem.with_suffix(".csv"))
     assert rows[0][:5] == ["query", "query_token", "key", "key_token", "attention_probability"]
-    got = np.zeros_like(rec.probs[1, 2], dtype=np.float64)
+    got = np.zeros_like(rec.own_probs[1, 2], dtype=np.float64)
     for q, _qt, k, _kt, p, _vis in rows[1:]:
         got[int(q), int(k)] = float(p)
     assert len(rows) - 1 == rec.n_tokens**2
-    np.testing.assert_array_equal(got, rec.probs[1, 2].astype(np.float64))
+    np.testing.assert_array_equal(got, rec.own_probs[1, 2].astype(np.float64))
 
 
 def test_export_figure_is_print_size_with_heading_and_units(qtbot, window):

@@ -86,6 +86,6 @@ def test_out_of_window_cells_are_hatched_in_the_pair_grid(qtbot, tmp_path):
     settle(qtbot, w.pair_grid)
     shown = w.pair_grid.displayed_values()
     np.testing.assert_array_equal(~np.ma.getmaskarray(shown), mask)
-    np.testing.assert_array_equal(np.ma.getdata(shown)[mask], rec.probs[0, 1][mask])
+    np.testing.assert_array_equal(np.ma.getdata(shown)[mask], rec.own_probs[0, 1][mask])
     assert w.pair_grid.artists.background.get_visible()  # the hatching behind masked cells
     w.close()

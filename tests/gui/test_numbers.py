@@ -129,7 +129,7 @@ def test_window_and_link_pairs_give_the_same_score_for_a_word_with_an_apostrophe
 
     window_score = per_head_link(analysis, she, coop)
     pair = make_pair(text, "she", "co-op's", ["mechanic"])
-    file_score = score_pair(rec.probs, rec.offsets, pair).scores[0]
+    file_score = score_pair(rec.query_rows, rec.offsets, pair).scores[0]
     np.testing.assert_array_equal(window_score, file_score)
-    reference = score_pair(loaded.record(text).probs, rec.offsets, pair).scores[0]
+    reference = score_pair(loaded.record(text).query_rows, rec.offsets, pair).scores[0]
     np.testing.assert_allclose(window_score, reference, atol=1e-6)

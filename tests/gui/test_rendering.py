@@ -1,6 +1,6 @@
 """Panes are drawn on the render thread; the window must still show exactly the current numbers.
 
-References: the recording's own probabilities (``Recording.probs``), the token strings of
+References: the recording's own probabilities (``Recording.own_probs``), the token strings of
 ``viewer.figures.style.visible_tick_labels`` (what matplotlib's locator chose for the axis), and
 the selection written by a click on a head-map cell.
 """
@@ -46,7 +46,7 @@ def test_panes_are_built_off_the_gui_thread_and_show_the_new_text(qtbot, window)
     assert threads and all(t is not threading.main_thread() for t in threads)
     assert second.n_tokens != first.n_tokens
     # the reused axes hold the second text: its values, its size, its token labels
-    np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), second.probs[0, 0])
+    np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), second.own_probs[0, 0])
     assert (pane.artists.n_rows, pane.artists.n_cols) == (second.n_tokens, second.n_tokens)
     labels = style.visible_tick_labels(pane.artists.ax, "x")
     assert labels and set(labels) <= set(style.token_labels(second.tokens))
@@ -104,7 +104,7 @@ def test_a_drawing_error_is_a_one_line_message_and_the_pane_recovers(qtbot, wind
     settle(qtbot, pane)
     assert pane.showing_figure
     rec = window.state.analysis.recording
-    np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), rec.probs[1, 2])
+    np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), rec.own_probs[1, 2])
 
 
 def test_merged_builds_take_the_fast_path_only_if_every_build_allows_it():

@@ -1,6 +1,6 @@
 """The core loop on the real window: run a text, click and hover the panes, check the numbers.
 
-References: the recording's own probabilities (``Recording.probs``), the numeric core's link
+References: the recording's own probabilities (``Recording.own_probs``), the numeric core's link
 scores (``viewer.core.links.link_scores`` on sub-tokens found with ``find_word`` /
 ``word_token_indices``, exactly as ``headlight links`` finds them) and the core's head metrics.
 """
@@ -29,9 +29,9 @@ def test_a_run_fills_every_pane_and_the_check_badge(qtbot, window):
     for pane in (window.pair_grid, window.head_map, window.evidence):
         settle(qtbot, pane)
         assert pane.showing_figure, pane.title
-    np.testing.assert_array_equal(np.ma.getdata(window.pair_grid.displayed_values()), rec.probs[0, 0])
+    np.testing.assert_array_equal(np.ma.getdata(window.pair_grid.displayed_values()), rec.own_probs[0, 0])
     stats = HeadStats(rec.n_layers, rec.n_heads)
-    stats.add(rec.probs, rec.special, rec.causal)
+    stats.add(rec.own_probs, rec.special, rec.causal)
     np.testing.assert_allclose(np.ma.getdata(window.head_map.displayed_values()), stats.summary().entropy)
     assert window.badge.text().startswith("check passed")
     assert analysis.check.max_abs_error < 1e-5
@@ -49,7 +49,7 @@ def test_clicking_a_head_map_cell_shows_that_heads_probabilities(qtbot, window):
     assert (window.state.layer, window.state.head) == (1, 2)
     settle(qtbot, window.pair_grid)
     shown = window.pair_grid.displayed_values()
-    np.testing.assert_array_equal(np.ma.getdata(shown), rec.probs[1, 2])
+    np.testing.assert_array_equal(np.ma.getdata(shown), rec.own_probs[1, 2])
     assert "layer 1 · head 2" in window.pair_grid.title_label.text()
 
 
@@ -64,7 +64,7 @@ def test_clicking_a_row_label_selects_the_layer_mean(qtbot, window):
     assert (window.state.layer, window.state.head) == (1, None)
     settle(qtbot, window.pair_grid)
     np.testing.assert_allclose(
-        np.ma.getdata(window.pair_grid.displayed_values()), rec.probs[1].mean(axis=0), rtol=1e-6
+        np.ma.getdata(window.pair_grid.displayed_values()), rec.own_probs[1].mean(axis=0), rtol=1e-6
     )
     assert window.pair_grid.mean_box.isChecked()
 
@@ -76,7 +76,7 @@ def test_hovering_a_cell_shows_its_exact_value(qtbot, window):
     settle(qtbot, pane)
     hover(pane, data_to_widget(pane, pane.artists.ax, 5, 3))  # key 5, query 3
     text = pane.hover_text
-    assert f"{rec.probs[1, 3, 3, 5]:.6f}" in text
+    assert f"{rec.own_probs[1, 3, 3, 5]:.6f}" in text
     assert f"'{rec.tokens[3]}'" in text and f"'{rec.tokens[5]}'" in text
     assert "layer 1 · head 3" in text
 
@@ -88,7 +88,7 @@ def test_a_clicked_source_gives_the_cores_link_scores(qtbot, window):
     # the reference: core sub-tokens of the words "she" and "mechanic"
     she = word_token_indices(find_word(TEXT, "she"), rec.offsets)
     mechanic = word_token_indices(find_word(TEXT, "mechanic"), rec.offsets)
-    expected = link_scores(rec.probs, PairTokens(source=she, candidates=(mechanic,)))[0]
+    expected = link_scores(rec.own_probs[:, :, she[0]], PairTokens(source=she, candidates=(mechanic,)))[0]
     click(qtbot, pane, data_to_widget(pane, pane.artists.ax, int(mechanic[-1]), int(she[0])))
     assert (window.state.source, window.state.target) == (int(she[0]), int(mechanic[-1]))
     settle(qtbot, window.links)
@@ -106,7 +106,9 @@ def test_a_clicked_source_gives_the_cores_link_scores(qtbot, window):
     assert window.links.artists is drawn
     bars = drawn.bar_artists[0]
     for bar, unit in zip(bars, drawn.shown, strict=True):
-        score = link_scores(rec.probs, PairTokens(source=she, candidates=(units.tokens[unit],)))
+        score = link_scores(
+            rec.own_probs[:, :, she[0]], PairTokens(source=she, candidates=(units.tokens[unit],))
+        )
         assert bar.get_width() == pytest.approx(score[0][1, 2], abs=1e-7)
     assert target_unit in drawn.shown
     # and the head map's "link score" metric is the same (L, H) grid
@@ -155,7 +157,7 @@ def test_compare_mode_shows_the_metric_difference(qtbot, window, tiny_dir_b):
     assert pane.artists.image.norm.vcenter == 0.0
     settle(qtbot, window.compare_pane.grid)
     np.testing.assert_array_equal(
-        np.ma.getdata(window.compare_pane.grid.displayed_values()), other.recording.probs[0, 0]
+        np.ma.getdata(window.compare_pane.grid.displayed_values()), other.recording.own_probs[0, 0]
     )
     window.clear_compare()
     settle(qtbot, pane)
@@ -179,10 +181,10 @@ def test_compare_with_a_second_text_shows_it_beside_the_first(qtbot, window):
     grid = window.compare_pane.grid
     window.state.select_head(1, 0)
     settle(qtbot, grid)
-    np.testing.assert_array_equal(np.ma.getdata(grid.displayed_values()), other.recording.probs[1, 0])
+    np.testing.assert_array_equal(np.ma.getdata(grid.displayed_values()), other.recording.own_probs[1, 0])
     assert grid.artists.n_rows == other.recording.n_tokens != current.recording.n_tokens
     stats = HeadStats(other.recording.n_layers, other.recording.n_heads)
-    stats.add(other.recording.probs, other.recording.special, other.recording.causal)
+    stats.add(other.recording.own_probs, other.recording.special, other.recording.causal)
     pane = window.head_map
     settle(qtbot, pane)
     np.testing.assert_allclose(
@@ -191,5 +193,5 @@ def test_compare_with_a_second_text_shows_it_beside_the_first(qtbot, window):
     # the main pair grid still shows the first text
     settle(qtbot, window.pair_grid)
     np.testing.assert_array_equal(
-        np.ma.getdata(window.pair_grid.displayed_values()), current.recording.probs[1, 0]
+        np.ma.getdata(window.pair_grid.displayed_values()), current.recording.own_probs[1, 0]
     )

@@ -235,11 +235,13 @@ def build(kind: str, **overrides):
     if kind == "gemma2":  # a small cap so soft-capping changes the scores of a random model
         cfg = Gemma2Config(
             **DECODER,
-            head_dim=8,
-            query_pre_attn_scalar=16,
-            attn_logit_softcapping=0.5,
-            sliding_window=WINDOW,
-            **overrides,
+            **{
+                "head_dim": 8,
+                "query_pre_attn_scalar": 16,
+                "attn_logit_softcapping": 0.5,
+                "sliding_window": WINDOW,
+                **overrides,
+            },
         )
         return Gemma2ForCausalLM(cfg), False
     # layer 0 local (base 10^4), layer 1 global (base 10^6), q/k norms; transformers' Gemma 3

@@ -55,7 +55,7 @@ def test_value_norms_equal_a_direct_torch_computation(kind, tmp_path):
     w_o = out.weight.detach().double()
     w_o = w_o if type(out).__name__ == "Conv1D" else w_o.T
     s = rec.summary_index()
-    alpha = torch.from_numpy(rec.probs[last]).double()  # (H, T, T)
+    alpha = torch.from_numpy(rec.own_probs[last]).double()  # (H, T, T) the model's own
     total = torch.zeros(rec.n_tokens, w_o.shape[1], dtype=torch.float64)
     for head in range(h):
         vh = values[:, (head // (h // g)) * d : (head // (h // g) + 1) * d]  # (T, d)
@@ -89,8 +89,8 @@ def test_knockout_row_is_a_real_deletion(bert, evidence):
     """Deleting token 3 by hand and re-running gives the knockout row's value there."""
     rec = evidence.recording
     ids = rec.token_ids.tolist()
-    before = bert.predict(bert.batch_from_ids([ids]))[0, evidence.target]
-    after = bert.predict(bert.batch_from_ids([ids[:3] + ids[4:]]))[0, evidence.target]
+    before = bert.predict(bert.text.from_ids([ids]))[0, evidence.target]
+    after = bert.predict(bert.text.from_ids([ids[:3] + ids[4:]]))[0, evidence.target]
     assert evidence.rows["knockout"][3] == pytest.approx(before - after, abs=1e-7)
 
 

@@ -122,7 +122,9 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
         == 0
     )
     data = json.loads(out.read_text(encoding="utf-8"))
-    report = insertion_test(demo, load_text_set(SAMPLES / "coop_messages.jsonl"), FOOTER)
+    # the command batches 16 texts: padding a batch changes the memory-efficient kernel's float32
+    # sums in the last bits, so the same batches give the same numbers to the bit
+    report = insertion_test(demo, load_text_set(SAMPLES / "coop_messages.jsonl"), FOOTER, batch_size=16)
     assert {k: v for k, v in data.items() if k != "model"} == report.to_dict()
     printed = capsys.readouterr().out
     assert "billing" in printed and "end" in printed

@@ -69,7 +69,7 @@ def test_links_against_a_brute_force_computation(bert, tmp_path):
         src = tokens_of(pair["source"])[0]
         for layer in range(bert.n_layers):
             for head in range(bert.n_heads):
-                row = rec.probs[layer, head, src]
+                row = rec.own_probs[layer, head, src]
                 target = sum(row[j] for j in tokens_of(pair["target"]))
                 others = [sum(row[j] for j in tokens_of(w)) for w in pair["distractors"]]
                 correct[layer, head] += all(target > o for o in others)
@@ -86,7 +86,7 @@ def test_head_summary_streams_and_equals_one_at_a_time(bert):
     stats = HeadStats(bert.n_layers, bert.n_heads)
     for item in items:
         rec = bert.record(item.text)
-        stats.add(rec.probs, rec.special, rec.causal)
+        stats.add(rec.own_probs, rec.special, rec.causal)
     np.testing.assert_allclose(summary.entropy, stats.summary().entropy, atol=1e-6)
     assert summary.texts == 9
 
@@ -138,7 +138,7 @@ def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
     rec = bert.record(text)
     pred = rec.predicted()
     keep = [t for t, tok in zip(rec.token_ids, rec.tokens, strict=True) if tok != "chain"]
-    after = bert.predict(bert.batch_from_ids([keep]))[0, pred]
+    after = bert.predict(bert.text.from_ids([keep]))[0, pred]
     assert report.words.entry("chain")["mean_drop"] == pytest.approx(
         rec.class_probabilities()[pred] - after, abs=1e-6
     )
@@ -147,8 +147,8 @@ def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
     import torch
 
     enc = bert.tokenizer(text, return_tensors="pt")
-    with torch.no_grad():
-        last = bert.model(**enc, output_attentions=True).attentions[-1][0]  # (H, T, T)
+    with bert.unhooked("eager") as model, torch.no_grad():
+        last = model(**enc, output_attentions=True).attentions[-1][0]  # (H, T, T)
     chain = [k for k, tok in enumerate(rec.tokens) if tok == "chain"]
     want = last[:, 0, chain].sum(dim=1).double().numpy()
     np.testing.assert_allclose(report.words.head_focus("chain"), want, atol=1e-6)

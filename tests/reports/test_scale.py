@@ -95,8 +95,9 @@ def test_serial_run_against_one_accumulator_and_a_word_count(demo, items, serial
     summation order differs, so within 1e-12), and each word's count is the number of texts
     whose word_spans hold it (the definition of count)."""
     whole = HeadStats(demo.n_layers, demo.n_heads)
-    for att in demo.attentions([i.text for i in items], batch_size=16):
-        whole.add(att.probs, att.special, demo.family.causal)
+    for item in items:
+        rec = demo.record(item.text)
+        whole.add(rec.own_probs, rec.special, demo.family.causal)
     merged = KINDS["heads"].load(serial["heads"]).stats.summary()
     for metric in METRICS:
         np.testing.assert_allclose(
@@ -136,9 +137,11 @@ class Threads(workers._Submitting):
         self.pool = ThreadPoolExecutor(1)  # one LoadedModel runs one forward at a time
 
     def _submit(self, spec, kind, shard, run):
-        return self.pool.submit(
-            lambda: (shard.index, len(shard.items), kind.state(kind.map(self.loaded, shard, lambda: None)))
-        )
+        def one() -> tuple:
+            torch.set_num_threads(1)  # as every engine does (RunOptions.threads)
+            return shard.index, len(shard.items), kind.state(kind.map(self.loaded, shard, lambda: None))
+
+        return self.pool.submit(one)
 
     def _wait(self, futures):
         from concurrent.futures import FIRST_COMPLETED, wait

@@ -1,263 +1,297 @@
-"""Attention re-derived in float64 from the captured queries, keys and score terms.
+"""The re-derivation check: attention re-derived in float64 and compared with the model's own.
 
-The re-derivation check is the proof that a recording is right: from the captured per-head
-queries Q and keys K, and the score terms the family adds (``viewer.core.terms``), we recompute
+The check is the proof that a recording is right. From the captured per-head queries Q, keys K
+and values V, and the score terms the family adds (``viewer.core.terms``), it recomputes, block
+by block of query rows (``viewer.core.scores``),
 
     P = softmax(Q Kᵀ · scale + terms + M)              (Vaswani et al. 2017, Eq. 1)
 
-where M is 0 where a query may see a key and −∞ elsewhere (causal rows see keys j <= i, windowed
-rows only the keys inside their window), and compare P with the probabilities the model itself
-produced. Agreement to ~1e-6 means that the hooks captured the right tensors, in the right head
-order, with the right scale, terms and mask; any mistake in the family map (a wrong split of a
-fused projection, a missing rotary step, a wrong scale rule, a term left out) shows up as a large
+in float64 and compares two things with what the model itself computed:
+
+- **the attention output**: P · V against the model's own attention output of each head (the
+  context before the output projection, which every attention kernel computes, the
+  memory-efficient ones included). The error of a head is the largest absolute difference
+  divided by the largest |value| entry of its key/value group: since a row of P sums to 1, no
+  entry of P · V exceeds that, so the error is on the scale of the probabilities and the one
+  tolerance serves both comparisons (docs/definitions.md, "Re-derivation check");
+- **the probabilities**, where the model gave them (the eager kernel of a short text): P against
+  the model's own, entry by entry, including that keys outside a row's view get exactly 0.
+
+Agreement to ~1e-6 means the hooks captured the right tensors, in the right head order, with the
+right scale, terms and mask; any mistake in the family map (a wrong split of a fused
+projection, a missing rotary step, a wrong scale rule, a term left out) shows up as a large
 error. The terms are defined in ``docs/families.md``.
 
-The check works through each layer in blocks of query rows, so the float64 scores of one block
-stay in the processor's cache instead of a full (H, T, T) tensor going through memory several
-times; grouped key/value heads are used through reshaped views, never repeated copies.
+Layers and key/value groups are independent, so the work is spread over threads (numpy releases
+the GIL), each running its matrix products on one BLAS thread.
 """
 
 from __future__ import annotations
 
 import os
+from collections.abc import Callable, Iterable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 
 from viewer.core.recording import Recording
-from viewer.core.terms import (
-    ScoreTerms,
-    add_relative_terms,
-    p2c_table,
-    soft_cap,
-    table_rows,
-    visible_rows,
-)
+from viewer.core.scores import Block, LayerScores
 
 DEFAULT_TOLERANCE = 1e-5
-
-# float64 entries of one block of scores (H, rows, T): 128k entries = 1 MiB, which stays in a
-# core's L2 cache (measured in tests/benchmarks/bench_recording.py against whole-layer tensors)
-BLOCK_ENTRIES = 1 << 17
-# multiply-adds of one matrix product that OpenBLAS still runs on the calling thread: the check
-# has its own threads (one per layer), and BLAS threads left spinning after a product slow the
-# next model forward by 2-3x (measured in tests/benchmarks/bench_families.py)
-GEMM_SINGLE_THREAD = 1 << 18
-
-
-def visible_keys(n_tokens: int, causal: bool) -> np.ndarray:
-    """(T, T) bool: True where query row i may attend to key column j."""
-    if causal:
-        return np.tril(np.ones((n_tokens, n_tokens), dtype=bool))
-    return np.ones((n_tokens, n_tokens), dtype=bool)
-
-
-def repeat_kv(x: np.ndarray, n_heads: int) -> np.ndarray:
-    """Expand grouped key/value heads to one per query head.
-
-    x: (..., G, T, d) -> (..., H, T, d); query head h uses key/value head h // (H / G),
-    the grouping of Ainslie et al. 2023 (GQA), §3.
-    """
-    g = x.shape[-3]
-    if n_heads % g:
-        raise ValueError(f"{n_heads} query heads cannot share {g} key/value heads evenly")
-    return np.repeat(x, n_heads // g, axis=-3)
-
-
-def _grouped(x: np.ndarray, groups: int) -> np.ndarray:
-    """(H, n, ...) -> (G, H/G · n, ...): query heads h = g · H/G + m side by side per group."""
-    return x.reshape(x.shape[0] // groups, groups * x.shape[1], *x.shape[2:])
-
-
-class _LayerScores:
-    """Float64 scores of one layer, block by block of query rows (terms per viewer.core.terms)."""
-
-    def __init__(
-        self, q: np.ndarray, k: np.ndarray, scale: float, causal: bool, terms: ScoreTerms, layer: int
-    ):
-        self.n_heads, self.n_tokens = q.shape[0], q.shape[1]
-        if self.n_heads % k.shape[0]:
-            raise ValueError(f"{self.n_heads} query heads cannot share {k.shape[0]} key heads")
-        self.groups = self.n_heads // k.shape[0]  # query heads per key/value head
-        self.q = np.asarray(q, dtype=np.float64) * float(scale)  # (H, T, d); scaling q is cheaper
-        self.k_t = np.asarray(k, dtype=np.float64).transpose(0, 2, 1)  # (G, d, T)
-        self.causal, self.terms, self.layer = causal, terms, layer
-        self.window = terms.layer_window(layer)
-        self.cap = terms.layer_cap(layer)
-        self.p2c = p2c_table(terms, layer, k, scale, self.n_heads, GEMM_SINGLE_THREAD)
-
-    def rows(self, rows: slice) -> np.ndarray:
-        """(H, rows, T) the softmax probabilities of query rows ``rows``."""
-        qb = _grouped(np.ascontiguousarray(self.q[:, rows]), self.groups)  # (G, H/G·b, d)
-        s = np.matmul(qb, self.k_t).reshape(self.n_heads, -1, self.n_tokens)  # (H, b, T)
-        add_relative_terms(s, self.terms, self.layer, rows, self.q, self.p2c)
-        soft_cap(s, self.cap)
-        visible = visible_rows(rows, self.n_tokens, self.causal, self.window)
-        if visible is not None:
-            np.copyto(s, -np.inf, where=~visible)
-        _softmax_in_place(s)
-        return s
-
-
-# exp of float64 scores within ±SAFE_EXP neither overflows nor loses a row to underflow, so
-# the row maximum need not be subtracted there (it changes nothing mathematically)
-SAFE_EXP = 600.0
-
-
-def _softmax_in_place(s: np.ndarray) -> None:
-    """Softmax over the last axis of float64 ``s``, in place (see ``viewer.core.softmax``)."""
-    m = s.max(axis=-1, keepdims=True)
-    m[~np.isfinite(m)] = 0.0  # a row that sees no key stays all zero
-    if m.max() > SAFE_EXP or m.min() < -SAFE_EXP:
-        s -= m
-    np.exp(s, out=s)
-    total = s.sum(axis=-1, keepdims=True)
-    total[total == 0] = 1.0
-    np.reciprocal(total, out=total)
-    s *= total
-
-
-def _row_blocks(n_rows: int, row_entries: int, row_products: int = 0):
-    """Slices of query rows, as equal as can be, of at most BLOCK_ENTRIES entries each, and
-    (when ``row_products`` = multiply-adds per row of one matrix product is given) small enough
-    that OpenBLAS runs each product on the calling thread (below GEMM_SINGLE_THREAD)."""
-    most = max(1, BLOCK_ENTRIES // max(1, row_entries))
-    if row_products:
-        most = min(most, max(1, GEMM_SINGLE_THREAD // row_products))
-    count = -(-n_rows // most)  # ceil
-    size = -(-n_rows // max(1, count))
-    for start in range(0, n_rows, size):
-        yield slice(start, min(n_rows, start + size))
-
-
-def attention_probabilities(
-    q: np.ndarray, k: np.ndarray, scale: float, causal: bool, terms: ScoreTerms | None = None, layer: int = 0
-) -> np.ndarray:
-    """softmax(Q Kᵀ · scale + terms + M) in float64 for one layer.
-
-    q: (H, T, d) queries; k: (G, T, d) keys (G divides H); ``terms`` the recording's score
-    terms, of which layer ``layer`` is used. Returns (H, T, T).
-    """
-    scores = _LayerScores(q, k, scale, causal, terms or ScoreTerms(), layer)
-    h, t = q.shape[0], q.shape[1]
-    out = np.empty((h, t, t))
-    for rows in _row_blocks(t, h * t):
-        out[:, rows] = scores.rows(rows)
-    return out
-
-
-def head_outputs(probs: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """Each head's context vectors probs @ V: probs (H, T, T), v (G, T, d) -> (H, T, d)."""
-    groups = probs.shape[0] // v.shape[0]
-    p = _grouped(np.asarray(probs, dtype=np.float64), groups)  # (G, H/G·T, T)
-    out = np.matmul(p, np.asarray(v, dtype=np.float64))  # (G, H/G·T, d)
-    return out.reshape(probs.shape[0], probs.shape[1], -1)
 
 
 @dataclass(frozen=True)
 class CheckResult:
     """Outcome of the re-derivation check over all layers and heads of one or more texts."""
 
-    max_abs_error: float
     tolerance: float
-    head_errors: np.ndarray  # (L, H) max absolute error per head over all texts checked
-    context_errors: np.ndarray  # (L, H) max abs error of probs @ V against captured head outputs
+    prob_errors: np.ndarray  # (L, H) max abs error of the probabilities; NaN where not compared
+    context_errors: np.ndarray  # (L, H) max error of P·V against the model's attention output
     texts: int
+    compared_probabilities: int = 0  # texts whose own probabilities the model gave
+    cut: int = 0  # texts cut to the length the model reads (or to --max-tokens)
+
+    @property
+    def head_errors(self) -> np.ndarray:
+        """(L, H) the worse of the two errors of each head."""
+        return np.fmax(self.prob_errors, self.context_errors)
+
+    @property
+    def max_abs_error(self) -> float:
+        return _worst(self.head_errors)
 
     @property
     def max_context_error(self) -> float:
-        """Largest error of probs @ V against the captured head outputs."""
-        worst = float(self.context_errors.max()) if self.context_errors.size else 0.0
-        return worst if np.isfinite(worst) else float("inf")
+        return _worst(self.context_errors)
+
+    @property
+    def max_probability_error(self) -> float | None:
+        """None when no text's own probabilities were compared."""
+        return None if np.isnan(self.prob_errors).all() else _worst(self.prob_errors)
 
     @property
     def passed(self) -> bool:
-        """Both the probabilities and the head outputs agree within the tolerance."""
-        return bool(self.max_abs_error <= self.tolerance and self.max_context_error <= self.tolerance)
+        return bool(self.max_abs_error <= self.tolerance)
 
     @property
     def layer_errors(self) -> np.ndarray:
-        """(L,) max absolute error per layer."""
+        """(L,) max error per layer."""
         return self.head_errors.max(axis=1)
 
     def merge(self, other: CheckResult) -> CheckResult:
         return CheckResult(
-            max_abs_error=max(self.max_abs_error, other.max_abs_error),
             tolerance=self.tolerance,
-            head_errors=np.maximum(self.head_errors, other.head_errors),
+            prob_errors=np.fmax(self.prob_errors, other.prob_errors),
             context_errors=np.maximum(self.context_errors, other.context_errors),
             texts=self.texts + other.texts,
+            compared_probabilities=self.compared_probabilities + other.compared_probabilities,
+            cut=self.cut + other.cut,
         )
 
     def to_dict(self) -> dict:
+        def worst(errors: np.ndarray) -> float | None:
+            seen = errors[~np.isnan(errors)]
+            return float(seen.max()) if seen.size else None
+
         return {
-            "max_abs_error": float(self.max_abs_error),
+            "max_abs_error": self.max_abs_error,
             "tolerance": float(self.tolerance),
             "passed": self.passed,
             "texts": self.texts,
+            "max_context_error": self.max_context_error,
+            "max_probability_error": self.max_probability_error,
+            "probabilities_compared_in": self.compared_probabilities,
+            "texts_cut": self.cut,
             "layers": [
                 {
                     "layer": i,
                     "max_abs_error": float(e),
                     "heads": [float(x) for x in self.head_errors[i]],
                     "max_context_error": float(self.context_errors[i].max()),
+                    "max_probability_error": worst(self.prob_errors[i]),
                 }
                 for i, e in enumerate(self.layer_errors)
             ],
-            "max_context_error": self.max_context_error,
         }
 
 
-def _layer_errors(rec: Recording, layer: int) -> tuple[np.ndarray, np.ndarray]:
-    """(H,) max abs error of the re-derived probabilities and of probs @ V, for one layer."""
-    n_heads, t = rec.n_heads, rec.n_tokens
-    scores = _LayerScores(rec.q[layer], rec.k[layer], rec.scale[layer], rec.causal, rec.terms, layer)
-    v = np.asarray(rec.v[layer], dtype=np.float64)  # (G, T, d)
-    own, context = rec.probs[layer], rec.context[layer]  # (H, T, T), (H, T, d)
-    prob_err = np.zeros(n_heads)
-    ctx_err = np.zeros(n_heads)
-    d = rec.q.shape[-1]
-    # multiply-adds per query row of the largest product: q·kᵀ, probs·v (H/G·T·d), c2p (R·d)
-    row_products = max(scores.groups * t * d, table_rows(rec.terms) * d)
-    for rows in _row_blocks(t, n_heads * t, row_products):
-        mine = own[:, rows].astype(np.float64)  # (H, b, T) the model's own, in float64
-        p = scores.rows(rows)  # (H, b, T)
-        p -= mine  # re-derived minus the model's own
-        np.abs(p, out=p)
-        np.maximum(prob_err, p.reshape(n_heads, -1).max(axis=1), out=prob_err)
-        # probs @ V from the model's own probabilities, against the captured head outputs
-        ctx = np.matmul(_grouped(mine, scores.groups), v).reshape(n_heads, -1, v.shape[-1])
-        ctx -= context[:, rows]
-        np.abs(ctx, out=ctx)
-        np.maximum(ctx_err, ctx.reshape(n_heads, -1).max(axis=1), out=ctx_err)
-    return prob_err, ctx_err
+def _worst(errors: np.ndarray) -> float:
+    """The largest error, NaN (not compared) left out; inf when any is infinite."""
+    seen = errors[~np.isnan(errors)]
+    return float(seen.max()) if seen.size else 0.0
+
+
+class LayerCheck:
+    """Errors of one layer of one text, filled block by block (``add``)."""
+
+    def __init__(self, scores: LayerScores, v: np.ndarray, context: np.ndarray):
+        self.scores, self.v, self.context = scores, v, context  # (G, T, d), (H, T, d)
+        h = scores.n_heads
+        self.prob = np.full(h, np.nan) if scores.own is None else np.zeros(h)
+        self.ctx = np.zeros(h)
+        # the largest |value| of each key/value group: the scale of P·V (module docstring)
+        vmax = np.abs(v).reshape(v.shape[0], -1).max(axis=1, initial=0.0).astype(np.float64)
+        self.vscale = np.where(vmax > 0, vmax, 1.0)  # (G,)
+        self._v64: dict[int, np.ndarray] = {}
+
+    def _values64(self, group: int) -> np.ndarray:
+        """(T, d) float64 values of one key/value group, converted once per layer."""
+        if self._v64.get(group) is None:
+            self._v64[group] = np.asarray(self.v[group], dtype=np.float64)
+        return self._v64[group]
+
+    def merge(self, other: LayerCheck) -> None:
+        """Fold the errors of another part of the same layer (other rows) into these."""
+        self.prob = np.fmax(self.prob, other.prob)
+        np.maximum(self.ctx, other.ctx, out=self.ctx)
+
+    def release(self) -> None:
+        """Drop the layer's arrays once every block has been added (the errors stay)."""
+        self.scores = self.v = self.context = None
+        self._v64 = {}
+
+    def add(self, block: Block) -> None:
+        """Compare one re-derived block with the model's attention output (and probabilities)."""
+        heads, rows, keys, p = block.heads, block.rows, block.keys, block.p
+        group = heads.start // self.scores.groups
+        h, b, span = p.shape
+        v = self._values64(group)[keys]  # (S, d)
+        out = (p.reshape(h * b, span) @ v).reshape(h, b, -1)  # (h, b, d) P·V
+        out -= self.context[heads, rows]
+        np.abs(out, out=out)
+        err = _failed_if_nan(out.reshape(h, -1).max(axis=1, initial=0.0) / self.vscale[group])
+        np.maximum(self.ctx[heads], err, out=self.ctx[heads])
+        own = self.scores.own
+        if own is not None:
+            mine = own[heads, rows]  # (h, b, T) the model's own, float32
+            diff = np.abs(p - mine[:, :, keys]).reshape(h, -1).max(axis=1, initial=0.0)
+            # keys outside the span must have exactly 0 in the model's own, too
+            for outside in (mine[:, :, : keys.start], mine[:, :, keys.stop :]):
+                if outside.size:
+                    diff = np.maximum(diff, np.abs(outside).reshape(h, -1).max(axis=1))
+            np.maximum(self.prob[heads], _failed_if_nan(diff), out=self.prob[heads])
+
+
+def _failed_if_nan(errors: np.ndarray) -> np.ndarray:
+    """A NaN difference (NaN in the model's numbers or ours) is a failure, not a pass."""
+    errors[np.isnan(errors)] = np.inf
+    return errors
+
+
+def layer_pass(
+    scores: LayerScores,
+    *,
+    check: LayerCheck | None = None,
+    consumers: Iterable[Callable[[Block], None]] = (),
+    mean_consumers: Iterable[Callable[[Block], None]] = (),
+    rows: slice | None = None,
+) -> None:
+    """One pass over a layer (or over query ``rows`` of it) computing each block once.
+
+    Per block of rows, every key/value group in turn: ``check`` gets the re-derived block;
+    ``consumers`` (head metrics, overviews) get the model's own probabilities where it gave
+    them, else the same re-derived block; ``mean_consumers`` get the head mean of the rows
+    (as a one-head block).
+    """
+    consumers, mean_consumers = tuple(consumers), tuple(mean_consumers)
+    derive = check is not None or scores.own is None
+    rows = rows or slice(0, scores.n_tokens)
+    for part in scores.row_blocks(rows):
+        head_sum = None
+        for g in range(scores.n_kv_heads):
+            block = scores.block(scores.group_heads(g), part, own=not derive)
+            if check is not None:
+                check.add(block)
+            shown = block if (scores.own is None or not derive) else scores.block(block.heads, part, own=True)
+            for consume in consumers:
+                consume(shown)
+            if mean_consumers:
+                summed = shown.p.sum(axis=0)  # (b, S)
+                head_sum = summed if head_sum is None else head_sum + summed
+        if mean_consumers:
+            mean = Block(slice(0, 1), part, shown.keys, (head_sum / scores.n_heads)[None], shown.visible)
+            for consume in mean_consumers:
+                consume(mean)
+
+
+def run_parallel(tasks: list[Callable[[], None]], threads: int | None = None) -> None:
+    """Run independent tasks on up to ``threads`` threads (default: one per core, at most 4);
+    numpy releases the GIL in its loops and products, and its BLAS runs on one thread
+    (``viewer.core.scores.one_blas_thread``)."""
+    workers = min(4, os.cpu_count() or 1) if threads is None else max(1, int(threads))
+    if workers == 1 or len(tasks) == 1:
+        for task in tasks:
+            task()
+        return
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        for future in [pool.submit(task) for task in tasks]:
+            future.result()
 
 
 def check_recording(
-    rec: Recording, tolerance: float = DEFAULT_TOLERANCE, threads: int | None = None
+    rec: Recording,
+    tolerance: float = DEFAULT_TOLERANCE,
+    threads: int | None = None,
+    consumers: Callable[[int], dict[str, Iterable[Callable[[Block], None]]]] | None = None,
 ) -> CheckResult:
-    """Re-derive every layer's and head's probabilities from the recording's Q/K and compare.
+    """Re-derive every layer's and head's attention from the recording and compare.
 
-    Also checks that each captured head output equals the model's probabilities times the
-    captured values, which ties the values and the head-output capture to the same forward.
-    Layers are independent, so long texts are checked on up to ``threads`` threads (default: up
-    to four, one per core; numpy releases the GIL). The window passes 1 to leave a core for
-    drawing.
+    ``consumers(layer)`` may hand further consumers of each block (``{"heads": [...],
+    "mean": [...]}``, see ``layer_pass``: head metrics, overviews), so that they are computed
+    in the same pass. Layers run on up to ``threads`` threads; the window passes 1 to leave a
+    core for drawing.
     """
-    layers = range(rec.n_layers)
+    checks = [LayerCheck(rec.layer(layer), rec.v[layer], rec.context[layer]) for layer in range(rec.n_layers)]
+
+    def task(layer: int) -> None:
+        more = consumers(layer) if consumers else {}
+        layer_pass(
+            checks[layer].scores,
+            check=checks[layer],
+            consumers=more.get("heads", ()),
+            mean_consumers=more.get("mean", ()),
+        )
+        checks[layer].release()
+
+    run_parallel([lambda layer=layer: task(layer) for layer in range(rec.n_layers)], threads)
+    return result_of(checks, tolerance, rec.own_probs is not None, rec.truncated)
+
+
+def result_of(checks: list[LayerCheck], tolerance: float, compared: bool, cut: bool = False) -> CheckResult:
+    """The CheckResult of one text from its layers' checks."""
+    return CheckResult(
+        tolerance=float(tolerance),
+        prob_errors=np.array([c.prob for c in checks]),
+        context_errors=np.array([c.ctx for c in checks]),
+        texts=1,
+        compared_probabilities=int(compared),
+        cut=int(cut),
+    )
+
+
+def check_layer(
+    scores: LayerScores, v: np.ndarray, context: np.ndarray, threads: int | None = None
+) -> LayerCheck:
+    """The check of one layer of one text, its rows split over ``threads`` threads (default one
+    per core); the returned ``LayerCheck`` keeps only its errors, not the layer's arrays."""
     workers = min(4, os.cpu_count() or 1) if threads is None else max(1, int(threads))
-    if rec.n_tokens >= 96 and rec.n_layers > 1 and workers > 1:
-        with ThreadPoolExecutor(max_workers=workers) as pool:
-            parts = list(pool.map(lambda layer: _layer_errors(rec, layer), layers))
-    else:
-        parts = [_layer_errors(rec, layer) for layer in layers]
-    head_err = np.array([h for h, _ in parts]).reshape(rec.n_layers, rec.n_heads)
-    ctx_err = np.array([c for _, c in parts]).reshape(rec.n_layers, rec.n_heads)
-    worst = float(head_err.max()) if head_err.size else 0.0
-    if not np.isfinite(worst):
-        worst = float("inf")
-    return CheckResult(worst, float(tolerance), head_err, ctx_err, texts=1)
+    n = scores.n_tokens
+    cuts = [n * part // workers for part in range(workers + 1)]
+    parts = [slice(a, b) for a, b in zip(cuts, cuts[1:], strict=False) if b > a]
+    checks = [LayerCheck(scores, v, context) for _ in parts]
+    run_parallel(
+        [
+            lambda c=c, rows=rows: layer_pass(scores, check=c, rows=rows)
+            for c, rows in zip(checks, parts, strict=True)
+        ],
+        workers,
+    )
+    merged = checks[0]
+    for other in checks[1:]:
+        merged.merge(other)
+    merged.release()
+    return merged
 
 
 def check_recordings(recs, tolerance: float = DEFAULT_TOLERANCE) -> CheckResult:

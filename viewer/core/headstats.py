@@ -27,6 +27,12 @@ visible mask (``Recording.key_masks()``), that mask: windowed layers then normal
 the keys inside each row's window, and ``previous``/``next`` count the rows that can see that
 neighbour. Row counts are kept per layer for that reason.
 
+Every metric is a sum over rows, so a text is added block by block of query rows
+(``add_block``, from ``viewer.core.scores``): a long text never needs a head's whole T × T, and a
+layer's probabilities are computed once for the check and the metrics together
+(``viewer.core.attention.layer_pass``). ``add`` (dense arrays) and ``add_recording`` go through
+the same blocks.
+
 A metric with no counted rows is NaN (e.g. ``next`` when only causal texts were added);
 ``to_dict`` writes NaN as ``None`` so the JSON stays valid. Row 0 of a causal model is forced
 (all weight on itself): it is left out of the entropy mean, where it would add a fake 0, and kept
@@ -45,7 +51,8 @@ from typing import Any
 
 import numpy as np
 
-from viewer.core.entropy import normalized_entropy, visible_keys
+from viewer.core.entropy import normalized_entropy
+from viewer.core.scores import Block, LayerScores
 
 METRICS: tuple[str, ...] = (
     "entropy",
@@ -140,34 +147,62 @@ class HeadStats:
         self.texts += 1
         if t == 0:
             return
-        idx = np.arange(t)
-        dist = np.abs(idx[:, None] - idx[None, :]).astype(np.float64)  # (T, T) |i - j|
-        special_f = special.astype(np.float64)  # (T,)
         masks = _layer_masks(visible, self.n_layers, t)
-        sums = np.zeros((len(METRICS), self.n_layers, self.n_heads))  # (M, L, H)
-        rows = np.zeros((len(METRICS), self.n_layers), dtype=np.int64)  # (M, L)
+        if masks is None and causal:
+            masks = np.broadcast_to(np.tril(np.ones((t, t), dtype=bool)), (self.n_layers, t, t))
+        everything = slice(0, t)
         for layer in range(self.n_layers):  # one layer at a time bounds the float64 copy
-            a = probs[layer].astype(np.float64)  # (H, T, T)
-            mask = None if masks is None else masks[layer]  # (T, T)
-            if mask is None:
-                multi_key = visible_keys(t, causal) > 1  # (T,) rows with a real choice
-                previous, following = t - 1, 0 if causal else t - 1
-            else:
-                multi_key = mask.sum(axis=-1) > 1
-                previous = int(np.diagonal(mask, offset=-1).sum())
-                following = int(np.diagonal(mask, offset=1).sum())
-            rows[:, layer] = (int(multi_key.sum()), t, t, previous, t, following, t)
-            ent = normalized_entropy(a, causal, mask)  # (H, T)
-            sums[0, layer] = ent[:, multi_key].sum(axis=-1)
-            sums[1, layer] = a.reshape(self.n_heads, -1) @ dist.ravel()  # sum_ij a_ij |i - j|
-            sums[2, layer] = (a @ special_f).sum(axis=-1)  # sum_i sum_{j special} a_ij
-            sums[3, layer] = np.diagonal(a, offset=-1, axis1=1, axis2=2).sum(axis=-1)
-            sums[4, layer] = np.diagonal(a, offset=0, axis1=1, axis2=2).sum(axis=-1)
-            if following:
-                sums[5, layer] = np.diagonal(a, offset=1, axis1=1, axis2=2).sum(axis=-1)
-            sums[6, layer] = a.max(axis=-1).sum(axis=-1)
-        self._sums += sums
-        self._rows += rows
+            mask = None if masks is None else masks[layer]
+            block = Block(
+                slice(0, self.n_heads), everything, everything, probs[layer].astype(np.float64), mask
+            )
+            self.add_block(layer, block, special)
+
+    def add_recording(self, rec: Any) -> None:
+        """Add one recording (``viewer.core.recording.Recording``), layer by layer, block by
+        block: the model's own probabilities where it kept them, else re-derived ones."""
+        for layer in range(rec.n_layers):
+            self.add_layer(layer, rec.layer(layer), rec.special)
+        self.count_text()
+
+    def add_layer(self, layer: int, scores: LayerScores, special: np.ndarray) -> None:
+        """Add every block of one layer of one text (call ``count_text`` once per text)."""
+        for block in scores.blocks(own=True):
+            self.add_block(layer, block, special)
+
+    def count_text(self) -> None:
+        self.texts += 1
+
+    def add_block(self, layer: int, block: Block, special: np.ndarray) -> None:
+        """Add the rows of one block of probabilities (every metric is a sum over rows).
+
+        Row counts are per layer, so they are taken from the block of the first heads."""
+        p = block.p  # (h, b, S) float64
+        h, b, span = p.shape
+        rows = np.arange(block.rows.start, block.rows.stop)  # (b,) query i
+        first_key = block.keys.start
+        visible = np.ones((b, span), dtype=bool) if block.visible is None else block.visible  # (b, S)
+        n_keys = visible.sum(axis=1)  # (b,) keys each row sees
+        multi_key = n_keys > 1  # rows with a real choice
+        heads = block.heads
+        sums = self._sums[:, layer, heads]  # (M, h) a view: written in place
+        ent = normalized_entropy(p, False, visible)  # (h, b)
+        sums[0] += ent[:, multi_key].sum(axis=-1)
+        keys = np.arange(first_key, block.keys.stop)  # (S,) key j
+        dist = np.abs(rows[:, None] - keys[None, :]).astype(np.float64)  # (b, S) |i - j|
+        sums[1] += p.reshape(h, -1) @ dist.ravel()  # sum_ij a_ij |i - j|
+        sums[2] += (p @ np.asarray(special, dtype=np.float64)[block.keys]).sum(axis=-1)
+        counted = []
+        for m, offset in ((3, -1), (4, 0), (5, 1)):  # previous, same, next: key i + offset
+            col = rows + offset - first_key  # (b,) column of that key in the span
+            inside = (col >= 0) & (col < span)
+            seen = np.zeros(b, dtype=bool)
+            seen[inside] = visible[np.flatnonzero(inside), col[inside]]
+            sums[m] += p[:, seen, col[seen]].sum(axis=-1)
+            counted.append(int(seen.sum()))
+        sums[6] += p.max(axis=-1, initial=0.0).sum(axis=-1)
+        if heads.start == 0:
+            self._rows[:, layer] += (int(multi_key.sum()), b, b, counted[0], b, counted[2], b)
 
     def merge(self, other: HeadStats) -> HeadStats:
         """Fold ``other`` into this accumulator (in place) and return self."""

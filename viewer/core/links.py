@@ -266,15 +266,14 @@ def pair_tokens(pair: LinkPair, offsets: np.ndarray) -> PairTokens:
     return PairTokens(source=source, candidates=candidates)
 
 
-def link_scores(probs: np.ndarray, tokens: PairTokens) -> np.ndarray:
-    """Link score of every candidate in every head: probs (L, H, T, T) -> (K, L, H) float64.
+def link_scores(source_rows: np.ndarray, tokens: PairTokens) -> np.ndarray:
+    """Link score of every candidate in every head: (L, H, T) -> (K, L, H) float64.
 
-    score[k, l, h] = sum_{j in candidate k} probs[l, h, s, j], s = the source's first sub-token
-    (docs/definitions.md, "Link pairs"). K = 1 + number of distractors, target first.
+    score[k, l, h] = sum_{j in candidate k} A[l, h, s, j], s = the source's first sub-token
+    (docs/definitions.md, "Link pairs"); ``source_rows`` is every layer's and head's attention
+    from s (``Recording.query_rows(s)``). K = 1 + number of distractors, target first.
     """
-    p = np.asarray(probs)
-    s = int(tokens.source[0])
-    row = p[:, :, s, :].astype(np.float64)  # (L, H, T) attention from the source's first token
+    row = np.asarray(source_rows, dtype=np.float64)  # (L, H, T)
     return np.stack([row[:, :, c].sum(axis=-1) for c in tokens.candidates])  # (K, L, H)
 
 
@@ -302,10 +301,13 @@ class PairResult:
     nearest: bool
 
 
-def score_pair(probs: np.ndarray, offsets: np.ndarray, pair: LinkPair) -> PairResult:
-    """Scores, per-head verdict and nearest-baseline verdict for one pair on one recording."""
+def score_pair(attention_from, offsets: np.ndarray, pair: LinkPair) -> PairResult:
+    """Scores, per-head verdict and nearest-baseline verdict for one pair on one text.
+
+    attention_from(i) gives (L, H, T), every layer's and head's attention from query row i.
+    """
     tokens = pair_tokens(pair, offsets)
-    scores = link_scores(probs, tokens)
+    scores = link_scores(attention_from(int(tokens.source[0])), tokens)
     return PairResult(scores=scores, correct=heads_correct(scores), nearest=nearest_correct(tokens))
 
 

@@ -84,20 +84,21 @@ def value_weighted_norms(alpha: np.ndarray, f: np.ndarray) -> ValueNorms:
 
     per_head[h, i, j] = ‖α^h_ij f^h(x_j)‖ and head_sum[i, j] = ‖sum_h α^h_ij f^h(x_j)‖.
 
-    alpha (H, T, T) attention of one layer (query rows, key columns), f (H, T, D) from
-    ``transformed_vectors``. Returns per_head (H, T, T) and head_sum (T, T), float64.
+    alpha (H, R, T) attention of one layer (R query rows, e.g. all T or just the summary
+    token's, and T key columns), f (H, T, D) from ``transformed_vectors``. Returns per_head
+    (H, R, T) and head_sum (R, T), float64.
 
     The head sum is computed from the per-token Gram matrix of the heads' vectors,
     ‖sum_h α_h f_h‖² = sum_{h,g} α_h α_g <f_h, f_g>, so no (T, T, D) array is formed.
     """
     a = np.asarray(alpha, dtype=np.float64)
     f = np.asarray(f, dtype=np.float64)
-    if a.ndim != 3 or f.ndim != 3 or a.shape[0] != f.shape[0] or a.shape[1:] != (f.shape[1],) * 2:
-        raise ValueError(f"alpha (H, T, T) and f (H, T, D) disagree: {a.shape} vs {f.shape}")
+    if a.ndim != 3 or f.ndim != 3 or a.shape[0] != f.shape[0] or a.shape[2] != f.shape[1]:
+        raise ValueError(f"alpha (H, R, T) and f (H, T, D) disagree: {a.shape} vs {f.shape}")
     f_norm = np.linalg.norm(f, axis=-1)  # (H, T) ‖f^h(x_j)‖
-    per_head = np.abs(a) * f_norm[:, None, :]  # (H, T, T)
+    per_head = np.abs(a) * f_norm[:, None, :]  # (H, R, T)
     gram = np.einsum("hjD,gjD->jhg", f, f)  # (T, H, H) <f^h(x_j), f^g(x_j)>
-    mixed = np.einsum("hij,jhg->gij", a, gram)  # (H, T, T) sum_h α^h_ij <f^h, f^g>
-    squared = np.einsum("gij,gij->ij", mixed, a)  # (T, T)
-    head_sum = np.sqrt(np.clip(squared, 0.0, None))  # (T, T)
+    mixed = np.einsum("hij,jhg->gij", a, gram)  # (H, R, T) sum_h α^h_ij <f^h, f^g>
+    squared = np.einsum("gij,gij->ij", mixed, a)  # (R, T)
+    head_sum = np.sqrt(np.clip(squared, 0.0, None))  # (R, T)
     return ValueNorms(per_head=per_head, head_sum=head_sum)

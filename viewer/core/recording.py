@@ -4,6 +4,13 @@ A recording is produced by ``viewer.model.recorder`` and consumed by everything 
 re-derivation check, head metrics, panes, figures, the card export). It holds no torch tensors
 and no reference to the model, so it can be pickled, saved and drawn without the model.
 
+It keeps what the re-derivation needs, not every probability: per layer the per-head queries,
+keys and values, the score terms and the model's own attention output. A head's probabilities
+are computed when asked for (``layer(l)``, ``viewer.core.scores``), in blocks of query rows, so a
+text of 8,192 tokens never holds every head's T × T at once. The model's own probabilities are
+kept only where the eager kernel gave them for a short text (``own_probs``); the check then
+compares those too.
+
 Shapes (L layers, H query heads, G key/value heads, T tokens of this text, d head size):
 
 ==============  ===============  ===========================================================
@@ -12,10 +19,12 @@ field           shape            meaning
 q               (L, H, T, d)     queries per head, after the reshape and after rotary
 k               (L, G, T, d)     keys per key/value head (not repeated), after rotary
 v               (L, G, T, d)     values per key/value head
-probs           (L, H, T, T)     the model's own attention probabilities (query rows, key cols)
-context         (L, H, T, d)     each head's output (probs @ v) before the output projection
+context         (L, H, T, d)     the model's own attention output per head (before the
+                                 output projection)
+own_probs       (L, H, T, T)     the model's own probabilities (query rows, key cols), or None
 scale           (L,)             the factor applied to q·k before the softmax, per layer
-logits          (C,) or (T, V)   classifier logits, or per-token LM logits
+logits          (C,) or (V,)     classifier logits, or a causal LM's next-token logits at the
+                                 summary token; empty for other heads
 terms           ScoreTerms       the score terms beyond q·k the family adds (relative-position
                                  terms, bias, soft-capping, windows; ``viewer.core.terms``)
 ==============  ===============  ===========================================================
@@ -32,6 +41,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from viewer.core.scores import LayerScores
 from viewer.core.softmax import softmax
 from viewer.core.summary import summary_index
 from viewer.core.terms import ScoreTerms, layer_masks, visible_mask
@@ -47,11 +57,10 @@ class Recording:
     q: np.ndarray  # (L, H, T, d)
     k: np.ndarray  # (L, G, T, d)
     v: np.ndarray  # (L, G, T, d)
-    probs: np.ndarray  # (L, H, T, T)
     context: np.ndarray  # (L, H, T, d)
     scale: np.ndarray  # (L,)
     causal: bool
-    logits: np.ndarray  # (C,) for a classifier, (T, V) for a language-model head, (0,) bare
+    logits: np.ndarray  # (C,) classifier, (V,) causal LM at the summary token, (0,) otherwise
     head_kind: str  # "classifier" | "masked-lm" | "causal-lm" | "encoder"
     labels: tuple[str, ...] = ()  # class names for a classifier, index order
     family: str = ""
@@ -59,15 +68,17 @@ class Recording:
     truncated_from: int | None = None  # original token count when the text was cut
     notes: tuple[str, ...] = field(default_factory=tuple)
     terms: ScoreTerms = field(default_factory=ScoreTerms)
+    own_probs: np.ndarray | None = None  # (L, H, T, T) the model's own, where it gave them
+    kernel: str = "eager"  # the attention kernel the model ran ("eager" or "sdpa")
 
     # -- derived sizes -------------------------------------------------------------------
     @property
     def n_layers(self) -> int:
-        return int(self.probs.shape[0])
+        return int(self.q.shape[0])
 
     @property
     def n_heads(self) -> int:
-        return int(self.probs.shape[1])
+        return int(self.q.shape[1])
 
     @property
     def n_kv_heads(self) -> int:
@@ -75,11 +86,32 @@ class Recording:
 
     @property
     def n_tokens(self) -> int:
-        return int(self.probs.shape[2])
+        return int(self.q.shape[2])
 
     @property
     def truncated(self) -> bool:
         return self.truncated_from is not None
+
+    def layer(self, layer: int) -> LayerScores:
+        """Layer ``layer``'s attention, computed for any rows when asked (``viewer.core.scores``);
+        the model's own probabilities where the recording has them."""
+        own = None if self.own_probs is None else self.own_probs[layer]
+        return LayerScores(
+            self.q[layer], self.k[layer], float(self.scale[layer]), self.causal, self.terms, layer, own
+        )
+
+    def query_rows(self, i: int) -> np.ndarray:
+        """(L, H, T) float64 every layer's and head's attention from query row i."""
+        return np.stack([self.layer(layer).row(i) for layer in range(self.n_layers)])
+
+    def attention_matrices(self, most_tokens: int = 1024) -> np.ndarray:
+        """(L, H, T, T) float64 every head's whole matrix, for short texts only (the model's own
+        where kept). Raises ValueError beyond ``most_tokens``: long texts are read by rows."""
+        if self.n_tokens > most_tokens:
+            raise ValueError(f"{self.n_tokens} tokens: read long texts by rows, not whole matrices")
+        return np.stack(
+            [np.stack([self.layer(i).head(h) for h in range(self.n_heads)]) for i in range(self.n_layers)]
+        )
 
     def key_mask(self, layer: int | None = None) -> np.ndarray:
         """(T, T) bool: True where a query row of ``layer`` may see a key column.
@@ -104,6 +136,13 @@ class Recording:
     def class_probabilities(self) -> np.ndarray:
         """(C,) softmax of classifier logits (float64); empty for non-classifiers."""
         if self.head_kind != "classifier":
+            return np.zeros(0)
+        return softmax(self.logits)
+
+    def target_distribution(self) -> np.ndarray:
+        """The distribution a prediction is read from: class probabilities of a classifier, a
+        causal LM's next-token probabilities at the summary token; empty otherwise."""
+        if self.head_kind not in ("classifier", "causal-lm") or self.logits.size == 0:
             return np.zeros(0)
         return softmax(self.logits)
 

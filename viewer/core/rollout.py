@@ -16,9 +16,13 @@ and no flow path ever runs from a later token to an earlier one.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
 from scipy.sparse import csr_array
 from scipy.sparse.csgraph import maximum_flow
+
+from viewer.core.scores import LayerScores
 
 FLOW_SCALE: float = 1e6
 """Capacities are multiplied by this and rounded to integers for scipy's max-flow solver."""
@@ -66,6 +70,28 @@ def attention_rollout(probs: np.ndarray, *, all_layers: bool = False) -> np.ndar
     if all_layers:
         return out
     return out[-1]
+
+
+def rollout_row(layers: Sequence[LayerScores], token: int) -> np.ndarray:
+    """Row ``token`` of the rollout R_{L-1} (``attention_rollout``), without any T × T matrix.
+
+    Row s of R_{L-1} = Ã_{L-1} ··· Ã_0 is e_sᵀ Ã_{L-1} ··· Ã_0, a row vector taken through the
+    layers from the last to the first: r ← r Ã_l = 0.5 · r A_l + 0.5 · r, with r A_l =
+    Σ_i r_i · mean_h A_{l,h}[i, :] summed block by block of rows (``viewer.core.scores``).
+    Costs one pass over every layer's probabilities; (T,) float64.
+    """
+    n = layers[0].n_tokens
+    r = np.zeros(n)
+    r[token] = 1.0
+    for scores in reversed(layers):
+        moved = np.zeros(n)  # r A_l
+        weight = 1.0 / scores.n_heads
+        for block in scores.blocks(own=True):
+            part = r[block.rows]  # (b,)
+            if part.any():
+                moved[block.keys] += weight * np.einsum("b,hbs->s", part, block.p)
+        r = 0.5 * moved + 0.5 * r
+    return r
 
 
 def flow_network(probs: np.ndarray, scale: float = FLOW_SCALE) -> csr_array:

@@ -21,30 +21,30 @@ def summary_index(n_tokens: int, causal: bool) -> int:
     return n_tokens - 1 if causal else 0
 
 
-def summary_attention(attention: np.ndarray, summary: int, head: int | None = None) -> np.ndarray:
-    """Attention from the summary token: attention (H, T, T) of one layer -> (T,) float64.
+def summary_attention(row: np.ndarray, head: int | None = None) -> np.ndarray:
+    """Attention from the summary token: its row of one layer, (H, T) -> (T,) float64.
 
     The head mean Ā[s, :] = (1/H) Σ_h A_h[s, :] when ``head`` is None, else A_head[s, :].
+    ``row`` is every head's attention from the summary token s (``LayerScores.row(s)``).
     """
-    a = np.asarray(attention)
+    a = np.asarray(row)
     if head is not None:
-        return a[head, summary, :].astype(np.float64)
-    return a[:, summary, :].mean(axis=0, dtype=np.float64)
+        return a[head].astype(np.float64)
+    return a.mean(axis=0, dtype=np.float64)
 
 
-def summary_share(attention: np.ndarray, summary: int, tokens: np.ndarray, head: int | None = None) -> float:
+def summary_share(row: np.ndarray, tokens: np.ndarray, head: int | None = None) -> float:
     """Share of the summary token's attention that lands on ``tokens``: Σ_{j ∈ tokens} Ā[s, j].
 
-    attention (H, T, T) of the last layer. With the head mean this is a word's ``focus`` in the
-    shortcut search (docs/definitions.md, "Word knockout").
+    row (H, T) of the last layer. With the head mean this is a word's ``focus`` in the shortcut
+    search (docs/definitions.md, "Word knockout").
     """
-    row = summary_attention(attention, summary, head)
-    return float(row[np.asarray(tokens, dtype=np.int64)].sum())
+    return float(summary_attention(row, head)[np.asarray(tokens, dtype=np.int64)].sum())
 
 
-def summary_head_shares(attention: np.ndarray, summary: int, tokens: np.ndarray) -> np.ndarray:
+def summary_head_shares(row: np.ndarray, tokens: np.ndarray) -> np.ndarray:
     """``summary_share`` in every head at once: (H,) float64, Σ_{j ∈ tokens} A_h[s, j].
 
     Their mean over heads is the head-mean share (up to float rounding)."""
-    a = np.asarray(attention)[:, summary, :].astype(np.float64)
+    a = np.asarray(row).astype(np.float64)
     return a[:, np.asarray(tokens, dtype=np.int64)].sum(axis=1)

@@ -28,7 +28,7 @@ def _target_fn(loaded: LoadedModel, batch: Batch, target: int) -> Callable[[torc
 
     def f(embeds: torch.Tensor) -> torch.Tensor:
         n = embeds.shape[0]
-        out, _ = loaded.forward(
+        out = loaded.forward(
             batch, inputs_embeds=embeds, grad=True, input_ids=None, attention_mask=mask.expand(n, -1)
         )
         probs = loaded.target_probabilities(
@@ -164,7 +164,7 @@ def head_importance_sums(
         batch = loaded.encode(texts[start : start + size])
         n = len(batch.lengths)
         g = torch.ones(n, loaded.n_layers, loaded.n_heads, requires_grad=True)
-        out, _ = loaded.forward(batch, gates=g, grad=True)
+        out = loaded.forward(batch, gates=g, grad=True)
         probs = loaded.target_probabilities(batch, out)
         y = torch.as_tensor(list(targets[start : start + n]), dtype=torch.long)
         loss = torch.nn.functional.nll_loss(torch.log(probs.clamp_min(1e-30)), y, reduction="sum")

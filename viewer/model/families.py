@@ -52,7 +52,8 @@ from typing import Any
 from viewer.errors import HeadlightError
 
 
-def _get(config: Any, *names: str, default: Any = None) -> Any:
+def config_value(config: Any, *names: str, default: Any = None) -> Any:
+    """The first of ``names`` the config sets (architectures name the same size differently)."""
     for name in names:
         value = getattr(config, name, None)
         if value is not None:
@@ -67,10 +68,6 @@ class Geometry:
     n_heads: int
     n_kv_heads: int
     head_dim: int
-
-    @property
-    def kv_groups(self) -> int:
-        return self.n_heads // self.n_kv_heads
 
 
 Window = tuple[int, int] | None  # keys (before, after) a query sees; -1 = unbounded side
@@ -112,8 +109,8 @@ class Family:
     def head_geometry(self, config: Any) -> Geometry:
         if self.geometry is not None:
             return self.geometry(config)
-        hidden = _get(config, "hidden_size", "dim", "n_embd")
-        heads = _get(config, "num_attention_heads", "n_heads", "n_head")
+        hidden = config_value(config, "hidden_size", "dim", "n_embd")
+        heads = config_value(config, "num_attention_heads", "n_heads", "n_head")
         if hidden % heads:
             raise HeadlightError(
                 f"hidden size {hidden} is not divisible by {heads} attention heads in config.json"
@@ -146,7 +143,7 @@ def _refuse_bidirectional(config: Any) -> str | None:
 
 
 def _refuse_deberta(config: Any) -> str | None:
-    unknown = sorted(set(_deberta_terms(config)) - {"c2p", "p2c"})
+    unknown = sorted(set(deberta_terms(config)) - {"c2p", "p2c"})
     if unknown:
         return f"pos_att_type term(s) {', '.join(unknown)}"
     return None
@@ -165,7 +162,7 @@ def _gemma2_scale(config: Any, layer: int, g: Geometry) -> float:
     return float(config.query_pre_attn_scalar) ** -0.5
 
 
-def _deberta_terms(config: Any) -> list[str]:
+def deberta_terms(config: Any) -> list[str]:
     kinds = getattr(config, "pos_att_type", None) or []
     if isinstance(kinds, str):
         kinds = kinds.lower().split("|")
@@ -175,7 +172,7 @@ def _deberta_terms(config: Any) -> list[str]:
 def _deberta_scale(config: Any, layer: int, g: Geometry) -> float:
     """1/√(d·(1 + number of position terms)) (He et al. 2021, §3.1; counted even without
     relative_attention, as the released implementation does)."""
-    n_terms = sum(1 for k in ("c2p", "p2c") if k in _deberta_terms(config))
+    n_terms = sum(1 for k in ("c2p", "p2c") if k in deberta_terms(config))
     return (g.head_dim * (1 + n_terms)) ** -0.5
 
 

@@ -32,7 +32,7 @@ def knockout_gates(loaded: LoadedModel, heads: Iterable[tuple[int, int]]) -> tor
 
 def gated_logits(loaded: LoadedModel, batch: Batch, gates: torch.Tensor | None) -> torch.Tensor:
     """The model's logits with the given gates on the head outputs (no gradient)."""
-    out, _ = loaded.forward(batch, gates=gates)
+    out = loaded.forward(batch, gates=gates)
     return out.logits.detach()
 
 
@@ -43,7 +43,7 @@ def gate_gradients(loaded: LoadedModel, batch: Batch, targets: torch.Tensor) -> 
     (averaged over the data) as the importance of each head.
     """
     gates = ones(loaded, requires_grad=True)
-    out, _ = loaded.forward(batch, gates=gates, grad=True)
+    out = loaded.forward(batch, gates=gates, grad=True)
     loss = torch.nn.functional.cross_entropy(out.logits, targets, reduction="sum")
     (grad,) = torch.autograd.grad(loss, gates)
     return grad.detach()

@@ -1,19 +1,24 @@
-"""Opening a checked checkpoint folder, offline, and recording texts through it.
+"""Opening a checked checkpoint folder, offline, as a ``LoadedModel``.
 
 ``open_model(folder)`` first has ``viewer.model.folders`` check the folder without deserialising
 anything (config, remote code, weight files, safetensors headers, pickle opt-in, tokenizer,
-adapter folders). The model is then loaded with the eager attention implementation so that
-probabilities exist, from local files only: nothing is ever looked up on a model hub.
+adapter folders). The model is then loaded from local files only (nothing is ever looked up on
+a model hub) with the memory-efficient attention kernel ("sdpa") where transformers offers it
+for the family, else the eager one; ``viewer.model.runs`` switches to eager where the model's
+own probabilities are wanted.
+
+A ``LoadedModel`` is the opened checkpoint and its parts, each with one job: ``text``
+(tokenising and batching, ``viewer.model.tokens``), ``tables`` (the per-layer numbers of the
+family, ``viewer.model.tables``), ``hooks`` (capture and head gates, ``viewer.model.recorder``);
+its verbs (forward, predict, record) are ``viewer.model.runs``.
 """
 
 from __future__ import annotations
 
-import dataclasses
 import os
 import pickle
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -36,20 +41,10 @@ from transformers import (  # noqa: E402
 )
 
 from viewer.core.recording import Recording  # noqa: E402
-from viewer.core.rotary import apply_rotary  # noqa: E402
-from viewer.core.terms import ScoreTerms, layer_masks  # noqa: E402
 from viewer.errors import HeadlightError  # noqa: E402
+from viewer.model import runs  # noqa: E402
 from viewer.model.adapters import describe, merge_adapter  # noqa: E402
-from viewer.model.families import (  # noqa: E402
-    Family,
-    Geometry,
-    Window,
-    _deberta_terms,
-    _get,
-    check_supported,
-    family_for,
-    layer_scale,
-)
+from viewer.model.families import Family, Geometry, check_supported, family_for  # noqa: E402
 from viewer.model.folders import (  # noqa: E402
     AdapterFolder,
     ModelFolder,
@@ -58,7 +53,9 @@ from viewer.model.folders import (  # noqa: E402
     is_adapter_folder,
     model_folder,
 )
-from viewer.model.recorder import AttentionHooks, Capture  # noqa: E402
+from viewer.model.recorder import AttentionHooks  # noqa: E402
+from viewer.model.tables import LayerTables  # noqa: E402
+from viewer.model.tokens import Batch, TextEncoder  # noqa: E402
 
 transformers.logging.set_verbosity_error()
 transformers.logging.disable_progress_bar()
@@ -84,49 +81,8 @@ def _head_kind(config: dict) -> tuple[str, Any, str | None]:
     return "encoder", AutoModel, note
 
 
-def _max_tokens(config: Any, tokenizer: Any, family: Family) -> int:
-    positions = _get(config, "max_position_embeddings", "n_positions", default=512)
-    # RoBERTa-style position ids start after the padding index (padding_idx + 1)
-    positions -= family.position_offset
-    limit = getattr(tokenizer, "model_max_length", None)
-    if isinstance(limit, int) and 0 < limit < positions:
-        positions = limit
-    return int(positions)
-
-
-@dataclass(frozen=True)
-class Batch:
-    encoding: Any  # transformers BatchEncoding (input_ids, attention_mask, offsets, specials)
-    lengths: list[int]  # real tokens per text
-    truncated_from: list[int | None]
-    texts: list[str]
-
-
-@dataclass(frozen=True, eq=False)
-class Attention:
-    """What dataset-level reports need of one text (T its own tokens, no padding)."""
-
-    text: str
-    token_ids: np.ndarray  # (T,)
-    offsets: np.ndarray  # (T, 2)
-    special: np.ndarray  # (T,) bool
-    probs: np.ndarray  # (L, H, T, T) the model's own attention probabilities
-    target: np.ndarray | None  # (C,) target probabilities, None without a prediction head
-    truncated_from: int | None
-    causal: bool = False
-    window: np.ndarray | None = None  # (L, 2) keys (before, after) each layer sees; -1 = all
-
-    def key_masks(self) -> np.ndarray | None:
-        """(L, T, T) bool keys each query row sees, or None when every row sees every key.
-
-        The same definition as ``Recording.key_masks`` (``viewer.core.terms``); pass it to
-        ``HeadStats.add(..., visible=...)`` so entropy is normalised by the visible keys.
-        """
-        return layer_masks(len(self.token_ids), self.causal, self.window, self.probs.shape[0])
-
-
 class LoadedModel:
-    """A checkpoint opened for recording: the torch model, its tokenizer and attention hooks."""
+    """A checkpoint opened for recording: the torch model, its parts, and its verbs."""
 
     def __init__(
         self,
@@ -137,6 +93,7 @@ class LoadedModel:
         geometry: Geometry,
         head_kind: str,
         notes: tuple[str, ...],
+        kernel: str = "eager",
     ):
         self.folder = folder
         # the model line: "folder", "base + adapter" for a merged adapter
@@ -148,16 +105,11 @@ class LoadedModel:
         self.geometry = geometry
         self.head_kind = head_kind
         self.notes = notes
+        self.kernel = kernel  # the attention kernel the model runs by default
         self.weight_files: tuple[Path, ...] = ()
         self.config = model.config
-        self.n_layers = _layer_count(self.config)
-        self.max_tokens = _max_tokens(self.config, tokenizer, family)
-        self.scales = np.array([layer_scale(family, self.config, i, geometry) for i in range(self.n_layers)])
-        self.windows = _window_array(family.windows(self.config, self.n_layers), self.n_layers)
-        cap = float(family.softcap(self.config))
-        self.softcaps = np.full(self.n_layers, cap) if cap > 0 else None
-        # DeBERTa: which of the position terms the model adds (shared projections compute both)
-        self.position_terms = frozenset(_position_terms(family, self.config))
+        self.tables = LayerTables(family, self.config, geometry)
+        self.text = TextEncoder(tokenizer, self.config, family, head_kind)
         id2label = getattr(self.config, "id2label", None) or {}
         if head_kind == "classifier":
             n = int(getattr(self.config, "num_labels", len(id2label)))
@@ -165,350 +117,75 @@ class LoadedModel:
         else:
             self.labels = ()
         self.hooks = AttentionHooks(model, family, geometry, self.n_layers)
-        self._check_module_scales()
-        # Causal classifiers find their summary token via the pad id; with none defined they
-        # can only run one text at a time.
-        self.max_batch = 64
-        if tokenizer.pad_token is None:
-            fallback = tokenizer.eos_token or tokenizer.unk_token
-            if fallback is None:
-                self.max_batch = 1
-            else:
-                tokenizer.pad_token = fallback
-            if head_kind == "classifier" and getattr(self.config, "pad_token_id", None) is None:
-                self.max_batch = 1
-        if (
-            family.causal
-            and head_kind == "classifier"
-            and tokenizer.pad_token_id != getattr(self.config, "pad_token_id", None)
-        ):
-            # the classifier reads the last token that is not its pad id: pad with nothing else
-            self.max_batch = 1
+        self.tables.check_module_scales([(name, _parent(model, name)) for name in self.hooks.module_names])
+
+    # -- sizes ----------------------------------------------------------------------------------
+    @property
+    def n_layers(self) -> int:
+        return self.tables.n_layers
 
     @property
     def n_heads(self) -> int:
         return self.geometry.n_heads
 
+    @property
+    def max_tokens(self) -> int:
+        return self.text.max_tokens
+
+    @property
+    def max_batch(self) -> int:
+        return self.text.max_batch
+
     @contextmanager
-    def unhooked(self) -> Iterator[Any]:
-        """The plain torch model with none of Headlight's hooks (for references and timing)."""
+    def unhooked(self, kernel: str | None = None) -> Iterator[Any]:
+        """The plain torch model with none of Headlight's hooks (for references and timing),
+        running ``kernel`` ("eager" for the model's own probabilities) when given."""
         self.hooks.remove()
         try:
-            yield self.model
+            with runs.attention_kernel(self, kernel or self.kernel):
+                yield self.model
         finally:
             self.hooks = AttentionHooks(self.model, self.family, self.geometry, self.n_layers)
 
-    def _check_module_scales(self) -> None:
-        """Refuse when an attention module's own scale differs from the family rule."""
-        for layer, name in enumerate(self.hooks.module_names):
-            parent = self.model.get_submodule(name.rsplit(".", 1)[0]) if "." in name else None
-            own = getattr(parent, "scaling", None)
-            if isinstance(own, (int, float)):
-                rule = self.scales[layer]
-                if abs(float(own) - rule) > 1e-9 * max(1.0, abs(rule)):
-                    raise HeadlightError(
-                        f"{self.family.name} layer {layer} scales scores by {own}, not the "
-                        f"family's {rule}; refusing rather than re-deriving wrong numbers"
-                    )
-
-    # -- tokenising ---------------------------------------------------------------------
-    def encode(self, texts: Sequence[str]) -> Batch:
-        texts = [str(t) for t in texts]
-        full = self.tokenizer(texts, add_special_tokens=True)["input_ids"]
-        enc = self.tokenizer(
-            texts,
-            padding=True,
-            truncation=True,
-            max_length=self.max_tokens,
-            return_offsets_mapping=True,
-            return_special_tokens_mask=True,
-            return_tensors="pt",
-        )
-        lengths = [int(n) for n in enc["attention_mask"].sum(dim=1)]
-        cut = [len(f) if len(f) > n else None for f, n in zip(full, lengths, strict=True)]
-        return Batch(enc, lengths, cut, texts)
-
-    def batch_from_ids(self, id_lists: Sequence[Sequence[int]]) -> Batch:
-        """A right-padded batch from token-id lists (e.g. texts with tokens knocked out)."""
-        width = max(len(ids) for ids in id_lists)
-        pad = self.tokenizer.pad_token_id
-        ids = torch.full((len(id_lists), width), pad if pad is not None else 0, dtype=torch.long)
-        mask = torch.zeros((len(id_lists), width), dtype=torch.long)
-        for i, row in enumerate(id_lists):
-            ids[i, : len(row)] = torch.as_tensor(list(row), dtype=torch.long)
-            mask[i, : len(row)] = 1
-        lengths = [len(r) for r in id_lists]
-        return Batch(
-            {"input_ids": ids, "attention_mask": mask}, lengths, [None] * len(lengths), [""] * len(lengths)
-        )
-
-    def target_probabilities(self, batch: Batch, out: Any) -> torch.Tensor:
-        """(B, C) the distribution a prediction is read from.
-
-        A classifier's class probabilities; for a causal LM, the next-token distribution at each
-        text's last real token (the only position that sees the whole text).
-        """
-        logits = out.logits
-        if self.head_kind == "classifier":
-            return torch.softmax(logits.float(), dim=-1)
-        if self.head_kind == "causal-lm":
-            last = torch.as_tensor(batch.lengths) - 1
-            return torch.softmax(logits[torch.arange(len(last)), last].float(), dim=-1)
-        raise HeadlightError(
-            f"{self.name} has a {self.head_kind} head with no prediction to explain; this needs "
-            "a sequence classifier or a causal language model"
-        )
-
-    def predict(self, batch: Batch, gates: torch.Tensor | None = None) -> np.ndarray:
-        """(B, C) target probabilities (float64) without gradients."""
-        out, _ = self.forward(batch, gates=gates)
-        return self.target_probabilities(batch, out).double().numpy()
-
-    def predict_ids(self, id_lists: Sequence[Sequence[int]], batch_size: int = 32) -> np.ndarray:
-        """(N, C) target probabilities for many token-id lists, in padded batches."""
-        parts = [
-            self.predict(self.batch_from_ids(id_lists[i : i + batch_size]))
-            for i in range(0, len(id_lists), max(1, min(batch_size, self.max_batch)))
-        ]
-        return np.concatenate(parts, axis=0)
-
     def output_projection(self, layer: int) -> np.ndarray:
         """(H*d, D) weight of a layer's attention output projection in x @ W convention."""
-        module = self.hooks.out_modules[self._module_index(layer)]
+        modules = self.hooks.out_modules
+        module = modules[self.tables.module_index(layer, len(modules))]
         weight = module.weight.detach().double().numpy()
         # nn.Linear stores (out, in); GPT-2's Conv1D stores (in, out).
         return weight if type(module).__name__ == "Conv1D" else weight.T
 
-    def _module_index(self, layer: int) -> int:
-        """Which of the distinct attention modules runs as `layer` (ALBERT shares them).
+    # -- verbs (viewer.model.runs) ---------------------------------------------------------------
+    def encode(self, texts: Sequence[str]) -> Batch:
+        return self.text.encode(texts)
 
-        ALBERT runs num_hidden_layers passes; pass p uses layer group
-        p // (num_hidden_layers / num_hidden_groups), each group holding inner_group_num layers.
-        """
-        if len(self.hooks.out_modules) == self.n_layers:
-            return layer
-        inner = int(getattr(self.config, "inner_group_num", 1))
-        passes = int(self.config.num_hidden_layers)
-        groups = int(getattr(self.config, "num_hidden_groups", 1))
-        pass_index, inner_index = divmod(layer, inner)
-        return int(pass_index / (passes / groups)) * inner + inner_index
+    def forward(self, batch: Batch, **options: Any):
+        return runs.forward(self, batch, **options)
 
-    def attentions(self, texts: Sequence[str], batch_size: int = 16) -> Iterator[Attention]:
-        """Light recording: only probabilities, offsets, specials and logits per text.
+    def predict(self, batch: Batch, gates: torch.Tensor | None = None) -> np.ndarray:
+        return runs.predict(self, batch, gates)
 
-        Used by dataset-level reports, which need neither Q/K/V nor head outputs.
-        """
-        size = max(1, min(batch_size, self.max_batch))
-        for start in range(0, len(texts), size):
-            batch = self.encode(texts[start : start + size])
-            out, _ = self.forward(batch, output_attentions=True)
-            probs = torch.stack(out.attentions, dim=1).float().numpy()  # (B, L, H, T, T)
-            predicts = (
-                self.head_kind in ("classifier", "causal-lm") and getattr(out, "logits", None) is not None
-            )
-            targets = self.target_probabilities(batch, out).double().numpy() if predicts else None
-            enc = batch.encoding
-            for i, n in enumerate(batch.lengths):
-                yield Attention(
-                    text=batch.texts[i],
-                    token_ids=enc["input_ids"][i, :n].numpy().copy(),
-                    offsets=enc["offset_mapping"][i, :n].numpy().copy(),
-                    special=enc["special_tokens_mask"][i, :n].numpy().astype(bool),
-                    probs=probs[i, :, :, :n, :n].copy(),
-                    target=None if targets is None else targets[i].copy(),
-                    truncated_from=batch.truncated_from[i],
-                    causal=self.family.causal,
-                    window=self.windows,
-                )
+    def predict_ids(self, id_lists: Sequence[Sequence[int]], batch_size: int = 32) -> np.ndarray:
+        return runs.predict_ids(self, id_lists, batch_size)
 
-    def model_inputs(self, batch: Batch) -> dict:
-        return {"input_ids": batch.encoding["input_ids"], "attention_mask": batch.encoding["attention_mask"]}
+    def target_probabilities(self, batch: Batch, out: Any) -> torch.Tensor:
+        return runs.target_probabilities(self, batch, out)
 
-    # -- running ------------------------------------------------------------------------
-    def forward(
-        self,
-        batch: Batch,
-        *,
-        capture: bool = False,
-        gates: torch.Tensor | None = None,
-        output_attentions: bool = False,
-        grad: bool = False,
-        **extra: Any,
-    ):
-        """One forward pass over a batch; returns (model output, capture or None).
-
-        gates: (L, H) multiplicative per-head gates on the head outputs (1 = untouched,
-        0 = knocked out); leave None for the plain model.
-        """
-        self.hooks.gates = gates
-        self.hooks.begin(capture)
-        inputs = self.model_inputs(batch)
-        inputs.update(extra)
-        try:
-            with torch.set_grad_enabled(grad):
-                out = self.model(**inputs, output_attentions=output_attentions)
-            cap = self.hooks.end()
-        finally:
-            self.hooks.gates = None
-            self.hooks.capturing = False
-        return out, (cap if capture else None)
-
-    def record_batch(self, batch: Batch) -> list[Recording]:
-        out, cap = self.forward(batch, capture=True, output_attentions=True)
-        return self._recordings(batch, out, cap)
-
-    def record(self, text: str) -> Recording:
-        """Record one text: every layer's and head's Q, K, V, probabilities and head outputs."""
-        return self.record_batch(self.encode([text]))[0]
+    def record(self, text: str, own_probs: bool | None = None) -> Recording:
+        """Record one text: every layer's and head's Q, K, V, score terms and attention output
+        (and the model's own probabilities where they fit, ``runs.OWN_PROBS_BYTES``)."""
+        return runs.recordings(self, self.encode([text]), own_probs)[0]
 
     def record_many(self, texts: Sequence[str], batch_size: int = 16) -> Iterator[Recording]:
         """Record many texts in padded batches; yields one recording per text, in order."""
         size = max(1, min(batch_size, self.max_batch))
         for start in range(0, len(texts), size):
-            yield from self.record_batch(self.encode(texts[start : start + size]))
-
-    def _recordings(self, batch: Batch, out: Any, cap: Capture) -> list[Recording]:
-        attentions = out.attentions
-        if attentions is None or len(attentions) != self.n_layers:
-            got = 0 if attentions is None else len(attentions)
-            raise RuntimeError(f"model returned {got} attention maps for {self.n_layers} layers")
-        probs = torch.stack(attentions, dim=1).float().numpy()  # (B, L, H, T, T)
-        q = torch.stack(cap.q, dim=1).float().numpy()  # (B, L, H, T, d)
-        k = torch.stack(cap.k, dim=1).float().numpy()  # (B, L, G, T, d)
-        v = torch.stack(cap.v, dim=1).float().numpy()  # (B, L, G, T, d)
-        ctx = torch.stack(cap.context, dim=1).float().numpy()  # (B, L, H, T, d)
-        rotary = self._rotary_tables(cap)
-        terms = self._batch_terms(cap)
-        logits = getattr(out, "logits", None)
-        logits = None if logits is None else logits.detach().float().numpy()
-        enc = batch.encoding
-        ids = enc["input_ids"].numpy()
-        offsets = enc["offset_mapping"].numpy()
-        specials = enc["special_tokens_mask"].numpy().astype(bool)
-        recs = []
-        for i, n in enumerate(batch.lengths):
-            qi, ki = q[i, :, :, :n], k[i, :, :, :n]
-            if rotary:
-                qi, ki = qi.copy(), ki.copy()
-                for layers, (cos, sin) in rotary:
-                    row = min(i, cos.shape[0] - 1)  # tables may be shared across the batch
-                    cos_i, sin_i = cos[row, :n], sin[row, :n]
-                    qi[layers] = apply_rotary(qi[layers], cos_i, sin_i)
-                    ki[layers] = apply_rotary(ki[layers], cos_i, sin_i)
-            if self.head_kind == "classifier":
-                lg = logits[i].copy()
-            elif logits is not None and logits.ndim == 3:
-                lg = logits[i, :n].copy()
-            else:
-                lg = np.zeros(0, dtype=np.float32)
-            notes = list(self.notes)
-            if batch.truncated_from[i] is not None:
-                notes.append(
-                    f"text cut from {batch.truncated_from[i]} to {n} tokens "
-                    f"(the model reads at most {self.max_tokens})"
-                )
-            tok_ids = ids[i, :n].copy()
-            recs.append(
-                Recording(
-                    text=batch.texts[i],
-                    tokens=tuple(self.tokenizer.convert_ids_to_tokens(tok_ids.tolist())),
-                    offsets=offsets[i, :n].copy(),
-                    special=specials[i, :n].copy(),
-                    token_ids=tok_ids,
-                    q=np.ascontiguousarray(qi, dtype=np.float32),
-                    k=np.ascontiguousarray(ki, dtype=np.float32),
-                    v=v[i, :, :, :n].copy(),
-                    probs=probs[i, :, :, :n, :n].copy(),
-                    context=ctx[i, :, :, :n].copy(),
-                    scale=self.scales.copy(),
-                    causal=self.family.causal,
-                    logits=lg,
-                    head_kind=self.head_kind,
-                    labels=self.labels,
-                    family=self.family.name,
-                    model_name=self.name,
-                    truncated_from=batch.truncated_from[i],
-                    notes=tuple(notes),
-                    terms=_text_terms(terms, n),
-                )
-            )
-        return recs
-
-    def _rotary_tables(self, cap: Capture) -> list[tuple[list[int], tuple[np.ndarray, ...]]]:
-        """[(layers, (cos, sin))]: the model's own tables, layers sharing one table grouped.
-
-        ModernBERT and Gemma 3 use other bases in their local layers, so tables are per layer.
-        """
-        if not cap.rotary:
-            return []
-        if len(cap.rotary) != self.n_layers:
-            raise RuntimeError(f"captured {len(cap.rotary)} rotary tables for {self.n_layers} layers")
-        groups: dict[int, tuple[list[int], tuple[np.ndarray, ...]]] = {}
-        for layer, (cos, sin) in enumerate(cap.rotary):
-            key = cos.data_ptr()
-            if key not in groups:
-                groups[key] = ([], (cos.float().numpy(), sin.float().numpy()))  # (B or 1, T, r)
-            groups[key][0].append(layer)
-        return list(groups.values())
-
-    def _batch_terms(self, cap: Capture) -> ScoreTerms:
-        """The score terms of the whole batch (relative indices still at the padded length)."""
-        pos_key = pos_query = bias = None
-        if "c2p" in self.position_terms:
-            pos_key = _stack_layers(cap.pos_key, self.n_layers, "position keys")
-        if "p2c" in self.position_terms:
-            pos_query = _stack_layers(cap.pos_query, self.n_layers, "position queries")
-        if cap.bias is not None:
-            table = cap.bias.float().numpy()  # (H, R), one table for every layer
-            bias = np.broadcast_to(table, (self.n_layers, *table.shape))
-        index = None
-        if pos_key is not None or pos_query is not None or bias is not None:
-            if cap.rel_index is None:
-                raise RuntimeError(f"{self.family.name}: relative positions were not captured")
-            index = cap.rel_index.numpy().astype(np.int64)
-        return ScoreTerms(
-            rel_index=index,
-            pos_key=pos_key,
-            pos_query=pos_query,
-            bias=bias,
-            softcap=self.softcaps,
-            window=self.windows,
-        )
+            yield from runs.recordings(self, self.encode(texts[start : start + size]))
 
 
-def _stack_layers(parts: list[torch.Tensor], n_layers: int, what: str) -> np.ndarray:
-    if len(parts) != n_layers:
-        raise RuntimeError(f"captured {what} for {len(parts)} of {n_layers} layers")
-    return torch.stack(parts).float().numpy()  # (L, H, R, d)
-
-
-def _text_terms(terms: ScoreTerms, n: int) -> ScoreTerms:
-    """One text's terms: the relative indices cut to its n tokens, the tables shared."""
-    if terms.rel_index is None:
-        return terms
-    return dataclasses.replace(terms, rel_index=np.ascontiguousarray(terms.rel_index[:n, :n]))
-
-
-def _window_array(windows: list[Window], n_layers: int) -> np.ndarray | None:
-    """(L, 2) int64 (before, after) per layer, -1 for an unbounded side; None without windows."""
-    if len(windows) != n_layers:
-        raise HeadlightError(f"config.json lists {len(windows)} layer types for {n_layers} layers")
-    if all(w is None for w in windows):
-        return None
-    return np.array([(-1, -1) if w is None else w for w in windows], dtype=np.int64)
-
-
-def _position_terms(family: Family, config: Any) -> list[str]:
-    if family.relative != "disentangled" or not getattr(config, "relative_attention", False):
-        return []
-    return [t for t in _deberta_terms(config) if t in ("c2p", "p2c")]
-
-
-def _layer_count(config: Any) -> int:
-    n = _get(config, "num_hidden_layers", "n_layer", "n_layers")
-    if getattr(config, "model_type", "") == "albert":
-        n *= int(getattr(config, "inner_group_num", 1))
-    return int(n)
+def _parent(model: Any, name: str) -> Any:
+    """The module holding a projection (its attention module), or None at the top level."""
+    return model.get_submodule(name.rsplit(".", 1)[0]) if "." in name else None
 
 
 def open_model(
@@ -550,11 +227,12 @@ def _open_checked(checked: ModelFolder, adapter: AdapterFolder | None = None) ->
     if not getattr(tokenizer, "is_fast", False):
         raise HeadlightError(f"tokenizer in {tok_path} is not a fast tokenizer (needed for offsets)")
     tokenizer.padding_side = "right"
+    kernel = attention_kernel_for(auto_cls, config, family)
     try:
         model, info = auto_cls.from_pretrained(
             path,
             config=config,
-            attn_implementation="eager",
+            attn_implementation=kernel,
             dtype=torch.float32,  # bfloat16/float16 weights are upcast: the check runs at 1e-5
             local_files_only=True,
             trust_remote_code=False,
@@ -586,7 +264,7 @@ def _open_checked(checked: ModelFolder, adapter: AdapterFolder | None = None) ->
             f"adapter {adapter.path.name} ({describe(adapter)}) merged into base {_folder_name(path)}"
         )
     loaded = LoadedModel(
-        adapter.path if adapter else path, model, tokenizer, family, geometry, head_kind, tuple(notes)
+        adapter.path if adapter else path, model, tokenizer, family, geometry, head_kind, tuple(notes), kernel
     )
     loaded.weight_files = checked.weights
     if adapter is not None:
@@ -594,6 +272,18 @@ def _open_checked(checked: ModelFolder, adapter: AdapterFolder | None = None) ->
         loaded.base_folder = path
         loaded.weight_files += (adapter.weights,)
     return loaded
+
+
+def attention_kernel_for(auto_cls: Any, config: Any, family: Family) -> str:
+    """ "sdpa" where transformers offers it for this model class and the family adds no score
+    term it cannot express (relative-position terms, soft-capping); else "eager"."""
+    if family.relative is not None or family.softcap(config) > 0:
+        return "eager"
+    try:
+        model_cls = auto_cls._model_mapping[type(config)]
+    except (KeyError, AttributeError):
+        return "eager"
+    return "sdpa" if getattr(model_cls, "_supports_sdpa", False) else "eager"
 
 
 def _folder_name(folder: Path) -> str:

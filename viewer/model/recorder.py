@@ -17,6 +17,10 @@ embedding and its table.
 Layer indices are the order in which the hooks fire during one forward pass; this covers
 ALBERT's one shared layer that runs many times.
 
+A layer's captures are complete when its output projection is about to run, so the hooks hand
+them over there, one ``LayerCapture`` at a time, to the run's *sink* and keep nothing: a long
+text never holds more than one layer's torch tensors (``viewer.model.runs``).
+
 Shapes: B batch, T padded tokens, H query heads, G key/value heads, d head size, R table rows.
 """
 
@@ -40,18 +44,26 @@ def _find(model: nn.Module, pattern: str | None) -> list[tuple[str, nn.Module]]:
 
 
 @dataclass
-class Capture:
-    """What one forward pass left behind, per layer in call order (torch tensors)."""
+class LayerCapture:
+    """What one layer left behind in one forward pass (torch tensors, the whole batch)."""
 
-    q: list[torch.Tensor] = field(default_factory=list)  # each (B, H, T, d)
-    k: list[torch.Tensor] = field(default_factory=list)  # each (B, G, T, d)
-    v: list[torch.Tensor] = field(default_factory=list)  # each (B, G, T, d)
-    context: list[torch.Tensor] = field(default_factory=list)  # each (B, H, T, d)
-    rotary: list[tuple[torch.Tensor, torch.Tensor]] = field(default_factory=list)  # (B, T, r)
-    pos_key: list[torch.Tensor] = field(default_factory=list)  # each (H, R, d) DeBERTa Kʳ
-    pos_query: list[torch.Tensor] = field(default_factory=list)  # each (H, R, d) DeBERTa Qʳ
+    layer: int
+    q: torch.Tensor  # (B, H, T, d) before rotary
+    k: torch.Tensor  # (B, G, T, d) before rotary
+    v: torch.Tensor  # (B, G, T, d)
+    context: torch.Tensor  # (B, H, T, d) the heads' outputs entering the output projection
+    rotary: tuple[torch.Tensor, torch.Tensor] | None = None  # (cos, sin), each (B or 1, T, r)
+    pos_key: torch.Tensor | None = None  # (H, R, d) DeBERTa Kʳ
+    pos_query: torch.Tensor | None = None  # (H, R, d) DeBERTa Qʳ
+
+
+@dataclass
+class Capture:
+    """The per-forward captures that every layer shares, and the layer being filled."""
+
     rel_index: torch.Tensor | None = None  # (T, T) table row of each (query, key) pair
     bias: torch.Tensor | None = None  # (H, R) MPNet relative bias table
+    pending: dict = field(default_factory=dict)  # the current layer's parts, by name
 
 
 class AttentionHooks:
@@ -61,7 +73,7 @@ class AttentionHooks:
         self.family = family
         self.geometry = geometry
         self.n_layers = n_layers
-        self.capturing = False
+        self.sink = None  # called with each LayerCapture while capturing
         self.capture = Capture()
         # (L, H) or (B, L, H) multiplicative gates on the head outputs; None leaves them alone.
         self.gates: torch.Tensor | None = None
@@ -135,6 +147,15 @@ class AttentionHooks:
             and x.shape[-1] == table.shape[-1]
         )
 
+    @property
+    def capturing(self) -> bool:
+        return self.sink is not None
+
+    def _keep(self, name: str, value) -> None:
+        if name in self.capture.pending:
+            raise RuntimeError(f"{self.family.name}: {name} captured twice in layer {self._out_calls}")
+        self.capture.pending[name] = value
+
     def _on_proj(self, which: str, n_heads: int, query_or_key: bool):
         layout = self.family.qk_layout if query_or_key else "flat"
         position = {"q": "pos_query", "k": "pos_key"}.get(which)
@@ -143,9 +164,9 @@ class AttentionHooks:
             if not self.capturing:
                 return
             if position and self._is_relative_table(args[0]):
-                getattr(self.capture, position).append(self._position_heads(output))
+                self._keep(position, self._position_heads(output))
                 return
-            getattr(self.capture, which).append(self._split_heads(output, n_heads, layout))
+            self._keep(which, self._split_heads(output, n_heads, layout))
 
         return hook
 
@@ -156,14 +177,12 @@ class AttentionHooks:
         if self.family.qkv_layout == "per_head":  # (B, T, H, 3d): [q k v] side by side per head
             b, t, _ = output.shape
             q, k, v = output.detach().reshape(b, t, h, 3 * d).transpose(1, 2).split(d, dim=-1)
-            self.capture.q.append(q)
-            self.capture.k.append(k)
-            self.capture.v.append(v)
-            return
-        q, k, v = output.split([h * d, g * d, g * d], dim=2)
-        self.capture.q.append(self._split_heads(q, h))
-        self.capture.k.append(self._split_heads(k, g))
-        self.capture.v.append(self._split_heads(v, g))
+        else:
+            q, k, v = output.split([h * d, g * d, g * d], dim=2)
+            q, k, v = self._split_heads(q, h), self._split_heads(k, g), self._split_heads(v, g)
+        self._keep("q", q)
+        self._keep("k", k)
+        self._keep("v", v)
 
     def _on_rotary(self, module, args, kwargs):
         if self.capturing:
@@ -171,7 +190,7 @@ class AttentionHooks:
             if tables is None:
                 raise RuntimeError(f"{self.family.name} attention got no position_embeddings")
             cos, sin = tables
-            self.capture.rotary.append((cos.detach(), sin.detach()))
+            self._keep("rotary", (cos.detach(), sin.detach()))
 
     def _position_heads(self, x: torch.Tensor) -> torch.Tensor:
         """(H, R, d) from a position projection output (1, R, H·d)."""
@@ -195,7 +214,7 @@ class AttentionHooks:
     def _on_position(self, which: str):
         def hook(module, args, output):
             if self.capturing:
-                getattr(self.capture, which).append(self._position_heads(output))
+                self._keep(which, self._position_heads(output))
 
         return hook
 
@@ -210,7 +229,7 @@ class AttentionHooks:
         self._out_calls += 1
         x = args[0]  # (B, T, H*d): the heads' outputs side by side
         if self.capturing:
-            self.capture.context.append(self._split_heads(x, self.geometry.n_heads))
+            self._hand_over(layer, self._split_heads(x, self.geometry.n_heads))
         if self.gates is None:
             return None
         b, t, _ = x.shape
@@ -222,9 +241,21 @@ class AttentionHooks:
         gated = (x.reshape(b, t, h, d) * gate).reshape(b, t, h * d)
         return (gated, *args[1:])
 
+    def _hand_over(self, layer: int, context: torch.Tensor) -> None:
+        """The layer is complete: give its captures to the sink and forget them."""
+        parts = self.capture.pending
+        self.capture.pending = {}
+        missing = [name for name in ("q", "k", "v") if name not in parts]
+        if missing:
+            raise RuntimeError(f"{self.family.name} layer {layer}: {', '.join(missing)} not captured")
+        if self.family.rotary and "rotary" not in parts:
+            raise RuntimeError(f"{self.family.name} layer {layer}: rotary tables not captured")
+        self.sink(LayerCapture(layer=layer, context=context, **parts))
+
     # -- control ------------------------------------------------------------------------
-    def begin(self, capture: bool) -> None:
-        self.capturing = capture
+    def begin(self, sink=None) -> None:
+        """Start a forward pass; with a ``sink``, each layer's captures go to it."""
+        self.sink = sink
         self.capture = Capture()
         self._out_calls = 0
         self._relative_table = None
@@ -234,9 +265,15 @@ class AttentionHooks:
             raise RuntimeError(
                 f"attention output projection ran {self._out_calls} times, expected {self.n_layers}"
             )
-        self.capturing = False
+        self.sink = None
         self._relative_table = None
         return self.capture
+
+    def stop(self) -> None:
+        """Leave capture mode (after a failed pass too)."""
+        self.sink = None
+        self.capture = Capture()
+        self._relative_table = None
 
     def remove(self) -> None:
         for h in self._handles:

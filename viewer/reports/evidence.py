@@ -31,8 +31,7 @@ import numpy as np
 
 from viewer.core.norms import value_weighted_norms
 from viewer.core.recording import Recording
-from viewer.core.rollout import FLOW_MAX_TOKENS, attention_flow, attention_rollout
-from viewer.core.softmax import softmax
+from viewer.core.rollout import FLOW_MAX_TOKENS, attention_flow, rollout_row
 from viewer.core.stats import spearman
 from viewer.core.summary import summary_attention
 from viewer.errors import HeadlightError
@@ -62,6 +61,10 @@ KIND_LABELS = {
 ATTENTION_KINDS = ("attention", "rollout", "flow", "value_norm")
 HEAD_EVIDENCE_TOKENS = 256
 """Per-head importance and knockout of one text are computed up to this many tokens."""
+EVIDENCE_TOKENS = 1024
+"""Gradient and token-knockout rows are computed up to this many tokens: knockout runs the model
+once per token, integrated gradients dozens of times with gradients, and a backward pass holds
+every layer's activations (the attention-based rows have no such limit)."""
 
 
 @dataclass(frozen=True, eq=False)
@@ -130,7 +133,8 @@ def value_norm_row(loaded: LoadedModel, rec: Recording, summary: int) -> np.ndar
     v = np.repeat(rec.v[layer].astype(np.float64), h // rec.n_kv_heads, axis=0)  # (H, T, d)
     w_o = loaded.output_projection(layer).reshape(h, d, -1)  # (H, d, D)
     f = np.einsum("htd,hdD->htD", v, w_o)  # (H, T, D)
-    return value_weighted_norms(rec.probs[layer], f).head_sum[summary]
+    alpha = rec.layer(layer).rows(slice(summary, summary + 1))  # (H, 1, T) the summary row
+    return value_weighted_norms(alpha, f).head_sum[0]
 
 
 def evidence_for(
@@ -147,10 +151,11 @@ def evidence_for(
     t = rec.n_tokens
     notes = list(rec.notes)
     rows = {k: np.full(t, np.nan) for k in KINDS}
-    rows["attention"] = summary_attention(rec.probs[-1], s)  # (T,) last layer, head mean
-    rows["rollout"] = attention_rollout(rec.probs)[s]
+    last = rec.layer(rec.n_layers - 1).row(s)  # (H, T) last layer, from the summary token
+    rows["attention"] = summary_attention(last)  # (T,) head mean
+    rows["rollout"] = rollout_row([rec.layer(layer) for layer in range(rec.n_layers)], s)
     if t <= FLOW_MAX_TOKENS:
-        rows["flow"] = attention_flow(rec.probs, s, max_tokens=FLOW_MAX_TOKENS)
+        rows["flow"] = attention_flow(rec.attention_matrices(), s, max_tokens=FLOW_MAX_TOKENS)
     else:
         notes.append(f"attention flow is computed up to {FLOW_MAX_TOKENS} tokens; this text has {t}")
     rows["value_norm"] = value_norm_row(loaded, rec, s)
@@ -159,26 +164,31 @@ def evidence_for(
     probs = rec.class_probabilities()
     gap = ig_steps = None
     if loaded.head_kind in ("classifier", "causal-lm"):
-        dist = probs if loaded.head_kind == "classifier" else softmax(rec.logits[-1])
+        dist = rec.target_distribution()
         target = int(np.argmax(dist))
         label = (
             rec.labels[target]
             if loaded.head_kind == "classifier"
             else loaded.tokenizer.convert_ids_to_tokens(target)
         )
-        grads = gradient_evidence(loaded, text, target, steps=steps)
-        rows["grad_input"] = grads.grad_input
-        rows["integrated_gradients"] = grads.integrated
-        gap = grads.completeness_gap
-        ig_steps = grads.steps
-        if grads.steps > steps:
+        if t > EVIDENCE_TOKENS:
             notes.append(
-                f"integrated gradients needed {grads.steps} steps to add up to the "
-                "change in probability (the prediction switches abruptly on the path)"
+                f"gradient and knockout rows are computed up to {EVIDENCE_TOKENS} tokens; this text has {t}"
             )
-        rows["knockout"] = token_knockout(
-            loaded, rec.token_ids, rec.special, target, float(dist[target]), batch_size=knockout_batch
-        )
+        else:
+            grads = gradient_evidence(loaded, text, target, steps=steps)
+            rows["grad_input"] = grads.grad_input
+            rows["integrated_gradients"] = grads.integrated
+            gap = grads.completeness_gap
+            ig_steps = grads.steps
+            if grads.steps > steps:
+                notes.append(
+                    f"integrated gradients needed {grads.steps} steps to add up to the "
+                    "change in probability (the prediction switches abruptly on the path)"
+                )
+            rows["knockout"] = token_knockout(
+                loaded, rec.token_ids, rec.special, target, float(dist[target]), batch_size=knockout_batch
+            )
     else:
         notes.append(
             f"{loaded.name} has a {loaded.head_kind} head: no prediction to explain, so "
@@ -187,15 +197,14 @@ def evidence_for(
 
     ordinary = ~rec.special
     agreement = {}
-    if target is not None and ordinary.sum() >= 2:
+    if np.isfinite(rows["knockout"]).any() and ordinary.sum() >= 2:
         for kind in KINDS[:-1]:
             agreement[kind] = (
                 spearman(rows[kind][ordinary], rows["knockout"][ordinary])
                 if np.all(np.isfinite(rows[kind][ordinary]))
                 else float("nan")
             )
-    per_head = rec.probs[-1][:, s, :].astype(np.float64)  # (H, T) last layer, per head
-    return Evidence(rec, rows, per_head, agreement, target, label, probs, gap, ig_steps, tuple(notes))
+    return Evidence(rec, rows, last, agreement, target, label, probs, gap, ig_steps, tuple(notes))
 
 
 def head_evidence(

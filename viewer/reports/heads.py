@@ -19,6 +19,7 @@ from viewer.core.headstats import HeadStats, HeadSummary
 from viewer.errors import HeadlightError
 from viewer.model.attribution import head_importance_sums, head_knockout_effects
 from viewer.model.loader import LoadedModel
+from viewer.model.runs import attentions
 from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 from viewer.reports.textsets import Survey, TextItem
 
@@ -59,6 +60,10 @@ def _require_prediction(loaded: LoadedModel, what: str) -> None:
             f"language-model head (head kind: {loaded.head_kind}); use a sequence classifier "
             "or a causal LM"
         )
+
+
+def _no_rows(*_args) -> list[int]:
+    return []
 
 
 @dataclass(frozen=True, eq=False)
@@ -126,8 +131,8 @@ class HeadsKind:
         predicted, confidence, tokens = [], [], []
         for start in range(0, len(texts), self.batch_size):
             check()
-            for att in loaded.attentions(texts[start : start + self.batch_size], self.batch_size):
-                stats.add(att.probs, att.special, att.causal, visible=att.key_masks())
+            batch = texts[start : start + self.batch_size]
+            for att in attentions(loaded, batch, self.batch_size, rows=_no_rows, stats=stats):
                 k = -1 if att.target is None else int(np.argmax(att.target))
                 predicted.append(k)
                 confidence.append(np.nan if att.target is None else float(att.target[k]))

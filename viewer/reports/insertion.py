@@ -28,6 +28,7 @@ from viewer.core.shortcuts import word_key
 from viewer.errors import HeadlightError
 from viewer.model.attribution import predict_without
 from viewer.model.loader import LoadedModel
+from viewer.model.runs import attentions
 from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 from viewer.reports.shortcuts import knockout_tokens
 from viewer.reports.textsets import TextItem, TextSource, chunks
@@ -161,7 +162,7 @@ class PointedKind:
         tally = PointedTally(np.zeros(n, np.int64), np.zeros(n, np.int64))
         for chunk in chunks((i for i in shard.items if phrase_occurrences(i.text, keys)), 64):
             check()
-            atts = list(loaded.attentions([i.text for i in chunk], batch_size=self.batch_size))
+            atts = list(attentions(loaded, [i.text for i in chunk], self.batch_size, attention=False))
             cases, preds = [], []
             for att in atts:
                 idx = knockout_tokens(att, {"": phrase_occurrences(att.text, keys)}).get("")

@@ -10,8 +10,9 @@ from collections.abc import Callable, Iterable
 from dataclasses import asdict, dataclass
 from typing import ClassVar
 
-from viewer.core.links import LinkAccuracy, LinkPair, score_pair
+from viewer.core.links import LinkAccuracy, LinkPair, pair_tokens, score_pair
 from viewer.model.loader import LoadedModel
+from viewer.model.runs import attentions
 from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 
 
@@ -31,9 +32,14 @@ class LinksKind:
         for start in range(0, len(pairs), self.batch_size):
             check()
             chunk = pairs[start : start + self.batch_size]
-            atts = loaded.attentions([p.text for p in chunk], batch_size=self.batch_size)
+            atts = attentions(
+                loaded,
+                [p.text for p in chunk],
+                self.batch_size,
+                rows=lambda i, offsets, _special, chunk=chunk: [pair_tokens(chunk[i], offsets).source[0]],
+            )
             for pair, att in zip(chunk, atts, strict=True):
-                acc.add(score_pair(att.probs, att.offsets, pair))
+                acc.add(score_pair(att.attention_from, att.offsets, pair))
         return acc
 
     def state(self, partial: LinkAccuracy) -> State:

@@ -30,7 +30,7 @@ from viewer.errors import HeadlightError
 from viewer.files import atomic_write_bytes, write_json
 from viewer.reports.shardtypes import ShardKind, State
 
-FORMAT = 3  # the state layout of the accumulators; change it when one changes
+FORMAT = 4  # the state layout of the accumulators; change it when one changes
 MODEL_FILES = (
     "config.json",
     "tokenizer.json",
@@ -131,6 +131,7 @@ class RunFolder:
             "options": kind.options(),
             "shard_size": shard_size,
             "model": model_digests(loaded),
+            "max_tokens": int(loaded.max_tokens),  # texts are cut to this (--max-tokens)
             "input": inputs,
             "versions": _versions(),
         }

@@ -16,10 +16,11 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from viewer.core.attention import CheckResult, check_recordings
+from viewer.core.attention import CheckResult, LayerCheck, check_layer, result_of
 from viewer.core.links import iter_link_pairs, read_link_pairs
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
+from viewer.model.runs import TextLayer, scan
 from viewer.reports.heads import (
     HeadsKind,
     TextSetScan,
@@ -78,26 +79,41 @@ class CheckKind:
         return asdict(self)
 
     def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> CheckResult:
-        check()
-        return check_recordings(
-            loaded.record_many([i.text for i in shard.items], batch_size=self.batch_size), self.tolerance
-        )
+        """Each layer is checked as soon as the model has run it, and only its errors are kept:
+        a text of any length holds one layer's arrays at a time."""
+        result: CheckResult | None = None
+        for batch in loaded.text.batches([i.text for i in shard.items], self.batch_size):
+            check()
+            layers: list[list[LayerCheck]] = [[] for _ in batch.lengths]
+            own = [False] * len(batch.lengths)
+
+            def sink(i: int, part: TextLayer, layers=layers, own=own) -> None:
+                layers[i].append(check_layer(part.scores(), part.v, part.context))
+                own[i] = part.own is not None
+
+            scan(loaded, batch, sink)
+            for i, checks in enumerate(layers):
+                one = result_of(checks, self.tolerance, own[i], batch.truncated_from[i] is not None)
+                result = one if result is None else result.merge(one)
+        return result
 
     def state(self, partial: CheckResult) -> State:
         return {
-            "max_abs_error": np.array(partial.max_abs_error),
-            "head_errors": partial.head_errors,
+            "prob_errors": partial.prob_errors,
             "context_errors": partial.context_errors,
             "texts": np.array(partial.texts, dtype=np.int64),
+            "compared": np.array(partial.compared_probabilities, dtype=np.int64),
+            "cut": np.array(partial.cut, dtype=np.int64),
         }
 
     def load(self, state: State) -> CheckResult:
         return CheckResult(
-            float(state["max_abs_error"]),
             self.tolerance,
-            np.asarray(state["head_errors"]),
+            np.asarray(state["prob_errors"]),
             np.asarray(state["context_errors"]),
             int(state["texts"]),
+            int(state["compared"]),
+            int(state["cut"]),
         )
 
 
@@ -119,7 +135,28 @@ def check_data(
         source = as_source(texts)
         items, total, inputs = source.items(), survey(source).texts, source.key
     result = _run(kind, loaded, items, total, "re-derivation check", inputs, run, quiet)
-    return {"model": str(loaded.folder), "family": loaded.family.name, **result.to_dict()}
+    notes = []
+    if isinstance(texts, list) and len(texts) == 1:
+        one = loaded.text.encode(texts).cut_note(0)
+        if one:
+            why = "the model reads" if loaded.max_tokens == loaded.text.model_limit else "--max-tokens"
+            notes.append(f"{one} ({why}: {loaded.max_tokens:,})")
+    elif result.cut:
+        notes.append(loaded.text.cut_note(result.cut, result.texts))
+    compared = result.compared_probabilities
+    if compared < result.texts:
+        notes.append(
+            f"{result.texts - compared} of {result.texts} text(s) ran the memory-efficient kernel, which "
+            "keeps no probabilities: their check compares the attention output of every head"
+        )
+    return {"model": str(loaded.folder), "family": loaded.family.name, **result.to_dict(), "notes": notes}
+
+
+def cut_data(loaded: LoadedModel, texts: Iterable[str]) -> dict:
+    """``texts_cut`` and the note saying so, for a set command's JSON."""
+    cut, total = loaded.text.count_cut(texts)
+    note = loaded.text.cut_note(cut, total)
+    return {"texts_cut": cut, "notes": [note] if note else []}
 
 
 def heads_data(
@@ -140,6 +177,7 @@ def heads_data(
     kind = HeadsKind(batch_size, importance=importance, knockout=knockout, use_labels=use_labels)
     part = _run(kind, loaded, source.items(), info.texts, "head summaries", source.key, run, quiet)
     data = {"model": str(loaded.folder), **part.stats.summary().to_dict()}
+    data.update(cut_data(loaded, (i.text for i in source.items())))
     n = info.texts
     if importance:
         raw = part.extras["importance"] / n
@@ -190,7 +228,8 @@ def links_data(
         run,
         quiet,
     )
-    return {"model": str(loaded.folder), **acc.to_dict()}
+    cut = cut_data(loaded, (p.text for p in iter_link_pairs(pairs_path)))
+    return {"model": str(loaded.folder), **acc.to_dict(), **cut}
 
 
 def shortcuts_data(
@@ -215,7 +254,8 @@ def shortcuts_data(
         run,
         quiet,
     )
-    return {"model": str(loaded.folder), **report.to_dict()}
+    cut = cut_data(loaded, (i.text for i in source.items()))
+    return {"model": str(loaded.folder), **report.to_dict(), **cut}
 
 
 def insertion_data(

@@ -31,7 +31,8 @@ from viewer.core.shortcuts import (
 )
 from viewer.core.summary import summary_head_shares, summary_index, summary_share
 from viewer.model.attribution import predict_without
-from viewer.model.loader import Attention, LoadedModel
+from viewer.model.loader import LoadedModel
+from viewer.model.runs import TextAttention, attentions
 from viewer.reports.heads import _require_prediction
 from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 from viewer.reports.textsets import TextItem, chunks
@@ -67,7 +68,7 @@ class ShortcutReport:
         }
 
 
-def knockout_tokens(att: Attention, spans: dict[str, list[tuple[int, int]]]) -> dict[str, np.ndarray]:
+def knockout_tokens(att: TextAttention, spans: dict[str, list[tuple[int, int]]]) -> dict[str, np.ndarray]:
     """Key -> sorted sub-token indices of all its occurrences' spans, special tokens left out:
     what knocking it out deletes. Keys with nothing to delete, or with every token, are dropped."""
     out = {}
@@ -98,7 +99,7 @@ class ShortcutKind:
         pairs = KnockoutTally(labels, loaded.n_heads)
         for chunk in chunks(shard.items, TEXTS_PER_FORWARD_GROUP):
             check()
-            atts = list(loaded.attentions([i.text for i in chunk], batch_size=self.batch_size))
+            atts = list(attentions(loaded, [i.text for i in chunk], self.batch_size))
             plans = []  # per text: [(kind, key, token indices)] in the order of `cases`
             cases = []  # (token ids, sub-tokens to delete), one per knockout
             for att in atts:
@@ -114,7 +115,7 @@ class ShortcutKind:
             for att, plan in zip(atts, plans, strict=True):
                 pred = int(np.argmax(att.target))
                 p0 = float(att.target[pred])
-                s = summary_index(len(att.token_ids), loaded.family.causal)
+                summary = att.attention_from(summary_index(len(att.token_ids), loaded.family.causal))[-1]
                 outcomes: dict[str, dict[str, KnockoutOutcome]] = {"w": {}, "p": {}}
                 for kind, key, idx in plan:
                     p = after[row]
@@ -122,8 +123,8 @@ class ShortcutKind:
                     outcomes[kind][key] = KnockoutOutcome(
                         flipped=bool(int(np.argmax(p)) != pred),
                         drop=p0 - float(p[pred]),
-                        focus=summary_share(att.probs[-1], s, idx),
-                        head_focus=summary_head_shares(att.probs[-1], s, idx),
+                        focus=summary_share(summary, idx),
+                        head_focus=summary_head_shares(summary, idx),
                         predicted=pred if labels else -1,
                     )
                 words.add_text(outcomes["w"])

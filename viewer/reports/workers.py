@@ -45,11 +45,14 @@ class ModelSpec:
     allow_pickle: bool = False
     threads: int | None = 1  # torch threads in the worker (None: the worker's own setting)
     version: str = __version__  # the Headlight version of the submitting command
+    max_tokens: int | None = None  # texts are cut to this (the command's --max-tokens)
 
 
 def model_spec(loaded: Any, threads: int | None) -> ModelSpec:
     pickled = any(p.suffix == ".bin" for p in getattr(loaded, "weight_files", ()))
-    return ModelSpec(os.path.abspath(loaded.folder), allow_pickle=pickled, threads=threads)
+    return ModelSpec(
+        os.path.abspath(loaded.folder), allow_pickle=pickled, threads=threads, max_tokens=loaded.max_tokens
+    )
 
 
 _models: dict[tuple[str, bool], Any] = {}
@@ -73,6 +76,7 @@ def worker_model(spec: ModelSpec) -> Any:
             raise HeadlightError(f"on worker {socket.gethostname()}: {exc.message}") from None
         _models.clear()
         _models[key] = loaded
+    _models[key].text.limit(spec.max_tokens)
     if spec.threads is not None:
         import torch
 

@@ -2,12 +2,17 @@
 
 A run arrives in two steps, so the pair grid can be painted as soon as the model has run:
 
-1. ``analyse`` turns a recording into a ``TextAnalysis`` holding each layer's head mean and the
-   text's word units for link scores (cheap);
+1. ``analyse`` turns a recording into a ``TextAnalysis`` (cheap); a head's grid, a layer's head
+   mean and the text's word units for link scores are computed when first asked for;
 2. ``summarise`` adds the re-derivation check and the per-head metrics of
-   ``viewer.core.headstats`` for this one text (the costly part for long texts), as a new
+   ``viewer.core.headstats`` for this one text (the costly part for long texts), and for a long
+   text every head's overview, all in one pass over each layer's probabilities, as a new
    ``TextAnalysis`` with the *same* recording, so panes that depend only on the recording keep
    what they drew.
+
+A text of up to ``DENSE_TOKENS`` tokens is drawn cell by cell (``grid``); a longer one as an
+overview of pooled blocks (``overview``, ``viewer.core.overview``), with exact cells computed for
+the part a zoomed view shows (``cells``). Nothing here holds every head's T × T at once.
 
 Everything the GUI thread later needs per selection is stored here or a cheap slice of it, so a
 selection change never does heavy work on the GUI thread.
@@ -23,6 +28,7 @@ from viewer.core.attention import CheckResult, check_recording
 from viewer.core.headstats import METRICS as STAT_METRICS
 from viewer.core.headstats import HeadStats, HeadSummary
 from viewer.core.links import PairTokens, link_scores, text_words, word_token_indices
+from viewer.core.overview import DENSE_TOKENS, Overview, OverviewBuilder, head_overview
 from viewer.core.recording import Recording
 
 
@@ -90,14 +96,53 @@ class TextAnalysis:
             units = self._cache["units"] = word_units(self.recording)
         return units
 
+    @property
+    def dense(self) -> bool:
+        """Whether the text is drawn cell by cell (else as an overview)."""
+        return self.recording.n_tokens <= DENSE_TOKENS
+
     def head_mean(self, layer: int) -> np.ndarray:
         """(T, T) float32 head-mean attention of one layer (accumulated in float64)."""
         key = ("mean", layer)
         mean = self._cache.get(key)
         if mean is None:
-            probs = self.recording.probs[layer]
-            mean = self._cache[key] = probs.mean(axis=0, dtype=np.float64).astype(np.float32)
+            mean = self._cache[key] = self.cells(layer, None, slice(0, self.recording.n_tokens))
         return mean
+
+    def cells(self, layer: int, head: int | None, rows: slice, cols: slice | None = None) -> np.ndarray:
+        """(rows, cols) float32 exact attention of one head, or the head mean, for a part of
+        the grid (a zoomed view of a long text); computed by blocks of rows."""
+        scores = self.recording.layer(layer)
+        cols = cols or slice(0, self.recording.n_tokens)
+        out = np.empty((rows.stop - rows.start, cols.stop - cols.start), dtype=np.float32)
+        heads = None if head is None else slice(head, head + 1)
+        for part in scores.row_blocks(rows, heads=scores.n_heads if head is None else 1):
+            block = scores.rows(part, heads)  # (h, b, T) float64
+            out[part.start - rows.start : part.stop - rows.start] = block[:, :, cols].mean(axis=0)
+        return out
+
+    def overview(self, layer: int, head: int | None) -> Overview:
+        """The pooled overview of one head (or the head mean, ``head`` None): from the summary
+        pass when it has run, else computed now (one head, or the layer's head mean)."""
+        overviews = self._cache.get("overviews")
+        if overviews is not None:
+            return overviews[layer][head]
+        key = ("overview", layer, head)
+        view = self._cache.get(key)
+        if view is None:
+            scores = self.recording.layer(layer)
+            view = self._cache[key] = (
+                head_overview(scores, head) if head is not None else mean_overview(scores)
+            )
+        return view
+
+    def query_rows(self, i: int) -> np.ndarray:
+        """(L, H, T) float64 every layer's and head's attention from query row i (cached)."""
+        key = ("rows", i)
+        rows = self._cache.get(key)
+        if rows is None:
+            rows = self._cache[key] = self.recording.query_rows(i)
+        return rows
 
     @property
     def summarised(self) -> bool:
@@ -111,10 +156,15 @@ class TextAnalysis:
         return getattr(self.heads, name)
 
     def grid(self, layer: int, head: int | None) -> np.ndarray:
-        """(T, T) attention of one head, or the layer's head mean when ``head`` is None."""
+        """(T, T) attention of one head, or the layer's head mean when ``head`` is None (texts
+        of up to ``DENSE_TOKENS`` tokens; longer ones are read by ``overview`` and ``cells``)."""
         if head is None:
             return self.head_mean(layer)
-        return self.recording.probs[layer, head]
+        key = ("grid", layer, head)
+        grid = self._cache.get(key)
+        if grid is None:
+            grid = self._cache[key] = self.cells(layer, head, slice(0, self.recording.n_tokens))
+        return grid
 
 
 def analyse(
@@ -137,10 +187,44 @@ def summarise(analysis: TextAnalysis, threads: int | None = None) -> TextAnalysi
     ``threads`` is passed to the check (the window uses 1: the render thread needs the other
     core to draw the new run while this runs)."""
     rec = analysis.recording
-    check = check_recording(rec, threads=threads)
     stats = HeadStats(rec.n_layers, rec.n_heads)
-    stats.add(rec.probs, rec.special, rec.causal, visible=rec.key_masks())
+    long_text = not analysis.dense
+    builders: dict[int, tuple[OverviewBuilder, OverviewBuilder]] = {}
+
+    def consumers(layer: int) -> dict:
+        special = rec.special
+        more = {"heads": [lambda block, layer=layer: stats.add_block(layer, block, special)]}
+        if long_text:
+            heads = OverviewBuilder(rec.n_heads, rec.n_tokens)
+            mean = OverviewBuilder(1, rec.n_tokens)
+            builders[layer] = (heads, mean)
+            more["heads"].append(heads.add)
+            more["mean"] = [mean.add]
+        return more
+
+    check = check_recording(rec, threads=threads, consumers=consumers)
+    stats.count_text()
+    if long_text:
+        overviews = {}
+        for layer, (heads, mean) in builders.items():
+            done = heads.done()
+            views = {
+                h: Overview(done.size, done.n_tokens, done.maximum[h : h + 1], done.mean[h : h + 1])
+                for h in range(rec.n_heads)
+            }
+            views[None] = mean.done()
+            overviews[layer] = views
+        analysis._cache["overviews"] = overviews
     return replace(analysis, check=check, heads=stats.summary())
+
+
+def mean_overview(scores) -> Overview:
+    """The overview of a layer's head mean, block by block of rows (``viewer.core.overview``)."""
+    builder = OverviewBuilder(1, scores.n_tokens)
+    from viewer.core.attention import layer_pass
+
+    layer_pass(scores, mean_consumers=[builder.add])
+    return builder.done()
 
 
 # -- link scores ---------------------------------------------------------------------------------
@@ -158,12 +242,14 @@ def pair_tokens_for(analysis: TextAnalysis, source: int, targets: list[int]) -> 
 def per_head_link(analysis: TextAnalysis, source: int, target: int) -> np.ndarray:
     """(L, H) link score from the source's word to the target's word in every head."""
     tokens = pair_tokens_for(analysis, source, [target])
-    return link_scores(analysis.recording.probs, tokens)[0]
+    return link_scores(analysis.query_rows(int(tokens.source[0])), tokens)[0]
 
 
 def unit_links(analysis: TextAnalysis, layer: int, head: int | None, source: int) -> np.ndarray:
     """(K units,) link score from the source's word to every unit, in one head or the mean."""
     u = analysis.units
     s = u.first_token(source)
-    row = analysis.grid(layer, head)[s].astype(np.float64)  # (T,) attention from the source
+    scores = analysis.recording.layer(layer)
+    row = scores.row(s)  # (H, T) float64 attention from the source
+    row = row.mean(axis=0) if head is None else row[head]
     return np.array([row[idx].sum() for idx in u.tokens])

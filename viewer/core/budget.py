@@ -1,0 +1,124 @@
+"""The memory budget: what recording a batch of texts will take, estimated before anything is
+allocated, so that a text too long for this machine is refused in one line instead of taking the
+machine down.
+
+The estimate adds up the arrays a pass allocates beyond the loaded model (B texts padded to T
+tokens; L layers, H query heads, G key/value heads, d head size, D hidden size, I MLP width, V
+the vocabulary of a language-model head; 4 bytes a float32, 8 a float64):
+
+- **forward**: one layer's activations at a time (the model runs without gradients): the hidden
+  states and their norms, the q/k/v projections and the heads' output, the MLP's hidden layer
+  (gated MLPs hold two); the eager kernel also holds the B·H·T² scores and probabilities of a
+  layer; a causal LM's logits at the last token of each text (B·V);
+- **captures**: the layer handed to the sink, per text its q, k, v and head outputs as numpy
+  arrays, and the temporaries of applying rotary positions;
+- **kept**: what a recording keeps over all layers (q, k, v and head outputs), and the model's
+  own probabilities where they are asked for (twice, while the model's own list is copied);
+- **derived**: what re-deriving one layer's probabilities holds: its keys in float64, the
+  blocks of scores of every thread, and in the window the overviews of every head.
+
+The coefficients (how many copies of each array live at once) were measured against the peak
+resident memory of real passes, in ``tests/benchmarks/bench_long.py``; ``tests/core`` and
+``tests/model`` hold the estimate to within 25% of a measured peak.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from viewer.core.overview import OVERVIEW_CELLS
+from viewer.core.scores import BLOCK_ENTRIES
+
+F32, F64 = 4, 8
+HIDDEN_COPIES = 6  # residual, attention output, norms, MLP output of one layer, at once
+PROJECTION_COPIES = 3  # q/k/v as projected, split into heads, rotated
+ROTARY_COPIES = 4  # x·cos, rotate_half(x), its concatenation, the sum (numpy temporaries)
+EAGER_COPIES = 3  # scores, softmax, the mask added in place or broadcast
+BLOCK_COPIES = 6  # scores, probabilities, entropy terms and products of one block
+OWN_PROB_COPIES = 2  # the model's output_attentions and the recording's copy
+
+
+@dataclass(frozen=True)
+class ModelSize:
+    """The sizes of a checkpoint that the memory of a pass depends on."""
+
+    layers: int  # L
+    heads: int  # H
+    kv_heads: int  # G
+    head_dim: int  # d
+    hidden: int  # D
+    mlp: int  # I
+    vocabulary: int = 0  # V of a causal LM head (0: no per-token logits are kept)
+    gated_mlp: bool = False
+    window_layers: int = 0  # layers whose rows see a bounded window
+    window: int = 0  # the keys such a row sees
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """Bytes a pass will allocate, by part, and their sum at the peak."""
+
+    forward: int
+    captures: int
+    kept: int
+    derived: int
+
+    @property
+    def total(self) -> int:
+        return self.forward + self.captures + self.kept + self.derived
+
+
+def estimate(
+    size: ModelSize,
+    lengths: list[int],
+    *,
+    keep: bool,
+    own_probs: bool,
+    eager: bool,
+    derive: bool = True,
+    overview: bool = False,
+    threads: int = 2,
+) -> Estimate:
+    """What recording (``keep``) or streaming (a check, a set report) texts of ``lengths``
+    tokens in one batch will allocate beyond the loaded model."""
+    b, t = len(lengths), max(lengths, default=0)
+    s = size
+    tokens = b * t
+    proj = (s.heads + 2 * s.kv_heads) * s.head_dim
+    forward = F32 * tokens * (HIDDEN_COPIES * s.hidden + PROJECTION_COPIES * proj + s.heads * s.head_dim)
+    forward += F32 * tokens * s.mlp * (3 if s.gated_mlp else 2)
+    if eager:
+        forward += F32 * EAGER_COPIES * b * s.heads * t * t
+    forward += F32 * b * s.vocabulary
+    per_layer = (2 * s.heads + 2 * s.kv_heads) * s.head_dim  # q, k, v, head outputs per token
+    captures = F32 * sum(lengths) * (per_layer + ROTARY_COPIES * (s.heads + s.kv_heads) * s.head_dim)
+    kept = 0
+    if keep:
+        kept += F32 * s.layers * sum(lengths) * per_layer
+    probs = F32 * s.layers * s.heads * sum(n * n for n in lengths)
+    if own_probs:
+        kept += OWN_PROB_COPIES * probs if keep else probs // max(1, s.layers)
+    derived = 0
+    if derive:
+        longest = max(lengths, default=0)
+        derived = F64 * s.kv_heads * longest * s.head_dim + F64 * threads * BLOCK_COPIES * BLOCK_ENTRIES
+        if overview:
+            cells = min(OVERVIEW_CELLS, longest) ** 2
+            derived += 2 * F64 * s.layers * (s.heads + 1) * cells
+    return Estimate(int(forward), int(captures), int(kept), int(derived))
+
+
+def longest_that_fits(fits, most: int) -> int:
+    """The largest length n <= ``most`` for which ``fits(n)`` (a test falling with n), or 0."""
+    lo, hi = 0, most
+    while lo < hi:
+        mid = (lo + hi + 1) // 2
+        if fits(mid):
+            lo = mid
+        else:
+            hi = mid - 1
+    return lo
+
+
+def gigabytes(n: int) -> str:
+    return f"{n / 2**30:.1f} GB"

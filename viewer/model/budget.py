@@ -1,0 +1,108 @@
+"""The memory budget of a pass, checked before the model runs (``viewer.core.budget``).
+
+The budget is the memory the system reports available (psutil), less a reserve for everything
+else the process and the desktop need, or ``HEADLIGHT_MEMORY`` when that is set and smaller (for
+example ``HEADLIGHT_MEMORY=4G``: a user may keep Headlight within a share of the machine). A
+pass whose estimate does not fit is refused in one line naming the estimate, the budget and
+the longest length that fits.
+"""
+
+from __future__ import annotations
+
+import os
+from typing import Any
+
+import psutil
+
+from viewer.core.budget import Estimate, ModelSize, estimate, gigabytes, longest_that_fits
+from viewer.errors import HeadlightError
+from viewer.model.families import config_value
+
+RESERVE = 512 << 20
+"""Bytes left to everything else when the budget is what the system reports available."""
+
+GATED_MLP = {"llama", "qwen2", "qwen3", "mistral", "gemma", "gemma2", "gemma3_text", "phi3", "modernbert"}
+
+
+class MemoryBudgetError(HeadlightError):
+    """A pass that does not fit the memory budget (the message names the length that does)."""
+
+
+def model_size(loaded: Any) -> ModelSize:
+    config, geometry = loaded.config, loaded.geometry
+    hidden = int(
+        config_value(config, "hidden_size", "dim", "n_embd", default=geometry.n_heads * geometry.head_dim)
+    )
+    mlp = config_value(config, "intermediate_size", "hidden_dim", "n_inner", "ffn_dim", default=None)
+    windows = loaded.tables.windows
+    bounded = [] if windows is None else [w for w in windows.tolist() if min(w) >= 0]
+    return ModelSize(
+        layers=loaded.n_layers,
+        heads=geometry.n_heads,
+        kv_heads=geometry.n_kv_heads,
+        head_dim=geometry.head_dim,
+        hidden=hidden,
+        mlp=int(mlp) if mlp else 4 * hidden,
+        vocabulary=int(getattr(config, "vocab_size", 0) or 0) if loaded.head_kind == "causal-lm" else 0,
+        gated_mlp=getattr(config, "model_type", "") in GATED_MLP,
+        window_layers=len(bounded),
+        window=max((a + b + 1 for a, b in bounded), default=0),
+    )
+
+
+def parse_size(text: str) -> int:
+    """Bytes from "4G", "512M", "2.5GB" or a plain number of bytes."""
+    value = text.strip().upper().removesuffix("B")
+    scale = {"K": 1 << 10, "M": 1 << 20, "G": 1 << 30, "T": 1 << 40}.get(value[-1:], 1)
+    try:
+        number = float(value[:-1] if scale > 1 else value)
+    except ValueError:
+        raise HeadlightError(f"HEADLIGHT_MEMORY={text!r} is not a size such as 4G or 512M") from None
+    if number <= 0:
+        raise HeadlightError(f"HEADLIGHT_MEMORY={text!r} must be positive")
+    return int(number * scale)
+
+
+def budget() -> int:
+    """Bytes a pass may allocate now."""
+    free = max(0, psutil.virtual_memory().available - RESERVE)
+    limit = os.environ.get("HEADLIGHT_MEMORY")
+    return min(free, parse_size(limit)) if limit else free
+
+
+def pass_estimate(
+    loaded: Any, lengths: list[int], *, keep: bool, own_probs: bool, overview: bool = False
+) -> Estimate:
+    eager = own_probs or loaded.kernel == "eager"
+    return estimate(
+        model_size(loaded), lengths, keep=keep, own_probs=own_probs, eager=eager, overview=overview
+    )
+
+
+def require_fits(
+    loaded: Any, lengths: list[int], *, keep: bool, own_probs: bool, overview: bool = False
+) -> Estimate:
+    """The estimate of a pass over texts of ``lengths`` tokens; ``MemoryBudgetError`` when it
+    does not fit the budget."""
+    need = pass_estimate(loaded, lengths, keep=keep, own_probs=own_probs, overview=overview)
+    have = budget()
+    if need.total <= have:
+        return need
+    longest = max(lengths)
+    if len(lengths) > 1:
+        raise MemoryBudgetError(
+            f"a batch of {len(lengths)} texts of up to {longest:,} tokens needs about "
+            f"{gigabytes(need.total)} and {gigabytes(have)} is free; use a smaller --batch-size"
+        )
+
+    def fits(n: int) -> bool:
+        own = own_probs and n <= longest
+        return pass_estimate(loaded, [n], keep=keep, own_probs=own, overview=overview).total <= have
+
+    most = longest_that_fits(fits, longest)
+    what = "recording" if keep else "running"
+    advice = f"at most {most:,} tokens fit (cut with --max-tokens {most})" if most >= 2 else "nothing fits"
+    raise MemoryBudgetError(
+        f"{what} {longest:,} tokens needs about {gigabytes(need.total)} and {gigabytes(have)} is "
+        f"free; {advice}"
+    )
