@@ -2,9 +2,9 @@
 allocated, so that a text too long for this machine is refused in one line instead of taking the
 machine down.
 
-The estimate adds up the arrays a pass allocates beyond the loaded model (B texts padded to T
+The estimate counts the arrays a pass allocates beyond the loaded model (B texts padded to T
 tokens; L layers, H query heads, G key/value heads, d head size, D hidden size, I MLP width, V
-the vocabulary of a language-model head; 4 bytes a float32, 8 a float64):
+the vocabulary of a language-model head; 4 bytes a float32, 8 a float64), in four parts:
 
 - **forward**: one layer's activations at a time (the model runs without gradients): the hidden
   states and their norms, the q/k/v projections and the heads' output, the MLP's hidden layer
@@ -17,9 +17,17 @@ the vocabulary of a language-model head; 4 bytes a float32, 8 a float64):
 - **derived**: what re-deriving one layer's probabilities holds: its keys in float64, the
   blocks of scores of every thread, and in the window the overviews of every head.
 
+They do not all live at once. The kept arrays grow to their full size by the end of the pass;
+the forward's activations come and go layer by layer; a layer is handed to the sink (captured,
+then re-derived by a check or a report) while the model waits at that layer's output
+projection, with about half of a layer's activations alive (``ATTENTION_SHARE``). So the peak is
+
+    kept + max(forward, ATTENTION_SHARE · forward + captures + derived) + overviews.
+
 The coefficients (how many copies of each array live at once) were measured against the peak
-resident memory of real passes, in ``tests/benchmarks/bench_long.py``; ``tests/core`` and
-``tests/model`` hold the estimate to within 25% of a measured peak.
+resident memory of real passes (``tests/benchmarks/bench_long.py`` prints the estimate against
+the measurement); ``tests/model/test_budget.py`` holds the estimate of a recording to within 25%
+of a measured peak at three lengths.
 """
 
 from __future__ import annotations
@@ -36,6 +44,7 @@ ROTARY_COPIES = 4  # x·cos, rotate_half(x), its concatenation, the sum (numpy t
 EAGER_COPIES = 3  # scores, softmax, the mask added in place or broadcast
 BLOCK_COPIES = 6  # scores, probabilities, entropy terms and products of one block
 OWN_PROB_COPIES = 2  # the model's output_attentions and the recording's copy
+ATTENTION_SHARE = 0.5  # of a layer's activations alive while its captures go to the sink
 
 
 @dataclass(frozen=True)
@@ -62,10 +71,12 @@ class Estimate:
     captures: int
     kept: int
     derived: int
+    overview: int = 0
 
     @property
     def total(self) -> int:
-        return self.forward + self.captures + self.kept + self.derived
+        sink = int(ATTENTION_SHARE * self.forward) + self.captures + self.derived
+        return self.kept + max(self.forward, sink) + self.overview
 
 
 def estimate(
@@ -98,14 +109,14 @@ def estimate(
     probs = F32 * s.layers * s.heads * sum(n * n for n in lengths)
     if own_probs:
         kept += OWN_PROB_COPIES * probs if keep else probs // max(1, s.layers)
-    derived = 0
-    if derive:
-        longest = max(lengths, default=0)
-        derived = F64 * s.kv_heads * longest * s.head_dim + F64 * threads * BLOCK_COPIES * BLOCK_ENTRIES
-        if overview:
-            cells = min(OVERVIEW_CELLS, longest) ** 2
-            derived += 2 * F64 * s.layers * (s.heads + 1) * cells
-    return Estimate(int(forward), int(captures), int(kept), int(derived))
+    derived = views = 0
+    longest = max(lengths, default=0)
+    if derive:  # keys and values in float64, blocks of scores of every thread
+        derived = 2 * F64 * s.kv_heads * longest * s.head_dim + F64 * threads * BLOCK_COPIES * BLOCK_ENTRIES
+    if overview:  # block max and mean of every head and the head mean, float32, and a layer's builder
+        cells = min(OVERVIEW_CELLS, longest) ** 2
+        views = 2 * F32 * s.layers * (s.heads + 1) * cells + threads * 2 * F64 * (s.heads + 1) * cells
+    return Estimate(int(forward), int(captures), int(kept), int(derived), int(views))
 
 
 def longest_that_fits(fits, most: int) -> int:
