@@ -67,11 +67,13 @@ def _run_options(args: argparse.Namespace):
 
 
 def _open(args: argparse.Namespace):
+    from viewer.model.folders import check_folder
+
+    base, allow_pickle = getattr(args, "base", None), getattr(args, "allow_pickle", False)
+    check_folder(args.model, base, allow_pickle)  # a bad folder is refused before torch is imported
     from viewer.model.loader import open_model
 
-    return open_model(
-        args.model, base=getattr(args, "base", None), allow_pickle=getattr(args, "allow_pickle", False)
-    )
+    return open_model(args.model, base=base, allow_pickle=allow_pickle)
 
 
 # -- commands --------------------------------------------------------------------------------
