@@ -10,7 +10,9 @@ all three in one line, before anything else sees the data:
   configs write ``model_max_length`` as 10³⁰);
 - nesting deeper than ``max_depth`` arrays and objects (``MAX_DEPTH`` by default; model configs
   nest 3 or 4 levels);
-- text that is not JSON, or a file larger than ``max_bytes``.
+- text that is not JSON, or a file larger than ``max_bytes``;
+- a string holding a lone surrogate (``"\\ud800"``): JSON escapes can write one, but it is not
+  Unicode text, and a tokenizer cannot encode it (``check_text`` says so for any text).
 
 Every refusal is a ``HeadlightError`` whose message starts with ``what`` (e.g. "config.json in
 /models/router").
@@ -19,6 +21,7 @@ Every refusal is a ``HeadlightError`` whose message starts with ``what`` (e.g. "
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 from typing import Any
 
@@ -29,8 +32,40 @@ MAX_DEPTH = 32
 MAX_FILE_BYTES = 16 * 2**20
 
 
+# a lone surrogate in parsed JSON can only come from a \uD800-\uDFFF escape in its text
+_SURROGATE_ESCAPE = re.compile(r"\\u[dD][89a-fA-F][0-9a-fA-F]{2}")
+
+
 class _Refused(ValueError):
     pass
+
+
+def check_text(text: str, what: str) -> str:
+    """``text`` when it is Unicode text; a one-line ``HeadlightError`` naming ``what`` when it
+    holds a lone surrogate (from a JSON escape, or from bytes of a command-line argument that
+    are not UTF-8), which no tokenizer can encode."""
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        bad = text[exc.start]
+        raise HeadlightError(
+            f"{what} holds {bad!r}, a lone surrogate (U+{ord(bad):04X}), which is not Unicode text"
+        ) from None
+    return text
+
+
+def _strings(data: Any) -> Any:
+    """Every string of parsed JSON, keys included, walked without recursion."""
+    stack = [data]
+    while stack:
+        node = stack.pop()
+        if isinstance(node, str):
+            yield node
+        elif isinstance(node, dict):
+            stack.extend(node)
+            stack.extend(node.values())
+        elif isinstance(node, list):
+            stack.extend(node)
 
 
 def _bounded_int(digits: str) -> int:
@@ -56,7 +91,7 @@ def depth(data: Any) -> int:
     return deepest
 
 
-def loads(text: str | bytes, what: str, *, max_depth: int = MAX_DEPTH) -> Any:
+def loads(text: str, what: str, *, max_depth: int = MAX_DEPTH) -> Any:
     """Parse ``text``; a one-line ``HeadlightError`` naming ``what`` for anything refused."""
     try:
         data = json.loads(text, parse_int=_bounded_int)
@@ -65,11 +100,15 @@ def loads(text: str | bytes, what: str, *, max_depth: int = MAX_DEPTH) -> Any:
     except RecursionError:
         raise HeadlightError(f"{what} is refused: it is nested too deeply") from None
     except json.JSONDecodeError as exc:
-        raise HeadlightError(f"{what} is not valid JSON ({exc.msg}, line {exc.lineno})") from None
+        at = f"column {exc.colno}" if exc.lineno == 1 else f"line {exc.lineno}, column {exc.colno}"
+        raise HeadlightError(f"{what} is not valid JSON ({exc.msg} at {at})") from None
     except (UnicodeDecodeError, ValueError) as exc:
         raise HeadlightError(f"{what} is not valid JSON ({exc})") from None
     if depth(data) > max_depth:
         raise HeadlightError(f"{what} is refused: it nests more than {max_depth} levels deep")
+    if _SURROGATE_ESCAPE.search(text):
+        for string in _strings(data):
+            check_text(string, what)
     return data
 
 
