@@ -17,6 +17,7 @@ import re
 import shutil
 import tempfile
 import unicodedata
+from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
@@ -79,6 +80,34 @@ def json_text(data: Any) -> str:
 def write_json(path: str | os.PathLike, data: Any, *, force: bool = True) -> Path:
     """Write JSON atomically (NaN is not JSON: callers turn it into null first)."""
     return atomic_write_text(path, json_text(data), force=force)
+
+
+def check_output(target: str | os.PathLike, inputs: Iterable[str | os.PathLike | None], what: str) -> Path:
+    """Check an output file before the work that fills it: its folder exists and is writable,
+    it is not a folder, and it is none of the ``inputs`` (the files and folders a command
+    reads) nor inside an input folder. ``what`` names the option in the message (``--json``).
+    """
+    path = Path(target).expanduser()
+    folder = path.parent if str(path.parent) else Path(".")
+    if path.is_dir():
+        raise HeadlightError(f"{what} {path} is a folder; give a file name")
+    if not folder.is_dir():
+        raise HeadlightError(f"cannot write {what} {path}: folder {folder} does not exist")
+    if not os.access(folder, os.W_OK | os.X_OK):
+        raise HeadlightError(f"cannot write {what} {path}: folder {folder} is not writable")
+    resolved = path.resolve()
+    for given in inputs:
+        if given is None:
+            continue
+        source = Path(given).expanduser()
+        if not source.exists():
+            continue
+        if source.is_dir():
+            if resolved.is_relative_to(source.resolve()):
+                raise HeadlightError(f"{what} {path} would write into {source}, a folder this command uses")
+        elif path.exists() and os.path.samefile(path, source):
+            raise HeadlightError(f"{what} {path} is an input of this command; choose another file")
+    return path
 
 
 def sanitise_name(text: str, *, max_chars: int = 40, fallback: str = "text") -> str:
