@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import importlib.util
 import os
+import shutil
 import tempfile
 from pathlib import Path
 
@@ -12,8 +13,14 @@ import pytest
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 os.environ.setdefault("HF_HUB_OFFLINE", "1")
 # Run folders (and anything else cached) go to a fresh folder of this test run, never to the
-# user's ~/.cache, whatever the fixture scope of the test that writes them.
-os.environ["XDG_CACHE_HOME"] = tempfile.mkdtemp(prefix="headlight-tests-cache-")
+# user's ~/.cache, whatever the fixture scope of the test that writes them; the folder is
+# removed when the run ends.
+CACHE = tempfile.mkdtemp(prefix="headlight-tests-cache-")
+os.environ["XDG_CACHE_HOME"] = CACHE
+
+
+def pytest_unconfigure(config) -> None:
+    shutil.rmtree(CACHE, ignore_errors=True)
 
 
 def minilm_folder() -> Path:

@@ -14,12 +14,15 @@ from __future__ import annotations
 import json
 import os
 import re
+import secrets
 import shutil
 import tempfile
 import unicodedata
 from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
+
+from filelock import FileLock, Timeout
 
 from viewer.errors import HeadlightError
 
@@ -123,12 +126,21 @@ class StagedFolder:
 
     ``with StagedFolder(out, force) as tmp: ...write into tmp...`` leaves either the complete
     new folder at `out` or, on any error, the old state untouched.
+
+    The staging folder ``.<name>.staging-<token>`` is held under a lock (``filelock``, on
+    ``.<name>.staging-<token>.lock`` beside it) for as long as it is being written. A process
+    that is killed meanwhile leaves the folder behind but not the lock (the kernel releases it
+    with the process), so the next export to the same place removes every staging folder whose
+    lock it can take: those are the leftovers of killed exports, never one that is being
+    written. Also removed then: a ``.<name>.old`` a killed swap left, and staging folders of
+    earlier versions (``.<name>.`` and eight random characters, made by ``tempfile``).
     """
 
     def __init__(self, target: str | os.PathLike, force: bool = False):
         self.target = Path(target)
         self.force = force
         self.tmp: Path | None = None
+        self.lock: FileLock | None = None
 
     def __enter__(self) -> Path:
         parent = self.target.parent if str(self.target.parent) else Path(".")
@@ -138,15 +150,35 @@ class StagedFolder:
             raise HeadlightError(f"{self.target} already exists; pass --force to replace it")
         if self.target.exists() and not self.target.is_dir():
             raise HeadlightError(f"{self.target} exists and is not a folder")
+        remove_stale_staging(self.target)
+        tmp = parent / f".{self.target.name}.staging-{secrets.token_hex(6)}"
         try:
-            self.tmp = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.", dir=parent))
-        except OSError as exc:
-            raise _fail(self.target, exc) from None
-        return self.tmp
+            self.lock = FileLock(_lock_path(tmp))
+            self.lock.acquire(timeout=0)
+            tmp.mkdir(mode=0o700)
+        except (OSError, Timeout) as exc:
+            self._unlock()
+            raise _fail(self.target, exc if isinstance(exc, OSError) else OSError("locked")) from None
+        self.tmp = tmp
+        return tmp
+
+    def _unlock(self) -> None:
+        if self.lock is not None:
+            if self.lock.is_locked:
+                self.lock.release()
+            Path(self.lock.lock_file).unlink(missing_ok=True)
+            self.lock = None
 
     def __exit__(self, exc_type, exc, tb) -> None:
         assert self.tmp is not None
-        if exc_type is not None:
+        try:
+            self._swap(exc_type is not None)
+        finally:
+            self._unlock()
+
+    def _swap(self, failed: bool) -> None:
+        assert self.tmp is not None
+        if failed:
             shutil.rmtree(self.tmp, ignore_errors=True)
             return
         old = None
@@ -164,3 +196,47 @@ class StagedFolder:
             raise _fail(self.target, e) from None
         if old is not None:
             shutil.rmtree(old, ignore_errors=True)
+
+
+def _lock_path(staging: Path) -> Path:
+    return staging.with_name(staging.name + ".lock")
+
+
+def remove_stale_staging(target: Path) -> list[Path]:
+    """Remove the staging folders of ``target`` that no running export holds (see
+    ``StagedFolder``); returns what was removed."""
+    parent = target.parent if str(target.parent) else Path(".")
+    name = re.escape(target.name)
+    staging = re.compile(rf"\.{name}\.staging-[0-9a-f]+")
+    legacy = re.compile(rf"\.{name}\.[a-z0-9_]{{8}}")
+    removed: list[Path] = []
+    live = False
+    try:
+        entries = list(parent.iterdir())
+    except OSError:
+        return removed
+    for entry in entries:
+        if staging.fullmatch(entry.name) and entry.is_dir():
+            lock = FileLock(_lock_path(entry))
+            try:
+                lock.acquire(timeout=0)
+            except (Timeout, OSError):
+                live = True  # an export in progress
+                continue
+            try:
+                shutil.rmtree(entry, ignore_errors=True)
+                removed.append(entry)
+            finally:
+                lock.release()
+                _lock_path(entry).unlink(missing_ok=True)
+        elif legacy.fullmatch(entry.name) and entry.is_dir():
+            shutil.rmtree(entry, ignore_errors=True)
+            removed.append(entry)
+    old = target.with_name(f".{target.name}.old")
+    if not live and old.is_dir():
+        if target.exists():
+            shutil.rmtree(old, ignore_errors=True)
+        else:  # killed between the two renames of a swap: the old folder was the target
+            os.replace(old, target)
+        removed.append(old)
+    return removed
