@@ -17,6 +17,10 @@ os.environ.setdefault("HF_HUB_OFFLINE", "1")
 # removed when the run ends.
 CACHE = tempfile.mkdtemp(prefix="headlight-tests-cache-")
 os.environ["XDG_CACHE_HOME"] = CACHE
+# and so do the scratch folders of the libraries (a Dask cluster's, torch's compiler cache),
+# which would otherwise be left in the temporary folder
+os.environ["DASK_TEMPORARY_DIRECTORY"] = os.path.join(CACHE, "dask")
+os.environ["TORCHINDUCTOR_CACHE_DIR"] = os.path.join(CACHE, "torchinductor")
 
 
 def pytest_unconfigure(config) -> None:

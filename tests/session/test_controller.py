@@ -104,6 +104,8 @@ def test_a_run_without_a_model_or_text_is_refused_with_one_line():
     c.finished("open", info())
     c.run_text("   ")
     assert "empty" in view.errors[-1]
+    c.run_text("the chain \ud800 slips")  # pasted half of a UTF-16 pair: not Unicode text
+    assert "lone surrogate" in view.errors[-1] and "\n" not in view.errors[-1]
     assert "run" not in worker.kinds()
 
 

@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import Any, Protocol
 
 from viewer.errors import HeadlightError
+from viewer.safejson import check_text
 from viewer.session import jobs
 from viewer.session import session_file as sessions
 from viewer.session.preload import load_figures
@@ -154,6 +155,11 @@ class Controller:
             return
         if not text.strip():
             self.view.show_error("the text is empty; type or paste a text first")
+            return
+        try:
+            check_text(text, "the text")  # a lone surrogate (pasted) no tokenizer can encode
+        except HeadlightError as exc:
+            self.view.show_error(str(exc))
             return
         if self.view.editor_text() != text:
             self.view.set_editor_text(text)
