@@ -84,13 +84,9 @@ def _run_options(args: argparse.Namespace):
 
 
 def _open(args: argparse.Namespace):
-    from viewer.model.folders import check_folder
-
-    base, allow_pickle = getattr(args, "base", None), getattr(args, "allow_pickle", False)
-    check_folder(args.model, base, allow_pickle)  # a bad folder is refused before torch is imported
     from viewer.model.loader import open_model
 
-    loaded = open_model(args.model, base=base, allow_pickle=allow_pickle)
+    loaded = open_model(args.model, base=args.base, allow_pickle=args.allow_pickle)
     if getattr(args, "json", None):  # an adapter's base folder is known now: an input too
         check_output(args.json, [loaded.folder, loaded.base_folder, *loaded.weight_files], "--json")
     return loaded
@@ -111,6 +107,12 @@ def _check_arguments(args: argparse.Namespace) -> None:
             check_text(value, f"--{name}")
     if getattr(args, "json", None):
         check_output(args.json, [getattr(args, n, None) for n in INPUT_OPTIONS], "--json")
+    if getattr(args, "command", None) and getattr(args, "model", None):
+        from viewer.model.folders import check_folder
+
+        # every check the loader makes but the config class's: a bad folder is refused in a
+        # fraction of a second, before torch is imported (the loader makes them all again)
+        check_folder(args.model, args.base, args.allow_pickle)
 
 
 # -- commands --------------------------------------------------------------------------------
