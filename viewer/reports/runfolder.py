@@ -39,6 +39,7 @@ from typing import Any
 
 import numpy as np
 from filelock import FileLock, Timeout
+from tqdm import tqdm
 
 from viewer import __version__
 from viewer.errors import HeadlightError
@@ -190,8 +191,8 @@ def unpack(data: bytes, index: int, items: str | None) -> State:
 
 
 def note(message: str) -> None:
-    """One line on stderr (the command's progress bar shares stderr; the window keeps none)."""
-    print(f"headlight: {' '.join(message.split())}", file=sys.stderr, flush=True)
+    """One line on stderr, written around the command's progress bar (tqdm's own ``write``)."""
+    tqdm.write(f"headlight: {' '.join(message.split())}", file=sys.stderr)
 
 
 class RunFolder:
