@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import importlib.util
 import os
+import shutil
 import tempfile
 from pathlib import Path
 
@@ -12,8 +13,18 @@ import pytest
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 os.environ.setdefault("HF_HUB_OFFLINE", "1")
 # Run folders (and anything else cached) go to a fresh folder of this test run, never to the
-# user's ~/.cache, whatever the fixture scope of the test that writes them.
-os.environ["XDG_CACHE_HOME"] = tempfile.mkdtemp(prefix="headlight-tests-cache-")
+# user's ~/.cache, whatever the fixture scope of the test that writes them; the folder is
+# removed when the run ends.
+CACHE = tempfile.mkdtemp(prefix="headlight-tests-cache-")
+os.environ["XDG_CACHE_HOME"] = CACHE
+# and so do the scratch folders of the libraries (a Dask cluster's, torch's compiler cache),
+# which would otherwise be left in the temporary folder
+os.environ["DASK_TEMPORARY_DIRECTORY"] = os.path.join(CACHE, "dask")
+os.environ["TORCHINDUCTOR_CACHE_DIR"] = os.path.join(CACHE, "torchinductor")
+
+
+def pytest_unconfigure(config) -> None:
+    shutil.rmtree(CACHE, ignore_errors=True)
 
 
 def minilm_folder() -> Path:

@@ -3,6 +3,13 @@
 Exit status: 0 success, 1 a check failed, 2 bad input (a one-line message on stderr).
 Heavy libraries (torch, transformers, Qt) are imported inside the commands that need them, so
 ``headlight --help`` and argument errors answer at once.
+
+``--json FILE`` means the same in every command: also write the command's numbers (for
+``card``, those of ``card.json``) to FILE. It is checked before anything is computed: its
+folder must exist and be writable, and it must be none of the command's inputs (text set,
+link pairs, model, adapter and base folders, the card folder) nor lie inside an input folder.
+A text given on the command line (``--text``, ``--word``) must not be empty and must be
+Unicode text.
 """
 
 from __future__ import annotations
@@ -16,7 +23,7 @@ from pathlib import Path
 from viewer import __version__
 from viewer.core.attention import DEFAULT_TOLERANCE
 from viewer.errors import HeadlightError
-from viewer.files import write_json
+from viewer.files import atomic_write_bytes, check_output, write_json
 from viewer.reports.shards import SHARD_SIZE
 
 DEFAULT_CHECK_TEXT = (
@@ -36,6 +43,16 @@ def _source(args: argparse.Namespace):
     return TextSource(
         Path(args.texts), split=args.split, text_column=args.text_column, label_column=args.label_column
     )
+
+
+def _survey(args: argparse.Namespace):
+    """The text set of ``--texts``, read once so that bad input is reported before the model
+    is opened."""
+    from viewer.reports.textsets import survey
+
+    source = _source(args)
+    survey(source)
+    return source
 
 
 def cores() -> int:
@@ -69,9 +86,9 @@ def _run_options(args: argparse.Namespace):
 def _open(args: argparse.Namespace):
     from viewer.model.loader import open_model
 
-    loaded = open_model(
-        args.model, base=getattr(args, "base", None), allow_pickle=getattr(args, "allow_pickle", False)
-    )
+    loaded = open_model(args.model, base=args.base, allow_pickle=args.allow_pickle)
+    if getattr(args, "json", None):  # an adapter's base folder is known now: an input too
+        check_output(args.json, [loaded.folder, loaded.base_folder, *loaded.weight_files], "--json")
     loaded.text.limit(getattr(args, "max_tokens", None))
     return loaded
 
@@ -81,19 +98,40 @@ def _print_notes(data: dict) -> None:
         print(f"note: {note}")
 
 
+INPUT_OPTIONS = ("model", "base", "texts", "pairs", "out")
+
+
+def _check_arguments(args: argparse.Namespace) -> None:
+    """What can be checked before any work: texts given on the command line and ``--json``."""
+    from viewer.safejson import check_text
+
+    for name in ("text", "word"):
+        value = getattr(args, name, None)
+        if value is not None:
+            if not value.strip():
+                raise HeadlightError(f"--{name} is empty; give the {name} to use")
+            check_text(value, f"--{name}")
+    if getattr(args, "json", None):
+        check_output(args.json, [getattr(args, n, None) for n in INPUT_OPTIONS], "--json")
+    if getattr(args, "command", None) and getattr(args, "model", None):
+        from viewer.model.folders import check_folder
+
+        # every check the loader makes but the config class's: a bad folder is refused in a
+        # fraction of a second, before torch is imported (the loader makes them all again)
+        check_folder(args.model, args.base, args.allow_pickle)
+
+
 # -- commands --------------------------------------------------------------------------------
 
 
 def cmd_check(args: argparse.Namespace) -> int:
     from viewer.reports.runs import check_data
-    from viewer.reports.textsets import survey
 
-    if args.text and args.texts:
+    if args.text is not None and args.texts:
         raise HeadlightError("give either --text or --texts, not both")
-    texts = [args.text or DEFAULT_CHECK_TEXT]
+    texts = [DEFAULT_CHECK_TEXT if args.text is None else args.text]
     if args.texts:
-        texts = _source(args)
-        survey(texts)  # bad input is reported before the model is opened
+        texts = _survey(args)
     loaded = _open(args)
     data = check_data(loaded, texts, args.tolerance, run=_run_options(args))
     print(
@@ -127,11 +165,12 @@ def _grid(title: str, grid, fmt: str = "{:6.3f}") -> str:
 def cmd_heads(args: argparse.Namespace) -> int:
     from viewer.reports.runs import heads_data
 
+    source = _survey(args)
     run = _run_options(args)
     loaded = _open(args)
     data = heads_data(
         loaded,
-        _source(args),
+        source,
         batch_size=args.batch_size,
         importance=not args.skip_importance,
         knockout=args.knockout_heads,
@@ -182,11 +221,12 @@ def cmd_links(args: argparse.Namespace) -> int:
 def cmd_shortcuts(args: argparse.Namespace) -> int:
     from viewer.reports.runs import shortcuts_data
 
+    source = _survey(args)
     run = _run_options(args)
     loaded = _open(args)
     data = shortcuts_data(
         loaded,
-        _source(args),
+        source,
         batch_size=args.batch_size,
         phrases=not args.no_phrases,
         quiet=args.quiet,
@@ -211,11 +251,12 @@ def cmd_shortcuts(args: argparse.Namespace) -> int:
 def cmd_insert(args: argparse.Namespace) -> int:
     from viewer.reports.runs import insertion_data
 
-    loaded = _open(args)
+    source = _survey(args)
     run = _run_options(args)
+    loaded = _open(args)
     data = insertion_data(
         loaded,
-        _source(args),
+        source,
         args.word,
         target=args.target,
         seed=args.seed,
@@ -303,6 +344,8 @@ def cmd_card(args: argparse.Namespace) -> int:
         run=run,
     )
     print(f"card written to {out}/ (card.md, card.json, figures/)")
+    if args.json:  # the numbers of the card, as card.json holds them
+        atomic_write_bytes(args.json, (out / "card.json").read_bytes())
     return 0
 
 
@@ -334,7 +377,11 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument(
             "--base", metavar="DIR", help="base model folder of an adapter folder (when its own is not local)"
         )
-        p.add_argument("--json", metavar="FILE", help="also write the result as JSON")
+        p.add_argument(
+            "--json",
+            metavar="FILE",
+            help="also write the numbers as JSON (checked before the work: not an input, folder writable)",
+        )
         p.add_argument(
             "--max-tokens",
             type=int,
@@ -466,6 +513,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     args.argv = list(sys.argv[1:] if argv is None else argv)
     func = getattr(args, "func", cmd_window)
     try:
+        _check_arguments(args)
         return int(func(args) or 0)
     except HeadlightError as exc:
         print(f"headlight: error: {exc}", file=sys.stderr)

@@ -53,3 +53,25 @@ def test_the_last_session_is_restored_at_start(qtbot, window, tmp_path):
     assert again.state.text == "she fixed it"
     assert again.recent_models() == recent
     again.close()
+
+
+def test_an_unreadable_last_session_starts_the_window_on_the_demo(qtbot, tmp_path):
+    """A last-session file with a 5000-digit integer: the window opens the demo model, says so
+    in one line, and keeps the file aside."""
+    from viewer.session import jobs
+
+    config = tmp_path / "w-config"
+    config.mkdir()
+    (config / "last-session.json").write_text(
+        '{"format": "headlight-session", "version": ' + "9" * 5000 + "}"
+    )
+    window = make_window(qtbot, tmp_path, "w")
+    window.evidence_action.setChecked(False)
+    notes: list[str] = []
+    window.set_status = lambda text: notes.append(text)
+    window.start()
+    qtbot.waitUntil(lambda: window.state.model is not None, timeout=WAIT_MS)
+    assert window.state.model.folder == str(jobs.demo_folder())
+    assert any(n.startswith("last session not restored") for n in notes), notes
+    assert len(list(config.glob("last-session.unreadable-*.json"))) == 1
+    window.close()

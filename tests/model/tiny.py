@@ -141,7 +141,7 @@ DEBERTA = dict(
 def build(kind: str, **overrides):
     """(model, is_encoder) for one family name; overrides go into the config."""
     if kind == "bert":
-        return BertForSequenceClassification(BertConfig(**SMALL, **LABELS, **overrides)), True
+        return BertForSequenceClassification(BertConfig(**{**SMALL, **LABELS, **overrides})), True
     if kind == "bert-bare":
         return BertModel(BertConfig(**SMALL, **overrides)), True
     if kind in ("roberta", "xlm-roberta", "camembert"):

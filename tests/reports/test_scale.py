@@ -288,7 +288,7 @@ def test_run_folders_are_keyed_by_content_and_options_and_hold_no_code(demo, ite
     assert key["model"]["model.safetensors"] == want
     assert key["input"]["sha256"] == hashlib.sha256(texts.read_bytes()).hexdigest()
     for folder in folders:
-        assert sorted(p.name for p in folder.iterdir()) == ["result.npz", "run.json"]
+        assert sorted(p.name for p in folder.iterdir()) == [".lock", "result.npz", "run.json"]
         with np.load(folder / "result.npz", allow_pickle=False) as npz:
             assert all(npz[k].dtype != object for k in npz.files)
     texts.write_text(texts.read_text() + json.dumps({"text": "one more"}) + "\n")

@@ -104,6 +104,8 @@ def test_a_run_without_a_model_or_text_is_refused_with_one_line():
     c.finished("open", info())
     c.run_text("   ")
     assert "empty" in view.errors[-1]
+    c.run_text("the chain \ud800 slips")  # pasted half of a UTF-16 pair: not Unicode text
+    assert "lone surrogate" in view.errors[-1] and "\n" not in view.errors[-1]
     assert "run" not in worker.kinds()
 
 
@@ -174,3 +176,33 @@ def test_unknown_job_kinds_and_failures():
     c.finished("hold", None)  # a job that only needed to run
     c.failed("open", "config.json in /x is not valid JSON")
     assert view.errors == ["config.json in /x is not valid JSON"]
+
+
+BAD_SESSIONS = {
+    "a 5000-digit integer": '{"format": "headlight-session", "version": ' + "9" * 5000 + "}",
+    "100k-deep nesting": '{"format": "headlight-session", "x": ' + "[" * 100_000 + "]" * 100_000 + "}",
+    "bytes that are not text": b"\xff\xfe\x00garbage\x80",
+    "not a session": '{"format": "something-else"}',
+    "a field of the wrong type": '{"format": "headlight-session", "version": 1, "selection": {"layer": -3}}',
+}
+
+
+def test_an_unreadable_last_session_opens_the_demo_and_is_kept_aside(tmp_path):
+    """Whatever the last-session file holds, start-up opens the demo with a one-line note,
+    and the file is moved aside with its bytes intact (not deleted, not left to be saved over)."""
+    for name, content in BAD_SESSIONS.items():
+        folder = tmp_path / name.replace(" ", "-")
+        folder.mkdir()
+        last = folder / "last-session.json"
+        raw = content if isinstance(content, bytes) else content.encode("utf-8")
+        last.write_bytes(raw)
+        c, state, worker, view = make()
+        c.start(last_session=last)
+        assert worker.kinds() == ["figures", "open"], name
+        assert worker.submitted[1][2] == ("main", str(jobs.demo_folder()), None), name
+        assert view.text == DEMO_TEXT
+        (note,) = view.status
+        assert "\n" not in note and note.startswith("last session not restored") and "demo" in note, note
+        assert not last.exists()
+        (kept,) = folder.glob("last-session.unreadable-*.json")
+        assert kept.read_bytes() == raw and kept.name in note, name

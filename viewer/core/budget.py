@@ -97,7 +97,7 @@ def estimate(
     tokens = b * t
     proj = (s.heads + 2 * s.kv_heads) * s.head_dim
     forward = F32 * tokens * (HIDDEN_COPIES * s.hidden + PROJECTION_COPIES * proj + s.heads * s.head_dim)
-    forward += F32 * tokens * s.mlp * (3 if s.gated_mlp else 2)
+    forward += F32 * tokens * s.mlp * (4 if s.gated_mlp else 2)  # gate, up, act(gate), their product
     if eager:
         forward += F32 * EAGER_COPIES * b * s.heads * t * t
     forward += F32 * b * s.vocabulary

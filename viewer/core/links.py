@@ -28,7 +28,6 @@ in the window cover the same sub-tokens.
 
 from __future__ import annotations
 
-import json
 import math
 import re
 from collections.abc import Iterable, Iterator, Sequence
@@ -41,6 +40,7 @@ import numpy as np
 
 from viewer.core.shortcuts import word_key
 from viewer.errors import HeadlightError
+from viewer.safejson import loads as json_loads
 
 Span = tuple[int, int]
 
@@ -178,10 +178,7 @@ def parse_link_pairs(lines: Iterable[str], first_line: int = 1) -> Iterator[Link
 
 def _parse_line(raw: str, number: int) -> LinkPair:
     where = f"line {number}"
-    try:
-        obj: Any = json.loads(raw)
-    except json.JSONDecodeError as exc:
-        raise HeadlightError(f"{where}: not valid JSON ({exc.msg} at column {exc.colno})") from None
+    obj: Any = json_loads(raw, where)
     if not isinstance(obj, dict):
         raise HeadlightError(f"{where}: expected a JSON object with text, source, target and distractors")
     for name in ("text", "source", "target", "distractors"):

@@ -79,6 +79,11 @@ def pass_estimate(
     )
 
 
+def fits(loaded: Any, lengths: list[int], *, keep: bool, own_probs: bool, overview: bool = False) -> bool:
+    """Whether a pass over texts of ``lengths`` tokens fits the budget."""
+    return pass_estimate(loaded, lengths, keep=keep, own_probs=own_probs, overview=overview).total <= budget()
+
+
 def require_fits(
     loaded: Any, lengths: list[int], *, keep: bool, own_probs: bool, overview: bool = False
 ) -> Estimate:

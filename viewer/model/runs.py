@@ -31,7 +31,7 @@ from viewer.core.scores import LayerScores
 from viewer.core.softmax import softmax
 from viewer.core.terms import ScoreTerms
 from viewer.errors import HeadlightError
-from viewer.model.budget import require_fits
+from viewer.model.budget import fits, require_fits
 from viewer.model.recorder import Capture, LayerCapture
 from viewer.model.tables import stack_terms
 from viewer.model.tokens import Batch
@@ -207,10 +207,12 @@ def scan(
     ``keep`` says the sink keeps every layer (a recording), for the memory budget, which is
     checked before the model runs (``viewer.model.budget``). Returns the model's output.
     """
-    own = wants_own_probs(loaded, batch) if own_probs is None else own_probs
-    require_fits(
-        loaded, batch.lengths, keep=keep, own_probs=own, overview=keep and max(batch.lengths) > DENSE_TOKENS
-    )
+    overview = keep and max(batch.lengths) > DENSE_TOKENS
+    if own_probs is None:  # a bonus, asked for only where it fits the memory budget too
+        own = wants_own_probs(loaded, batch) and fits(loaded, batch.lengths, keep=keep, own_probs=True)
+    else:
+        own = own_probs
+    require_fits(loaded, batch.lengths, keep=keep, own_probs=own, overview=overview)
     waiting: list[list[TextLayer]] = []
 
     def on_layer(cap: LayerCapture) -> None:

@@ -81,6 +81,10 @@ def run_shards(
     ``on_shard(n)`` is called after every finished shard of n items (shards taken from the run
     folder included); ``cancelled()`` is asked between shards and batches and stops the run
     with ``Cancelled``. Returns the merged partial, None for an empty set.
+
+    With a run folder, its lock is held for the whole run (a second run on the same folder
+    waits for it), and every shard found on disk passes its self-check (index, items,
+    checksum) before it is used; a damaged one is reported on stderr and computed again.
     """
     if total is None:
         total = sized(items)
@@ -89,23 +93,54 @@ def run_shards(
         folder = runfolder.RunFolder.open(
             options.work, kind, loaded, inputs, options.shard_size, fresh=options.fresh
         )
+    try:
+        return _run_in(kind, loaded, items, options, total, folder, on_shard, cancelled)
+    finally:
+        if folder is not None:
+            folder.close()
+
+
+def _run_in(
+    kind: ShardKind,
+    loaded: Any,
+    items: Iterable[Any],
+    options: RunOptions,
+    total: int | None,
+    folder: runfolder.RunFolder | None,
+    on_shard: Callable[[int], None] | None,
+    cancelled: Callable[[], bool] | None,
+) -> Any | None:
+    """``run_shards`` with the run folder (None: none) open and locked."""
+    if folder is not None:
         finished = folder.result()
         if finished is not None:
             if on_shard and total:
                 on_shard(total)
             return kind.load(finished)
     on_disk = folder.finished() if folder is not None else set()
+    # shards on disk that passed their self-check, with the digest of their items; a damaged
+    # one is reported and computed again
+    kept: dict[int, str] = {}
 
     def check() -> None:
         if cancelled is not None and cancelled():
             raise Cancelled("cancelled")
 
-    def todo() -> Iterator[Shard]:
+    def todo() -> Iterator[tuple[Shard, str]]:
         for shard in cut_shards(items, options.shard_size):
-            if shard.index in on_disk:
+            digest = runfolder.items_digest(shard.items) if folder is not None else ""
+            if shard.index in on_disk and folder.check(shard.index, digest):
+                kept[shard.index] = digest
                 if on_shard:
                     on_shard(len(shard.items))
                 continue
+            yield shard, digest
+
+    digests: dict[int, str] = {}
+
+    def shards() -> Iterator[Shard]:
+        for shard, digest in todo():
+            digests[shard.index] = digest
             yield shard
 
     merged: Any = None
@@ -114,8 +149,14 @@ def run_shards(
 
     def drain() -> None:
         nonlocal merged, next_index
-        while next_index in ready or next_index in on_disk:
-            state = ready.pop(next_index) if next_index in ready else folder.read(next_index)
+        while next_index in ready or next_index in kept:
+            if next_index in ready:
+                state = ready.pop(next_index)
+            else:
+                try:
+                    state = folder.read(next_index, kept.pop(next_index))
+                except runfolder.Damaged as exc:  # changed on disk after its check
+                    raise HeadlightError(f"run folder {folder.path}: shard {next_index} {exc}") from None
             part = kind.load(state)
             merged = part if merged is None else merged.merge(part)
             next_index += 1
@@ -128,9 +169,10 @@ def run_shards(
     engine = workers.engine_for(options, loaded, n_shards)
     failed = True
     try:
-        for index, n, state in engine.run(kind, todo(), check, may_start):
+        for index, n, state in engine.run(kind, shards(), check, may_start):
+            digest = digests.pop(index)
             if folder is not None:
-                folder.write(index, state)
+                folder.write(index, state, digest)
             ready[index] = state
             if on_shard:
                 on_shard(n)

@@ -12,19 +12,21 @@
 ``text_column`` / ``label_column`` rename the two columns (fields) for every format but
 ``.txt``. Labels are compared as strings (``1`` and ``"1"`` are the same label). Blank texts
 are skipped everywhere; every other problem is a one-line ``HeadlightError`` naming the file
-and the line or row. Everything is read as a stream, so a large set never has to fit in memory.
+and the line or row: bytes that are not UTF-8, a JSON line that is not JSON or holds a huge
+integer, deep nesting or a lone surrogate (``"\\ud800"``, which no tokenizer can encode).
+Everything is read as a stream, so a large set never has to fit in memory.
 """
 
 from __future__ import annotations
 
 import csv
-import json
 import os
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TypeVar
 
+from viewer import safejson
 from viewer.errors import HeadlightError
 
 FORMATS = (".txt", ".jsonl", ".csv", ".parquet")
@@ -90,13 +92,16 @@ def as_source(source: str | os.PathLike | TextSource) -> TextSource:
 
 
 def _lines(path: Path) -> Iterator[tuple[int, str]]:
-    try:
-        with path.open("r", encoding="utf-8", newline="") as fh:
-            yield from enumerate(fh, start=1)
-    except UnicodeDecodeError as exc:
-        raise HeadlightError(
-            f"{path.name} is not UTF-8 text (byte {exc.start} of a line cannot be decoded)"
-        ) from None
+    """(line number, line) of a UTF-8 file; a line that is not UTF-8 is an error naming it."""
+    with path.open("rb") as fh:
+        for number, raw in enumerate(fh, start=1):
+            try:
+                yield number, raw.decode("utf-8")
+            except UnicodeDecodeError as exc:
+                raise HeadlightError(
+                    f"{path.name} line {number} is not UTF-8 text (byte 0x{raw[exc.start]:02x} at "
+                    f"position {exc.start + 1})"
+                ) from None
 
 
 def _label(value: Any) -> str | None:
@@ -151,10 +156,7 @@ def _read_jsonl(path: Path, text_col: str, label_col: str, label_given: bool) ->
     for number, line in _lines(path):
         if not line.strip():
             continue
-        try:
-            obj = json.loads(line)
-        except json.JSONDecodeError as exc:
-            raise HeadlightError(f"{path.name} line {number}: not valid JSON ({exc.msg})") from None
+        obj = safejson.loads(line, f"{path.name} line {number}")
         if not isinstance(obj, dict) or not isinstance(obj.get(text_col), str):
             raise HeadlightError(f'{path.name} line {number}: needs a "{text_col}" string')
         seen_label = seen_label or label_col in obj
@@ -193,6 +195,7 @@ def _table_items(
                 raise HeadlightError(
                     f"{name} row {row}: column '{text_col}' holds {type(text).__name__}, not text"
                 )
+            safejson.check_text(text, f"{name} row {row}")
             if label_names is not None and label is not None:
                 if label < 0:  # datasets' ClassLabel writes -1 for "no label"
                     label = None
@@ -232,7 +235,7 @@ def _read_parquet(source: TextSource, text_col: str, label_col: str) -> Iterator
             for b in pf.iter_batches(batch_size=ARROW_BATCH, columns=cols)
         )
         yield from _table_items(name, batches, text_col)
-    except pa.ArrowException as exc:
+    except (pa.ArrowException, UnicodeDecodeError) as exc:
         raise HeadlightError(f"{name} cannot be read ({exc})") from None
 
 

@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import Any, Protocol
 
 from viewer.errors import HeadlightError
+from viewer.safejson import check_text
 from viewer.session import jobs
 from viewer.session import session_file as sessions
 from viewer.session.preload import load_figures
@@ -83,7 +84,7 @@ class Controller:
                 self.restore_session(sessions.load(last_session))
                 return
             except HeadlightError as exc:  # a bad last session must not stop start-up
-                self.view.set_status(f"last session not restored: {exc}")
+                self.view.set_status(self._set_aside(last_session, exc))
         demo = jobs.demo_folder()
         if (demo / "config.json").is_file():
             if not text:
@@ -91,6 +92,15 @@ class Controller:
             self.open_model(str(demo), run_after=True, remember=False)
         else:
             self.view.set_status("no demo model in this installation; open a model folder (Ctrl+O)")
+
+    @staticmethod
+    def _set_aside(path: Path, problem: HeadlightError) -> str:
+        """Move an unreadable last session aside (kept, not deleted); the one-line note."""
+        try:
+            kept = f"kept as {sessions.set_aside(path).name}"
+        except HeadlightError as exc:
+            kept = str(exc)
+        return f"last session not restored ({problem}); {kept}; opening the demo"
 
     def load_figures(self) -> None:
         """Queue the matplotlib import as the worker's first job (once)."""
@@ -145,6 +155,11 @@ class Controller:
             return
         if not text.strip():
             self.view.show_error("the text is empty; type or paste a text first")
+            return
+        try:
+            check_text(text, "the text")  # a lone surrogate (pasted) no tokenizer can encode
+        except HeadlightError as exc:
+            self.view.show_error(str(exc))
             return
         if self.view.editor_text() != text:
             self.view.set_editor_text(text)

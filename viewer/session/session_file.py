@@ -18,17 +18,24 @@ Format (``"format": "headlight-session"``, ``"version": 1``)::
 
 Recordings are not stored: restoring opens the model and runs the text again, which gives the
 same numbers (the runs are deterministic) without a large file.
+
+A session file is read as bounded JSON (``viewer.safejson``: no huge integers, no deep
+nesting, at most 16 MB); anything unreadable is a one-line ``HeadlightError``. A last session
+that cannot be restored is moved aside (``set_aside``), never deleted, so the window can start
+on the demo and the file is still there to look at.
 """
 
 from __future__ import annotations
 
-import json
+import os
+import time
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
 from viewer.errors import HeadlightError
 from viewer.files import atomic_write_text, json_text
+from viewer.safejson import load_file
 from viewer.session.state import METRICS, Selection
 
 FORMAT = "headlight-session"
@@ -149,14 +156,22 @@ def save(path: str | Path, session: Session) -> None:
 
 def load(path: str | Path) -> Session:
     path = Path(path)
+    if not path.is_file():
+        raise HeadlightError(f"session file not found: {path}")
+    return from_dict(load_file(path, f"session {path.name}"))
+
+
+def set_aside(path: str | Path) -> Path:
+    """Move an unreadable session file to ``<name>.unreadable-<time>.json`` next to it (kept
+    for the user to look at, and out of the way of the next save); returns the new path."""
+    path = Path(path)
+    stamp = time.strftime("%Y%m%d-%H%M%S")
+    for n in range(1000):
+        target = path.with_name(f"{path.stem}.unreadable-{stamp}{f'-{n}' if n else ''}{path.suffix}")
+        if not target.exists():
+            break
     try:
-        raw = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise HeadlightError(f"session file not found: {path}") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise HeadlightError(f"cannot read session {path.name}: {exc}") from None
-    try:
-        data = json.loads(raw)
-    except json.JSONDecodeError as exc:
-        raise HeadlightError(f"{path.name} is not valid JSON ({exc.msg}, line {exc.lineno})") from None
-    return from_dict(data)
+        os.replace(path, target)
+    except OSError as exc:
+        raise HeadlightError(f"cannot move {path} aside: {exc.strerror or exc}") from None
+    return target
