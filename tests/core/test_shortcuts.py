@@ -6,14 +6,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import binomtest
 
-from viewer.core.shortcuts import (
-    KnockoutOutcome,
-    KnockoutTally,
-    phrase_spans,
-    word_key,
-    word_spans,
-)
+from viewer.core.shortcuts import KnockoutOutcome, KnockoutTally, phrase_spans, word_spans
 from viewer.core.summary import summary_share
+from viewer.core.words import word_key
 
 
 def test_word_key_follows_design():

@@ -17,7 +17,8 @@ from transformers import AutoModelForSequenceClassification, AutoTokenizer
 from viewer.demo import MODEL_DIR
 from viewer.errors import HeadlightError
 from viewer.model.loader import open_model
-from viewer.reports.insertion import insertion_test, pointed_class
+from viewer.reports.insertion import PhraseKnockoutKind, insertion_test, pointed_class
+from viewer.reports.shards import run_report
 from viewer.reports.shortcuts import shortcut_search
 from viewer.reports.textsets import load_text_set
 
@@ -54,7 +55,8 @@ def transformers_predict(texts: list[str]) -> list[str]:
 
 def test_the_footer_points_to_billing_by_knockout(demo):
     items = load_text_set(SAMPLES / "coop_messages.jsonl")
-    pointed = pointed_class(demo, items, FOOTER)
+    tally = run_report(PhraseKnockoutKind(FOOTER), demo, items)
+    pointed = pointed_class(demo.labels, tally.by_class("via portal"), FOOTER)
     assert demo.labels[pointed.target] == "billing"
     assert pointed.flips_from["billing"] > 0 and pointed.flips_from["repair"] == 0
 
@@ -145,7 +147,8 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
 
 
 def test_surface_form_is_how_the_texts_write_it():
-    from viewer.reports.insertion import phrase_keys, surface_form
+    from viewer.core.words import phrase_keys
+    from viewer.reports.insertion import surface_form
     from viewer.reports.textsets import TextItem
 
     items = [

@@ -31,7 +31,7 @@ from viewer.demo import MODEL_DIR
 from viewer.model.loader import open_model
 from viewer.reports import workers
 from viewer.reports.heads import HeadsKind, scan_text_set
-from viewer.reports.insertion import InsertionKind, PointedKind
+from viewer.reports.insertion import InsertionKind, PhraseKnockoutKind
 from viewer.reports.links import LinksKind
 from viewer.reports.runs import CheckKind, heads_data, shortcuts_data
 from viewer.reports.shards import Cancelled, RunOptions, cut_shards, run_shards
@@ -47,7 +47,7 @@ KINDS = {
     "links": LinksKind(),
     "check": CheckKind(tolerance=1e-5),
     # the demo's footer; class 1 of the demo model is "billing" (its config's id2label)
-    "pointed": PointedKind("[via portal]", batch_size=16),
+    "phrase": PhraseKnockoutKind("[via portal]", batch_size=16),
     "insertion": InsertionKind("[via portal]", target=1, seed=3, batch_size=16),
 }
 

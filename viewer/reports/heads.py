@@ -52,7 +52,9 @@ def check_labels(loaded: LoadedModel, survey: Survey) -> bool:
     return True
 
 
-def _require_prediction(loaded: LoadedModel, what: str) -> None:
+def require_prediction(loaded: LoadedModel, what: str) -> None:
+    """HeadlightError naming ``what`` when the model has no prediction to knock out (neither a
+    sequence classifier nor a causal LM)."""
     if loaded.head_kind not in ("classifier", "causal-lm"):
         raise HeadlightError(
             f"{what} needs a prediction to knock out; {loaded.name} has no classifier or "
@@ -241,7 +243,7 @@ def head_importance(
 
     Targets are the file's labels when present, else the model's own predictions.
     """
-    _require_prediction(loaded, "head importance")
+    require_prediction(loaded, "head importance")
     texts = [i.text for i in items]
     targets = label_indices(loaded, items) if loaded.head_kind == "classifier" else None
     source = "labels"
@@ -269,6 +271,6 @@ def head_knockout(
     progress: Callable[[int], None] | None = None,
 ) -> dict[str, np.ndarray]:
     """Each head knocked out alone: mean drop of the predicted-class probability, accuracy."""
-    _require_prediction(loaded, "head knockout")
+    require_prediction(loaded, "head knockout")
     labels = label_indices(loaded, items) if loaded.head_kind == "classifier" else None
     return head_knockout_effects(loaded, [i.text for i in items], labels, batch_size, progress)

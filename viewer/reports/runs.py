@@ -23,10 +23,10 @@ from viewer.model.loader import LoadedModel
 from viewer.reports.heads import (
     HeadsKind,
     TextSetScan,
-    _require_prediction,
     check_labels,
     normalise_importance,
     predictions,
+    require_prediction,
 )
 from viewer.reports.links import LinksKind
 from viewer.reports.progress import shard_bar
@@ -202,7 +202,7 @@ def shortcuts_data(
     quiet: bool = False,
     run: RunOptions = SERIAL,
 ) -> dict:
-    _require_prediction(loaded, "shortcut search")
+    require_prediction(loaded, "shortcut search")
     source = as_source(texts)
     total = survey(source).texts
     report = _run(
@@ -228,7 +228,10 @@ def insertion_data(
     batch_size: int = 16,
     quiet: bool = False,
     run: RunOptions = SERIAL,
+    by_class: np.ndarray | None = None,
 ) -> dict:
+    """``headlight insert``'s numbers; ``by_class``: the phrase's per-class knockout breakdown
+    when a shortcut search already has it (``viewer.reports.insertion.run_insertion``)."""
     from viewer.reports.insertion import run_insertion
 
     source = as_source(texts)
@@ -240,5 +243,6 @@ def insertion_data(
         seed,
         batch_size,
         lambda kind, label: _run(kind, loaded, source.items(), total, label, source.key, run, quiet),
+        by_class,
     )
     return {"model": str(loaded.folder), **report.to_dict()}

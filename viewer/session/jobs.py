@@ -318,13 +318,14 @@ def run_insertions(
     ctx: JobContext, slot: str, textset: TextSetResult, report: Any, words: tuple[str, ...]
 ) -> tuple[Any, dict[str, Any]]:
     """The insertion test (``viewer.reports.insertion``) for each of ``words`` over the open
-    text set, into the class knocking it out flips texts away from; a phrase is inserted as
+    text set, into the class knocking it out flips texts away from (read off the report's own
+    per-class breakdown when it has the word, else found by its knockout); a phrase is inserted as
     the texts most often write it (``insertion_phrase``: "via portal" as "[via portal]"). A word
     that points to no class is left out. Returns (``report``, {word: InsertionReport}): the
     shortcut report the words came from, so that results of an older search are not shown
     beside a newer one."""
     from viewer.errors import HeadlightError
-    from viewer.reports.insertion import insertion_phrase, insertion_test
+    from viewer.reports.insertion import insertion_phrase, insertion_test, searched_by_class
 
     loaded = ctx.model(slot)
     items = textset.items()
@@ -334,7 +335,11 @@ def run_insertions(
         ctx.progress(k, len(words), f"insertion test: '{word}' ({k + 1} of {len(words)})")
         try:
             results[word] = insertion_test(
-                loaded, items, insertion_phrase(items, word), cancelled=ctx.cancelled
+                loaded,
+                items,
+                insertion_phrase(items, word),
+                cancelled=ctx.cancelled,
+                by_class=searched_by_class(report, word),
             )
         except HeadlightError:
             continue  # e.g. knocking it out flips nothing: it points to no class
