@@ -2,7 +2,7 @@
 
 References: the recording's own probabilities (``Recording.probs``), the head map's metric from
 ``viewer.session.metrics.head_values`` (what the pane draws), readers that are not ours (Pillow,
-ElementTree, pypdf, csv, json), and ``viewer.figures.card.export_card`` run directly on the same
+ElementTree, pypdf, csv, json), and ``viewer.session.exports.export_card`` run directly on the same
 inputs for the card folder.
 """
 
@@ -232,7 +232,7 @@ def card_inputs(tmp_path):
 
 
 def test_window_card_export_equals_export_card(qtbot, window, tmp_path, tiny_dir, card_inputs, monkeypatch):
-    from viewer.figures.card import export_card
+    from viewer.session.exports import export_card
     from viewer.model.loader import open_model
 
     texts, pairs = card_inputs
