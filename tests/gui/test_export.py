@@ -232,8 +232,8 @@ def card_inputs(tmp_path):
 
 
 def test_window_card_export_equals_export_card(qtbot, window, tmp_path, tiny_dir, card_inputs, monkeypatch):
-    from viewer.session.exports import export_card
     from viewer.model.loader import open_model
+    from viewer.session.exports import export_card
 
     texts, pairs = card_inputs
     out = tmp_path / "card"
