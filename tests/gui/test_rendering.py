@@ -110,7 +110,7 @@ def test_a_drawing_error_is_a_one_line_message_and_the_pane_recovers(qtbot, wind
 def test_merged_builds_take_the_fast_path_only_if_every_build_allows_it():
     from types import SimpleNamespace
 
-    from viewer.gui.panes.render import _chain
+    from viewer.gui.panes.render import chain_builds
 
     def build(fast: bool):
         def run():
@@ -127,7 +127,7 @@ def test_merged_builds_take_the_fast_path_only_if_every_build_allows_it():
         (False, False, False),
     ):
         pane, order = SimpleNamespace(fast=False), []
-        _chain(pane, build(first), build(then))()
+        chain_builds(pane, build(first), build(then))()
         assert order == [first, then] and pane.fast is expected
 
 

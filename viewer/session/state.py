@@ -17,7 +17,7 @@ layer          selected layer (from 0)
 head           selected head (from 0), or None for the layer's head mean
 source         selected source (query) token, or None
 target         selected target (key) token, or None
-metric         head-map metric name (``METRICS``)
+metric         head-map metric name (``HEAD_MAP_METRICS``)
 scope          "text" (this text) or "set" (summaries over the text set)
 textset        ``TextSetResult`` of the open text set, or None
 mistakes_only  the text-set list shows only wrong predictions
@@ -41,7 +41,7 @@ from typing import Any
 from viewer.session.events import Event, same
 
 # name -> (label in the chooser, colour-bar label with units, explanation for the tooltip)
-METRICS: dict[str, tuple[str, str, str]] = {
+HEAD_MAP_METRICS: dict[str, tuple[str, str, str]] = {
     "entropy": (
         "entropy",
         "entropy (0–1)",
@@ -295,7 +295,7 @@ class Selection:
         self._set("target", None if target is None else int(target))
 
     def set_metric(self, name: str) -> None:
-        if name not in METRICS:
+        if name not in HEAD_MAP_METRICS:
             raise ValueError(f"unknown head-map metric {name!r}")
         self._set("metric", name)
 

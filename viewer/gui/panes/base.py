@@ -124,8 +124,8 @@ class FigurePane(StateListener, QWidget):
         self.fast = False  # set by a build: only the blitter's artists changed
         self.size_px: tuple[int, int] = (500, 400)  # the view's size (GUI thread's copy)
         self._scheduled = False
-        self._frames_due = 0  # frames requested from the render thread, not yet arrived
-        self._frames_held = 0  # requests held back while a view handled an event
+        self.frames_due = 0  # frames requested from the render thread, not yet arrived
+        self.frames_held = 0  # requests held back while a view handled an event
         self._want_figure = False  # False while a message is shown instead
 
         outer = QVBoxLayout(self)
@@ -197,7 +197,7 @@ class FigurePane(StateListener, QWidget):
     @property
     def drawing(self) -> bool:
         """A frame is being drawn: the figure belongs to the render thread until it arrives."""
-        return self._frames_due > 0 or self._frames_held > 0
+        return self.frames_due > 0 or self.frames_held > 0
 
     @property
     def idle(self) -> bool:
@@ -255,7 +255,7 @@ class FigurePane(StateListener, QWidget):
 
     def frame_arrived(self, frame) -> None:
         """A frame from the render thread (GUI thread)."""
-        self._frames_due -= 1
+        self.frames_due -= 1
         if frame.error is not None:
             if not self.drawing:
                 self.show_message(frame.error)
