@@ -15,8 +15,9 @@ from viewer.cli import main
 from viewer.core.links import find_word, read_link_pairs
 from viewer.errors import HeadlightError
 from viewer.model.loader import open_model
-from viewer.reports.heads import head_summary
+from viewer.reports.heads import HeadsKind
 from viewer.reports.links import link_report
+from viewer.reports.shards import run_report
 from viewer.reports.shortcuts import shortcut_search
 from viewer.reports.textsets import TextItem, load_text_set, read_text_set
 
@@ -82,7 +83,7 @@ def test_head_summary_streams_and_equals_one_at_a_time(bert):
     from viewer.core.headstats import HeadStats
 
     items = [TextItem(t, None, i) for i, t in enumerate(tiny.TEXTS * 3)]
-    summary = head_summary(bert, iter(items), batch_size=4)
+    summary = run_report(HeadsKind(batch_size=4), bert, iter(items)).stats.summary()
     stats = HeadStats(bert.n_layers, bert.n_heads)
     for item in items:
         rec = bert.record(item.text)

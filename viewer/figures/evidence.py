@@ -226,33 +226,3 @@ def evidence_into(
     if pax is not None:
         draw_class_probabilities(pax, labels, probabilities, predicted, gold)
     return artists
-
-
-def evidence_figure(
-    tokens: Sequence[str],
-    row_labels: Sequence[str],
-    values: np.ndarray,
-    agreement: Sequence[float | str | None] | None = None,
-    *,
-    labels: Sequence[str] = (),
-    probabilities: np.ndarray | None = None,
-    predicted: int | None = None,
-    gold: str | None = None,
-    title: str | None = None,
-    size: tuple[float, float] = (9.0, 3.2),
-    dpi: float = 100,
-) -> Figure:
-    fig = Figure(figsize=size, dpi=dpi)
-    evidence_into(
-        fig,
-        tokens,
-        row_labels,
-        values,
-        agreement,
-        labels=labels,
-        probabilities=probabilities,
-        predicted=predicted,
-        gold=gold,
-        title=title,
-    )
-    return fig

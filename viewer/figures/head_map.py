@@ -218,19 +218,3 @@ def head_map_into(
         cax=cax,
         annotate=annotate,
     )
-
-
-def head_map_figure(
-    values: np.ndarray,
-    *,
-    label: str,
-    diverging: bool = False,
-    selected: tuple[int, int | None] | None = None,
-    title: str | None = None,
-    size: tuple[float, float] = (6.0, 3.6),
-    dpi: float = 100,
-) -> Figure:
-    """A stand-alone head-map figure."""
-    fig = Figure(figsize=size, dpi=dpi)
-    head_map_into(fig, values, label=label, diverging=diverging, selected=selected, title=title)
-    return fig

@@ -216,16 +216,6 @@ def set_token_axis(
         ax.tick_params(axis="x", labelrotation=90)
 
 
-def visible_tick_labels(ax: Axes, which: str) -> list[str]:
-    """The non-empty tick label strings the axis shows at its current size and view."""
-    axis = ax.xaxis if which == "x" else ax.yaxis
-    ticks = axis.get_major_locator()()
-    vmin, vmax = sorted(axis.get_view_interval())
-    fmt = axis.get_major_formatter()
-    shown = [t for t in ticks if vmin <= t <= vmax]
-    return [s for s in (fmt(t) for t in shown) if s]
-
-
 def head_name(layer: int, head: int | None) -> str:
     """``layer 3 · head 1`` (counting from 0), or ``layer 3 · head mean``."""
     return f"layer {layer} · head mean" if head is None else f"layer {layer} · head {head}"
@@ -306,9 +296,3 @@ def pin_empty_axis_labels(ax: Axes) -> None:
         ax.xaxis.set_label_coords(0.5, 0.0)
     if not ax.yaxis.label.get_text():
         ax.yaxis.set_label_coords(0.0, 0.5)
-
-
-def colorbar_units(cbar) -> str:
-    """The units label of a colour bar styled by ``style_colorbar``."""
-    units = getattr(cbar, "units", None)
-    return units.get_text() if units is not None else cbar.ax.get_ylabel()

@@ -217,22 +217,6 @@ def scan_text_set(
     return TextSetScan(part.stats.summary(), predictions(loaded, part))
 
 
-def head_summary(
-    loaded: LoadedModel,
-    items: Iterable[TextItem],
-    batch_size: int = 16,
-    progress: Callable[..., None] | None = None,
-    cancelled: Callable[[], bool] | None = None,
-) -> HeadSummary:
-    """Entropy, distance, special share, previous/same/next share and confidence per head.
-
-    The texts are streamed shard by shard: memory depends on the shard size and the model, not
-    on the number of texts (the accumulator holds a few (L, H) sums).
-    """
-    part = run_report(HeadsKind(batch_size), loaded, items, progress=progress, cancelled=cancelled)
-    return part.stats.summary()
-
-
 def head_importance(
     loaded: LoadedModel,
     items: Sequence[TextItem],
