@@ -9,8 +9,8 @@ cancellation) on a thread-safe ``queue.Queue`` and wakes the GUI thread with an 
 queued signal; the GUI thread then drains the queue and re-emits each message as a signal of
 the ``Worker``. So widgets are only ever touched from the GUI thread, no Python object has to be
 marshalled by Qt across threads, and nothing polls: while the model runs, the GUI thread sleeps
-until there is a message (a poll every few milliseconds took the GIL and a core from the
-recording, measured with ``tests/benchmarks/bench_gui.py``). Cancelling sets a flag the job checks
+until there is a message (a poll every few milliseconds would take the GIL from the recording
+each time). Cancelling sets a flag the job checks
 between steps; a new job of the same name cancels the one it replaces.
 """
 

@@ -66,8 +66,9 @@ def settle_imports() -> None:
     """Move everything alive now (after the heavy imports) out of the garbage collector's view.
 
     The collector's full passes stop every thread for as long as it takes to traverse every
-    tracked object: with torch, transformers and matplotlib loaded that was up to 0.57 s
-    (measured in ``tests/benchmarks/bench_gui.py``), far over the 100 ms the window may stall.
+    tracked object: with torch, transformers and matplotlib loaded and the demo model open that
+    is 0.3 s (``tests/benchmarks/bench_collector.py``; more in the middle of a run), far over the
+    100 ms the window may stall.
     Modules, classes and functions never become garbage, so ``gc.freeze`` (made for this) loses
     nothing; objects created later (models, figures, recordings) are collected as usual.
     """
