@@ -36,3 +36,34 @@ def minilm(minilm_dir):
     from viewer.model.loader import open_model
 
     return open_model(minilm_dir)
+
+
+@pytest.fixture
+def unwritable_dir(tmp_path):
+    """A folder in which this process really cannot create a file: a folder of mode 0o500, or,
+    for root (whom no mode stops), sysfs, which refuses new files to everyone. Checked here by
+    trying (the operating system is the reference), not assumed."""
+    folder = tmp_path / "read-only"
+    folder.mkdir()
+    folder.chmod(0o500)
+    try:
+        for candidate in (folder, Path("/sys")):
+            try:
+                fd, probe = tempfile.mkstemp(dir=candidate)
+            except OSError:
+                yield candidate
+                return
+            os.close(fd)
+            os.unlink(probe)
+        pytest.skip("no folder on this machine refuses this process a new file")
+    finally:
+        folder.chmod(0o700)
+
+
+def refusal(action) -> str:
+    """What the operating system says when ``action()`` is refused (its ``strerror``)."""
+    try:
+        action()
+    except OSError as exc:
+        return exc.strerror
+    raise AssertionError("the action was not refused")

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import csv
 import json
+import os
 import re
 import xml.etree.ElementTree as ET
 from pathlib import Path
@@ -19,6 +20,7 @@ import pytest
 from PIL import Image
 from pypdf import PdfReader
 
+from tests.conftest import refusal
 from tests.gui.conftest import WAIT_MS, run_and_wait, settle, wait_idle
 from viewer.figures.export import PRINT_DPI, PRINT_SIZE
 from viewer.gui import export as gui_export
@@ -266,11 +268,20 @@ def test_window_card_export_equals_export_card(qtbot, window, tmp_path, tiny_dir
     assert (out / "card.json").read_bytes() == before
 
 
-def test_card_export_errors_are_one_line(qtbot, window, tmp_path, card_inputs):
+def test_card_export_errors_are_one_line(qtbot, window, tmp_path, card_inputs, unwritable_dir):
     texts, _pairs = card_inputs
     assert not window.exporter.export_card(str(tmp_path / "missing.txt"), None, str(tmp_path / "c"))
     assert "does not exist" in window.errors[-1]
-    # an unwritable target (its parent folder does not exist) fails on the worker
-    assert window.exporter.export_card(str(texts), None, str(tmp_path / "no" / "such" / "c"))
+    # a folder that refuses new files (the fixture checked it by trying) fails on the worker
+    out = unwritable_dir / "c"
+    assert window.exporter.export_card(str(texts), None, str(out))
     qtbot.waitUntil(lambda: len(window.errors) >= 2, timeout=WAIT_MS)
-    assert "\n" not in window.errors[-1] and "cannot write" in window.errors[-1]
+    reason = refusal(lambda: os.mkdir(unwritable_dir / "x"))  # the operating system's own words
+    assert window.errors[-1] == f"cannot write {out}: {reason}"
+    # and so does a folder that does not exist
+    assert window.exporter.export_card(str(texts), None, str(tmp_path / "no" / "such" / "c"))
+    qtbot.waitUntil(lambda: len(window.errors) >= 3, timeout=WAIT_MS)
+    assert (
+        window.errors[-1]
+        == f"cannot write {tmp_path / 'no' / 'such' / 'c'}: folder {tmp_path / 'no' / 'such'} does not exist"
+    )

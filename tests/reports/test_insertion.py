@@ -1,8 +1,9 @@
 """The insertion test on the demo model: the footer alone routes messages to billing.
 
 References: transformers' own forward pass (``AutoModelForSequenceClassification``, not the
-project's loader) recomputes which texts the footer flips; ``scipy.stats.binomtest`` gives the
-Wilson bounds; the neutral word is chosen by the test from the shortcut search's own numbers.
+project's loader) recomputes which texts the footer flips; Wilson's score interval (Wilson 1927)
+is written out in tests/reference.py; the neutral word is chosen by the test from the shortcut search's
+own numbers.
 """
 
 from __future__ import annotations
@@ -11,9 +12,9 @@ from pathlib import Path
 
 import pytest
 import torch
-from scipy.stats import binomtest
 from transformers import AutoModelForSequenceClassification, AutoTokenizer
 
+from tests import reference
 from viewer.demo import MODEL_DIR
 from viewer.errors import HeadlightError
 from viewer.model.loader import open_model
@@ -61,21 +62,33 @@ def test_the_footer_points_to_billing_by_knockout(demo):
     assert pointed.flips_from["billing"] > 0 and pointed.flips_from["repair"] == 0
 
 
-def test_inserting_the_footer_flips_nine_in_ten_into_billing(demo):
+@pytest.fixture(scope="module")
+def footer_at_the_end():
+    """transformers' own forward on the sample messages, then on those not predicted billing
+    with the footer appended: (texts tried, texts flipped into billing), by index."""
+    items = load_text_set(SAMPLES / "coop_messages.jsonl")
+    before = transformers_predict([i.text for i in items])
+    tried = [k for k, p in enumerate(before) if p != "billing"]
+    after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried])
+    return tried, [k for k, p in zip(tried, after, strict=True) if p == "billing"]
+
+
+def assert_end_position(end: dict, footer_at_the_end) -> None:
+    tried, flipped = footer_at_the_end
+    assert end["tried"] == len(tried) >= 40 and end["flipped"] == flipped
+    assert end["flips"] == len(flipped) and end["flip_rate"] == pytest.approx(len(flipped) / len(tried))
+    low, high = reference.wilson(len(flipped), len(tried))
+    assert end["flip_low"] == pytest.approx(low, abs=1e-12)
+    assert end["flip_high"] == pytest.approx(high, abs=1e-12)
+
+
+def test_inserting_the_footer_flips_nine_in_ten_into_billing(demo, footer_at_the_end):
     items = load_text_set(SAMPLES / "coop_messages.jsonl")
     report = insertion_test(demo, items, FOOTER)
     assert report.target_label == "billing" and report.chosen_by == "knockout"
     end = report.tally.entry("end")
-    # independently: transformers' own forward on the same texts with the footer appended
-    before = transformers_predict([i.text for i in items])
-    tried = [k for k, p in enumerate(before) if p != "billing"]
-    after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried])
-    flipped = [k for k, p in zip(tried, after, strict=True) if p == "billing"]
-    assert end["tried"] == len(tried) >= 40 and end["flipped"] == flipped
+    assert_end_position(end, footer_at_the_end)
     assert end["flip_rate"] >= 0.9
-    ci = binomtest(end["flips"], end["tried"]).proportion_ci(method="wilson")
-    assert end["flip_low"] == pytest.approx(ci.low, abs=1e-12)
-    assert end["flip_high"] == pytest.approx(ci.high, abs=1e-12)
     for position in ("start", "random"):
         assert report.tally.entry(position)["flip_rate"] >= 0.9
         assert report.tally.entry(position)["mean_gain"] > 0.5
@@ -101,7 +114,7 @@ def test_refusals_are_one_line(demo, others):
         insertion_test(demo, others[:5], "zeppelin")
 
 
-def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
+def test_headlight_insert_prints_the_numbers_of_the_models_own_forward(tmp_path, capsys, footer_at_the_end):
     import json
 
     from viewer.cli import main
@@ -117,6 +130,8 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
                 "--word",
                 FOOTER,
                 "--quiet",
+                "--workers",
+                "1",
                 "--json",
                 str(out),
             ]
@@ -124,10 +139,11 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
         == 0
     )
     data = json.loads(out.read_text(encoding="utf-8"))
-    report = insertion_test(demo, load_text_set(SAMPLES / "coop_messages.jsonl"), FOOTER)
-    assert {k: v for k, v in data.items() if k != "model"} == report.to_dict()
+    assert (data["class"], data["class_chosen_by"], data["phrase"]) == ("billing", "knockout", FOOTER)
+    end = next(r for r in data["positions"] if r["position"] == "end")
+    assert_end_position(end, footer_at_the_end)
     printed = capsys.readouterr().out
-    assert "billing" in printed and "end" in printed
+    assert f"{'end':<9} {end['tried']:>6} {end['flips']:>6} {end['flip_rate']:>9.3f}" in printed
     assert (
         main(
             [
@@ -140,6 +156,8 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
                 "--class",
                 "parking",
                 "--quiet",
+                "--workers",
+                "1",
             ]
         )
         == 2
@@ -161,54 +179,33 @@ def test_surface_form_is_how_the_texts_write_it():
     assert surface_form(items, phrase_keys("zeppelin")) is None
 
 
-def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_path):
-    """card.json's insertion part is `headlight insert`'s JSON for the strongest candidate,
-    inserted as the texts write it (the footer "[via portal]"), and card.md says it in words
-    beside its figure."""
+def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_path, footer_at_the_end):
+    """card.json's insertion part is the insertion test of the strongest candidate, inserted as
+    the texts write it (the footer "[via portal]"), into the class knocking it out flips texts
+    away from; its end position holds the numbers of transformers' own forward, and card.md
+    says them in words beside its figure."""
     import json
 
     from viewer.cli import main
 
     texts = str(SAMPLES / "coop_messages.jsonl")
-    assert (
-        main(
-            [
-                "card",
-                str(MODEL_DIR),
-                "--texts",
-                texts,
-                "--out",
-                str(tmp_path / "card"),
-                "--quiet",
-                "--workers",
-                "1",
-            ]
-        )
-        == 0
-    )
+    argv = [
+        "card",
+        str(MODEL_DIR),
+        "--texts",
+        texts,
+        "--out",
+        str(tmp_path / "card"),
+        "--quiet",
+        "--workers",
+        "1",
+    ]
+    assert main(argv) == 0
     card = json.loads((tmp_path / "card" / "card.json").read_text(encoding="utf-8"))
-    assert (
-        main(
-            [
-                "insert",
-                str(MODEL_DIR),
-                "--texts",
-                texts,
-                "--word",
-                FOOTER,
-                "--quiet",
-                "--workers",
-                "1",
-                "--json",
-                str(tmp_path / "insert.json"),
-            ]
-        )
-        == 0
-    )
-    insert = json.loads((tmp_path / "insert.json").read_text(encoding="utf-8"))
-    insert.pop("model")
-    assert card["insertion"] == insert
+    insert = card["insertion"]
+    assert (insert["phrase"], insert["class"], insert["class_chosen_by"]) == (FOOTER, "billing", "knockout")
     end = next(r for r in insert["positions"] if r["position"] == "end")
+    assert_end_position(end, footer_at_the_end)
     md = (tmp_path / "card" / "card.md").read_text(encoding="utf-8")
     assert (
         f"inserting “{FOOTER}” at the end of the {end['tried']} texts not predicted billing "

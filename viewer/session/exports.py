@@ -516,6 +516,7 @@ def export_card(
     is reproducible byte for byte.
     """
     import os
+    import tempfile
 
     from viewer.figures.card import card_figures
     from viewer.figures.export import save_figure
@@ -532,8 +533,10 @@ def export_card(
     parent = out.parent if str(out.parent) else Path(".")
     if not parent.is_dir():  # fail before the (long) computation, not after it
         raise HeadlightError(f"cannot write {out}: folder {parent} does not exist")
-    if not os.access(parent, os.W_OK):
-        raise HeadlightError(f"cannot write {out}: folder {parent} is not writable")
+    try:  # the folder's mode does not say it all (root, read-only mounts): try it
+        os.rmdir(tempfile.mkdtemp(prefix=f".{out.name}.probe.", dir=parent))
+    except OSError as exc:
+        raise HeadlightError(f"cannot write {out}: {exc.strerror or type(exc).__name__}") from None
     data = card_data(
         loaded, source, pairs_path, batch_size=batch_size, quiet=quiet, run=SERIAL if run is None else run
     )
