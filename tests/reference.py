@@ -17,6 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import pytest
 import torch
 import transformers
 
@@ -62,9 +63,27 @@ def class_probabilities(m: Model, texts: list[str]) -> np.ndarray:
 
 
 def probabilities_of_ids(m: Model, ids: list[int]) -> np.ndarray:
+    """A classifier's class probabilities, or a causal LM's next-token probabilities after the
+    last token, for one input: (C,) float64."""
     with torch.no_grad():
         logits = m.model(input_ids=torch.tensor([ids])).logits[0]
+    if logits.ndim == 2:  # (T, V): a language model predicts from its last position
+        logits = logits[-1]
     return torch.softmax(logits.double(), -1).numpy()
+
+
+def token_knockout(m: Model, text: str) -> np.ndarray:
+    """Each ordinary token deleted alone: p(predicted) before minus after, NaN at the special
+    tokens, which are never deleted: (T,) float64."""
+    enc = m.tokenizer(text, return_special_tokens_mask=True)
+    ids, special = enc["input_ids"], enc["special_tokens_mask"]
+    before = probabilities_of_ids(m, ids)
+    pred = int(before.argmax())
+    row = np.full(len(ids), np.nan)
+    for k in range(len(ids)):
+        if not special[k]:
+            row[k] = before[pred] - probabilities_of_ids(m, ids[:k] + ids[k + 1 :])[pred]
+    return row
 
 
 def visible_counts(probs: np.ndarray) -> np.ndarray:
@@ -163,3 +182,35 @@ def wilson(k: int, n: int, z: float = 1.959963984540054) -> tuple[float, float]:
     p = k / n
     centre, half = p + z * z / (2 * n), z * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n))
     return (centre - half) / (1 + z * z / n), (centre + half) / (1 + z * z / n)
+
+
+def card_matches_the_models_own_numbers(
+    data: dict, model: Path, labelled: list[tuple[str, str]], pairs: list[dict]
+) -> None:
+    """card.json against second implementations from transformers' own forward
+    (docs/definitions.md's head metrics, link pairs, word knockout and accuracy written out
+    above) for a card of the ``labelled`` (text, label) set and link ``pairs`` in which "the"
+    is the one word seen in at least 3 texts, in 4 of them."""
+    hf = open_hf(model)
+    texts = [t for t, _ in labelled]
+    probs = [attentions(hf, t) for t in texts]
+    np.testing.assert_allclose(data["heads"]["entropy"], mean_entropy(probs), atol=1e-6)
+    np.testing.assert_allclose(data["heads"]["distance"], mean_distance(probs), atol=1e-5)
+    accuracy, nearest = link_accuracy(hf, pairs)
+    np.testing.assert_array_equal(data["links"]["accuracy"], accuracy)
+    assert data["links"]["nearest_baseline"] == pytest.approx(nearest)
+    labels = hf.model.config.id2label
+    predicted = [labels[int(k)] for k in class_probabilities(hf, texts).argmax(axis=1)]
+    right = sum(p == y for p, (_, y) in zip(predicted, labelled, strict=True))
+    assert (data["accuracy"]["correct"], data["accuracy"]["labelled"]) == (right, len(texts))
+    assert data["accuracy"]["accuracy"] == pytest.approx(right / len(texts))
+    (the,) = data["shortcuts"]["tokens"]
+    outcomes = [knockout(hf, t, "the") for t in texts if "the" in t.split()]
+    flips = sum(f for _, f, _ in outcomes)
+    assert (the["token"], the["count"], the["flip_rate"]) == ("the", 4, flips / 4)
+    assert the["mean_drop"] == pytest.approx(np.mean([d for d, _, _ in outcomes]), abs=1e-6)
+    assert the["focus"] == pytest.approx(np.mean([f for _, _, f in outcomes]), abs=1e-6)
+    assert the["flip_low"] == pytest.approx(wilson(flips, 4)[0], abs=1e-12)
+    assert data["check"]["passed"] is True and data["check"]["texts"] == len(texts)
+    ev = data["evaluation_data"]
+    assert (ev["texts"], ev["labelled"], ev["pairs"]) == (len(texts), len(texts), len(pairs))

@@ -15,6 +15,7 @@ from matplotlib.figure import Figure
 from PIL import Image
 from pypdf import PdfReader
 
+from tests import reference
 from tests.conftest import refusal
 from tests.model import tiny
 from viewer.cli import main
@@ -101,47 +102,10 @@ def test_card_files_and_image_links(card):
     assert "SHA-256" in md and "| command |" in md
 
 
-def card_matches_the_models_own_numbers(data: dict, model: Path) -> None:
-    """card.json against second implementations from transformers' own forward
-    (tests/reference.py: docs/definitions.md's head metrics, link pairs, word knockout and
-    accuracy written out with numpy; Wilson 1927 written out)."""
-    from tests import reference
-
-    hf = reference.open_hf(model)
-    texts = [t for t, _ in TEXTS]
-    probs = [reference.attentions(hf, t) for t in texts]
-    np.testing.assert_allclose(data["heads"]["entropy"], reference.mean_entropy(probs), atol=1e-6)
-    np.testing.assert_allclose(data["heads"]["distance"], reference.mean_distance(probs), atol=1e-5)
-    accuracy, nearest = reference.link_accuracy(hf, PAIRS)
-    np.testing.assert_array_equal(data["links"]["accuracy"], accuracy)
-    assert data["links"]["nearest_baseline"] == pytest.approx(nearest)
-    labels = hf.model.config.id2label
-    predicted = [labels[int(k)] for k in reference.class_probabilities(hf, texts).argmax(axis=1)]
-    right = sum(p == y for p, (_, y) in zip(predicted, TEXTS, strict=True))
-    assert (data["accuracy"]["correct"], data["accuracy"]["labelled"]) == (right, len(TEXTS))
-    assert data["accuracy"]["accuracy"] == pytest.approx(right / len(TEXTS))
-    # "the" is the one word in >= 3 of the 4 texts (it is in all of them)
-    (the,) = data["shortcuts"]["tokens"]
-    outcomes = [reference.knockout(hf, t, "the") for t in texts]
-    flips = sum(f for _, f, _ in outcomes)
-    assert (the["token"], the["count"], the["flip_rate"]) == ("the", 4, flips / 4)
-    assert the["mean_drop"] == pytest.approx(np.mean([d for d, _, _ in outcomes]), abs=1e-6)
-    assert the["focus"] == pytest.approx(np.mean([f for _, _, f in outcomes]), abs=1e-6)
-    assert the["flip_low"] == pytest.approx(reference.wilson(flips, 4)[0], abs=1e-12)
-    assert data["check"]["passed"] is True and data["check"]["texts"] == len(TEXTS)
-    assert data["evaluation_data"] == {
-        "texts_file": "texts.jsonl",
-        "texts": 4,
-        "labelled": 4,
-        "pairs_file": "pairs.jsonl",
-        "pairs": 2,
-    }
-
-
 def test_card_numbers_are_the_models_own(card, inputs):
     root, model, texts, pairs = inputs
     data = json.loads((card / "card.json").read_text())
-    card_matches_the_models_own_numbers(data, model)
+    reference.card_matches_the_models_own_numbers(data, model, TEXTS, PAIRS)
     md = (card / "card.md").read_text(encoding="utf-8")
     acc = data["accuracy"]
     assert f"- Accuracy on the labelled texts: {acc['accuracy']:.3f} ({acc['correct']} of 4)." in md
