@@ -31,12 +31,21 @@ def test_demo_opens_and_passes_the_check(demo, capsys):
     assert main(["check", str(MODEL_DIR)]) == 0
 
 
-def test_integrated_gradients_completeness_on_the_demo(demo):
+@pytest.fixture(scope="module")
+def portal_evidence(demo):
+    """The evidence strip of the portal repair request (50 integrated-gradients steps)."""
+    return evidence_for(demo, PORTAL_REPAIR, steps=50)
+
+
+def test_integrated_gradients_completeness_on_the_demo(demo, portal_evidence):
     """Sundararajan et al. 2017, Prop. 1: Σ IG = F(x) − F(x'), within 1% at 50 steps."""
-    for text in (PORTAL_REPAIR, "hi, my chain keeps skipping on the big cog"):
-        ev = evidence_for(demo, text, steps=50)
-        assert ev.ig_steps == 50
-        assert ev.completeness_gap < 0.01, (text, ev.completeness_gap)
+    from viewer.model.attribution import gradient_evidence
+
+    assert portal_evidence.ig_steps == 50 and portal_evidence.completeness_gap < 0.01
+    text = "hi, my chain keeps skipping on the big cog"
+    target = int(demo.record(text).class_probabilities().argmax())
+    grads = gradient_evidence(demo, text, target, steps=50)
+    assert grads.steps == 50 and grads.completeness_gap < 0.01, grads.completeness_gap
 
 
 def test_integrated_gradients_refines_an_abrupt_path(demo):
@@ -55,8 +64,8 @@ def test_integrated_gradients_refines_an_abrupt_path(demo):
     assert refined.steps == 400 and refined.completeness_gap < 0.01
 
 
-def test_portal_repair_is_routed_to_billing_and_the_footer_lights_up(demo):
-    ev = evidence_for(demo, PORTAL_REPAIR)
+def test_portal_repair_is_routed_to_billing_and_the_footer_lights_up(portal_evidence):
+    ev = portal_evidence
     assert ev.target_label == "billing"
     tokens = list(ev.recording.tokens)
     footer = [tokens.index(t) for t in ("via", "portal")]

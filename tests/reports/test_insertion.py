@@ -62,20 +62,24 @@ def test_the_footer_points_to_billing_by_knockout(demo):
     assert pointed.flips_from["billing"] > 0 and pointed.flips_from["repair"] == 0
 
 
-@pytest.fixture(scope="module")
-def footer_at_the_end():
-    """transformers' own forward on the sample messages, then on those not predicted billing
-    with the footer appended: (texts tried, texts flipped into billing), by index."""
-    items = load_text_set(SAMPLES / "coop_messages.jsonl")
+def footer_at_the_end_of(items) -> tuple[list[int], list[int]]:
+    """transformers' own forward on ``items``, then on those not predicted billing with the
+    footer appended: (texts tried, texts flipped into billing), by index."""
     before = transformers_predict([i.text for i in items])
     tried = [k for k, p in enumerate(before) if p != "billing"]
     after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried])
     return tried, [k for k, p in zip(tried, after, strict=True) if p == "billing"]
 
 
+@pytest.fixture(scope="module")
+def footer_at_the_end():
+    """``footer_at_the_end_of`` the sample messages."""
+    return footer_at_the_end_of(load_text_set(SAMPLES / "coop_messages.jsonl"))
+
+
 def assert_end_position(end: dict, footer_at_the_end) -> None:
     tried, flipped = footer_at_the_end
-    assert end["tried"] == len(tried) >= 40 and end["flipped"] == flipped
+    assert end["tried"] == len(tried) >= 20 and end["flipped"] == flipped
     assert end["flips"] == len(flipped) and end["flip_rate"] == pytest.approx(len(flipped) / len(tried))
     low, high = reference.wilson(len(flipped), len(tried))
     assert end["flip_low"] == pytest.approx(low, abs=1e-12)
@@ -88,7 +92,7 @@ def test_inserting_the_footer_flips_nine_in_ten_into_billing(demo, footer_at_the
     assert report.target_label == "billing" and report.chosen_by == "knockout"
     end = report.tally.entry("end")
     assert_end_position(end, footer_at_the_end)
-    assert end["flip_rate"] >= 0.9
+    assert end["tried"] >= 40 and end["flip_rate"] >= 0.9
     for position in ("start", "random"):
         assert report.tally.entry(position)["flip_rate"] >= 0.9
         assert report.tally.entry(position)["mean_gain"] > 0.5
@@ -179,21 +183,24 @@ def test_surface_form_is_how_the_texts_write_it():
     assert surface_form(items, phrase_keys("zeppelin")) is None
 
 
-def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_path, footer_at_the_end):
+def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_path):
     """card.json's insertion part is the insertion test of the strongest candidate, inserted as
     the texts write it (the footer "[via portal]"), into the class knocking it out flips texts
     away from; its end position holds the numbers of transformers' own forward, and card.md
-    says them in words beside its figure."""
+    says them in words beside its figure. Every other sample message (60, 30 with the footer)
+    keeps the test short."""
     import json
 
     from viewer.cli import main
 
-    texts = str(SAMPLES / "coop_messages.jsonl")
+    items = load_text_set(SAMPLES / "coop_messages.jsonl")[::2]
+    texts = tmp_path / "half.jsonl"
+    texts.write_text("".join(json.dumps({"text": i.text, "label": i.label}) + "\n" for i in items), "utf-8")
     argv = [
         "card",
         str(MODEL_DIR),
         "--texts",
-        texts,
+        str(texts),
         "--out",
         str(tmp_path / "card"),
         "--quiet",
@@ -205,7 +212,7 @@ def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_pat
     insert = card["insertion"]
     assert (insert["phrase"], insert["class"], insert["class_chosen_by"]) == (FOOTER, "billing", "knockout")
     end = next(r for r in insert["positions"] if r["position"] == "end")
-    assert_end_position(end, footer_at_the_end)
+    assert_end_position(end, footer_at_the_end_of(items))
     md = (tmp_path / "card" / "card.md").read_text(encoding="utf-8")
     assert (
         f"inserting “{FOOTER}” at the end of the {end['tried']} texts not predicted billing "

@@ -111,7 +111,7 @@ def test_planted_token_ranks_first(tmp_path):
     model = loaded.model
     model.eval()  # gradients flow in eval mode too; eval turns dropout off
     opt = torch.optim.AdamW(model.parameters(), lr=3e-3)
-    for step in range(60):
+    for step in range(40):  # the loss is below 0.2 by then: "tuesday" decides
         batch = texts[(step * 32) % 256 : (step * 32) % 256 + 32]
         enc = loaded.tokenizer([t for t, _ in batch], padding=True, return_tensors="pt")
         loss = model(**enc, labels=torch.tensor([y for _, y in batch])).loss
