@@ -28,21 +28,24 @@ def card_figures(data: dict) -> dict[str, Figure]:
     made: dict[str, Figure] = {}
     model = data["model"]["folder"]
     heads = data["heads"]
-    fig = made["head_entropy"] = _figure()
-    head_map_into(
-        fig,
-        np.asarray(heads["entropy"], dtype=float),
-        label="mean entropy (0–1, normalised)",
-        title=f"{model} · head map · mean entropy over {heads['texts']} texts",
+    head_maps = (
+        (
+            "head_entropy",
+            "entropy",
+            "mean entropy (0–1, normalised)",
+            f"{model} · head map · mean entropy over {heads['texts']} texts",
+        ),
+        (
+            "head_importance",
+            "importance",
+            "head importance (unit norm per layer)",
+            f"{model} · head importance (Michel et al. 2019), {heads.get('importance_targets')} as targets",
+        ),
     )
-    if "importance" in heads:
-        fig = made["head_importance"] = _figure()
-        head_map_into(
-            fig,
-            np.asarray(heads["importance"], dtype=float),
-            label="head importance (unit norm per layer)",
-            title=f"{model} · head importance (Michel et al. 2019), {heads['importance_targets']} as targets",
-        )
+    for name, key, label, title in head_maps:
+        if key in heads:
+            fig = made[name] = _figure()
+            head_map_into(fig, np.asarray(heads[key], dtype=float), label=label, title=title)
     if "links" in data:
         links = data["links"]
         fig = made["link_accuracy"] = _figure()

@@ -77,21 +77,7 @@ def draw_evidence_strip(
         cmap, norm = style.diverging_cmap(), style.diverging_norm(np.array([-1.0, 1.0]))
     else:
         cmap, norm = style.sequential_cmap(), style.sequential_norm(np.array([0.0, 1.0]))
-    extent = (-0.5, n_tokens - 0.5, n_rows - 0.5, -0.5)
-    style.mask_background(ax, extent)
-    image = ax.imshow(
-        np.ma.masked_invalid(shown),
-        cmap=cmap,
-        norm=norm,
-        aspect="auto",
-        interpolation="nearest",
-        extent=extent,
-        origin="upper",
-        zorder=1,
-    )
-    ax.set_xlim(extent[0], extent[1])
-    ax.set_ylim(extent[2], extent[3])
-    style.style_axes(ax)
+    image = style.cell_grid(ax, np.ma.masked_invalid(shown), cmap=cmap, norm=norm)
     style.set_token_axis(ax, "x", tokens, rotate=True)
     ax.set_yticks(range(n_rows), list(row_labels))
     ax.tick_params(axis="y", length=0, labelsize=style.FONT_SIZE)
@@ -226,3 +212,23 @@ def evidence_into(
     if pax is not None:
         draw_class_probabilities(pax, labels, probabilities, predicted, gold)
     return artists
+
+
+def recording_evidence_into(fig: Figure, rec, evidence, gold: str | None = None) -> EvidenceArtists:
+    """The strip of ``evidence`` (``viewer.reports.evidence.Evidence``) for its recording ``rec``,
+    with the class probabilities, the predicted class and the ``gold`` label, titled with the
+    prediction line: what the evidence pane shows and its export draws."""
+    probs = rec.class_probabilities()
+    row_labels, values, agreement = evidence.strip_rows()
+    return evidence_into(
+        fig,
+        rec.tokens,
+        row_labels,
+        values,
+        agreement,
+        labels=rec.labels,
+        probabilities=probs if len(probs) else None,
+        predicted=rec.predicted(),
+        gold=gold,
+        title=prediction_line(rec.labels, probs, rec.predicted(), gold),
+    )

@@ -68,22 +68,7 @@ def draw_head_map(
     """
     data, grid, cmap, norm = _scaled(values, diverging)
     n_layers, n_heads = data.shape
-    extent = (-0.5, n_heads - 0.5, n_layers - 0.5, -0.5)
-    style.mask_background(ax, extent)
-    image = cell_image(
-        ax,
-        grid,
-        cmap=cmap,
-        norm=norm,
-        interpolation="nearest",
-        aspect="auto",
-        extent=extent,
-        origin="upper",
-        zorder=1,
-    )
-    ax.set_xlim(extent[0], extent[1])
-    ax.set_ylim(extent[2], extent[3])
-    style.style_axes(ax)
+    image = style.cell_grid(ax, grid, cmap=cmap, norm=norm, draw=lambda *a, **k: cell_image(ax, *a, **k))
     ax.set_xticks(range(n_heads), [f"head {h}" if n_heads <= 8 else str(h) for h in range(n_heads)])
     ax.set_yticks(range(n_layers), [f"layer {layer}" for layer in range(n_layers)])
     ax.tick_params(axis="both", length=0, labelsize=style.FONT_SIZE)

@@ -100,6 +100,30 @@ def mask_background(ax: Axes, extent: tuple[float, float, float, float]) -> Rect
     return patch
 
 
+def cell_grid(ax: Axes, values, *, cmap, norm, draw=None):
+    """A grid of (rows, columns) cells centred on whole coordinates, row 0 on top, over the hatched
+    background of masked cells, with the axes framed to it and styled: the layout every heat grid
+    shares. ``draw`` makes the image (``ax.imshow`` by default; ``cells.cell_image`` for a
+    ``CellImage``) and gets imshow's arguments."""
+    n_rows, n_cols = np.shape(values)
+    extent = (-0.5, n_cols - 0.5, n_rows - 0.5, -0.5)
+    mask_background(ax, extent)
+    image = (draw or ax.imshow)(
+        values,
+        cmap=cmap,
+        norm=norm,
+        aspect="auto",
+        interpolation="nearest",
+        extent=extent,
+        origin="upper",
+        zorder=1,
+    )
+    ax.set_xlim(extent[0], extent[1])
+    ax.set_ylim(extent[2], extent[3])
+    style_axes(ax)
+    return image
+
+
 def text_colour_for(rgba: Sequence[float]) -> str:
     """Black or white, whichever reads better on a cell of colour ``rgba`` (WCAG luminance)."""
 

@@ -29,6 +29,7 @@ from viewer.core.words import contains
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
 from viewer.reports.evidence import ROW_TITLES, evidence_for
+from viewer.reports.heads import predicts
 from viewer.reports.predictions import accuracy_data, set_labels
 from viewer.reports.runfolder import input_digest
 from viewer.reports.runs import (
@@ -155,7 +156,6 @@ def card_data(
     """All numbers of a card, computed by the same runs as the commands."""
     source = as_source(texts)
     items = load_text_set(source)
-    prediction = loaded.head_kind in ("classifier", "causal-lm")
     data: dict = {
         "model": {
             "folder": loaded.name,
@@ -177,7 +177,7 @@ def card_data(
         data["links"] = links_data(loaded, pairs_path, batch_size=batch_size, quiet=quiet, run=run)
         data["evaluation_data"]["pairs_file"] = pairs_path.name
         data["evaluation_data"]["pairs"] = data["links"]["pairs"]
-    if prediction:
+    if predicts(loaded):
         data["shortcuts"] = shortcuts_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run)
         predicted = None
         if loaded.head_kind == "classifier":

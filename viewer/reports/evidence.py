@@ -38,6 +38,7 @@ from viewer.core.summary import summary_attention
 from viewer.errors import HeadlightError
 from viewer.model.attribution import gradient_evidence, token_knockout
 from viewer.model.loader import LoadedModel
+from viewer.reports.heads import predicts
 
 ROWS = ("attention", "rollout", "flow", "value_norm", "grad_input", "integrated_gradients", "knockout")
 ROW_TITLES = {
@@ -157,7 +158,7 @@ def evidence_for(
     target = label = None
     probs = rec.class_probabilities()
     gap = ig_steps = None
-    if loaded.head_kind in ("classifier", "causal-lm"):
+    if predicts(loaded):
         dist = probs if loaded.head_kind == "classifier" else softmax(rec.logits[-1])
         target = int(np.argmax(dist))
         label = (

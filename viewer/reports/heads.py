@@ -52,10 +52,16 @@ def check_labels(loaded: LoadedModel, survey: Survey) -> bool:
     return True
 
 
+def predicts(loaded: LoadedModel) -> bool:
+    """Whether the model makes a prediction to explain or knock out: a sequence classifier's
+    class or a causal LM's next token (a masked LM or a bare encoder does not)."""
+    return loaded.head_kind in ("classifier", "causal-lm")
+
+
 def require_prediction(loaded: LoadedModel, what: str) -> None:
     """HeadlightError naming ``what`` when the model has no prediction to knock out (neither a
     sequence classifier nor a causal LM)."""
-    if loaded.head_kind not in ("classifier", "causal-lm"):
+    if not predicts(loaded):
         raise HeadlightError(
             f"{what} needs a prediction to knock out; {loaded.name} has no classifier or "
             f"language-model head (head kind: {loaded.head_kind}); use a sequence classifier "

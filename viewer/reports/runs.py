@@ -26,6 +26,7 @@ from viewer.reports.heads import (
     check_labels,
     normalise_importance,
     predictions,
+    predicts,
     require_prediction,
 )
 from viewer.reports.links import LinksKind
@@ -64,6 +65,21 @@ def _run(
         return require_some(
             run_shards(kind, loaded, items, options=run, total=total, inputs=key, on_shard=on_shard)
         )
+
+
+def _run_set(
+    kind: ShardKind,
+    loaded: LoadedModel,
+    source: TextSource,
+    label: str,
+    run: RunOptions,
+    quiet: bool,
+    total: int | None = None,
+) -> Any:
+    """``_run`` over a text set: its items, counted first (``total``, when the caller has
+    counted them already), the run folder keyed by its content."""
+    total = survey(source).texts if total is None else total
+    return _run(kind, loaded, source.items(), total, label, source.key, run, quiet)
 
 
 @dataclass(frozen=True)
@@ -134,11 +150,10 @@ def heads_data(
 ) -> dict:
     source = as_source(texts)
     info = survey(source)
-    prediction = loaded.head_kind in ("classifier", "causal-lm")
-    importance, knockout = prediction and importance, prediction and knockout
+    importance, knockout = predicts(loaded) and importance, predicts(loaded) and knockout
     use_labels = check_labels(loaded, info) if (importance or knockout) else False
     kind = HeadsKind(batch_size, importance=importance, knockout=knockout, use_labels=use_labels)
-    part = _run(kind, loaded, source.items(), info.texts, "head summaries", source.key, run, quiet)
+    part = _run_set(kind, loaded, source, "head summaries", run, quiet, info.texts)
     data = {"model": str(loaded.folder), **part.stats.summary().to_dict()}
     n = info.texts
     if importance:
@@ -163,11 +178,7 @@ def predictions_data(
     run: RunOptions = SERIAL,
 ) -> TextSetScan:
     """Every text's prediction and the head summary, as the window's ``scan_text_set``."""
-    source = as_source(texts)
-    total = survey(source).texts
-    part = _run(
-        HeadsKind(batch_size, rows=True), loaded, source.items(), total, "predictions", source.key, run, quiet
-    )
+    part = _run_set(HeadsKind(batch_size, rows=True), loaded, as_source(texts), "predictions", run, quiet)
     return TextSetScan(part.stats.summary(), predictions(loaded, part))
 
 
@@ -203,17 +214,8 @@ def shortcuts_data(
     run: RunOptions = SERIAL,
 ) -> dict:
     require_prediction(loaded, "shortcut search")
-    source = as_source(texts)
-    total = survey(source).texts
-    report = _run(
-        ShortcutKind(batch_size, phrases),
-        loaded,
-        source.items(),
-        total,
-        "word knockout",
-        source.key,
-        run,
-        quiet,
+    report = _run_set(
+        ShortcutKind(batch_size, phrases), loaded, as_source(texts), "word knockout", run, quiet
     )
     return {"model": str(loaded.folder), **report.to_dict()}
 
@@ -242,7 +244,7 @@ def insertion_data(
         target,
         seed,
         batch_size,
-        lambda kind, label: _run(kind, loaded, source.items(), total, label, source.key, run, quiet),
+        lambda kind, label: _run_set(kind, loaded, source, label, run, quiet, total),
         by_class,
     )
     return {"model": str(loaded.folder), **report.to_dict()}

@@ -307,7 +307,7 @@ def links_export(
 
     from viewer.figures.links import LINK_UNITS, links_into
     from viewer.figures.style import head_name
-    from viewer.session.analysis import per_head_link, unit_links
+    from viewer.session.views import link_view
 
     if analysis is None:
         raise HeadlightError("nothing to export in the links pane yet: run a text first")
@@ -317,13 +317,9 @@ def links_export(
             "nothing to export in the links pane: pick a source token first (click a pair-grid cell)"
         )
     u = analysis.units
-    scores = unit_links(analysis, layer, head, query)
-    per_head = target_unit = None
-    if key is not None and key < rec.n_tokens:
-        per_head = per_head_link(analysis, query, key)
-        target_unit = u.unit_of(key)
-    source_name = u.names[u.unit_of(query)]
-    target_name = u.names[target_unit] if target_unit is not None else None
+    view = link_view(analysis, layer, head, query, key)
+    scores, per_head, target_unit = view.scores, view.per_head, view.target_unit
+    source_name, target_name = view.source_name, view.target_name
     where = head_name(layer, head)
     fig = print_figure()
     links_into(
@@ -366,7 +362,7 @@ def links_export(
 def evidence_export(analysis, evidence, source: Source, *, token: int | None = None) -> PaneExport:
     """The evidence strip; its data holds the keys of ``headlight evidence --json``."""
 
-    from viewer.figures.evidence import ROW_UNITS, evidence_into, mark_token, prediction_line
+    from viewer.figures.evidence import ROW_UNITS, mark_token, prediction_line, recording_evidence_into
 
     if analysis is None:
         raise HeadlightError("nothing to export in the evidence strip yet: run a text first")
@@ -375,20 +371,9 @@ def evidence_export(analysis, evidence, source: Source, *, token: int | None = N
     rec = analysis.recording
     probs = rec.class_probabilities()
     line = prediction_line(rec.labels, probs, rec.predicted(), analysis.label)
-    row_labels, values, agreement = evidence.strip_rows()
+    row_labels, values, _ = evidence.strip_rows()
     fig = print_figure()
-    arts = evidence_into(
-        fig,
-        rec.tokens,
-        row_labels,
-        values,
-        agreement,
-        labels=rec.labels,
-        probabilities=probs if len(probs) else None,
-        predicted=rec.predicted(),
-        gold=analysis.label,
-        title=line,
-    )
+    arts = recording_evidence_into(fig, rec, evidence, gold=analysis.label)
     mark_token(arts, token)
     units = " ".join(ROW_UNITS.split())
     heading = _heading(

@@ -197,21 +197,20 @@ class Selection:
         }
 
     # -- sizes -----------------------------------------------------------------------------
+    def _size(self, name: str) -> int:
+        """``n_layers`` or ``n_heads`` of the current run, else of the open model, else 0."""
+        a, m = self._values["analysis"], self._values["model"]
+        if a is not None:
+            return getattr(a.recording, name)
+        return getattr(m, name) if m is not None else 0
+
     @property
     def n_layers(self) -> int:
-        a = self._values["analysis"]
-        if a is not None:
-            return a.recording.n_layers
-        m = self._values["model"]
-        return m.n_layers if m is not None else 0
+        return self._size("n_layers")
 
     @property
     def n_heads(self) -> int:
-        a = self._values["analysis"]
-        if a is not None:
-            return a.recording.n_heads
-        m = self._values["model"]
-        return m.n_heads if m is not None else 0
+        return self._size("n_heads")
 
     @property
     def n_tokens(self) -> int:

@@ -95,6 +95,21 @@ class TableDock(StateListener, QWidget):
         table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         return table
 
+    def show_selected(self, shown: Sequence, current) -> None:
+        """Select the row whose value is ``current`` (``shown``: each row's value, in table
+        order), or no row, without the table announcing it as the user's choice."""
+        self.table.blockSignals(True)
+        if current in shown:
+            self.table.selectRow(list(shown).index(current))
+        else:
+            self.table.clearSelection()
+        self.table.blockSignals(False)
+
+    def chosen(self, shown: Sequence):
+        """The value of the row the user selected, or None."""
+        rows = self.table.selectionModel().selectedRows()
+        return shown[rows[0].row()] if rows else None
+
 
 class FigurePane(StateListener, QWidget):
     """Base class: subclasses implement ``render`` (a build function, or a message).

@@ -39,7 +39,7 @@ class EvidencePane(FigurePane):
         source = self.state.source
 
         def build() -> None:  # render thread
-            from viewer.figures.evidence import evidence_into, mark_token
+            from viewer.figures.evidence import mark_token, recording_evidence_into
 
             if self.artists is not None and self._drawn_for is ev:
                 mark_token(self.artists, source)  # only the source token moved
@@ -47,21 +47,9 @@ class EvidencePane(FigurePane):
                 return
             if self.blitter is not None:
                 self.blitter.detach()
-            row_labels, values, agreement = ev.strip_rows()
-            self.artists = evidence_into(
-                self.figure,
-                rec.tokens,
-                row_labels,
-                values,
-                agreement,
-                labels=rec.labels,
-                probabilities=probs if len(probs) else None,
-                predicted=rec.predicted(),
-                gold=a.label,
-                title=line,
-            )
+            self.artists = recording_evidence_into(self.figure, rec, ev, gold=a.label)
             n = rec.n_tokens
-            self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(row_labels) - 0.5))
+            self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(self.artists.row_labels) - 0.5))
             self.blitter = Blitter(self.agg, [self.artists.marker])
             self._drawn_for = ev
             mark_token(self.artists, source)

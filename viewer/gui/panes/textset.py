@@ -119,15 +119,9 @@ class TextSetPane(TableDock):
         self._select_current()
 
     def _select_current(self) -> None:
-        item = self.state.item
-        self.table.blockSignals(True)
-        if item in self.rows_shown:
-            self.table.selectRow(self.rows_shown.index(item))
-        else:
-            self.table.clearSelection()
-        self.table.blockSignals(False)
+        self.show_selected(self.rows_shown, self.state.item)
 
     def _row_chosen(self) -> None:
-        rows = self.table.selectionModel().selectedRows()
-        if rows:
-            self.state.select_item(self.rows_shown[rows[0].row()])
+        item = self.chosen(self.rows_shown)
+        if item is not None:
+            self.state.select_item(item)
