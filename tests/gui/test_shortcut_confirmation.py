@@ -28,11 +28,11 @@ def demo_window(qtbot, tmp_path):
 
 @pytest.fixture
 def messages(tmp_path):
-    """Every other sample message (60, 30 of them with the footer), to keep the window's five
+    """Every third sample message (40, 21 of them with the footer), to keep the window's five
     insertion tests short."""
     import json
 
-    lines = (SAMPLES / "coop_messages.jsonl").read_text(encoding="utf-8").splitlines()[::2]
+    lines = (SAMPLES / "coop_messages.jsonl").read_text(encoding="utf-8").splitlines()[::3]
     path = tmp_path / "half.jsonl"
     path.write_text("".join(json.dumps(json.loads(line)) + "\n" for line in lines), encoding="utf-8")
     return path

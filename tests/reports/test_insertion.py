@@ -79,7 +79,7 @@ def footer_at_the_end():
 
 def assert_end_position(end: dict, footer_at_the_end) -> None:
     tried, flipped = footer_at_the_end
-    assert end["tried"] == len(tried) >= 20 and end["flipped"] == flipped
+    assert end["tried"] == len(tried) >= 15 and end["flipped"] == flipped
     assert end["flips"] == len(flipped) and end["flip_rate"] == pytest.approx(len(flipped) / len(tried))
     low, high = reference.wilson(len(flipped), len(tried))
     assert end["flip_low"] == pytest.approx(low, abs=1e-12)

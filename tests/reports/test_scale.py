@@ -212,11 +212,11 @@ def test_an_unreachable_scheduler_is_a_one_line_error(demo):
 
 
 @pytest.mark.slow
-def test_a_killed_run_resumes_to_the_serial_result(demo, items, tmp_path, monkeypatch):
+def test_a_killed_run_resumes_to_the_serial_result(demo, few, tmp_path, monkeypatch):
     """A subprocess killed (SIGKILL) after a few shards; the same command again computes only
     the missing shards and prints what a run without a run folder prints."""
     texts = tmp_path / "texts.jsonl"
-    texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in items), "utf-8")
+    texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in few), "utf-8")
     work = tmp_path / "work"
     argv = [
         "shortcuts",
@@ -226,7 +226,7 @@ def test_a_killed_run_resumes_to_the_serial_result(demo, items, tmp_path, monkey
         "--workers",
         "1",
         "--shard-size",
-        "4",
+        "2",
         "--no-phrases",
         "--work",
         str(work),
@@ -261,7 +261,7 @@ def test_a_killed_run_resumes_to_the_serial_result(demo, items, tmp_path, monkey
     assert main([*argv, "--json", str(tmp_path / "resumed.json")]) == 0
     assert len(calls) == 12 - kept and not set(calls) & set(range(kept))
     assert (folder / "result.npz").exists() and not list(folder.glob("shard-*.npz"))
-    reference = shortcuts_data(demo, texts, phrases=False, run=RunOptions(shard_size=4), quiet=True)
+    reference = shortcuts_data(demo, texts, phrases=False, run=RunOptions(shard_size=2), quiet=True)
     reference.pop("model")
     resumed = json.loads((tmp_path / "resumed.json").read_text())
     resumed.pop("model")
