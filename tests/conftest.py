@@ -11,6 +11,11 @@ import pytest
 
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 os.environ.setdefault("HF_HUB_OFFLINE", "1")
+# One torch (and BLAS) thread per test process, read by torch when it is first imported: the
+# suite's models are tiny, and a second spinning thread competes with the window's worker and
+# render threads and, on a 2-core machine, with every other process (the tests that run shards
+# use one thread anyway, as RunOptions.threads does). Worker processes inherit it.
+os.environ.setdefault("OMP_NUM_THREADS", "1")
 # Run folders (and anything else cached) go to a fresh folder of this test run, never to the
 # user's ~/.cache, whatever the fixture scope of the test that writes them.
 os.environ["XDG_CACHE_HOME"] = tempfile.mkdtemp(prefix="headlight-tests-cache-")
