@@ -72,3 +72,20 @@ def refusal(action) -> str:
     except OSError as exc:
         return exc.strerror
     raise AssertionError("the action was not refused")
+
+
+@pytest.fixture(scope="module")
+def coarse_integrated_gradients():
+    """Integrated gradients kept at their first 50 steps for the rest of the module: on the random
+    tiny decoders, DeBERTa and ModernBERT the path integral never meets the completeness
+    tolerance, and doubling the steps up to 800 costs seconds an evidence strip. Refining the steps
+    is the subject of tests/reports/test_demo_evidence.py, on a trained model."""
+    import functools
+
+    from viewer.reports import evidence
+
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(
+            evidence, "gradient_evidence", functools.partial(evidence.gradient_evidence, max_steps=50)
+        )
+        yield

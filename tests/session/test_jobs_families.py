@@ -24,7 +24,7 @@ def context() -> jobs.JobContext:
 
 
 @pytest.mark.parametrize("kind", tiny.FAMILY_KINDS)
-def test_every_family_runs_through_the_windows_jobs(kind, tmp_path, monkeypatch):
+def test_every_family_runs_through_the_windows_jobs(kind, tmp_path, coarse_integrated_gradients):
     folder = tiny.save(tmp_path / kind, kind)
     ctx = context()
     info = jobs.open_model(ctx, "main", str(folder))
@@ -37,16 +37,6 @@ def test_every_family_runs_through_the_windows_jobs(kind, tmp_path, monkeypatch)
     np.testing.assert_allclose(analysis.heads.entropy, reference.mean_entropy([own]), atol=2e-6)
     assert len(analysis.units.of_token) == rec.n_tokens and (analysis.units.of_token >= 0).all()
     if kind in EVIDENCE_KINDS:  # the evidence strip, with its gradients, on a few (slow)
-        # Integrated gradients on these random models never meet the completeness tolerance, and
-        # doubling the steps to 800 cost seconds per family; refining is the subject of
-        # tests/reports/test_demo_evidence.py, so here the path keeps its first 50 steps.
-        import functools
-
-        from viewer.reports import evidence
-
-        monkeypatch.setattr(
-            evidence, "gradient_evidence", functools.partial(evidence.gradient_evidence, max_steps=50)
-        )
         ev = jobs.run_evidence(ctx, "main", analysis)
         assert ev.recording is rec
         np.testing.assert_allclose(ev.rows["knockout"], reference.token_knockout(hf, rec.text), atol=2e-6)
