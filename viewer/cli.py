@@ -287,7 +287,7 @@ def cmd_insert(args: argparse.Namespace) -> int:
 
 
 def cmd_evidence(args: argparse.Namespace) -> int:
-    from viewer.reports.evidence import KIND_TITLES, KINDS, evidence_for
+    from viewer.reports.evidence import ROW_TITLES, ROWS, evidence_for
 
     loaded = _open(args)
     ev = evidence_for(loaded, args.text, steps=args.steps)
@@ -302,14 +302,14 @@ def cmd_evidence(args: argparse.Namespace) -> int:
             )
         )
     width = max(len(t) for t in ev.recording.tokens)
-    print(f"{'token':<{width}} " + " ".join(f"{k[:10]:>10}" for k in KINDS))
+    print(f"{'token':<{width}} " + " ".join(f"{k[:10]:>10}" for k in ROWS))
     for i, tok in enumerate(ev.recording.tokens):
-        vals = " ".join(f"{ev.rows[k][i]:>10.4f}" for k in KINDS)
+        vals = " ".join(f"{ev.rows[k][i]:>10.4f}" for k in ROWS)
         print(f"{tok:<{width}} {vals.replace('nan', '  -')}")
     if ev.agreement:
         print("rank agreement with knockout (Spearman):")
-        for kind, rho in ev.agreement.items():
-            print(f"  {KIND_TITLES[kind]:<50} {rho:+.3f}")
+        for row, rho in ev.agreement.items():
+            print(f"  {ROW_TITLES[row]:<50} {rho:+.3f}")
     for note in ev.notes:
         print(f"note: {note}")
     if args.json:
@@ -319,8 +319,8 @@ def cmd_evidence(args: argparse.Namespace) -> int:
 
 def cmd_card(args: argparse.Namespace) -> int:
     from viewer.core.links import read_link_pairs
-    from viewer.figures.card import export_card
     from viewer.reports.textsets import load_text_set
+    from viewer.session.exports import export_card
 
     out = Path(args.out)
     if out.exists() and not args.force:

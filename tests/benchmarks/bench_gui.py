@@ -1,6 +1,6 @@
 """Window benchmarks, measured side by side in one run (not part of the test suite).
 
-    QT_QPA_PLATFORM=offscreen python tests/benchmarks/bench_gui.py [--model DIR]
+    QT_QPA_PLATFORM=offscreen python tests/benchmarks/bench_gui.py [--model DIR] [--switch-interval S]
 
 Prints four ratios (lower is better) with their goals:
 
@@ -337,6 +337,12 @@ def bench_gaps(window, text: str) -> tuple[float, int]:
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--model", help="model folder (default: the MiniLM test model)")
+    parser.add_argument(
+        "--switch-interval",
+        type=float,
+        metavar="S",
+        help="Python's GIL switch interval instead of the window's (Python's default: 0.005)",
+    )
     args = parser.parse_args(argv)
     if args.model is None:
         from tests.conftest import minilm_folder
@@ -348,6 +354,8 @@ def main(argv: list[str] | None = None) -> int:
     from viewer.model.loader import open_model
 
     application()
+    if args.switch_interval is not None:
+        sys.setswitchinterval(args.switch_interval)
     tune_collector()  # as ``headlight`` does
     tmp = Path(tempfile.mkdtemp(prefix="headlight-bench-"))
     window = MainWindow(

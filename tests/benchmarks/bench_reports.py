@@ -30,7 +30,8 @@ from tests.conftest import minilm_folder  # noqa: E402
 from tests.model import tiny  # noqa: E402
 from viewer.model.loader import open_model  # noqa: E402
 from viewer.model.runs import model_inputs  # noqa: E402
-from viewer.reports.heads import head_summary  # noqa: E402
+from viewer.reports.heads import HeadsKind  # noqa: E402
+from viewer.reports.shards import run_report  # noqa: E402
 from viewer.reports.shortcuts import shortcut_search  # noqa: E402
 from viewer.reports.textsets import TextItem  # noqa: E402
 
@@ -55,6 +56,11 @@ def bare(loaded, items, batch_size=16) -> None:
 
 def rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def head_summary(loaded, items):
+    """`headlight heads --skip-importance` without the command around it."""
+    return run_report(HeadsKind(), loaded, items).stats.summary()
 
 
 def main() -> None:

@@ -33,7 +33,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from tests.conftest import minilm_folder  # noqa: E402
 from viewer.core.shortcuts import phrase_spans, word_spans  # noqa: E402
 from viewer.model.loader import open_model  # noqa: E402
-from viewer.model.runs import model_inputs  # noqa: E402
+from viewer.model.runs import attentions, model_inputs  # noqa: E402
 from viewer.reports import workers  # noqa: E402
 from viewer.reports.shards import RunOptions  # noqa: E402
 from viewer.reports.shortcuts import knockout_tokens, shortcut_search  # noqa: E402
@@ -73,7 +73,7 @@ def classifier(folder: Path) -> Path:
 def knocked_out_inputs(loaded, items, phrases: bool) -> list[list[int]]:
     """The id lists the search runs, in its order (per group of 16 texts)."""
     out = []
-    for att in loaded.attentions([i.text for i in items], batch_size=BATCH):
+    for att in attentions(loaded, [i.text for i in items], BATCH):
         plans = list(knockout_tokens(att, word_spans(att.text)).values())
         if phrases:
             plans += list(knockout_tokens(att, phrase_spans(att.text)).values())

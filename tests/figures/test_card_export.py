@@ -1,7 +1,8 @@
-"""Card export and figure files: formats decode, numbers agree with the commands, files safe."""
+"""Card export and figure files: formats decode, numbers are the model's own, files safe."""
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import re
@@ -14,6 +15,8 @@ from matplotlib.figure import Figure
 from PIL import Image
 from pypdf import PdfReader
 
+from tests import reference
+from tests.conftest import refusal
 from tests.model import tiny
 from viewer.cli import main
 from viewer.errors import HeadlightError
@@ -99,25 +102,19 @@ def test_card_files_and_image_links(card):
     assert "SHA-256" in md and "| command |" in md
 
 
-def test_card_numbers_equal_the_commands(card, inputs, tmp_path):
-    """card.json's parts equal the JSON of `heads`, `links`, `shortcuts` and `check`."""
+def test_card_numbers_are_the_models_own(card, inputs):
     root, model, texts, pairs = inputs
     data = json.loads((card / "card.json").read_text())
-    out = {}
-    for name, extra in (
-        ("check", ["--texts", str(texts)]),
-        ("heads", ["--texts", str(texts)]),
-        ("links", ["--pairs", str(pairs)]),
-        ("shortcuts", ["--texts", str(texts)]),
-    ):
-        path = tmp_path / f"{name}.json"
-        quiet = [] if name == "check" else ["--quiet"]
-        assert main([name, str(model), *extra, *quiet, "--json", str(path)]) == 0
-        out[name] = json.loads(path.read_text())
-        out[name].pop("model")
-        assert data[name] == out[name], name
-    assert data["check"]["passed"] is True
-    assert data["reproducibility"]["sha256"]["model.safetensors"]
+    reference.card_matches_the_models_own_numbers(data, model, TEXTS, PAIRS)
+    md = (card / "card.md").read_text(encoding="utf-8")
+    acc = data["accuracy"]
+    assert f"- Accuracy on the labelled texts: {acc['accuracy']:.3f} ({acc['correct']} of 4)." in md
+    the = data["shortcuts"]["tokens"][0]
+    assert f"| the | 4 | {the['flip_rate']:.3f} | {the['flip_low']:.3f} | {the['mean_drop']:.3f} |" in md
+    assert (
+        data["reproducibility"]["sha256"]["model.safetensors"]
+        == hashlib.sha256((model / "model.safetensors").read_bytes()).hexdigest()
+    )
 
 
 def test_two_exports_differ_only_in_the_date_line(card, inputs, tmp_path):
@@ -171,12 +168,27 @@ def test_missing_parent_folder_is_a_one_line_error(inputs, tmp_path, capsys):
     assert "does not exist" in err and err.count("\n") == 1
 
 
-def test_unwritable_target_even_as_root(tmp_path):
-    """A path under a regular file cannot be written by anyone (reference: POSIX ENOTDIR)."""
-    blocker = tmp_path / "file"
-    blocker.write_text("x")
-    with pytest.raises(HeadlightError, match="cannot write|does not exist"):
-        atomic_write_text(blocker / "card.md", "hello")
+def test_an_unwritable_folder_is_a_one_line_error(unwritable_dir, inputs, capsys, monkeypatch):
+    """A folder that refuses new files (checked by the fixture, by trying): the atomic writer and
+    the card command both say so in one line, and the card fails before computing anything."""
+    reason = refusal(lambda: os.open(unwritable_dir / "x", os.O_CREAT | os.O_WRONLY))
+    with pytest.raises(HeadlightError) as caught:
+        atomic_write_text(unwritable_dir / "card.md", "hello")
+    assert str(caught.value) == f"cannot write {unwritable_dir / 'card.md'}: {reason}"
+    assert not (unwritable_dir / "card.md").exists()
+    root, model, texts, _ = inputs
+    import viewer.reports.card
+
+    def no_reports(*_a, **_k):
+        raise AssertionError("the card computed its numbers before finding it could not write them")
+
+    monkeypatch.setattr(viewer.reports.card, "card_data", no_reports)
+    capsys.readouterr()
+    out = unwritable_dir / "card"
+    assert main(["card", str(model), "--texts", str(texts), "--out", str(out), "--quiet"]) == 2
+    captured = capsys.readouterr()
+    reason = refusal(lambda: os.mkdir(unwritable_dir / "x"))  # the card's folder is a new folder
+    assert captured.err == f"headlight: error: cannot write {unwritable_dir / 'card'}: {reason}\n"
 
 
 def test_names_from_text_are_sanitised():

@@ -16,14 +16,10 @@ import pytest  # noqa: E402
 from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
+from tests.figures.readers import colorbar_units, visible_tick_labels  # noqa: E402
 from viewer.figures import style  # noqa: E402
-from viewer.figures.evidence import evidence_figure, normalise_rows  # noqa: E402
-from viewer.figures.head_map import (  # noqa: E402
-    head_at,
-    head_map_figure,
-    head_map_into,
-    update_head_map,
-)
+from viewer.figures.evidence import evidence_into, normalise_rows  # noqa: E402
+from viewer.figures.head_map import head_at, head_map_into, update_head_map  # noqa: E402
 from viewer.figures.links import links_into, relink, top_links  # noqa: E402
 from viewer.figures.pair_grid import (  # noqa: E402
     cell_at,
@@ -32,6 +28,12 @@ from viewer.figures.pair_grid import (  # noqa: E402
     retoken_pair_grid,
     update_pair_grid,
 )
+
+
+def head_map_figure(values: np.ndarray, **options) -> Figure:
+    fig = Figure(figsize=(6.0, 3.6), dpi=100)
+    head_map_into(fig, values, **options)
+    return fig
 
 
 def random_attention(t: int, causal: bool, seed: int = 0) -> np.ndarray:
@@ -63,7 +65,7 @@ def test_pair_grid_image_holds_the_probabilities():
     np.testing.assert_array_equal(np.ma.getdata(data), probs)  # exactly the input
     assert not np.ma.getmaskarray(data).any()
     assert image.colorbar is not None
-    assert style.colorbar_units(image.colorbar) == "attention probability"
+    assert colorbar_units(image.colorbar) == "attention probability"
 
 
 def test_pair_grid_masks_causal_cells_instead_of_showing_zero():
@@ -152,12 +154,12 @@ def test_token_labels_are_decimated_for_long_texts(n_tokens):
     ax = fig.axes[0]
     font_px = style.FONT_SIZE * fig.dpi / 72
     for which, room in (("x", ax.get_window_extent().width), ("y", ax.get_window_extent().height)):
-        labels = style.visible_tick_labels(ax, which)
+        labels = visible_tick_labels(ax, which)
         # no more labels than fit at one label height each (so none overlap) ...
         assert 2 <= len(labels) <= room / (font_px * style.LABEL_SPACING) + 1
     # ... and zooming in shows every token once the view is small enough
     ax.set_xlim(99.5, 109.5)
-    assert style.visible_tick_labels(ax, "x") == [f"w{i}" for i in range(100, 110)]
+    assert visible_tick_labels(ax, "x") == [f"w{i}" for i in range(100, 110)]
 
 
 def test_rendered_tick_labels_do_not_overlap():
@@ -188,7 +190,7 @@ def test_head_map_data_equals_the_metric_and_names_count_from_zero():
     ax = fig.axes[0]
     np.testing.assert_array_equal(np.ma.getdata(ax.images[0].get_array()), metric)
     assert [t.get_text() for t in ax.get_yticklabels()] == [f"layer {i}" for i in range(6)]
-    assert style.colorbar_units(ax.images[0].colorbar) == "entropy (0–1)"
+    assert colorbar_units(ax.images[0].colorbar) == "entropy (0–1)"
     marker = [p for p in ax.patches if p.get_visible() and not p.get_fill()][0]
     assert (marker.get_x(), marker.get_y()) == (0.5, 2.5)  # head 1, layer 3
 
@@ -224,18 +226,19 @@ def test_evidence_rows_are_normalised_and_agreement_shown():
     np.testing.assert_allclose(shown[0], [0, 1, 0.5])
     np.testing.assert_allclose(shown[1], [-1, 0.5, 0])
     assert np.isnan(shown[2, 0]) and shown[2, 1] == 1.0
-    fig = drawn(
-        evidence_figure(
-            ["[CLS]", "a", "b"],
-            ["x", "y", "knockout"],
-            values,
-            [0.5, -0.25, "reference"],
-            labels=["p", "q"],
-            probabilities=np.array([0.3, 0.7]),
-            predicted=1,
-            gold="p",
-        )
+    fig = Figure(figsize=(9.0, 3.2), dpi=100)
+    evidence_into(
+        fig,
+        ["[CLS]", "a", "b"],
+        ["x", "y", "knockout"],
+        values,
+        [0.5, -0.25, "reference"],
+        labels=["p", "q"],
+        probabilities=np.array([0.3, 0.7]),
+        predicted=1,
+        gold="p",
     )
+    fig = drawn(fig)
     ax = fig.axes[0]
     np.testing.assert_allclose(np.ma.getdata(ax.images[0].get_array())[:2], shown[:2])
     texts = [t.get_text() for t in ax.texts]

@@ -1,15 +1,14 @@
 """Pane export and the window's card export, on the real window with the tiny model.
 
-References: the recording's own probabilities (``Recording.own_probs``), the head map's metric from
-``viewer.session.metrics.head_values`` (what the pane draws), readers that are not ours (Pillow,
-ElementTree, pypdf, csv, json), and ``viewer.figures.card.export_card`` run directly on the same
-inputs for the card folder.
+References: transformers' own forward and the definitions written out in tests/reference.py,
+and readers that are not ours (Pillow, ElementTree, pypdf, csv, json).
 """
 
 from __future__ import annotations
 
 import csv
 import json
+import os
 import re
 import xml.etree.ElementTree as ET
 from pathlib import Path
@@ -19,6 +18,7 @@ import pytest
 from PIL import Image
 from pypdf import PdfReader
 
+from tests.conftest import refusal
 from tests.gui.conftest import WAIT_MS, run_and_wait, settle, wait_idle
 from viewer.figures.export import PRINT_DPI, PRINT_SIZE
 from viewer.gui import export as gui_export
@@ -50,8 +50,13 @@ def read_csv(path: Path) -> list[list[str]]:
         return list(csv.reader(fh))
 
 
-def test_pair_grid_export_writes_all_five_files(qtbot, window, tmp_path):
+def test_pair_grid_export_writes_all_five_files(qtbot, window, tmp_path, tiny_dir):
+    """The five files decode with readers that are not ours, and the numbers in them are the
+    model's own attention (transformers' output_attentions, layer 1 · head 2)."""
+    from tests import reference
+
     rec = run_and_wait(qtbot, window, evidence=False).recording
+    own = reference.attentions(reference.open_hf(tiny_dir), rec.text)[1, 2]  # (T, T)
     window.state.select_head(1, 2)
     settle(qtbot, window.pair_grid)
     stem = tmp_path / "grid"
@@ -65,14 +70,14 @@ def test_pair_grid_export_writes_all_five_files(qtbot, window, tmp_path):
     data = json.loads(stem.with_suffix(".json").read_text(encoding="utf-8"))
     assert (data["layer"], data["head"]) == (1, 2)
     assert data["tokens"] == list(rec.tokens)
-    np.testing.assert_array_equal(np.array(data["values"]), rec.own_probs[1, 2].astype(np.float64))
+    np.testing.assert_allclose(np.array(data["values"]), own, atol=1e-6)
     rows = read_csv(stem.with_suffix(".csv"))
     assert rows[0][:5] == ["query", "query_token", "key", "key_token", "attention_probability"]
     got = np.zeros_like(rec.own_probs[1, 2], dtype=np.float64)
     for q, _qt, k, _kt, p, _vis in rows[1:]:
         got[int(q), int(k)] = float(p)
     assert len(rows) - 1 == rec.n_tokens**2
-    np.testing.assert_array_equal(got, rec.own_probs[1, 2].astype(np.float64))
+    np.testing.assert_allclose(got, own, atol=1e-6)
 
 
 def test_export_figure_is_print_size_with_heading_and_units(qtbot, window):
@@ -92,12 +97,18 @@ def test_export_figure_is_print_size_with_heading_and_units(qtbot, window):
     assert export.stem.startswith("the-mechanic-trued")
 
 
-def test_head_map_export_data_equals_the_shown_metric(qtbot, window, tmp_path):
-    run_and_wait(qtbot, window, evidence=False)
+def test_head_map_export_data_equals_the_shown_metric(qtbot, window, tmp_path, tiny_dir):
+    """The exported distances are what the pane shows and what transformers' own attention
+    gives: mean over query rows of Σ_j p_ij |i − j| (docs/definitions.md, "Head metrics")."""
+    from tests import reference
+
+    rec = run_and_wait(qtbot, window, evidence=False).recording
     pane = window.head_map
     pane.metric_box.setCurrentIndex(pane.metric_box.findData("distance"))
     settle(qtbot, pane)
     shown = np.ma.getdata(pane.displayed_values())
+    own = reference.mean_distance([reference.attentions(reference.open_hf(tiny_dir), rec.text)])
+    np.testing.assert_allclose(shown, own, atol=1e-5)
     stem = tmp_path / "map"
     window.exporter.export_to(pane, stem.with_suffix(".png"))  # a chosen suffix is dropped
     data = json.loads(stem.with_suffix(".json").read_text(encoding="utf-8"))
@@ -110,45 +121,65 @@ def test_head_map_export_data_equals_the_shown_metric(qtbot, window, tmp_path):
     assert len(PdfReader(stem.with_suffix(".pdf")).pages) == 1
 
 
-def test_links_and_evidence_exports(qtbot, window, tmp_path):
-    run_and_wait(qtbot, window, evidence=True)
+def test_links_and_evidence_exports(qtbot, window, tmp_path, tiny_dir):
+    """Link scores and evidence rows in the exported files against transformers' own forward:
+    docs/definitions.md, "Link pairs" (attention from the source word's first sub-token summed
+    over a word's sub-tokens), the summary-token attention row (last layer, head mean, from
+    [CLS]) and knockout (each ordinary token deleted alone); the words are grouped by hand."""
+    from tests import reference
+
+    hf = reference.open_hf(tiny_dir)
+    rec = run_and_wait(qtbot, window, evidence=True).recording
+    own = reference.attentions(hf, rec.text)  # (L, H, T, T)
+    # TEXT's tokens: [CLS] the mecha ##nic tru ##ed the whe ##el and she replac ##ed the chain
+    # [ via por ##tal ] [SEP]; token 3 is in "mechanic" (first sub-token 2), 5 in "trued" (4, 5)
     window.state.select_tokens(3, 5)
     settle(qtbot, window.links)
     links = window.exporter.export_to(window.links, tmp_path / "links")
     assert links and len(links) == 5
     data = json.loads((tmp_path / "links.json").read_text(encoding="utf-8"))
-    np.testing.assert_array_equal(np.array(data["scores"]), window.links.scores)
-    np.testing.assert_array_equal(np.array(data["per_head_to_target"]), window.links.per_head)
-    ev = window.state.evidence
+    units = [
+        [0],
+        [1],
+        [2, 3],
+        [4, 5],
+        [6],
+        [7, 8],
+        [9],
+        [10],
+        [11, 12],
+        [13],
+        [14],
+        [15],
+        [16],
+        [17, 18],
+        [19],
+        [20],
+    ]
+    assert data["word_tokens"] == units
+    head = data["head"]
+    row = own[data["layer"]].mean(axis=0)[2] if head is None else own[data["layer"], head, 2]  # (T,)
+    np.testing.assert_allclose(data["scores"], [row[u].sum() for u in units], atol=1e-6)
+    np.testing.assert_allclose(data["per_head_to_target"], own[:, :, 2, [4, 5]].sum(axis=-1), atol=1e-6)
+
     window.exporter.export_to(window.evidence, tmp_path / "evidence")
     data = json.loads((tmp_path / "evidence.json").read_text(encoding="utf-8"))
-    for kind, row in data["rows"].items():
-        got = np.array([np.nan if v is None else v for v in row], dtype=np.float64)
-        np.testing.assert_array_equal(got, ev.rows[kind])
+    rows = {
+        k: np.array([np.nan if v is None else v for v in r], dtype=np.float64)
+        for k, r in data["rows"].items()
+    }
+    np.testing.assert_allclose(rows["attention"], own[-1].mean(axis=0)[0], atol=1e-6)
+    np.testing.assert_allclose(rows["knockout"], reference.token_knockout(hf, rec.text), atol=1e-6)
     assert ET.parse(tmp_path / "evidence.svg").getroot().tag.endswith("svg")
-    # the same keys and numbers as ``headlight evidence --json`` on the same folder and text
+    # ``headlight evidence --json`` on the same folder and text gives the same keys and rows
     from viewer.cli import main
 
-    assert (
-        main(
-            [
-                "evidence",
-                window.state.model.folder,
-                "--text",
-                ev.recording.text,
-                "--json",
-                str(tmp_path / "cli.json"),
-            ]
-        )
-        == 0
-    )
+    assert main(["evidence", str(tiny_dir), "--text", rec.text, "--json", str(tmp_path / "cli.json")]) == 0
     cli = json.loads((tmp_path / "cli.json").read_text(encoding="utf-8"))
     assert set(cli) - {"model"} <= set(data)
-    assert cli["tokens"] == data["tokens"] and cli["target"] == data["target"]
-    for kind in cli["rows"]:
-        ours = np.array([np.nan if v is None else v for v in data["rows"][kind]], dtype=float)
-        theirs = np.array([np.nan if v is None else v for v in cli["rows"][kind]], dtype=float)
-        np.testing.assert_allclose(ours, theirs, atol=1e-9, err_msg=kind)
+    for name in ("attention", "knockout"):
+        theirs = np.array([np.nan if v is None else v for v in cli["rows"][name]], dtype=float)
+        np.testing.assert_allclose(theirs, rows[name], atol=1e-6, err_msg=name)
 
 
 def test_overwrite_asks_and_no_leaves_the_file_untouched(qtbot, window, tmp_path, monkeypatch):
@@ -231,9 +262,13 @@ def card_inputs(tmp_path):
     return texts, pairs
 
 
-def test_window_card_export_equals_export_card(qtbot, window, tmp_path, tiny_dir, card_inputs, monkeypatch):
-    from viewer.figures.card import export_card
-    from viewer.model.loader import open_model
+def test_the_windows_card_export_holds_the_models_own_numbers(
+    qtbot, window, tmp_path, tiny_dir, card_inputs, monkeypatch
+):
+    """The folder the window writes: its card.json against transformers' own forward
+    (``tests.reference.card_matches_the_models_own_numbers``), its command line is the
+    ``headlight card`` that writes the same folder, and its figures are inside it."""
+    from tests import reference
 
     texts, pairs = card_inputs
     out = tmp_path / "card"
@@ -243,15 +278,11 @@ def test_window_card_export_equals_export_card(qtbot, window, tmp_path, tiny_dir
     assert window.exporter.last_card == str(out)
     assert "model-card folder written" in window.status_label.text()
     got = json.loads((out / "card.json").read_text(encoding="utf-8"))
-    reference = tmp_path / "reference"
-    export_card(open_model(tiny_dir), texts, reference, pairs_path=pairs, quiet=True)
-    want = json.loads((reference / "card.json").read_text(encoding="utf-8"))
-    assert set(got) == set(want)
-    for key in want:
-        if key != "reproducibility":
-            assert got[key] == want[key], key
-    assert got["reproducibility"]["sha256"] == want["reproducibility"]["sha256"]
-    assert got["reproducibility"]["command"].startswith("headlight card ")
+    reference.card_matches_the_models_own_numbers(got, tiny_dir, TEXTS, PAIRS)
+    assert (
+        got["reproducibility"]["command"]
+        == f"headlight card {tiny_dir} --texts {texts} --pairs {pairs} --out {out}"
+    )
     md = (out / "card.md").read_text(encoding="utf-8")
     links = re.findall(r"!\[[^\]]*\]\(([^)]+)\)", md)
     assert links
@@ -266,11 +297,20 @@ def test_window_card_export_equals_export_card(qtbot, window, tmp_path, tiny_dir
     assert (out / "card.json").read_bytes() == before
 
 
-def test_card_export_errors_are_one_line(qtbot, window, tmp_path, card_inputs):
+def test_card_export_errors_are_one_line(qtbot, window, tmp_path, card_inputs, unwritable_dir):
     texts, _pairs = card_inputs
     assert not window.exporter.export_card(str(tmp_path / "missing.txt"), None, str(tmp_path / "c"))
     assert "does not exist" in window.errors[-1]
-    # an unwritable target (its parent folder does not exist) fails on the worker
-    assert window.exporter.export_card(str(texts), None, str(tmp_path / "no" / "such" / "c"))
+    # a folder that refuses new files (the fixture checked it by trying) fails on the worker
+    out = unwritable_dir / "c"
+    assert window.exporter.export_card(str(texts), None, str(out))
     qtbot.waitUntil(lambda: len(window.errors) >= 2, timeout=WAIT_MS)
-    assert "\n" not in window.errors[-1] and "cannot write" in window.errors[-1]
+    reason = refusal(lambda: os.mkdir(unwritable_dir / "x"))  # the operating system's own words
+    assert window.errors[-1] == f"cannot write {out}: {reason}"
+    # and so does a folder that does not exist
+    assert window.exporter.export_card(str(texts), None, str(tmp_path / "no" / "such" / "c"))
+    qtbot.waitUntil(lambda: len(window.errors) >= 3, timeout=WAIT_MS)
+    assert (
+        window.errors[-1]
+        == f"cannot write {tmp_path / 'no' / 'such' / 'c'}: folder {tmp_path / 'no' / 'such'} does not exist"
+    )

@@ -24,14 +24,14 @@ def loaded(tiny_dir):
 
 
 def test_evidence_strip_and_head_metrics_match_the_reports(qtbot, window, loaded):
-    from viewer.reports.evidence import KINDS, evidence_for
+    from viewer.reports.evidence import ROWS, evidence_for
     from viewer.reports.heads import head_importance, head_knockout
     from viewer.reports.textsets import TextItem
 
     analysis = run_and_wait(qtbot, window, TEXT)
     ev = window.state.evidence
     reference = evidence_for(loaded, TEXT)
-    shown = [k for k in KINDS if np.isfinite(reference.rows[k]).any()]
+    shown = [k for k in ROWS if np.isfinite(reference.rows[k]).any()]
     labels, values, agreement = ev.strip_rows()
     assert len(labels) == len(shown)
     for row, kind in zip(values, shown, strict=True):

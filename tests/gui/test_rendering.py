@@ -1,7 +1,7 @@
 """Panes are drawn on the render thread; the window must still show exactly the current numbers.
 
 References: the recording's own probabilities (``Recording.own_probs``), the token strings of
-``viewer.figures.style.visible_tick_labels`` (what matplotlib's locator chose for the axis), and
+``tests.figures.readers.visible_tick_labels`` (what matplotlib's locator chose for the axis), and
 the selection written by a click on a head-map cell.
 """
 
@@ -13,6 +13,7 @@ import time
 import numpy as np
 import pytest
 
+from tests.figures.readers import visible_tick_labels
 from tests.gui.conftest import WAIT_MS, click, data_to_widget, run_and_wait, settle
 from viewer.figures import style
 from viewer.gui.panes.render import MarkItem, TextItem
@@ -48,7 +49,7 @@ def test_panes_are_built_off_the_gui_thread_and_show_the_new_text(qtbot, window)
     # the reused axes hold the second text: its values, its size, its token labels
     np.testing.assert_array_equal(np.ma.getdata(pane.displayed_values()), second.own_probs[0, 0])
     assert (pane.artists.n_rows, pane.artists.n_cols) == (second.n_tokens, second.n_tokens)
-    labels = style.visible_tick_labels(pane.artists.ax, "x")
+    labels = visible_tick_labels(pane.artists.ax, "x")
     assert labels and set(labels) <= set(style.token_labels(second.tokens))
     # the frame on screen is as large as the view, and its texts are the figure's labels
     image = pane.canvas.image
@@ -110,7 +111,7 @@ def test_a_drawing_error_is_a_one_line_message_and_the_pane_recovers(qtbot, wind
 def test_merged_builds_take_the_fast_path_only_if_every_build_allows_it():
     from types import SimpleNamespace
 
-    from viewer.gui.panes.render import _chain
+    from viewer.gui.panes.render import chain_builds
 
     def build(fast: bool):
         def run():
@@ -127,7 +128,7 @@ def test_merged_builds_take_the_fast_path_only_if_every_build_allows_it():
         (False, False, False),
     ):
         pane, order = SimpleNamespace(fast=False), []
-        _chain(pane, build(first), build(then))()
+        chain_builds(pane, build(first), build(then))()
         assert order == [first, then] and pane.fast is expected
 
 

@@ -1,8 +1,8 @@
 """Insertion tests beside the shortcut report, and the fixation plot, in the real window.
 
-On the demo model, whose footer "[via portal]" is a real shortcut. References: the reports'
-own ``insertion_test`` (what ``headlight insert`` prints) and the shortcut search's ranking
-(what ``headlight shortcuts`` prints) on the same texts.
+On the demo model, whose footer "[via portal]" is a real shortcut. References: transformers' own
+forward on the texts with "portal" appended (tests/reference.py, Wilson 1927 written out there)
+and the shortcut search's ranking (what ``headlight shortcuts`` prints) on the same texts.
 """
 
 from __future__ import annotations
@@ -27,13 +27,20 @@ def demo_window(qtbot, tmp_path):
 
 
 @pytest.fixture
-def messages():
-    return SAMPLES / "coop_messages.jsonl"
+def messages(tmp_path):
+    """Every third sample message (40, 21 of them with the footer), to keep the window's five
+    insertion tests short."""
+    import json
+
+    lines = (SAMPLES / "coop_messages.jsonl").read_text(encoding="utf-8").splitlines()[::3]
+    path = tmp_path / "half.jsonl"
+    path.write_text("".join(json.dumps(json.loads(line)) + "\n" for line in lines), encoding="utf-8")
+    return path
 
 
 def test_insertion_column_and_fixation_plot(qtbot, demo_window, messages):
-    from viewer.model.loader import open_model
-    from viewer.reports.insertion import insertion_test
+    from tests import reference
+    from viewer.demo import MODEL_DIR
     from viewer.reports.textsets import load_text_set
 
     w = demo_window
@@ -46,14 +53,19 @@ def test_insertion_column_and_fixation_plot(qtbot, demo_window, messages):
     assert "portal" in top
     w.insert_action.trigger()
     qtbot.waitUntil(lambda: w.state.insertions is not None, timeout=WAIT_MS)
-    loaded = open_model(w.state.model.folder)
-    items = load_text_set(messages)
-    reference = insertion_test(loaded, items, "portal")
     shown = w.state.insertions["portal"]
-    assert shown.target_label == reference.target_label == "billing"
-    assert shown.tally.to_dict() == reference.tally.to_dict()
+    assert shown.target_label == "billing"
+    # "portal" appended to every text the model does not predict billing, by transformers alone
+    hf = reference.open_hf(MODEL_DIR)
+    texts = [i.text.strip() for i in load_text_set(messages)]
+    billing = hf.model.config.label2id["billing"]
+    tried = [k for k, p in enumerate(reference.class_probabilities(hf, texts).argmax(axis=1)) if p != billing]
+    after = reference.class_probabilities(hf, [texts[k] + " portal" for k in tried]).argmax(axis=1)
+    flipped = [k for k, p in zip(tried, after, strict=True) if p == billing]
+    end = shown.tally.entry("end")
+    assert (end["tried"], end["flipped"]) == (len(tried), flipped)
+    assert end["flip_low"] == pytest.approx(reference.wilson(len(flipped), len(tried))[0], abs=1e-12)
     row = pane.words.index("portal")
-    end = reference.tally.entry("end")
     header = [pane.table.horizontalHeaderItem(c).text() for c in range(pane.table.columnCount())]
     assert header[6:] == ["flips · repair", "flips · billing", "flips · membership", "inserted → flips into"]
     by_class = w.state.shortcuts.words.entry("portal")["by_class"]

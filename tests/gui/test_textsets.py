@@ -1,8 +1,8 @@
 """Text sets and the shortcut report in the real window.
 
-References: the text-set file's own labels, the model's predictions as ``LoadedModel.attentions``
-gives them, and ``viewer.reports.shortcuts.shortcut_search`` (what ``headlight shortcuts``
-prints) for the shortcut report's numbers.
+References: the text-set file's own labels, transformers' own predictions for the same texts,
+``viewer.reports.shortcuts.shortcut_search`` (what ``headlight shortcuts`` prints) for the
+shortcut report's numbers, and the texts holding a word, read off ``TEXTS`` by hand.
 """
 
 from __future__ import annotations
@@ -12,7 +12,6 @@ import json
 import pytest
 
 from tests.gui.conftest import WAIT_MS
-from viewer.core.shortcuts import word_spans
 
 TEXTS = [
     ("the mechanic trued the wheel [via portal]", "repair"),
@@ -63,6 +62,9 @@ def test_a_text_set_lists_predictions_and_filters_to_mistakes(qtbot, window, tex
     # mistakes from the file's labels against transformers' own predictions
     mistakes = [i for i, ((_, label), p) in enumerate(zip(TEXTS, predicted, strict=True)) if p != label]
     assert mistakes, "the random tiny model should get some of these wrong"
+    # docs/definitions.md, "Accuracy": right predictions over labelled texts
+    assert result.accuracy == pytest.approx(1 - len(mistakes) / len(TEXTS), abs=1e-12)
+    assert f"accuracy {1 - len(mistakes) / len(TEXTS):.1%}" in window.textset_pane.summary.text()
     pane.mistakes_box.click()
     assert window.state.mistakes_only
     assert pane.rows_shown == mistakes
@@ -101,16 +103,14 @@ def test_the_shortcut_report_matches_the_search_and_lists_a_words_texts(qtbot, w
         assert float(pane.table.item(r, 4).text()) == pytest.approx(row["mean_drop"], abs=5e-4)
     pane.table.selectRow(pane.words.index("portal"))
     assert window.state.word == "portal"
-    shown = window.textset_pane.rows_shown
-    assert shown == [i for i, (t, _) in enumerate(TEXTS) if "portal" in word_spans(t)]
+    assert window.textset_pane.rows_shown == [0, 1, 4, 6]  # the texts ending "[via portal]"
     window.textset_pane.clear_word.click()
     assert len(window.textset_pane.rows_shown) == len(TEXTS)
 
 
 def test_a_phrase_search_ranks_word_pairs_as_the_command_does(qtbot, window, textset_file):
     # reference: ``shortcut_search(..., phrases=True).phrases`` (what ``headlight shortcuts``
-    # prints under "phrases") and ``phrase_spans`` for which texts hold a phrase
-    from viewer.core.shortcuts import phrase_spans
+    # prints under "phrases"); the texts holding "via portal" read off TEXTS by hand
     from viewer.model.loader import open_model
     from viewer.reports.shortcuts import shortcut_search
     from viewer.reports.textsets import load_text_set
@@ -129,12 +129,9 @@ def test_a_phrase_search_ranks_word_pairs_as_the_command_does(qtbot, window, tex
     assert pane.words == [row["token"] for row in reference] and reference
     for r, row in enumerate(reference):
         assert float(pane.table.item(r, 2).text()) == pytest.approx(row["flip_rate"], abs=5e-4)
-    phrase = "via portal" if "via portal" in pane.words else pane.words[0]
-    pane.table.selectRow(pane.words.index(phrase))
-    assert window.state.word == phrase
-    assert window.textset_pane.rows_shown == [
-        i for i, (t, _) in enumerate(TEXTS) if phrase in phrase_spans(t)
-    ]
+    pane.table.selectRow(pane.words.index("via portal"))  # in 4 texts: ranked (>= 3)
+    assert window.state.word == "via portal"
+    assert window.textset_pane.rows_shown == [0, 1, 4, 6]
     pane.view_box.setCurrentIndex(pane.view_box.findData("words"))
     assert pane.table.horizontalHeaderItem(0).text() == "word"
     assert "portal" in pane.words

@@ -1,4 +1,5 @@
-"""Head gates on the input of each layer's attention output projection."""
+"""Head gates on the input of each layer's attention output projection, and head importance
+(the gates' gradient) against a finite difference."""
 
 from __future__ import annotations
 
@@ -7,7 +8,14 @@ import torch
 
 from tests.model import tiny
 from viewer.model import gates
+from viewer.model.attribution import head_importance_sums
 from viewer.model.loader import open_model
+
+
+def gated_logits(loaded, batch, g):
+    """The model's logits with gates ``g`` (None: no gate) on the head outputs."""
+    out = loaded.forward(batch, gates=g)
+    return out.logits.detach()
 
 
 @pytest.fixture(scope="module", params=tiny.FAMILY_KINDS)
@@ -17,8 +25,8 @@ def loaded(request, tmp_path_factory):
 
 def test_all_ones_reproduce_the_ungated_logits_exactly(loaded):
     batch = loaded.encode(tiny.TEXTS)
-    plain = gates.gated_logits(loaded, batch, None)
-    ones = gates.gated_logits(loaded, batch, gates.ones(loaded))
+    plain = gated_logits(loaded, batch, None)
+    ones = gated_logits(loaded, batch, gates.ones(loaded))
     assert torch.equal(plain, ones)
 
 
@@ -27,7 +35,7 @@ def test_gating_one_head_equals_zeroing_its_slice_by_hand(loaded):
     layer, head = loaded.n_layers - 1, 1
     d = loaded.geometry.head_dim
     batch = loaded.encode(tiny.TEXTS)
-    gated = gates.gated_logits(loaded, batch, gates.knockout_gates(loaded, [(layer, head)]))
+    gated = gated_logits(loaded, batch, gates.knockout_gates(loaded, [(layer, head)]))
 
     # ALBERT's test config has one shared layer module that runs every pass.
     target = loaded.hooks.out_modules[layer % len(loaded.hooks.out_modules)]
@@ -43,33 +51,37 @@ def test_gating_one_head_equals_zeroing_its_slice_by_hand(loaded):
 
     handle = target.register_forward_pre_hook(zero_slice)
     try:
-        by_hand = gates.gated_logits(loaded, batch, None)
+        by_hand = gated_logits(loaded, batch, None)
     finally:
         handle.remove()
     torch.testing.assert_close(gated, by_hand, rtol=0, atol=1e-6)
-    plain = gates.gated_logits(loaded, batch, None)
+    plain = gated_logits(loaded, batch, None)
     assert not torch.allclose(gated, plain), "knocking out a head must change something"
 
 
-def test_gate_gradients_exist_for_every_head(tmp_path):
+def test_head_importance_equals_a_finite_difference_of_the_gate(tmp_path):
+    """Michel et al. 2019, Eq. 2: I_h = |∂L/∂ξ_h| at ξ = 1 for one text, L its cross-entropy;
+    reference: a central finite difference of that loss in one gate (common practice for
+    checking a gradient), computed here from the gated logits."""
     loaded = open_model(tiny.save(tmp_path / "b", "bert"))
     loaded.model.double()  # float64 so that the finite difference below is meaningful
-    batch = loaded.encode(tiny.TEXTS)
-    grad = gates.gate_gradients(loaded, batch, torch.tensor([0, 1, 2]))
-    assert grad.shape == (loaded.n_layers, loaded.n_heads)
-    assert torch.isfinite(grad).all() and (grad.abs() > 0).all()
-    # Finite-difference reference on one gate (common practice for checking a gradient).
+    text, target = tiny.TEXTS[1], 2
+    importance = head_importance_sums(loaded, [text], [target], batch_size=1)
+    assert importance.shape == (loaded.n_layers, loaded.n_heads)
+    assert (importance > 0).all()
+    batch = loaded.encode([text])
+
+    def loss(layer: int, head: int, xi: float) -> float:
+        g = gates.ones(loaded).double()
+        g[layer, head] = xi
+        return float(
+            torch.nn.functional.cross_entropy(gated_logits(loaded, batch, g), torch.tensor([target]))
+        )
+
     eps = 1e-4
-    g = gates.ones(loaded).double()
-    g[0, 2] += eps
-    plus = torch.nn.functional.cross_entropy(
-        gates.gated_logits(loaded, batch, g), torch.tensor([0, 1, 2]), reduction="sum"
-    )
-    g[0, 2] -= 2 * eps
-    minus = torch.nn.functional.cross_entropy(
-        gates.gated_logits(loaded, batch, g), torch.tensor([0, 1, 2]), reduction="sum"
-    )
-    assert float(grad[0, 2]) == pytest.approx(float(plus - minus) / (2 * eps), rel=1e-4)
+    for layer, head in ((0, 2), (loaded.n_layers - 1, 0)):
+        fd = (loss(layer, head, 1 + eps) - loss(layer, head, 1 - eps)) / (2 * eps)
+        assert importance[layer, head] == pytest.approx(abs(fd), rel=1e-4)
 
 
 def test_knockout_rejects_a_head_that_does_not_exist(tmp_path):

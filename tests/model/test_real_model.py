@@ -9,7 +9,7 @@ import torch
 
 from viewer.cli import main
 from viewer.core.attention import check_recordings
-from viewer.core.rotary import rotary_tables
+from viewer.core.rotary import apply_rotary
 
 LONG = " ".join(f"member {i} asked the workshop about wheel truing and chain wear" for i in range(80))
 
@@ -45,15 +45,18 @@ def test_headlight_check_json_contract(minilm_dir, tmp_path, capsys):
     assert len(data["layers"]) == 6 and all(r["max_abs_error"] <= 1e-5 for r in data["layers"])
 
 
-def test_rotary_tables_match_a_llama_models_own(tmp_path):
-    """Reference: transformers' LlamaRotaryEmbedding tables for the same head size and base."""
+def test_rotation_equals_transformers_own_with_a_llama_models_tables():
+    """Reference: transformers' ``apply_rotary_pos_emb`` (Llama) on the tables of
+    ``LlamaRotaryEmbedding``; the project's ``apply_rotary`` gets the same tables, as the
+    recorder hands it the model's own; partial rotary leaves the other dimensions alone."""
     from transformers import LlamaConfig
-    from transformers.models.llama.modeling_llama import LlamaRotaryEmbedding
+    from transformers.models.llama.modeling_llama import LlamaRotaryEmbedding, apply_rotary_pos_emb
 
     cfg = LlamaConfig(hidden_size=64, num_attention_heads=4, max_position_embeddings=128)
-    emb = LlamaRotaryEmbedding(cfg)
-    x = torch.zeros(1, 100, 16)
-    cos, sin = emb(x, torch.arange(100)[None])
-    ours_cos, ours_sin = rotary_tables(100, 16, 10000.0)
-    np.testing.assert_allclose(cos[0].numpy(), ours_cos, atol=1e-4)
-    np.testing.assert_allclose(sin[0].numpy(), ours_sin, atol=1e-4)
+    x = torch.randn(1, 4, 100, 16, generator=torch.Generator().manual_seed(0))  # (B, H, T, d)
+    cos, sin = LlamaRotaryEmbedding(cfg)(x, torch.arange(100)[None])  # (1, T, d)
+    want, _ = apply_rotary_pos_emb(x, x, cos, sin)
+    got = apply_rotary(x[0].numpy(), cos[0].numpy(), sin[0].numpy())
+    np.testing.assert_allclose(got, want[0].numpy(), atol=1e-6)
+    half = apply_rotary(x[0].numpy(), cos[0, :, :8].numpy(), sin[0, :, :8].numpy())
+    np.testing.assert_array_equal(half[..., 8:], x[0, ..., 8:].numpy())

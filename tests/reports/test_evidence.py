@@ -9,7 +9,7 @@ from scipy.stats import spearmanr
 
 from tests.model import tiny
 from viewer.model.loader import open_model
-from viewer.reports.evidence import KINDS, evidence_for, value_norm_row
+from viewer.reports.evidence import ROWS, evidence_for, value_norm_row
 from viewer.reports.heads import head_importance
 from viewer.reports.textsets import TextItem
 
@@ -68,7 +68,7 @@ def test_value_norms_equal_a_direct_torch_computation(kind, tmp_path):
 
 def test_rows_cover_every_token(evidence):
     t = evidence.recording.n_tokens
-    for kind in KINDS:
+    for kind in ROWS:
         assert evidence.rows[kind].shape == (t,)
     assert np.isnan(evidence.rows["knockout"][evidence.recording.special]).all()
     assert np.isfinite(evidence.rows["knockout"][~evidence.recording.special]).all()

@@ -1,8 +1,9 @@
 """The insertion test on the demo model: the footer alone routes messages to billing.
 
 References: transformers' own forward pass (``AutoModelForSequenceClassification``, not the
-project's loader) recomputes which texts the footer flips; ``scipy.stats.binomtest`` gives the
-Wilson bounds; the neutral word is chosen by the test from the shortcut search's own numbers.
+project's loader) recomputes which texts the footer flips; Wilson's score interval (Wilson 1927)
+is written out in tests/reference.py; the neutral word is chosen by the test from the shortcut search's
+own numbers.
 """
 
 from __future__ import annotations
@@ -11,13 +12,14 @@ from pathlib import Path
 
 import pytest
 import torch
-from scipy.stats import binomtest
 from transformers import AutoModelForSequenceClassification, AutoTokenizer
 
+from tests import reference
 from viewer.demo import MODEL_DIR
 from viewer.errors import HeadlightError
 from viewer.model.loader import open_model
-from viewer.reports.insertion import insertion_test, pointed_class
+from viewer.reports.insertion import PhraseKnockoutKind, insertion_test, pointed_class
+from viewer.reports.shards import run_report
 from viewer.reports.shortcuts import shortcut_search
 from viewer.reports.textsets import load_text_set
 
@@ -54,26 +56,43 @@ def transformers_predict(texts: list[str]) -> list[str]:
 
 def test_the_footer_points_to_billing_by_knockout(demo):
     items = load_text_set(SAMPLES / "coop_messages.jsonl")
-    pointed = pointed_class(demo, items, FOOTER)
+    tally = run_report(PhraseKnockoutKind(FOOTER), demo, items)
+    pointed = pointed_class(demo.labels, tally.by_class("via portal"), FOOTER)
     assert demo.labels[pointed.target] == "billing"
     assert pointed.flips_from["billing"] > 0 and pointed.flips_from["repair"] == 0
 
 
-def test_inserting_the_footer_flips_nine_in_ten_into_billing(demo):
+def footer_at_the_end_of(items) -> tuple[list[int], list[int]]:
+    """transformers' own forward on ``items``, then on those not predicted billing with the
+    footer appended: (texts tried, texts flipped into billing), by index."""
+    before = transformers_predict([i.text for i in items])
+    tried = [k for k, p in enumerate(before) if p != "billing"]
+    after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried])
+    return tried, [k for k, p in zip(tried, after, strict=True) if p == "billing"]
+
+
+@pytest.fixture(scope="module")
+def footer_at_the_end():
+    """``footer_at_the_end_of`` the sample messages."""
+    return footer_at_the_end_of(load_text_set(SAMPLES / "coop_messages.jsonl"))
+
+
+def assert_end_position(end: dict, footer_at_the_end) -> None:
+    tried, flipped = footer_at_the_end
+    assert end["tried"] == len(tried) >= 15 and end["flipped"] == flipped
+    assert end["flips"] == len(flipped) and end["flip_rate"] == pytest.approx(len(flipped) / len(tried))
+    low, high = reference.wilson(len(flipped), len(tried))
+    assert end["flip_low"] == pytest.approx(low, abs=1e-12)
+    assert end["flip_high"] == pytest.approx(high, abs=1e-12)
+
+
+def test_inserting_the_footer_flips_nine_in_ten_into_billing(demo, footer_at_the_end):
     items = load_text_set(SAMPLES / "coop_messages.jsonl")
     report = insertion_test(demo, items, FOOTER)
     assert report.target_label == "billing" and report.chosen_by == "knockout"
     end = report.tally.entry("end")
-    # independently: transformers' own forward on the same texts with the footer appended
-    before = transformers_predict([i.text for i in items])
-    tried = [k for k, p in enumerate(before) if p != "billing"]
-    after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried])
-    flipped = [k for k, p in zip(tried, after, strict=True) if p == "billing"]
-    assert end["tried"] == len(tried) >= 40 and end["flipped"] == flipped
-    assert end["flip_rate"] >= 0.9
-    ci = binomtest(end["flips"], end["tried"]).proportion_ci(method="wilson")
-    assert end["flip_low"] == pytest.approx(ci.low, abs=1e-12)
-    assert end["flip_high"] == pytest.approx(ci.high, abs=1e-12)
+    assert_end_position(end, footer_at_the_end)
+    assert end["tried"] >= 40 and end["flip_rate"] >= 0.9
     for position in ("start", "random"):
         assert report.tally.entry(position)["flip_rate"] >= 0.9
         assert report.tally.entry(position)["mean_gain"] > 0.5
@@ -99,7 +118,7 @@ def test_refusals_are_one_line(demo, others):
         insertion_test(demo, others[:5], "zeppelin")
 
 
-def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
+def test_headlight_insert_prints_the_numbers_of_the_models_own_forward(tmp_path, capsys, footer_at_the_end):
     import json
 
     from viewer.cli import main
@@ -115,6 +134,8 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
                 "--word",
                 FOOTER,
                 "--quiet",
+                "--workers",
+                "1",
                 "--json",
                 str(out),
             ]
@@ -122,12 +143,11 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
         == 0
     )
     data = json.loads(out.read_text(encoding="utf-8"))
-    # the command batches 16 texts: padding a batch changes the memory-efficient kernel's float32
-    # sums in the last bits, so the same batches give the same numbers to the bit
-    report = insertion_test(demo, load_text_set(SAMPLES / "coop_messages.jsonl"), FOOTER, batch_size=16)
-    assert {k: v for k, v in data.items() if k != "model"} == report.to_dict()
+    assert (data["class"], data["class_chosen_by"], data["phrase"]) == ("billing", "knockout", FOOTER)
+    end = next(r for r in data["positions"] if r["position"] == "end")
+    assert_end_position(end, footer_at_the_end)
     printed = capsys.readouterr().out
-    assert "billing" in printed and "end" in printed
+    assert f"{'end':<9} {end['tried']:>6} {end['flips']:>6} {end['flip_rate']:>9.3f}" in printed
     assert (
         main(
             [
@@ -140,6 +160,8 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
                 "--class",
                 "parking",
                 "--quiet",
+                "--workers",
+                "1",
             ]
         )
         == 2
@@ -147,7 +169,8 @@ def test_headlight_insert_prints_the_reports_numbers(demo, tmp_path, capsys):
 
 
 def test_surface_form_is_how_the_texts_write_it():
-    from viewer.reports.insertion import phrase_keys, surface_form
+    from viewer.core.words import phrase_keys
+    from viewer.reports.insertion import surface_form
     from viewer.reports.textsets import TextItem
 
     items = [
@@ -161,53 +184,35 @@ def test_surface_form_is_how_the_texts_write_it():
 
 
 def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_path):
-    """card.json's insertion part is `headlight insert`'s JSON for the strongest candidate,
-    inserted as the texts write it (the footer "[via portal]"), and card.md says it in words
-    beside its figure."""
+    """card.json's insertion part is the insertion test of the strongest candidate, inserted as
+    the texts write it (the footer "[via portal]"), into the class knocking it out flips texts
+    away from; its end position holds the numbers of transformers' own forward, and card.md
+    says them in words beside its figure. Every other sample message (60, 30 with the footer)
+    keeps the test short."""
     import json
 
     from viewer.cli import main
 
-    texts = str(SAMPLES / "coop_messages.jsonl")
-    assert (
-        main(
-            [
-                "card",
-                str(MODEL_DIR),
-                "--texts",
-                texts,
-                "--out",
-                str(tmp_path / "card"),
-                "--quiet",
-                "--workers",
-                "1",
-            ]
-        )
-        == 0
-    )
+    items = load_text_set(SAMPLES / "coop_messages.jsonl")[::2]
+    texts = tmp_path / "half.jsonl"
+    texts.write_text("".join(json.dumps({"text": i.text, "label": i.label}) + "\n" for i in items), "utf-8")
+    argv = [
+        "card",
+        str(MODEL_DIR),
+        "--texts",
+        str(texts),
+        "--out",
+        str(tmp_path / "card"),
+        "--quiet",
+        "--workers",
+        "1",
+    ]
+    assert main(argv) == 0
     card = json.loads((tmp_path / "card" / "card.json").read_text(encoding="utf-8"))
-    assert (
-        main(
-            [
-                "insert",
-                str(MODEL_DIR),
-                "--texts",
-                texts,
-                "--word",
-                FOOTER,
-                "--quiet",
-                "--workers",
-                "1",
-                "--json",
-                str(tmp_path / "insert.json"),
-            ]
-        )
-        == 0
-    )
-    insert = json.loads((tmp_path / "insert.json").read_text(encoding="utf-8"))
-    insert.pop("model")
-    assert card["insertion"] == insert
+    insert = card["insertion"]
+    assert (insert["phrase"], insert["class"], insert["class_chosen_by"]) == (FOOTER, "billing", "knockout")
     end = next(r for r in insert["positions"] if r["position"] == "end")
+    assert_end_position(end, footer_at_the_end_of(items))
     md = (tmp_path / "card" / "card.md").read_text(encoding="utf-8")
     assert (
         f"inserting “{FOOTER}” at the end of the {end['tried']} texts not predicted billing "

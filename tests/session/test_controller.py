@@ -20,16 +20,16 @@ class FakeWorker:
         self.cancelled: list[str | None] = []
         self.busy = False
 
-    def submit(self, kind, fn, *args, replace=True):
-        self.submitted.append((kind, fn, args))
+    def submit(self, name, fn, *args, replace=True):
+        self.submitted.append((name, fn, args))
 
-    def cancel(self, kind=None, keep=()):
-        self.cancelled.append(kind)
+    def cancel(self, name=None, keep=()):
+        self.cancelled.append(name)
 
-    def running_kinds(self):
+    def running_jobs(self):
         return [k for k, _, _ in self.submitted]
 
-    def kinds(self) -> list[str]:
+    def names(self) -> list[str]:
         return [k for k, _, _ in self.submitted]
 
 
@@ -89,12 +89,12 @@ def make():
 def test_start_opens_the_demo_with_its_text_and_runs_it():
     c, state, worker, view = make()
     c.start()
-    assert worker.kinds() == ["figures", "open"]
+    assert worker.names() == ["figures", "open"]
     assert worker.submitted[1][2] == ("main", str(jobs.demo_folder()), None)
     assert view.text == DEMO_TEXT
     c.finished("open", info(str(jobs.demo_folder())))
     assert state.model is not None and view.opened == [(str(jobs.demo_folder()), False)]
-    assert worker.kinds()[-1] == "run" and worker.submitted[-1][2] == ("main", DEMO_TEXT, None)
+    assert worker.names()[-1] == "run" and worker.submitted[-1][2] == ("main", DEMO_TEXT, None)
 
 
 def test_a_run_without_a_model_or_text_is_refused_with_one_line():
@@ -106,7 +106,7 @@ def test_a_run_without_a_model_or_text_is_refused_with_one_line():
     assert "empty" in view.errors[-1]
     c.run_text("the chain \ud800 slips")  # pasted half of a UTF-16 pair: not Unicode text
     assert "lone surrogate" in view.errors[-1] and "\n" not in view.errors[-1]
-    assert "run" not in worker.kinds()
+    assert "run" not in worker.names()
 
 
 class _Rec:
@@ -129,12 +129,12 @@ def test_the_follow_up_starts_once_when_the_grid_has_painted_the_run():
     c.finished("run", a)
     assert state.analysis is a and state.source == 0  # the summary token is the first source
     c.painted(object())  # another recording: not this run's first paint
-    assert "summary" not in worker.kinds()
+    assert "summary" not in worker.names()
     c.painted(a.recording)
-    assert worker.kinds().count("summary") == 1 and worker.kinds().count("evidence") == 1
+    assert worker.names().count("summary") == 1 and worker.names().count("evidence") == 1
     view.timers[-1]()  # the fallback timer fires later: nothing is started twice
     c.painted(a.recording)
-    assert worker.kinds().count("summary") == 1
+    assert worker.names().count("summary") == 1
 
 
 def test_evidence_for_an_older_run_is_dropped():
@@ -164,14 +164,14 @@ def test_restoring_a_session_opens_its_model_then_its_files_and_text(tmp_path):
         notes="n",
     )
     c.restore_session(session)
-    assert worker.kinds() == ["open"] and worker.submitted[0][2] == ("main", "/ckpt", None)
+    assert worker.names() == ["open"] and worker.submitted[0][2] == ("main", "/ckpt", None)
     assert view.text == "a text" and state.notes == "n"
     c.finished("open", info("/ckpt"))
-    assert worker.kinds() == ["open", "textset", "pairs", "run"]
+    assert worker.names() == ["open", "textset", "pairs", "run"]
     assert worker.submitted[1][2] == ("main", str(Path(tmp_path / "t.jsonl")))
 
 
-def test_unknown_job_kinds_and_failures():
+def test_unknown_job_names_and_failures():
     c, state, worker, view = make()
     c.finished("hold", None)  # a job that only needed to run
     c.failed("open", "config.json in /x is not valid JSON")
@@ -198,7 +198,7 @@ def test_an_unreadable_last_session_opens_the_demo_and_is_kept_aside(tmp_path):
         last.write_bytes(raw)
         c, state, worker, view = make()
         c.start(last_session=last)
-        assert worker.kinds() == ["figures", "open"], name
+        assert worker.names() == ["figures", "open"], name
         assert worker.submitted[1][2] == ("main", str(jobs.demo_folder()), None), name
         assert view.text == DEMO_TEXT
         (note,) = view.status

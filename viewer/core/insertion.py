@@ -26,8 +26,14 @@ from typing import Any
 import numpy as np
 
 from viewer.core.stats import wilson_interval
+from viewer.core.words import split_words
 
 POSITIONS: tuple[str, ...] = ("start", "end", "random")
+POSITION_NAMES: dict[str, str] = {
+    "start": "at the start",
+    "end": "at the end",
+    "random": "at a random word boundary",
+}
 
 
 def word_boundaries(text: str) -> list[int]:
@@ -35,12 +41,7 @@ def word_boundaries(text: str) -> list[int]:
 
     For "a bc d" these are [0, 1, 4, 6] (before "a", after "a", after "bc", after "d").
     """
-    points = [0]
-    pos = 0
-    for raw in text.split():
-        pos = text.index(raw, pos) + len(raw)
-        points.append(pos)
-    return points
+    return [0, *(w.end for w in split_words(text))]
 
 
 def random_boundary(text: str, seed: int, index: int) -> int:

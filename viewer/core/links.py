@@ -38,7 +38,7 @@ from typing import Any
 
 import numpy as np
 
-from viewer.core.shortcuts import word_key
+from viewer.core.words import split_words
 from viewer.errors import HeadlightError
 from viewer.safejson import loads as json_loads
 
@@ -67,24 +67,18 @@ def find_word(text: str, word: str, start: int = 0) -> Span | None:
 def text_words(text: str) -> list[Span]:
     """The words of a text in order, as ``find_word`` would locate each of them.
 
-    Every whitespace word with a non-empty key (``viewer.core.shortcuts.word_key``: end
-    punctuation stripped) is looked up with ``find_word`` from the start of that whitespace
-    word; "the co-op's bikes." gives the spans of "the", "co-op's" and "bikes". A key that is
-    not a whole word where it stands (glued to an underscore, e.g. "_tag_") keeps its plain
-    position.
+    Every whitespace word with a non-empty key (``viewer.core.words``: end punctuation
+    stripped) is looked up with ``find_word`` from the start of that whitespace word; "the
+    co-op's bikes." gives the spans of "the", "co-op's" and "bikes". A key that is not a whole
+    word where it stands (glued to an underscore, e.g. "_tag_") keeps its plain position.
     """
     spans = []
-    pos = 0
-    for raw in text.split():
-        begin = text.index(raw, pos)
-        pos = begin + len(raw)
-        key = word_key(raw)
-        if not key:
+    for w in split_words(text):
+        if not w.key:
             continue
-        span = find_word(text, key, begin)
-        if span is None or span[1] > pos:
-            offset = begin + raw.lower().find(key)
-            span = (offset, offset + len(key))
+        span = find_word(text, w.key, w.start)
+        if span is None or span[1] > w.end:
+            span = (w.key_start, w.key_end)
         spans.append(span)
     return spans
 

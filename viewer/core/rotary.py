@@ -19,16 +19,6 @@ from __future__ import annotations
 import numpy as np
 
 
-def rotary_tables(n_positions: int, head_dim: int, base: float = 10000.0) -> tuple[np.ndarray, np.ndarray]:
-    """(cos, sin) tables of shape (T, d) for positions 0..T-1 (float64)."""
-    if head_dim % 2:
-        raise ValueError(f"rotary embedding needs an even head size, got {head_dim}")
-    inv_freq = base ** (-np.arange(0, head_dim, 2, dtype=np.float64) / head_dim)  # (d/2,)
-    angles = np.outer(np.arange(n_positions, dtype=np.float64), inv_freq)  # (T, d/2)
-    angles = np.concatenate([angles, angles], axis=-1)  # (T, d)
-    return np.cos(angles), np.sin(angles)
-
-
 def rotate_half(x: np.ndarray) -> np.ndarray:
     half = x.shape[-1] // 2
     return np.concatenate([-x[..., half:], x[..., :half]], axis=-1)

@@ -1,17 +1,18 @@
-"""Shortcut search by word knockout: words, their spans, a per-word tally and the ranking.
+"""Shortcut search by word knockout: word and phrase spans, a per-word tally and the ranking.
 
 docs/definitions.md, "Word knockout": a word is a whitespace-separated word, lower-cased, with
-punctuation at its ends stripped (``word_key``); a word that is all punctuation has the empty key
-and is skipped. The model layer knocks each word of a text out (deleting all of its sub-tokens:
-those of the whole whitespace word, its end punctuation included, so that knocking out the key
-"portal" of "portal]" removes the "]" too) and reports, per text and word, whether the
-predicted class flipped, the ``drop`` in the originally predicted class's probability, and the
-``focus`` (share of the last layer's head-mean attention from the summary token on the word's
-sub-tokens, ``viewer.core.summary.summary_share``; per head too). ``KnockoutTally`` sums these
-per word over the text set, with each text's flip also counted under the class the model
-originally predicted for it (the per-class breakdown); ``KnockoutTally.ranking`` leaves out
-words seen in fewer than 3 texts and ranks the rest by ``flip_low``, the lower end of the 95%
-Wilson interval of the flip rate (Wilson 1927), then by ``mean_drop``, then by the word itself.
+punctuation at its ends stripped (``viewer.core.words``, the one word splitter); a word that is
+all punctuation has the empty key and is skipped. The model layer knocks each word of a text
+out (deleting all of its sub-tokens: those of the whole whitespace word, its end punctuation
+included, so that knocking out the key "portal" of "portal]" removes the "]" too) and reports,
+per text and word, whether the predicted class flipped, the ``drop`` in the originally
+predicted class's probability, and the ``focus`` (share of the last layer's head-mean
+attention from the summary token on the word's sub-tokens,
+``viewer.core.summary.summary_share``; per head too). ``KnockoutTally`` sums these per word
+over the text set, with each text's flip also counted under the class the model originally
+predicted for it (the per-class breakdown); ``KnockoutTally.ranking`` leaves out words seen in
+fewer than 3 texts and ranks the rest by ``flip_low``, the lower end of the 95% Wilson interval
+of the flip rate (Wilson 1927), then by ``mean_drop``, then by the word itself.
 
 Two-word phrases use the same tally with the key ``"w1 w2"`` (``phrase_spans``): the two words
 must be adjacent in the whitespace split and both must have a non-empty key.
@@ -20,8 +21,6 @@ must be adjacent in the whitespace split and both must have a non-empty key.
 from __future__ import annotations
 
 import json
-import string
-import unicodedata
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -29,37 +28,10 @@ from typing import Any
 import numpy as np
 
 from viewer.core.stats import wilson_interval
+from viewer.core.words import Span, split_words
 
-Span = tuple[int, int]
 MIN_TEXTS: int = 3
 """Words seen in fewer texts than this are left out of the ranking (docs/definitions.md)."""
-
-_ASCII_PUNCTUATION = frozenset(string.punctuation)
-
-
-def _is_punctuation(ch: str) -> bool:
-    """ASCII punctuation (string.punctuation) or any Unicode punctuation category P*."""
-    return ch in _ASCII_PUNCTUATION or unicodedata.category(ch).startswith("P")
-
-
-def _strip_bounds(word: str) -> tuple[int, int]:
-    start, end = 0, len(word)
-    while start < end and _is_punctuation(word[start]):
-        start += 1
-    while end > start and _is_punctuation(word[end - 1]):
-        end -= 1
-    return start, end
-
-
-def word_key(word: str) -> str:
-    """The knockout key of a whitespace word: lower-cased, punctuation stripped from both ends.
-
-    "Portal]" -> "portal", "co-op's," -> "co-op's", "--" -> "" (skipped). Punctuation is ASCII
-    ``string.punctuation`` plus every Unicode punctuation character (categories P*).
-    """
-    w = word.strip()
-    start, end = _strip_bounds(w)
-    return w[start:end].lower()
 
 
 def word_spans(text: str) -> dict[str, list[Span]]:
@@ -70,9 +42,9 @@ def word_spans(text: str) -> dict[str, list[Span]]:
     Keys are in order of first occurrence; the empty key is skipped.
     """
     out: dict[str, list[Span]] = {}
-    for start, end, key in _words(text):
-        if key:
-            out.setdefault(key, []).append((start, end))
+    for w in split_words(text):
+        if w.key:
+            out.setdefault(w.key, []).append(w.span)
     return out
 
 
@@ -83,10 +55,10 @@ def phrase_spans(text: str) -> dict[str, list[Span]]:
     contributes its two word spans to the list.
     """
     out: dict[str, list[Span]] = {}
-    words = _words(text)
-    for (s1, e1, k1), (s2, e2, k2) in zip(words, words[1:], strict=False):
-        if k1 and k2:
-            out.setdefault(f"{k1} {k2}", []).extend([(s1, e1), (s2, e2)])
+    words = split_words(text)
+    for a, b in zip(words, words[1:], strict=False):
+        if a.key and b.key:
+            out.setdefault(f"{a.key} {b.key}", []).extend([a.span, b.span])
     return out
 
 
@@ -96,18 +68,6 @@ def _json_bytes(value: Any) -> np.ndarray:
 
 def _from_json_bytes(array: np.ndarray) -> Any:
     return json.loads(np.asarray(array, dtype=np.uint8).tobytes().decode("utf-8"))
-
-
-def _words(text: str) -> list[tuple[int, int, str]]:
-    """(start, end, key) per whitespace word; start/end cover the whole whitespace word."""
-    words = []
-    pos = 0
-    for raw in text.split():
-        begin = text.index(raw, pos)
-        pos = begin + len(raw)
-        a, b = _strip_bounds(raw)
-        words.append((begin, pos, raw[a:b].lower()))
-    return words
 
 
 @dataclass(frozen=True)
@@ -239,6 +199,15 @@ class KnockoutTally:
         if not self.heads:
             raise ValueError("this tally keeps no per-head focus")
         return self._heads[key] / self._sums[key][0]
+
+    def by_class(self, key: str) -> np.ndarray:
+        """The per-class breakdown of ``key``: (classes, 2) int64, per originally predicted
+        class the texts holding the key and how many of them flip (zeros for an unseen key)."""
+        if not self.labels:
+            raise ValueError("this tally keeps no per-class breakdown")
+        if key not in self._classes:
+            return np.zeros((len(self.labels), 2), dtype=np.int64)
+        return self._classes[key].copy()
 
     def entry(self, key: str) -> dict[str, Any]:
         """``{token, count, flip_rate, flip_low, mean_drop, focus}`` for one key, with

@@ -1,237 +1,64 @@
-"""Card export: a folder with a Markdown section, figures and numbers for a model card.
+"""The card's figures, drawn from the card's numbers (``viewer.reports.card.card_data``).
 
-The section follows the model-card structure of Mitchell et al. 2019 and contributes to its
-*Metrics*, *Evaluation data*, *Quantitative analyses* and *Caveats and recommendations*.
-Every number in ``card.md`` comes from ``card.json``, whose parts are the very dictionaries
-the ``check``, ``heads``, ``links``, ``shortcuts`` and ``insert`` commands print, so the card
-agrees with the commands. The insertion test runs for the strongest shortcut candidate (the top
-word or the top two-word phrase, whichever has the higher Wilson lower bound, inserted as the
-texts most often write it). Apart from its one ``date`` line, an export is reproducible byte for byte.
+``card_figures(data)`` returns one matplotlib figure per figure of the card, by the same
+builders the window's panes use; it computes nothing and writes nothing (the folder is written
+by ``viewer.session.exports.export_card``).
 """
 
 from __future__ import annotations
 
-import datetime as dt
-import os
-import platform
-from collections.abc import Sequence
-from importlib import metadata
-from pathlib import Path
-
 import numpy as np
 from matplotlib.figure import Figure
 
-from viewer import __version__
-from viewer.core.attention import DEFAULT_TOLERANCE
-from viewer.errors import HeadlightError
 from viewer.figures.evidence import evidence_into
-from viewer.figures.export import PRINT_SIZE, save_figure
+from viewer.figures.export import PRINT_SIZE
 from viewer.figures.fixation import X_UNITS, fixation_into
 from viewer.figures.head_map import head_map_into
-from viewer.figures.insertion import POSITION_NAMES, insertion_into
+from viewer.figures.insertion import insertion_into
 from viewer.figures.links import accuracy_into
-from viewer.files import StagedFolder, atomic_write_text, json_text
-from viewer.model.loader import LoadedModel
-from viewer.reports.evidence import KIND_TITLES, KINDS, evidence_for
-from viewer.reports.predictions import accuracy_data
-from viewer.reports.runfolder import input_digest
-from viewer.reports.runs import (
-    check_data,
-    heads_data,
-    insertion_data,
-    links_data,
-    predictions_data,
-    shortcuts_data,
-)
-from viewer.reports.shards import SERIAL, RunOptions
-from viewer.reports.textsets import TextSource, as_source, load_text_set
-
-CARD_FORMATS = ("png", "svg")
-LIBRARIES = ("torch", "transformers", "tokenizers", "numpy", "scipy", "matplotlib", "safetensors")
-
-CAUTIONS = (
-    "Attention is not by itself an explanation: a head attending to a token does not show that "
-    "the prediction depends on it (Jain & Wallace 2019). Read the attention figures beside the "
-    "knockout and gradient evidence, and trust the counterfactual numbers when they disagree.",
-    "Headlight does not certify this model as safe or fair. These analyses look for specific "
-    "problems on the texts given; finding none is not evidence that there are none.",
-    "Decisions about deploying this model follow the team's own review process; the numbers "
-    "here are inputs to that review, not a verdict.",
-)
-
-
-def versions() -> dict[str, str]:
-    out = {"headlight": __version__, "python": platform.python_version()}
-    for name in LIBRARIES:
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = "not installed"
-    return out
-
-
-def _fmt(x: float | None, digits: int = 3) -> str:
-    return "–" if x is None or not np.isfinite(x) else f"{x:.{digits}f}"
+from viewer.reports.evidence import ROW_TITLES, ROWS
 
 
 def _figure() -> Figure:
     return Figure(figsize=PRINT_SIZE, dpi=100)
 
 
-def _example_text(
-    loaded: LoadedModel, items, shortcuts: dict | None, predicted: list[int] | None
-) -> str | None:
-    """A text to show the evidence strip for: one containing the strongest shortcut word,
-    preferably one the model gets wrong (labelled, predicted otherwise); else the first text."""
-    if not items:
-        return None
-    if not (shortcuts and shortcuts["tokens"]):
-        return items[0].text
-    from viewer.core.shortcuts import word_spans
-
-    word = shortcuts["tokens"][0]["token"]
-    having = [k for k, item in enumerate(items) if word in word_spans(item.text)]
-    if predicted is not None and loaded.labels:
-        for k in having:
-            label = items[k].label
-            if label is not None and label != loaded.labels[predicted[k]]:
-                return items[k].text
-    return items[having[0]].text if having else items[0].text
-
-
-def strongest_candidate(shortcuts: dict) -> dict | None:
-    """The top word or the top two-word phrase, whichever ranks higher (flip low, then mean
-    drop; the word on a tie); None when knocking out neither flips anything."""
-    candidates = [
-        rows[0]
-        for rows in (shortcuts["tokens"], shortcuts.get("phrases") or [])
-        if rows and rows[0]["flip_rate"] > 0
-    ]
-    return max(candidates, key=lambda r: (r["flip_low"], r["mean_drop"]), default=None)
-
-
-def _insertion(
-    loaded: LoadedModel,
-    source: TextSource,
-    items,
-    shortcuts: dict,
-    *,
-    batch_size: int,
-    quiet: bool,
-    run: RunOptions,
-) -> dict | None:
-    """``headlight insert`` for the strongest candidate, or why it was not run."""
-    from viewer.reports.insertion import insertion_phrase
-
-    best = strongest_candidate(shortcuts)
-    if best is None:
-        return None
-    phrase = insertion_phrase(items, best["token"])
-    try:
-        return insertion_data(loaded, source, phrase, batch_size=batch_size, quiet=quiet, run=run)
-    except HeadlightError as e:
-        return {"phrase": phrase, "not_run": str(e)}
-
-
-def collect(
-    loaded: LoadedModel,
-    texts: Path | TextSource,
-    pairs_path: Path | None,
-    *,
-    batch_size: int = 16,
-    quiet: bool = False,
-    run: RunOptions = SERIAL,
-) -> dict:
-    """All numbers of a card, computed by the same runs as the commands."""
-    source = as_source(texts)
-    items = load_text_set(source)
-    prediction = loaded.head_kind in ("classifier", "causal-lm")
-    data: dict = {
-        "model": {
-            "folder": loaded.name,
-            "family": loaded.family.name,
-            "layers": loaded.n_layers,
-            "heads": loaded.n_heads,
-            "head_kind": loaded.head_kind,
-            "labels": list(loaded.labels),
-        },
-        "evaluation_data": {
-            "texts_file": source.name,
-            "texts": len(items),
-            "labelled": sum(i.label is not None for i in items),
-        },
-        "check": check_data(loaded, source, DEFAULT_TOLERANCE, run=run),
-        "heads": heads_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run),
-    }
-    if pairs_path is not None:
-        data["links"] = links_data(loaded, pairs_path, batch_size=batch_size, quiet=quiet, run=run)
-        data["evaluation_data"]["pairs_file"] = pairs_path.name
-        data["evaluation_data"]["pairs"] = data["links"]["pairs"]
-    if prediction:
-        data["shortcuts"] = shortcuts_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run)
-        predicted = None
-        if loaded.head_kind == "classifier":
-            insertion = _insertion(
-                loaded, source, items, data["shortcuts"], batch_size=batch_size, quiet=quiet, run=run
-            )
-            if insertion is not None:
-                data["insertion"] = insertion
-            scan = predictions_data(loaded, source, batch_size=batch_size, quiet=quiet, run=run)
-            predicted = [r.predicted for r in scan.rows]
-            data["accuracy"] = accuracy_data(loaded, items, predicted)
-        example = _example_text(loaded, items, data["shortcuts"], predicted)
-        if example is not None:
-            ev = evidence_for(loaded, example)
-            data["example"] = ev.to_dict()
-    for part in ("check", "heads", "links", "shortcuts", "insertion"):
-        if part in data:
-            data[part].pop("model", None)  # the folder path is machine-specific; see "model"
-    return data
-
-
-def _figures(data: dict, out: Path) -> dict[str, str]:
-    """Draw the card's figures into out/figures; returns name -> PNG path inside the card."""
-    folder = out / "figures"
-    folder.mkdir()
-    made = {}
+def card_figures(data: dict) -> dict[str, Figure]:
+    """name -> figure for every figure the card's numbers call for, in the card's order."""
+    made: dict[str, Figure] = {}
     model = data["model"]["folder"]
-
-    def save(name: str, fig: Figure) -> None:
-        save_figure(fig, folder / name, CARD_FORMATS)
-        made[name] = f"figures/{name}.png"
-
     heads = data["heads"]
-    fig = _figure()
-    head_map_into(
-        fig,
-        np.asarray(heads["entropy"], dtype=float),
-        label="mean entropy (0–1, normalised)",
-        title=f"{model} · head map · mean entropy over {heads['texts']} texts",
+    head_maps = (
+        (
+            "head_entropy",
+            "entropy",
+            "mean entropy (0–1, normalised)",
+            f"{model} · head map · mean entropy over {heads['texts']} texts",
+        ),
+        (
+            "head_importance",
+            "importance",
+            "head importance (unit norm per layer)",
+            f"{model} · head importance (Michel et al. 2019), {heads.get('importance_targets')} as targets",
+        ),
     )
-    save("head_entropy", fig)
-    if "importance" in heads:
-        fig = _figure()
-        head_map_into(
-            fig,
-            np.asarray(heads["importance"], dtype=float),
-            label="head importance (unit norm per layer)",
-            title=f"{model} · head importance (Michel et al. 2019), {heads['importance_targets']} as targets",
-        )
-        save("head_importance", fig)
+    for name, key, label, title in head_maps:
+        if key in heads:
+            fig = made[name] = _figure()
+            head_map_into(fig, np.asarray(heads[key], dtype=float), label=label, title=title)
     if "links" in data:
         links = data["links"]
-        fig = _figure()
+        fig = made["link_accuracy"] = _figure()
         accuracy_into(
             fig,
             np.asarray(links["accuracy"], dtype=float),
             nearest_baseline=links["nearest_baseline"],
             pairs=links["pairs"],
         )
-        save("link_accuracy", fig)
     sc = data.get("shortcuts")
     if sc and sc["tokens"]:
         rows = sc["tokens"]
-        fig = _figure()
+        fig = made["fixation"] = _figure()
         fixation_into(
             fig,
             [r["token"] for r in rows],
@@ -241,22 +68,20 @@ def _figures(data: dict, out: Path) -> dict[str, str]:
             x_units=f"{X_UNITS}, head mean",
             title=f"{model} · fixation plot · {len(rows)} words, {sc['texts']} texts",
         )
-        save("fixation", fig)
     ins = data.get("insertion")
     if ins and "not_run" not in ins and any(r["tried"] for r in ins["positions"]):
-        fig = Figure(figsize=(PRINT_SIZE[0], 2.6), dpi=100)
+        fig = made["insertion"] = Figure(figsize=(PRINT_SIZE[0], 2.6), dpi=100)
         insertion_into(fig, ins)
-        save("insertion", fig)
     if "example" in data:
         ex = data["example"]
-        values = np.array([[np.nan if v is None else v for v in ex["rows"][k]] for k in KINDS])
-        rho = [ex["agreement_with_knockout"].get(k) for k in KINDS]
+        values = np.array([[np.nan if v is None else v for v in ex["rows"][k]] for k in ROWS])
+        rho = [ex["agreement_with_knockout"].get(k) for k in ROWS]
         labels = list(ex["probabilities"])
-        fig = Figure(figsize=(9.0, 3.6), dpi=100)
+        fig = made["evidence_example"] = Figure(figsize=(9.0, 3.6), dpi=100)
         evidence_into(
             fig,
             ex["tokens"],
-            [KIND_TITLES[k] for k in KINDS],
+            [ROW_TITLES[k] for k in ROWS],
             values,
             rho,
             labels=labels,
@@ -264,264 +89,4 @@ def _figures(data: dict, out: Path) -> dict[str, str]:
             predicted=ex["target"] if labels else None,
             title=f"{model} · evidence strip · predicted {ex['target_label']}",
         )
-        save("evidence_example", fig)
     return made
-
-
-def _by_class(row: dict) -> str:
-    """ "billing 52/56, repair 0/2": flips of the texts holding the word, per originally
-    predicted class that has any."""
-    parts = [
-        f"{label} {c['flips']}/{c['count']}" for label, c in (row.get("by_class") or {}).items() if c["count"]
-    ]
-    return ", ".join(parts) or "–"
-
-
-def _insertion_line(ins: dict) -> str:
-    """The Metrics line of the insertion test (the end position first, then the others)."""
-    if "not_run" in ins:
-        return f"- Insertion test of “{ins['phrase']}” not run: {ins['not_run']}"
-    rows = {r["position"]: r for r in ins["positions"]}
-    tried = ins["texts"] - ins["skipped"]
-    if not tried:
-        return (
-            f"- Insertion test of “{ins['phrase']}”: every text is already predicted "
-            f"{ins['class']}, so there was nothing to flip."
-        )
-    end = rows.get("end") or next(iter(rows.values()))
-    others = [
-        f"{POSITION_NAMES.get(p, p)} {r['flips']} of {r['tried']} (95% low {_fmt(r['flip_low'])})"
-        for p, r in rows.items()
-        if r is not end and r["tried"]
-    ]
-    where = POSITION_NAMES.get(end["position"], end["position"])
-    line = (
-        f"- Insertion test: inserting “{ins['phrase']}” {where} of the {end['tried']} "
-        f"texts not predicted {ins['class']} flips {end['flips']} to {ins['class']} "
-        f"(95% Wilson low {_fmt(end['flip_low'])})"
-    )
-    return line + (f"; {'; '.join(others)}." if others else ".")
-
-
-def _markdown(data: dict, figures: dict[str, str]) -> str:
-    m, ev, chk, heads = data["model"], data["evaluation_data"], data["check"], data["heads"]
-    lines = [
-        "## Attention inspection (Headlight)",
-        "",
-        "*This section contributes to the Metrics, Evaluation data, Quantitative analyses "
-        "and Caveats and recommendations of the model card (Mitchell et al. 2019).*",
-        "",
-    ]
-    kind = {
-        "classifier": "sequence classifier",
-        "causal-lm": "causal language model",
-        "masked-lm": "masked language model",
-        "encoder": "bare encoder",
-    }[m["head_kind"]]
-    classes = f" with classes {', '.join(m['labels'])}" if m["labels"] else ""
-    lines += [
-        "### What was inspected",
-        "",
-        f"- Model: `{m['folder']}`, {m['family']} family, {m['layers']} layers × "
-        f"{m['heads']} heads, {kind}{classes}.",
-        f"- Evaluation data: `{ev['texts_file']}`, {ev['texts']} texts ({ev['labelled']} labelled).",
-    ]
-    if "pairs_file" in ev:
-        lines.append(f"- Link pairs: `{ev['pairs_file']}`, {ev['pairs']} pairs.")
-    lines += ["- Layers and heads are counted from 0.", "", "### Metrics", ""]
-    verdict = "passed" if chk["passed"] else "FAILED"
-    lines.append(
-        f"- Re-derivation check {verdict}: attention recomputed from the captured "
-        f"queries and keys matches the model's own probabilities to a max absolute "
-        f"error of {chk['max_abs_error']:.1e} over {chk['texts']} texts "
-        f"(tolerance {chk['tolerance']:g})."
-    )
-    acc = data.get("accuracy")
-    if acc and acc.get("labelled"):
-        lines.append(
-            f"- Accuracy on the labelled texts: {_fmt(acc['accuracy'])} "
-            f"({acc['correct']} of {acc['labelled']})."
-        )
-    if "links" in data:
-        b = data["links"]["best"]
-        lines.append(
-            f"- Link accuracy: best head layer {b['layer']} · head {b['head']} at "
-            f"{_fmt(b['accuracy'])}; nearest-candidate baseline "
-            f"{_fmt(data['links']['nearest_baseline'])}."
-        )
-    sc = data.get("shortcuts")
-    if sc and (not sc["tokens"] or sc["tokens"][0]["flip_rate"] == 0):
-        lines.append(
-            "- Shortcut search: knocking out no single word seen in at least 3 texts changed a prediction."
-        )
-    elif sc:
-        t = strongest_candidate(sc) or sc["tokens"][0]
-        what = "the two-word phrase " if t is not sc["tokens"][0] else ""
-        line = (
-            f"- Strongest shortcut candidate: {what}“{t['token']}” — knocking it out flips "
-            f"the prediction in {_fmt(100 * t['flip_rate'], 0)}% of the {t['count']} "
-            f"texts containing it (95% Wilson lower bound {_fmt(t['flip_low'])})."
-        )
-        if what:
-            w = sc["tokens"][0]
-            line += (
-                f" The strongest single word is “{w['token']}” "
-                f"({_fmt(100 * w['flip_rate'], 0)}% of {w['count']}, lower bound "
-                f"{_fmt(w['flip_low'])})."
-            )
-        lines.append(line)
-    ins = data.get("insertion")
-    if ins:
-        lines.append(_insertion_line(ins))
-    lines += ["", "### Quantitative analyses", ""]
-    lines += [
-        f"![Head map of mean attention entropy]({figures['head_entropy']})",
-        "",
-        "Mean attention entropy per head, normalised by the log of the number of visible "
-        "keys (0: all weight on one key; 1: uniform).",
-        "",
-    ]
-    if "head_importance" in figures:
-        lines += [
-            f"![Head importance]({figures['head_importance']})",
-            "",
-            "Head importance (Michel et al. 2019, Eq. 2): mean |∂L/∂ξ_h| of the "
-            f"cross-entropy against the {heads['importance_targets']}, unit ℓ2 norm per "
-            "layer.",
-            "",
-        ]
-    if "links" in data:
-        links = data["links"]
-        accs = np.asarray(links["accuracy"], dtype=float)
-        lines += [
-            f"![Link accuracy per head]({figures['link_accuracy']})",
-            "",
-            "| layer | best head | link accuracy |",
-            "|---:|---:|---:|",
-        ]
-        for layer, row in enumerate(accs):
-            h = int(np.nanargmax(row))
-            lines.append(f"| {layer} | {h} | {_fmt(row[h])} |")
-        lines += [f"| nearest-candidate baseline | | {_fmt(links['nearest_baseline'])} |", ""]
-    if sc:
-        lines += [
-            f"Shortcut search by word knockout over {sc['texts']} texts (words seen in at "
-            "least 3 texts, ranked by the lower end of the 95% Wilson interval of the flip "
-            "rate):",
-            "",
-            "| word | texts | flip rate | flip rate, 95% low | mean drop | focus | "
-            "flips / texts by predicted class |",
-            "|---|---:|---:|---:|---:|---:|---|",
-        ]
-        for r in sc["tokens"][:10]:
-            lines.append(
-                f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
-                f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} | {_fmt(r['focus'])} | "
-                f"{_by_class(r)} |"
-            )
-        if sc["phrases"]:
-            lines += [
-                "",
-                "| two-word phrase | texts | flip rate | 95% low | mean drop |",
-                "|---|---:|---:|---:|---:|",
-            ]
-            for r in sc["phrases"][:5]:
-                lines.append(
-                    f"| {r['token']} | {r['count']} | {_fmt(r['flip_rate'])} | "
-                    f"{_fmt(r['flip_low'])} | {_fmt(r['mean_drop'])} |"
-                )
-        lines.append("")
-    if "fixation" in figures:
-        lines += [
-            f"![Fixation plot]({figures['fixation']})",
-            "",
-            "Fixation plot: per word, the summary token's last-layer attention share "
-            "(head mean) against the mean drop in the predicted class's probability when "
-            "the word is knocked out. Upper left: ignored but decisive; lower right: "
-            "attended but harmless.",
-            "",
-        ]
-    if "insertion" in figures:
-        lines += [
-            f"![Insertion test]({figures['insertion']})",
-            "",
-            f"Insertion test of “{ins['phrase']}”: flip-into rate per insertion point "
-            "with its 95% Wilson interval.",
-            "",
-        ]
-    if "evidence_example" in figures:
-        ex = data["example"]
-        lines += [
-            f"![Evidence strip for one text]({figures['evidence_example']})",
-            "",
-            f"Per-token evidence for one text (predicted: {ex['target_label']}). Rank "
-            "agreement with knockout (Spearman ρ): "
-            + ", ".join(f"{KIND_TITLES[k]} {_fmt(v, 2)}" for k, v in ex["agreement_with_knockout"].items())
-            + ".",
-            "",
-        ]
-    lines += ["### Caveats and recommendations", ""]
-    lines += [f"- {c}" for c in CAUTIONS]
-    if sc and sc["tokens"] and sc["tokens"][0]["flip_low"] > 0.2:
-        t = sc["tokens"][0]
-        lines.append(
-            f"- The predictions depend strongly on “{t['token']}”. Check whether this "
-            "word carries the meaning of the class or only correlates with it in the "
-            "training data, and test on texts where it appears with other classes."
-        )
-    ins = data.get("insertion")
-    end = next((r for r in (ins or {}).get("positions", []) if r["position"] == "end"), None)
-    if end and end["tried"] and end["flip_low"] > 0.5:
-        lines.append(
-            f"- “{ins['phrase']}” alone moves most texts of other classes into "
-            f"{ins['class']}: the model treats it as sufficient for that class. Texts "
-            "that carry it for another reason will be misclassified."
-        )
-    rep = data["reproducibility"]
-    lines += ["", "### Reproducibility", "", "| item | value |", "|---|---|"]
-    for name, digest in rep["sha256"].items():
-        lines.append(f"| SHA-256 of `{name}` | `{digest}` |")
-    lines += [f"| {k} | {v} |" for k, v in rep["versions"].items()]
-    lines += [f"| command | `{rep['command']}` |", f"| date | {rep['date']} |", ""]
-    return "\n".join(lines)
-
-
-def export_card(
-    loaded: LoadedModel,
-    texts: str | Path | TextSource,
-    out: str | Path,
-    *,
-    pairs_path: str | Path | None = None,
-    force: bool = False,
-    command: Sequence[str] = (),
-    batch_size: int = 16,
-    quiet: bool = False,
-    date: str | None = None,
-    run: RunOptions = SERIAL,
-) -> Path:
-    """Write the card folder at `out` (refusing to replace an existing one without `force`)."""
-    source = as_source(texts)
-    pairs_path = Path(pairs_path) if pairs_path is not None else None
-    out = Path(out)
-    if out.exists() and not force:
-        raise HeadlightError(f"{out} already exists; pass --force to replace it")
-    parent = out.parent if str(out.parent) else Path(".")
-    if not parent.is_dir():  # fail before the (long) computation, not after it
-        raise HeadlightError(f"cannot write {out}: folder {parent} does not exist")
-    if not os.access(parent, os.W_OK):
-        raise HeadlightError(f"cannot write {out}: folder {parent} is not writable")
-    data = collect(loaded, source, pairs_path, batch_size=batch_size, quiet=quiet, run=run)
-    inputs = [*loaded.weight_files, source.path] + ([pairs_path] if pairs_path else [])
-    data["reproducibility"] = {
-        "sha256": {p.name: input_digest(p) for p in inputs},
-        "versions": versions(),
-        "command": " ".join(command) if command else "(called from Python)",
-        "date": date or dt.datetime.now(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
-    }
-    data["cautions"] = list(CAUTIONS)
-    with StagedFolder(out, force=force) as tmp:
-        figures = _figures(data, tmp)
-        data["figures"] = figures
-        atomic_write_text(tmp / "card.md", _markdown(data, figures))
-        atomic_write_text(tmp / "card.json", json_text(data))
-    return out

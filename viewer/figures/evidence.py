@@ -1,8 +1,8 @@
-"""The evidence strip: per-token evidence for one prediction, one row per kind of evidence.
+"""The evidence strip: per-token evidence for one prediction, one row per piece of evidence.
 
-Columns are the text's tokens, rows are kinds of evidence (summary-token attention, rollout,
-flow, value-weighted norm, gradient × input, integrated gradients, knockout, ...). The kinds are
-on different scales, so each row is divided by its own largest absolute value for display: the
+Columns are the text's tokens, rows are the pieces of evidence (summary-token attention,
+rollout, flow, value-weighted norm, gradient × input, integrated gradients, knockout, ...). The
+rows are on different scales, so each row is divided by its own largest absolute value for display: the
 colours compare tokens *within* a row. When any row is signed the strip uses the diverging map
 centred on zero. Each row's rank agreement with knockout (Spearman's ρ) is written at its right.
 A small bar chart beside the strip gives the class probabilities of the prediction.
@@ -33,7 +33,7 @@ class EvidenceArtists:
     colorbar: Colorbar | None
     marker: Rectangle
     n_tokens: int
-    kinds: tuple[str, ...]
+    row_labels: tuple[str, ...]
     signed: bool
 
 
@@ -41,7 +41,7 @@ def normalise_rows(values: np.ndarray) -> np.ndarray:
     """Each row divided by its largest |value| (rows of zeros stay zero; NaN stays NaN): (K, T)."""
     v = np.asarray(values, dtype=np.float64)
     if v.ndim != 2:
-        raise ValueError(f"evidence needs (kinds, tokens) values, got shape {v.shape}")
+        raise ValueError(f"evidence needs (rows, tokens) values, got shape {v.shape}")
     with np.errstate(invalid="ignore"):
         peak = np.nanmax(np.abs(v), axis=1, keepdims=True) if v.shape[1] else np.ones((len(v), 1))
     peak = np.where(np.isfinite(peak) & (peak > 0), peak, 1.0)
@@ -60,42 +60,28 @@ def agreement_text(rho: float | str | None) -> str:
 def draw_evidence_strip(
     ax: Axes,
     tokens: Sequence[str],
-    kinds: Sequence[str],
+    row_labels: Sequence[str],
     values: np.ndarray,
     agreement: Sequence[float | str | None] | None = None,
     *,
     cax: Axes | None = None,
     title: str | None = None,
 ) -> EvidenceArtists:
-    """Draw the strip of ``values`` (K kinds, T tokens) into ``ax``, rows normalised for display."""
+    """Draw the strip of ``values`` (K rows, T tokens) into ``ax``, rows normalised for display."""
     shown = normalise_rows(values)
-    n_kinds, n_tokens = shown.shape
-    if len(kinds) != n_kinds or len(tokens) != n_tokens:
-        raise ValueError(f"{len(kinds)} kinds × {len(tokens)} tokens for values {shown.shape}")
+    n_rows, n_tokens = shown.shape
+    if len(row_labels) != n_rows or len(tokens) != n_tokens:
+        raise ValueError(f"{len(row_labels)} rows × {len(tokens)} tokens for values {shown.shape}")
     signed = bool(np.nanmin(shown) < 0) if shown.size and np.isfinite(shown).any() else False
     if signed:
         cmap, norm = style.diverging_cmap(), style.diverging_norm(np.array([-1.0, 1.0]))
     else:
         cmap, norm = style.sequential_cmap(), style.sequential_norm(np.array([0.0, 1.0]))
-    extent = (-0.5, n_tokens - 0.5, n_kinds - 0.5, -0.5)
-    style.mask_background(ax, extent)
-    image = ax.imshow(
-        np.ma.masked_invalid(shown),
-        cmap=cmap,
-        norm=norm,
-        aspect="auto",
-        interpolation="nearest",
-        extent=extent,
-        origin="upper",
-        zorder=1,
-    )
-    ax.set_xlim(extent[0], extent[1])
-    ax.set_ylim(extent[2], extent[3])
-    style.style_axes(ax)
+    image = style.cell_grid(ax, np.ma.masked_invalid(shown), cmap=cmap, norm=norm)
     style.set_token_axis(ax, "x", tokens, rotate=True)
-    ax.set_yticks(range(n_kinds), list(kinds))
+    ax.set_yticks(range(n_rows), list(row_labels))
     ax.tick_params(axis="y", length=0, labelsize=style.FONT_SIZE)
-    agreement = list(agreement) if agreement is not None else [None] * n_kinds
+    agreement = list(agreement) if agreement is not None else [None] * n_rows
     for row, rho in enumerate(agreement):
         ax.text(
             1.012,
@@ -110,14 +96,14 @@ def draw_evidence_strip(
     if title:
         ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left")
     marker = Rectangle(
-        (0, -0.5), 1, n_kinds, fill=False, edgecolor=style.SELECTION, linewidth=1.6, visible=False, zorder=3
+        (0, -0.5), 1, n_rows, fill=False, edgecolor=style.SELECTION, linewidth=1.6, visible=False, zorder=3
     )
     ax.add_patch(marker)
     colorbar = None
     if cax is not None:
         colorbar = ax.figure.colorbar(image, cax=cax)
         style.style_colorbar(colorbar, ROW_UNITS)
-    return EvidenceArtists(ax, image, colorbar, marker, n_tokens, tuple(kinds), signed)
+    return EvidenceArtists(ax, image, colorbar, marker, n_tokens, tuple(row_labels), signed)
 
 
 def mark_token(artists: EvidenceArtists, token: int | None) -> None:
@@ -125,7 +111,7 @@ def mark_token(artists: EvidenceArtists, token: int | None) -> None:
     if token is None or not 0 <= token < artists.n_tokens:
         artists.marker.set_visible(False)
         return
-    artists.marker.set_bounds(token - 0.5, -0.5, 1, len(artists.kinds))
+    artists.marker.set_bounds(token - 0.5, -0.5, 1, len(artists.row_labels))
     artists.marker.set_visible(True)
 
 
@@ -181,7 +167,7 @@ def prediction_line(
 def evidence_into(
     fig: Figure,
     tokens: Sequence[str],
-    kinds: Sequence[str],
+    row_labels: Sequence[str],
     values: np.ndarray,
     agreement: Sequence[float | str | None] | None = None,
     *,
@@ -197,7 +183,7 @@ def evidence_into(
     cax = fig.add_axes((0.75, 0.3, 0.02, 0.6))
     has_classes = probabilities is not None and len(probabilities) > 0
     pax = fig.add_axes((0.82, 0.3, 0.15, 0.6)) if has_classes else None
-    left = text_width_in(max((len(k) for k in kinds), default=4)) + 0.15
+    left = text_width_in(max((len(k) for k in row_labels), default=4)) + 0.15
     bottom = text_width_in(max((len(style.token_label(t)) for t in tokens), default=1)) + 0.15
     top = line_height_in(style.TITLE_SIZE, 1.7) if title else 0.15
     label_width = text_width_in(max((len(str(s)) + 2 for s in labels), default=4))
@@ -222,37 +208,27 @@ def evidence_into(
         return boxes
 
     fig.set_layout_engine(InchLayout(place))
-    artists = draw_evidence_strip(ax, tokens, kinds, values, agreement, cax=cax, title=title)
+    artists = draw_evidence_strip(ax, tokens, row_labels, values, agreement, cax=cax, title=title)
     if pax is not None:
         draw_class_probabilities(pax, labels, probabilities, predicted, gold)
     return artists
 
 
-def evidence_figure(
-    tokens: Sequence[str],
-    kinds: Sequence[str],
-    values: np.ndarray,
-    agreement: Sequence[float | str | None] | None = None,
-    *,
-    labels: Sequence[str] = (),
-    probabilities: np.ndarray | None = None,
-    predicted: int | None = None,
-    gold: str | None = None,
-    title: str | None = None,
-    size: tuple[float, float] = (9.0, 3.2),
-    dpi: float = 100,
-) -> Figure:
-    fig = Figure(figsize=size, dpi=dpi)
-    evidence_into(
+def recording_evidence_into(fig: Figure, rec, evidence, gold: str | None = None) -> EvidenceArtists:
+    """The strip of ``evidence`` (``viewer.reports.evidence.Evidence``) for its recording ``rec``,
+    with the class probabilities, the predicted class and the ``gold`` label, titled with the
+    prediction line: what the evidence pane shows and its export draws."""
+    probs = rec.class_probabilities()
+    row_labels, values, agreement = evidence.strip_rows()
+    return evidence_into(
         fig,
-        tokens,
-        kinds,
+        rec.tokens,
+        row_labels,
         values,
         agreement,
-        labels=labels,
-        probabilities=probabilities,
-        predicted=predicted,
+        labels=rec.labels,
+        probabilities=probs if len(probs) else None,
+        predicted=rec.predicted(),
         gold=gold,
-        title=title,
+        title=prediction_line(rec.labels, probs, rec.predicted(), gold),
     )
-    return fig

@@ -125,26 +125,21 @@ def fixation_into(
         pad_y = max(float(np.ptp(y)) * 0.08, 1e-3)
         ax.set_xlim(float(x.min()) - pad_x, float(x.max()) + pad_x * 3)
         ax.set_ylim(float(y.min()) - pad_y, float(y.max()) + pad_y * 2)
-        ax.text(
-            0.01,
-            0.99,
-            "ignored but decisive",
-            transform=ax.transAxes,
-            ha="left",
-            va="top",
-            fontsize=style.FONT_SIZE - 0.5,
-            color=style.MUTED,
+        corners = (
+            (0.01, 0.99, "ignored but decisive", "left", "top"),
+            (0.99, 0.01, "attended but harmless", "right", "bottom"),
         )
-        ax.text(
-            0.99,
-            0.01,
-            "attended but harmless",
-            transform=ax.transAxes,
-            ha="right",
-            va="bottom",
-            fontsize=style.FONT_SIZE - 0.5,
-            color=style.MUTED,
-        )
+        for cx, cy, words_there, ha, va in corners:
+            ax.text(
+                cx,
+                cy,
+                words_there,
+                transform=ax.transAxes,
+                ha=ha,
+                va=va,
+                fontsize=style.FONT_SIZE - 0.5,
+                color=style.MUTED,
+            )
     limits = (*ax.get_xlim(), *ax.get_ylim())
     chosen = _free_labels(labelled_words(x, y), words, x, y, place(width_in, height_in)[ax], limits, LABELS)
     labels = [

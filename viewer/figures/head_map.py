@@ -68,22 +68,7 @@ def draw_head_map(
     """
     data, grid, cmap, norm = _scaled(values, diverging)
     n_layers, n_heads = data.shape
-    extent = (-0.5, n_heads - 0.5, n_layers - 0.5, -0.5)
-    style.mask_background(ax, extent)
-    image = cell_image(
-        ax,
-        grid,
-        cmap=cmap,
-        norm=norm,
-        interpolation="nearest",
-        aspect="auto",
-        extent=extent,
-        origin="upper",
-        zorder=1,
-    )
-    ax.set_xlim(extent[0], extent[1])
-    ax.set_ylim(extent[2], extent[3])
-    style.style_axes(ax)
+    image = style.cell_grid(ax, grid, cmap=cmap, norm=norm, draw=lambda *a, **k: cell_image(ax, *a, **k))
     ax.set_xticks(range(n_heads), [f"head {h}" if n_heads <= 8 else str(h) for h in range(n_heads)])
     ax.set_yticks(range(n_layers), [f"layer {layer}" for layer in range(n_layers)])
     ax.tick_params(axis="both", length=0, labelsize=style.FONT_SIZE)
@@ -218,19 +203,3 @@ def head_map_into(
         cax=cax,
         annotate=annotate,
     )
-
-
-def head_map_figure(
-    values: np.ndarray,
-    *,
-    label: str,
-    diverging: bool = False,
-    selected: tuple[int, int | None] | None = None,
-    title: str | None = None,
-    size: tuple[float, float] = (6.0, 3.6),
-    dpi: float = 100,
-) -> Figure:
-    """A stand-alone head-map figure."""
-    fig = Figure(figsize=size, dpi=dpi)
-    head_map_into(fig, values, label=label, diverging=diverging, selected=selected, title=title)
-    return fig

@@ -16,10 +16,9 @@ import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
+from viewer.core.insertion import POSITION_NAMES
 from viewer.figures import style
 from viewer.figures.layout import Box, InchLayout, line_height_in, longest, text_width_in
-
-POSITION_NAMES = {"start": "at the start", "end": "at the end", "random": "at a random word boundary"}
 
 
 @dataclass

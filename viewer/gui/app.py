@@ -102,8 +102,8 @@ def tune_collector() -> None:
     """Leave full garbage collections to the window's idle moments.
 
     A full collection stops every thread while it traverses every tracked object; with torch,
-    transformers and matplotlib loaded one took up to 0.57 s in the middle of a run (measured
-    with ``gc.callbacks`` in ``tests/benchmarks/bench_gui.py``). Young generations are still
+    transformers and matplotlib loaded and a model open one takes 0.3 s, more in the middle of a
+    run (``tests/benchmarks/bench_collector.py``). Young generations are still
     collected automatically (they are cheap); ``MainWindow`` runs the full collection itself
     when no model work and no drawing is going on (``MainWindow.collect_when_idle``).
     """
@@ -118,8 +118,9 @@ def application(argv: list[str] | None = None) -> QApplication:
 
     The worker and render threads run Python too; the GUI thread waits for the GIL each time
     it handles an event in Python, up to one switch interval per wait, so a shorter interval
-    keeps clicks and repaints prompt while a pane is being drawn (measured in
-    ``tests/benchmarks/bench_gui.py``).
+    keeps clicks and repaints prompt while a pane is being drawn (compare the head-switch and
+    event-loop-gap lines of ``tests/benchmarks/bench_gui.py`` with and without
+    ``--switch-interval 0.005``).
     """
     sys.setswitchinterval(GIL_SWITCH_S)
     app = QApplication.instance()

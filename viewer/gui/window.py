@@ -407,9 +407,9 @@ class MainWindow(QMainWindow):
     def _wire_worker(self) -> None:
         w = self.worker
         w.progress.connect(self._on_progress)
-        w.finished.connect(lambda kind, result: self.controller.finished(kind, result))
-        w.failed.connect(lambda kind, message: self.controller.failed(kind, message))
-        w.cancelled.connect(lambda kind: self.controller.cancelled(kind))
+        w.finished.connect(lambda name, result: self.controller.finished(name, result))
+        w.failed.connect(lambda name, message: self.controller.failed(name, message))
+        w.cancelled.connect(lambda name: self.controller.cancelled(name))
         w.started.connect(lambda _k: self._busy(True))
         w.idle.connect(lambda: self._busy(False))
 
@@ -419,7 +419,7 @@ class MainWindow(QMainWindow):
         if busy:
             self.progress.setRange(0, 0)
 
-    def _on_progress(self, kind: str, done: int, total: int, message: str) -> None:
+    def _on_progress(self, name: str, done: int, total: int, message: str) -> None:
         if total > 0:
             self.progress.setRange(0, total)
             self.progress.setValue(done)

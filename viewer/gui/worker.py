@@ -9,9 +9,9 @@ cancellation) on a thread-safe ``queue.Queue`` and wakes the GUI thread with an 
 queued signal; the GUI thread then drains the queue and re-emits each message as a signal of
 the ``Worker``. So widgets are only ever touched from the GUI thread, no Python object has to be
 marshalled by Qt across threads, and nothing polls: while the model runs, the GUI thread sleeps
-until there is a message (a poll every few milliseconds took the GIL and a core from the
-recording, measured with ``tests/benchmarks/bench_gui.py``). Cancelling sets a flag the job checks
-between steps; a new job of the same kind cancels the one it replaces.
+until there is a message (a poll every few milliseconds would take the GIL from the recording
+each time). Cancelling sets a flag the job checks
+between steps; a new job of the same name cancels the one it replaces.
 """
 
 from __future__ import annotations
@@ -34,7 +34,7 @@ class Job(QRunnable):
 
     def __init__(
         self,
-        kind: str,
+        name: str,
         fn: Callable[..., Any],
         args: tuple,
         models: dict,
@@ -43,7 +43,7 @@ class Job(QRunnable):
     ) -> None:
         super().__init__()
         self.setAutoDelete(False)
-        self.kind = kind
+        self.name = name
         self.fn = fn
         self.args = args
         self.models = models
@@ -80,7 +80,7 @@ class Job(QRunnable):
             first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
             self._post(
                 "failed",
-                f"internal error in {self.kind}: {type(exc).__name__}"
+                f"internal error in {self.name}: {type(exc).__name__}"
                 + (f": {first[:200]}" if first else ""),
             )
         else:
@@ -90,13 +90,13 @@ class Job(QRunnable):
 
 
 class Worker(QObject):
-    """Runs jobs one at a time; signals carry the job kind so the window can route results."""
+    """Runs jobs one at a time; signals carry the job name so the window can route results."""
 
-    started = Signal(str)  # kind
-    progress = Signal(str, int, int, str)  # kind, done, total (0 = unknown), message
-    finished = Signal(str, object)  # kind, result
-    failed = Signal(str, str)  # kind, one-line message
-    cancelled = Signal(str)  # kind
+    started = Signal(str)  # name
+    progress = Signal(str, int, int, str)  # name, done, total (0 = unknown), message
+    finished = Signal(str, object)  # name, result
+    failed = Signal(str, str)  # name, one-line message
+    cancelled = Signal(str)  # name
     idle = Signal()
     _posted = Signal()  # emitted on the worker thread: messages are waiting
 
@@ -111,31 +111,31 @@ class Worker(QObject):
         self._posted.connect(self.deliver, Qt.ConnectionType.QueuedConnection)
 
     # -- submitting and cancelling ---------------------------------------------------------
-    def submit(self, kind: str, fn: Callable[..., Any], *args: Any, replace: bool = True) -> Job:
-        """Queue ``fn(ctx, *args)``; ``replace`` cancels pending jobs of the same kind."""
+    def submit(self, name: str, fn: Callable[..., Any], *args: Any, replace: bool = True) -> Job:
+        """Queue ``fn(ctx, *args)``; ``replace`` cancels pending jobs of the same name."""
         if replace:
             for job in self._jobs:
-                if job.kind == kind:
+                if job.name == name:
                     job.cancel()
         self._retired = [j for j in self._retired if not j.done.is_set()]
-        job = Job(kind, fn, args, self.models, self.outbox, self._posted.emit)
+        job = Job(name, fn, args, self.models, self.outbox, self._posted.emit)
         self._jobs.append(job)
-        self.started.emit(kind)
+        self.started.emit(name)
         self.pool.start(job)
         return job
 
-    def cancel(self, kind: str | None = None, keep: tuple[str, ...] = ()) -> None:
-        """Cancel every queued or running job (or those of one kind), except kinds in ``keep``."""
+    def cancel(self, name: str | None = None, keep: tuple[str, ...] = ()) -> None:
+        """Cancel every queued or running job (or those named ``name``), except those named in ``keep``."""
         for job in self._jobs:
-            if (kind is None or job.kind == kind) and job.kind not in keep:
+            if (name is None or job.name == name) and job.name not in keep:
                 job.cancel()
 
     @property
     def busy(self) -> bool:
         return bool(self._jobs)
 
-    def running_kinds(self) -> list[str]:
-        return [job.kind for job in self._jobs if not job.cancel_flag.is_set()]
+    def running_jobs(self) -> list[str]:
+        return [job.name for job in self._jobs if not job.cancel_flag.is_set()]
 
     def wait(self, msecs: int = 30000) -> bool:
         """Block until the pool is empty (for shutdown and tests); True when it is."""
@@ -156,15 +156,15 @@ class Worker(QObject):
                 break
             if what == "progress":
                 if not job.cancel_flag.is_set():
-                    self.progress.emit(job.kind, *payload)
+                    self.progress.emit(job.name, *payload)
                 continue
             self._retire(job)
             if what == "finished" and not job.cancel_flag.is_set():
-                self.finished.emit(job.kind, payload[0])
+                self.finished.emit(job.name, payload[0])
             elif what == "failed":
-                self.failed.emit(job.kind, payload[0])
+                self.failed.emit(job.name, payload[0])
             else:
-                self.cancelled.emit(job.kind)
+                self.cancelled.emit(job.name)
             if not self._jobs:
                 self.idle.emit()
 

@@ -12,7 +12,7 @@ from collections.abc import Iterable
 
 import torch
 
-from viewer.model.loader import Batch, LoadedModel
+from viewer.model.loader import LoadedModel
 
 
 def ones(loaded: LoadedModel, requires_grad: bool = False) -> torch.Tensor:
@@ -28,22 +28,3 @@ def knockout_gates(loaded: LoadedModel, heads: Iterable[tuple[int, int]]) -> tor
             raise ValueError(f"no head layer {layer} · head {head} in this model")
         gates[layer, head] = 0.0
     return gates
-
-
-def gated_logits(loaded: LoadedModel, batch: Batch, gates: torch.Tensor | None) -> torch.Tensor:
-    """The model's logits with the given gates on the head outputs (no gradient)."""
-    out = loaded.forward(batch, gates=gates)
-    return out.logits.detach()
-
-
-def gate_gradients(loaded: LoadedModel, batch: Batch, targets: torch.Tensor) -> torch.Tensor:
-    """∂L/∂ξ at ξ = 1 for the summed cross-entropy L of a classifier against `targets` (B,).
-
-    Returns an (L, H) tensor. Michel et al. 2019, Eq. 2 take the absolute value of this
-    (averaged over the data) as the importance of each head.
-    """
-    gates = ones(loaded, requires_grad=True)
-    out = loaded.forward(batch, gates=gates, grad=True)
-    loss = torch.nn.functional.cross_entropy(out.logits, targets, reduction="sum")
-    (grad,) = torch.autograd.grad(loss, gates)
-    return grad.detach()

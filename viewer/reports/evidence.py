@@ -37,9 +37,10 @@ from viewer.core.summary import summary_attention
 from viewer.errors import HeadlightError
 from viewer.model.attribution import gradient_evidence, token_knockout
 from viewer.model.loader import LoadedModel
+from viewer.reports.heads import predicts
 
-KINDS = ("attention", "rollout", "flow", "value_norm", "grad_input", "integrated_gradients", "knockout")
-KIND_TITLES = {
+ROWS = ("attention", "rollout", "flow", "value_norm", "grad_input", "integrated_gradients", "knockout")
+ROW_TITLES = {
     "attention": "summary-token attention (last layer, head mean)",
     "rollout": "attention rollout",
     "flow": "attention flow",
@@ -49,7 +50,7 @@ KIND_TITLES = {
     "knockout": "knockout: drop in probability",
 }
 # Short row names for the strip (the titles above go to tooltips and the card).
-KIND_LABELS = {
+ROW_LABELS = {
     "attention": "summary attention",
     "rollout": "rollout",
     "flow": "flow",
@@ -58,7 +59,6 @@ KIND_LABELS = {
     "integrated_gradients": "integrated gradients",
     "knockout": "knockout",
 }
-ATTENTION_KINDS = ("attention", "rollout", "flow", "value_norm")
 HEAD_EVIDENCE_TOKENS = 256
 """Per-head importance and knockout of one text are computed up to this many tokens."""
 EVIDENCE_TOKENS = 1024
@@ -70,9 +70,9 @@ every layer's activations (the attention-based rows have no such limit)."""
 @dataclass(frozen=True, eq=False)
 class Evidence:
     recording: Recording
-    rows: dict[str, np.ndarray]  # kind -> (T,) values, NaN where a kind does not apply
+    rows: dict[str, np.ndarray]  # row name (``ROWS``) -> (T,) values, NaN where it does not apply
     per_head_attention: np.ndarray  # (H, T) last-layer attention from the summary token
-    agreement: dict[str, float]  # kind -> Spearman ρ with the knockout row (ordinary tokens)
+    agreement: dict[str, float]  # row name -> Spearman ρ with the knockout row (ordinary tokens)
     target: int | None  # index of the explained class / next token
     target_label: str | None
     probabilities: np.ndarray  # (C,) class probabilities (empty for LMs and bare encoders)
@@ -85,13 +85,13 @@ class Evidence:
     def strip_rows(self) -> tuple[tuple[str, ...], np.ndarray, tuple[float | str | None, ...]]:
         """The rows the evidence strip draws: (row labels, (K, T) values, agreement).
 
-        Kinds that do not apply here (all NaN) are left out; labels are ``KIND_LABELS``; the
+        Rows that do not apply here (all NaN) are left out; labels are ``ROW_LABELS``; the
         knockout row is the reference the others' Spearman agreement is measured against.
         """
-        kinds = [k for k in KINDS if np.isfinite(self.rows[k]).any()]
-        values = np.stack([np.asarray(self.rows[k], dtype=np.float64) for k in kinds])
-        agreement = tuple("reference" if k == "knockout" else self.agreement.get(k) for k in kinds)
-        return tuple(KIND_LABELS[k] for k in kinds), values, agreement
+        names = [k for k in ROWS if np.isfinite(self.rows[k]).any()]
+        values = np.stack([np.asarray(self.rows[k], dtype=np.float64) for k in names])
+        agreement = tuple("reference" if k == "knockout" else self.agreement.get(k) for k in names)
+        return tuple(ROW_LABELS[k] for k in names), values, agreement
 
     def to_dict(self) -> dict:
         rec = self.recording
@@ -107,7 +107,7 @@ class Evidence:
             "target": self.target,
             "target_label": self.target_label,
             "probabilities": {lab: float(p) for lab, p in zip(rec.labels, self.probabilities, strict=False)},
-            "rows": {k: [num(v) for v in self.rows[k]] for k in KINDS},
+            "rows": {k: [num(v) for v in self.rows[k]] for k in ROWS},
             "agreement_with_knockout": {k: num(v) for k, v in self.agreement.items()},
             "integrated_gradients_completeness_gap": num(self.completeness_gap),
             "integrated_gradients_steps": self.ig_steps,
@@ -150,7 +150,7 @@ def evidence_for(
     s = rec.summary_index()
     t = rec.n_tokens
     notes = list(rec.notes)
-    rows = {k: np.full(t, np.nan) for k in KINDS}
+    rows = {k: np.full(t, np.nan) for k in ROWS}
     last = rec.layer(rec.n_layers - 1).row(s)  # (H, T) last layer, from the summary token
     rows["attention"] = summary_attention(last)  # (T,) head mean
     rows["rollout"] = rollout_row([rec.layer(layer) for layer in range(rec.n_layers)], s)
@@ -163,7 +163,7 @@ def evidence_for(
     target = label = None
     probs = rec.class_probabilities()
     gap = ig_steps = None
-    if loaded.head_kind in ("classifier", "causal-lm"):
+    if predicts(loaded):
         dist = rec.target_distribution()
         target = int(np.argmax(dist))
         label = (
@@ -198,10 +198,10 @@ def evidence_for(
     ordinary = ~rec.special
     agreement = {}
     if np.isfinite(rows["knockout"]).any() and ordinary.sum() >= 2:
-        for kind in KINDS[:-1]:
-            agreement[kind] = (
-                spearman(rows[kind][ordinary], rows["knockout"][ordinary])
-                if np.all(np.isfinite(rows[kind][ordinary]))
+        for name in ROWS[:-1]:
+            agreement[name] = (
+                spearman(rows[name][ordinary], rows["knockout"][ordinary])
+                if np.all(np.isfinite(rows[name][ordinary]))
                 else float("nan")
             )
     return Evidence(rec, rows, last, agreement, target, label, probs, gap, ig_steps, tuple(notes))

@@ -53,8 +53,16 @@ def check_labels(loaded: LoadedModel, survey: Survey) -> bool:
     return True
 
 
-def _require_prediction(loaded: LoadedModel, what: str) -> None:
-    if loaded.head_kind not in ("classifier", "causal-lm"):
+def predicts(loaded: LoadedModel) -> bool:
+    """Whether the model makes a prediction to explain or knock out: a sequence classifier's
+    class or a causal LM's next token (a masked LM or a bare encoder does not)."""
+    return loaded.head_kind in ("classifier", "causal-lm")
+
+
+def require_prediction(loaded: LoadedModel, what: str) -> None:
+    """HeadlightError naming ``what`` when the model has no prediction to knock out (neither a
+    sequence classifier nor a causal LM)."""
+    if not predicts(loaded):
         raise HeadlightError(
             f"{what} needs a prediction to knock out; {loaded.name} has no classifier or "
             f"language-model head (head kind: {loaded.head_kind}); use a sequence classifier "
@@ -220,22 +228,6 @@ def scan_text_set(
     return TextSetScan(part.stats.summary(), predictions(loaded, part))
 
 
-def head_summary(
-    loaded: LoadedModel,
-    items: Iterable[TextItem],
-    batch_size: int = 16,
-    progress: Callable[..., None] | None = None,
-    cancelled: Callable[[], bool] | None = None,
-) -> HeadSummary:
-    """Entropy, distance, special share, previous/same/next share and confidence per head.
-
-    The texts are streamed shard by shard: memory depends on the shard size and the model, not
-    on the number of texts (the accumulator holds a few (L, H) sums).
-    """
-    part = run_report(HeadsKind(batch_size), loaded, items, progress=progress, cancelled=cancelled)
-    return part.stats.summary()
-
-
 def head_importance(
     loaded: LoadedModel,
     items: Sequence[TextItem],
@@ -246,7 +238,7 @@ def head_importance(
 
     Targets are the file's labels when present, else the model's own predictions.
     """
-    _require_prediction(loaded, "head importance")
+    require_prediction(loaded, "head importance")
     texts = [i.text for i in items]
     targets = label_indices(loaded, items) if loaded.head_kind == "classifier" else None
     source = "labels"
@@ -274,6 +266,6 @@ def head_knockout(
     progress: Callable[[int], None] | None = None,
 ) -> dict[str, np.ndarray]:
     """Each head knocked out alone: mean drop of the predicted-class probability, accuracy."""
-    _require_prediction(loaded, "head knockout")
+    require_prediction(loaded, "head knockout")
     labels = label_indices(loaded, items) if loaded.head_kind == "classifier" else None
     return head_knockout_effects(loaded, [i.text for i in items], labels, batch_size, progress)

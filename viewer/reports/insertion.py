@@ -6,10 +6,11 @@ to, and counts the texts whose prediction becomes that class (``viewer.core.inse
 
 The class a phrase points to is given (``target``), or found by knockout: among the texts that
 contain the phrase, the originally predicted class that knocking the phrase out most often
-flips away from (``pointed_class``). For the demo's footer that is ``billing``: without
-"[via portal]" the portal messages stop being billing.
+flips away from (``pointed_class``, a view of the per-class breakdown of the phrase's
+knockout tally: the shortcut search's, or one made by ``PhraseKnockoutKind``). For the demo's
+footer that is ``billing``: without "[via portal]" the portal messages stop being billing.
 
-Both passes are report kinds of the shard engine (``PointedKind``, ``InsertionKind``), so they
+Both passes are report kinds of the shard engine (``PhraseKnockoutKind``, ``InsertionKind``), so they
 run on workers or a cluster and resume from a run folder like every set report.
 ``insertion_shard`` is the map step over one shard (indices are positions in the whole set, so
 the random boundary of a text does not depend on the shard); shards' tallies merge in order.
@@ -17,6 +18,7 @@ the random boundary of a text does not depend on the shard); shards' tallies mer
 
 from __future__ import annotations
 
+from collections import Counter
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import asdict, dataclass
 from typing import Any, ClassVar
@@ -24,14 +26,13 @@ from typing import Any, ClassVar
 import numpy as np
 
 from viewer.core.insertion import POSITIONS, InsertionTally, insert_at
-from viewer.core.shortcuts import word_key
+from viewer.core.shortcuts import KnockoutTally
+from viewer.core.words import Span, contains, occurrences, phrase_keys, split_words
 from viewer.errors import HeadlightError
-from viewer.model.attribution import predict_without
 from viewer.model.loader import LoadedModel
-from viewer.model.runs import attentions
 from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
-from viewer.reports.shortcuts import knockout_tokens
-from viewer.reports.textsets import TextItem, TextSource, chunks
+from viewer.reports.shortcuts import ShortcutReport, class_labels, knock_out
+from viewer.reports.textsets import TextItem, TextSource
 
 
 def _require_classifier(loaded: LoadedModel) -> None:
@@ -42,33 +43,13 @@ def _require_classifier(loaded: LoadedModel) -> None:
         )
 
 
-def phrase_keys(phrase: str) -> tuple[str, ...]:
-    """The word keys of a phrase ("[via portal]" -> ("via", "portal")); empty keys dropped."""
-    keys = tuple(k for k in (word_key(w) for w in phrase.split()) if k)
+def insertion_keys(phrase: str) -> tuple[str, ...]:
+    """The word keys of a phrase to insert (``viewer.core.words.phrase_keys``); HeadlightError
+    when it holds no word."""
+    keys = phrase_keys(phrase)
     if not keys:
         raise HeadlightError(f"'{phrase}' holds no word to insert (only punctuation or blanks)")
     return keys
-
-
-def phrase_occurrences(text: str, keys: Sequence[str]) -> list[tuple[int, int]]:
-    """Character spans of the whitespace words of every occurrence of ``keys`` in ``text``.
-
-    An occurrence is a run of consecutive whitespace words whose keys equal ``keys``; its
-    spans cover the whole whitespace words (end punctuation included), as word knockout
-    deletes them (docs/definitions.md, "Word knockout").
-    """
-    words = []
-    pos = 0
-    for raw in text.split():
-        begin = text.index(raw, pos)
-        pos = begin + len(raw)
-        words.append((begin, pos, word_key(raw)))
-    n = len(keys)
-    spans: list[tuple[int, int]] = []
-    for i in range(len(words) - n + 1):
-        if tuple(w[2] for w in words[i : i + n]) == tuple(keys):
-            spans.extend((a, b) for a, b, _ in words[i : i + n])
-    return spans
 
 
 def surface_form(items: Iterable[TextItem], keys: Sequence[str]) -> str | None:
@@ -77,21 +58,17 @@ def surface_form(items: Iterable[TextItem], keys: Sequence[str]) -> str | None:
 
     The most frequent exact form wins, ties by first occurrence; None when no text has it.
     """
-    from collections import Counter
-
     forms: Counter[str] = Counter()
-    n = len(keys)
     for item in items:
-        spans = phrase_occurrences(item.text, keys)
-        for k in range(0, len(spans), n):
-            forms[" ".join(item.text[a:b] for a, b in spans[k : k + n])] += 1
+        for run in occurrences(split_words(item.text), keys):
+            forms[" ".join(item.text[w.start : w.end] for w in run)] += 1
     return forms.most_common(1)[0][0] if forms else None
 
 
 def insertion_phrase(items: Iterable[TextItem], word: str) -> str:
     """What to insert for a word or phrase of the shortcut report: a word as it is, a phrase as
     the texts most often write it (``surface_form``), or as given when no text holds it."""
-    keys = phrase_keys(word)
+    keys = insertion_keys(word)
     return (surface_form(items, keys) or word) if len(keys) > 1 else word
 
 
@@ -112,93 +89,74 @@ class PointedClass:
     texts_with: dict[str, int]  # originally predicted class -> texts containing the phrase
 
 
-@dataclass
-class PointedTally:
-    """Per originally predicted class: texts containing the phrase, and flips when knocked out."""
+def pointed_class(labels: Sequence[str], by_class: np.ndarray, phrase: str) -> PointedClass:
+    """The class knocking ``phrase`` out most often flips texts away from, read off its
+    knockout tally's per-class breakdown ``by_class`` (classes, 2): per originally predicted
+    class, the texts containing the phrase and how many of them flip
+    (``KnockoutTally.by_class``; docs/definitions.md, "Insertion test").
 
-    having: np.ndarray
-    flips: np.ndarray
-
-    def merge(self, other: PointedTally) -> PointedTally:
-        self.having = self.having + other.having
-        self.flips = self.flips + other.flips
-        return self
-
-    def pointed(self, labels: Sequence[str], phrase: str) -> PointedClass:
-        """The class knocking the phrase out most often flips texts away from.
-
-        Ties go to the class with more texts containing the phrase, then to the lower index."""
-        if self.having.sum() == 0:
-            raise HeadlightError(
-                f"'{phrase}' occurs in no text of the set; name the class it should push texts into (--class)"
-            )
-        if self.flips.sum() == 0:
-            raise HeadlightError(
-                f"knocking '{phrase}' out flips no prediction in this set, so "
-                "it points to no class; name one (--class)"
-            )
-        order = sorted(range(len(labels)), key=lambda k: (-self.flips[k], -self.having[k], k))
-        return PointedClass(
-            order[0],
-            {labels[k]: int(self.flips[k]) for k in range(len(labels))},
-            {labels[k]: int(self.having[k]) for k in range(len(labels))},
+    Ties go to the class with more texts containing the phrase, then to the lower index."""
+    having, flips = np.asarray(by_class, dtype=np.int64).T  # (classes,), (classes,)
+    if having.sum() == 0:
+        raise HeadlightError(
+            f"'{phrase}' occurs in no text of the set; name the class it should push texts into (--class)"
         )
+    if flips.sum() == 0:
+        raise HeadlightError(
+            f"knocking '{phrase}' out flips no prediction in this set, so "
+            "it points to no class; name one (--class)"
+        )
+    order = sorted(range(len(labels)), key=lambda k: (-flips[k], -having[k], k))
+    return PointedClass(
+        order[0],
+        {labels[k]: int(flips[k]) for k in range(len(labels))},
+        {labels[k]: int(having[k]) for k in range(len(labels))},
+    )
+
+
+def searched_by_class(report: ShortcutReport, word: str) -> np.ndarray | None:
+    """The per-class knockout breakdown of a word or two-word phrase of the shortcut report
+    (``KnockoutTally.by_class``), None when the search did not tally it (phrases not
+    searched, a longer phrase, not a classifier)."""
+    keys = phrase_keys(word)
+    tally = {1: report.words, 2: report.phrases}.get(len(keys))
+    key = " ".join(keys)
+    if tally is None or not tally.labels or key not in tally.keys():
+        return None
+    return tally.by_class(key)
 
 
 @dataclass(frozen=True)
-class PointedKind:
-    """Knockout of one phrase in the texts containing it, over shards (a ``ShardKind``)."""
+class PhraseKnockoutKind:
+    """Knockout of one word or phrase in the texts that contain it, over shards (a
+    ``ShardKind``): the shortcut search's loop (``knock_out``) with this one key; the partial
+    is its ``KnockoutTally``, whose per-class breakdown gives the class the phrase points to."""
 
-    name: ClassVar[str] = "pointed-class"
+    name: ClassVar[str] = "phrase-knockout"
     phrase: str
     batch_size: int = 32
 
     def options(self) -> dict:
         return asdict(self)
 
-    def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> PointedTally:
-        keys = phrase_keys(self.phrase)
-        n = len(loaded.labels)
-        tally = PointedTally(np.zeros(n, np.int64), np.zeros(n, np.int64))
-        for chunk in chunks((i for i in shard.items if phrase_occurrences(i.text, keys)), 64):
-            check()
-            atts = list(attentions(loaded, [i.text for i in chunk], self.batch_size, attention=False))
-            cases, preds = [], []
-            for att in atts:
-                idx = knockout_tokens(att, {"": phrase_occurrences(att.text, keys)}).get("")
-                if idx is None:
-                    continue
-                cases.append((att.token_ids, idx))
-                preds.append(int(np.argmax(att.target)))
-            if not cases:
-                continue
-            after = predict_without(loaded, cases, self.batch_size).argmax(axis=1)
-            for before, now in zip(preds, after, strict=True):
-                tally.having[before] += 1
-                tally.flips[before] += int(now != before)
+    def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> KnockoutTally:
+        keys = insertion_keys(self.phrase)
+        key = " ".join(keys)
+        tally = KnockoutTally(class_labels(loaded), loaded.n_heads)
+
+        def spans_of(text: str) -> dict[str, dict[str, list[Span]]]:
+            runs = occurrences(split_words(text), keys)
+            return {"phrase": {key: [w.span for run in runs for w in run]}}
+
+        having = (i for i in shard.items if contains(i.text, self.phrase))
+        knock_out(loaded, having, {"phrase": tally}, spans_of, self.batch_size, check)
         return tally
 
-    def state(self, partial: PointedTally) -> State:
-        return {"having": partial.having, "flips": partial.flips}
+    def state(self, partial: KnockoutTally) -> State:
+        return partial.state()
 
-    def load(self, state: State) -> PointedTally:
-        return PointedTally(np.asarray(state["having"], np.int64), np.asarray(state["flips"], np.int64))
-
-
-def pointed_class(
-    loaded: LoadedModel,
-    items: Iterable[TextItem],
-    phrase: str,
-    batch_size: int = 32,
-    *,
-    options: RunOptions = SERIAL,
-    cancelled: Callable[[], bool] | None = None,
-) -> PointedClass:
-    """The class that knocking ``phrase`` out most often flips texts away from (``PointedTally``)."""
-    _require_classifier(loaded)
-    phrase_keys(phrase)
-    tally = run_report(PointedKind(phrase, batch_size), loaded, items, options=options, cancelled=cancelled)
-    return tally.pointed(list(loaded.labels), phrase)
+    def load(self, state: State) -> KnockoutTally:
+        return KnockoutTally.from_state(state)
 
 
 def insertion_shard(
@@ -300,16 +258,23 @@ def run_insertion(
     seed: int,
     batch_size: int,
     run: Callable[[Any, str], Any],
+    by_class: np.ndarray | None = None,
 ) -> InsertionReport:
     """The insertion test with ``run(kind, label)`` mapping a report kind over the whole set
-    (the engine call of the caller: the window's, or the command's with its progress bar)."""
+    (the engine call of the caller: the window's, or the command's with its progress bar).
+
+    Without ``target`` the class is the one the phrase points to, read off ``by_class`` (its
+    knockout's per-class breakdown, when the caller's shortcut search has it) or else found by
+    a knockout of the phrase over the set (``PhraseKnockoutKind``)."""
     _require_classifier(loaded)
     phrase = " ".join(phrase.split())
-    phrase_keys(phrase)
+    keys = insertion_keys(phrase)
     pointed = None
     if target is None:
-        tally = run(PointedKind(phrase, batch_size), f"knockout of '{phrase}'")
-        pointed = tally.pointed(list(loaded.labels), phrase)
+        if by_class is None:
+            tally = run(PhraseKnockoutKind(phrase, batch_size), f"knockout of '{phrase}'")
+            by_class = tally.by_class(" ".join(keys))
+        pointed = pointed_class(loaded.labels, by_class, phrase)
         index, chosen = pointed.target, "knockout"
     else:
         index = target if isinstance(target, int) else resolve_class(loaded, str(target))
@@ -329,11 +294,12 @@ def insertion_test(
     progress: Callable[..., None] | None = None,
     cancelled: Callable[[], bool] | None = None,
     options: RunOptions = SERIAL,
+    by_class: np.ndarray | None = None,
 ) -> InsertionReport:
     """The whole insertion test over the shards of the set (``viewer.reports.shards``).
 
-    Without ``target`` the set is read twice (the knockout that finds the pointed class, then
-    the insertions): a one-shot stream of items is read into a list first.
+    Without ``target`` or ``by_class`` the set is read twice (the knockout that finds the
+    pointed class, then the insertions): a one-shot stream of items is read into a list first.
     ``progress(done, total)`` follows the insertion pass.
     """
     if not isinstance(items, TextSource):
@@ -349,4 +315,4 @@ def insertion_test(
             progress=progress if isinstance(kind, InsertionKind) else None,
         )
 
-    return run_insertion(loaded, phrase, target, seed, batch_size, run)
+    return run_insertion(loaded, phrase, target, seed, batch_size, run, by_class)

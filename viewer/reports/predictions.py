@@ -1,5 +1,11 @@
-"""Accuracy over a labelled text set, from the per-text predictions of one pass
-(``viewer.reports.heads.scan_text_set`` / ``runs.predictions_data``)."""
+"""Accuracy over a labelled text set (docs/definitions.md, "Accuracy"): the one rule the window's
+text-set list and the card both use.
+
+The labels are checked first (``set_labels``): a set with any label must have one on every text,
+each one of the model's classes, else it is refused with a one-line error naming the line. So
+no label is ever unknown when ``accuracy_data`` counts: accuracy is the share of labelled texts
+whose predicted class is their label.
+"""
 
 from __future__ import annotations
 
@@ -12,18 +18,30 @@ from viewer.reports.heads import label_indices
 from viewer.reports.textsets import TextItem
 
 
-def accuracy_data(loaded: LoadedModel, items: Sequence[TextItem], predicted: Sequence[int]) -> dict:
-    """Accuracy overall and per class over the labelled items (classifiers only).
+def set_labels(loaded: LoadedModel, items: Sequence[TextItem]) -> list[int] | None:
+    """The class index of every item's label for a classifier's labelled set; None when the set
+    has no label or the model is not a classifier (no accuracy then). HeadlightError naming the
+    line for a missing or unknown label (``viewer.reports.heads.label_index``)."""
+    if loaded.head_kind != "classifier":
+        return None
+    return label_indices(loaded, items)
 
-    ``predicted`` holds the predicted class index of every item, in order.
+
+def accuracy_data(labels: Sequence[str], gold: Sequence[int] | None, predicted: Sequence[int]) -> dict:
+    """Accuracy overall and per class, and the confusion matrix.
+
+    ``gold`` holds each item's class index (``set_labels``; None: an unlabelled set, then only
+    ``{"labelled": 0}``), ``predicted`` each item's predicted class index, in the same order.
+    ``confusion[a][b]`` counts the texts labelled ``labels[a]`` predicted ``labels[b]``.
     """
-    gold = label_indices(loaded, items)
-    if gold is None or loaded.head_kind != "classifier":
+    if gold is None:
         return {"labelled": 0}
-    pred = np.asarray(predicted)
-    y = np.asarray(gold)
+    y = np.asarray(gold, dtype=np.int64)  # (N,)
+    pred = np.asarray(predicted, dtype=np.int64)  # (N,)
+    if y.shape != pred.shape:
+        raise ValueError(f"{y.size} labels for {pred.size} predictions")
     per_class = {}
-    for k, name in enumerate(loaded.labels):
+    for k, name in enumerate(labels):
         mask = y == k
         per_class[name] = {
             "texts": int(mask.sum()),
@@ -31,8 +49,7 @@ def accuracy_data(loaded: LoadedModel, items: Sequence[TextItem], predicted: Seq
             "accuracy": float((pred[mask] == k).mean()) if mask.any() else None,
         }
     confusion = [
-        [int(((y == a) & (pred == b)).sum()) for b in range(len(loaded.labels))]
-        for a in range(len(loaded.labels))
+        [int(((y == a) & (pred == b)).sum()) for b in range(len(labels))] for a in range(len(labels))
     ]
     return {
         "labelled": int(len(y)),
@@ -40,5 +57,5 @@ def accuracy_data(loaded: LoadedModel, items: Sequence[TextItem], predicted: Seq
         "accuracy": float((pred == y).mean()),
         "per_class": per_class,
         "confusion": confusion,
-        "confusion_order": list(loaded.labels),
+        "confusion_order": list(labels),
     }

@@ -24,10 +24,11 @@ from viewer.model.runs import TextLayer, scan
 from viewer.reports.heads import (
     HeadsKind,
     TextSetScan,
-    _require_prediction,
     check_labels,
     normalise_importance,
     predictions,
+    predicts,
+    require_prediction,
 )
 from viewer.reports.links import LinksKind
 from viewer.reports.progress import shard_bar
@@ -65,6 +66,21 @@ def _run(
         return require_some(
             run_shards(kind, loaded, items, options=run, total=total, inputs=key, on_shard=on_shard)
         )
+
+
+def _run_set(
+    kind: ShardKind,
+    loaded: LoadedModel,
+    source: TextSource,
+    label: str,
+    run: RunOptions,
+    quiet: bool,
+    total: int | None = None,
+) -> Any:
+    """``_run`` over a text set: its items, counted first (``total``, when the caller has
+    counted them already), the run folder keyed by its content."""
+    total = survey(source).texts if total is None else total
+    return _run(kind, loaded, source.items(), total, label, source.key, run, quiet)
 
 
 @dataclass(frozen=True)
@@ -171,11 +187,10 @@ def heads_data(
 ) -> dict:
     source = as_source(texts)
     info = survey(source)
-    prediction = loaded.head_kind in ("classifier", "causal-lm")
-    importance, knockout = prediction and importance, prediction and knockout
+    importance, knockout = predicts(loaded) and importance, predicts(loaded) and knockout
     use_labels = check_labels(loaded, info) if (importance or knockout) else False
     kind = HeadsKind(batch_size, importance=importance, knockout=knockout, use_labels=use_labels)
-    part = _run(kind, loaded, source.items(), info.texts, "head summaries", source.key, run, quiet)
+    part = _run_set(kind, loaded, source, "head summaries", run, quiet, info.texts)
     data = {"model": str(loaded.folder), **part.stats.summary().to_dict()}
     data.update(cut_data(loaded, (i.text for i in source.items())))
     n = info.texts
@@ -201,11 +216,7 @@ def predictions_data(
     run: RunOptions = SERIAL,
 ) -> TextSetScan:
     """Every text's prediction and the head summary, as the window's ``scan_text_set``."""
-    source = as_source(texts)
-    total = survey(source).texts
-    part = _run(
-        HeadsKind(batch_size, rows=True), loaded, source.items(), total, "predictions", source.key, run, quiet
-    )
+    part = _run_set(HeadsKind(batch_size, rows=True), loaded, as_source(texts), "predictions", run, quiet)
     return TextSetScan(part.stats.summary(), predictions(loaded, part))
 
 
@@ -241,19 +252,9 @@ def shortcuts_data(
     quiet: bool = False,
     run: RunOptions = SERIAL,
 ) -> dict:
-    _require_prediction(loaded, "shortcut search")
+    require_prediction(loaded, "shortcut search")
     source = as_source(texts)
-    total = survey(source).texts
-    report = _run(
-        ShortcutKind(batch_size, phrases),
-        loaded,
-        source.items(),
-        total,
-        "word knockout",
-        source.key,
-        run,
-        quiet,
-    )
+    report = _run_set(ShortcutKind(batch_size, phrases), loaded, source, "word knockout", run, quiet)
     cut = cut_data(loaded, (i.text for i in source.items()))
     return {"model": str(loaded.folder), **report.to_dict(), **cut}
 
@@ -268,7 +269,10 @@ def insertion_data(
     batch_size: int = 16,
     quiet: bool = False,
     run: RunOptions = SERIAL,
+    by_class: np.ndarray | None = None,
 ) -> dict:
+    """``headlight insert``'s numbers; ``by_class``: the phrase's per-class knockout breakdown
+    when a shortcut search already has it (``viewer.reports.insertion.run_insertion``)."""
     from viewer.reports.insertion import run_insertion
 
     source = as_source(texts)
@@ -279,6 +283,7 @@ def insertion_data(
         target,
         seed,
         batch_size,
-        lambda kind, label: _run(kind, loaded, source.items(), total, label, source.key, run, quiet),
+        lambda kind, label: _run_set(kind, loaded, source, label, run, quiet, total),
+        by_class,
     )
     return {"model": str(loaded.folder), **report.to_dict()}

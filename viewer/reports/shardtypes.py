@@ -83,8 +83,8 @@ class RunOptions:
 
     One torch thread everywhere is what makes every engine's numbers bit-identical: a forward
     on two threads can differ from the same forward on one in the last bit of a float32
-    (measured on the demo model: one phrase's summed drop moved by 8e-10), and workers run one
-    thread each.
+    (on the demo model's sample messages a summed drop moves by 8e-10,
+    ``tests/benchmarks/bench_threads.py``), and workers run one thread each.
     """
 
     workers: int = 1

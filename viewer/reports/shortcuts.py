@@ -16,7 +16,7 @@ pair of ``KnockoutTally``; the tallies merge in shard order.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import asdict, dataclass
 from typing import ClassVar
 
@@ -30,10 +30,11 @@ from viewer.core.shortcuts import (
     word_spans,
 )
 from viewer.core.summary import summary_head_shares, summary_index, summary_share
+from viewer.core.words import Span
 from viewer.model.attribution import predict_without
 from viewer.model.loader import LoadedModel
 from viewer.model.runs import TextAttention, attentions
-from viewer.reports.heads import _require_prediction
+from viewer.reports.heads import require_prediction
 from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 from viewer.reports.textsets import TextItem, chunks
 
@@ -82,6 +83,67 @@ def knockout_tokens(att: TextAttention, spans: dict[str, list[tuple[int, int]]])
     return out
 
 
+SpansOf = Callable[[str], dict[str, dict[str, list[Span]]]]
+"""A text -> {tally name: {key: spans of its occurrences}}: what to knock out of it, per tally."""
+
+
+def knock_out(
+    loaded: LoadedModel,
+    items: Iterable[TextItem],
+    tallies: Mapping[str, KnockoutTally],
+    spans_of: SpansOf,
+    batch_size: int,
+    check: Callable[[], None],
+) -> None:
+    """The knockout loop: every key ``spans_of`` gives for a text is knocked out of it, each on
+    its own copy (all of the key's sub-tokens deleted, docs/definitions.md "Word knockout"),
+    and each text's outcomes are added to the tally of their name.
+
+    The knockouts of ``TEXTS_PER_FORWARD_GROUP`` texts are batched together; ``check()`` is
+    called before each group (a cancel ends the run there).
+    """
+    labels = next(iter(tallies.values())).labels if tallies else ()
+    for chunk in chunks(items, TEXTS_PER_FORWARD_GROUP):
+        check()
+        atts = list(attentions(loaded, [i.text for i in chunk], batch_size))
+        plans = []  # per text: [(tally name, key, token indices)] in the order of `cases`
+        cases = []  # (token ids, sub-tokens to delete), one per knockout
+        for att in atts:
+            plan = [
+                (name, key, idx)
+                for name, spans in spans_of(att.text).items()
+                for key, idx in knockout_tokens(att, spans).items()
+            ]
+            cases.extend((att.token_ids, idx) for _, _, idx in plan)
+            plans.append(plan)
+        after = predict_without(loaded, cases, batch_size) if cases else None
+        row = 0
+        for att, plan in zip(atts, plans, strict=True):
+            pred = int(np.argmax(att.target))
+            p0 = float(att.target[pred])
+            summary = att.attention_from(summary_index(len(att.token_ids), loaded.family.causal))[
+                -1
+            ]  # (H, T)
+            outcomes: dict[str, dict[str, KnockoutOutcome]] = {name: {} for name in tallies}
+            for name, key, idx in plan:
+                p = after[row]
+                row += 1
+                outcomes[name][key] = KnockoutOutcome(
+                    flipped=bool(int(np.argmax(p)) != pred),
+                    drop=p0 - float(p[pred]),
+                    focus=summary_share(summary, idx),
+                    head_focus=summary_head_shares(summary, idx),
+                    predicted=pred if labels else -1,
+                )
+            for name, tally in tallies.items():
+                tally.add_text(outcomes[name])
+
+
+def class_labels(loaded: LoadedModel) -> tuple[str, ...]:
+    """The classes a knockout tally breaks its flips down by: a classifier's, else none."""
+    return tuple(loaded.labels) if loaded.head_kind == "classifier" else ()
+
+
 @dataclass(frozen=True)
 class ShortcutKind:
     """Word (and phrase) knockout over shards; the partial is a ``ShortcutReport``."""
@@ -94,42 +156,20 @@ class ShortcutKind:
         return asdict(self)
 
     def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> ShortcutReport:
-        labels = tuple(loaded.labels) if loaded.head_kind == "classifier" else ()
-        words = KnockoutTally(labels, loaded.n_heads)
-        pairs = KnockoutTally(labels, loaded.n_heads)
-        for chunk in chunks(shard.items, TEXTS_PER_FORWARD_GROUP):
-            check()
-            atts = list(attentions(loaded, [i.text for i in chunk], self.batch_size))
-            plans = []  # per text: [(kind, key, token indices)] in the order of `cases`
-            cases = []  # (token ids, sub-tokens to delete), one per knockout
-            for att in atts:
-                plan = [("w", key, idx) for key, idx in knockout_tokens(att, word_spans(att.text)).items()]
-                if self.phrases:
-                    plan += [
-                        ("p", key, idx) for key, idx in knockout_tokens(att, phrase_spans(att.text)).items()
-                    ]
-                cases.extend((att.token_ids, idx) for _, _, idx in plan)
-                plans.append(plan)
-            after = predict_without(loaded, cases, self.batch_size) if cases else None
-            row = 0
-            for att, plan in zip(atts, plans, strict=True):
-                pred = int(np.argmax(att.target))
-                p0 = float(att.target[pred])
-                summary = att.attention_from(summary_index(len(att.token_ids), loaded.family.causal))[-1]
-                outcomes: dict[str, dict[str, KnockoutOutcome]] = {"w": {}, "p": {}}
-                for kind, key, idx in plan:
-                    p = after[row]
-                    row += 1
-                    outcomes[kind][key] = KnockoutOutcome(
-                        flipped=bool(int(np.argmax(p)) != pred),
-                        drop=p0 - float(p[pred]),
-                        focus=summary_share(summary, idx),
-                        head_focus=summary_head_shares(summary, idx),
-                        predicted=pred if labels else -1,
-                    )
-                words.add_text(outcomes["w"])
-                if self.phrases:
-                    pairs.add_text(outcomes["p"])
+        words = KnockoutTally(class_labels(loaded), loaded.n_heads)
+        pairs = KnockoutTally(class_labels(loaded), loaded.n_heads)
+        if self.phrases:
+            tallies = {"words": words, "phrases": pairs}
+
+            def spans_of(text: str) -> dict[str, dict[str, list[Span]]]:
+                return {"words": word_spans(text), "phrases": phrase_spans(text)}
+        else:
+            tallies = {"words": words}
+
+            def spans_of(text: str) -> dict[str, dict[str, list[Span]]]:
+                return {"words": word_spans(text)}
+
+        knock_out(loaded, shard.items, tallies, spans_of, self.batch_size, check)
         return ShortcutReport(words, pairs, words.texts)
 
     def state(self, partial: ShortcutReport) -> State:
@@ -163,7 +203,7 @@ def shortcut_search(
     length); ``cancelled()`` is asked between shards and batches and ends the run with
     ``viewer.reports.shards.Cancelled``.
     """
-    _require_prediction(loaded, "shortcut search")
+    require_prediction(loaded, "shortcut search")
     return run_report(
         ShortcutKind(batch_size=batch_size, phrases=phrases),
         loaded,

@@ -29,7 +29,6 @@ from typing import Any, TypeVar
 from viewer import safejson
 from viewer.errors import HeadlightError
 
-FORMATS = (".txt", ".jsonl", ".csv", ".parquet")
 ARROW_BATCH = 1024  # rows decoded at a time from Parquet and Arrow
 
 Item = TypeVar("Item")

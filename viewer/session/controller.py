@@ -7,8 +7,8 @@ something later. The window forwards the worker's messages to ``finished``, ``fa
 ``cancelled`` on the GUI thread, and calls the action methods from its menus and keys.
 
 Worker (``viewer.gui.worker.Worker`` in the window; anything with these methods in a test):
-``submit(kind, fn, *args, replace=True)``, ``cancel(kind=None, keep=())``,
-``running_kinds()`` and ``busy``. A finished job of kind ``k`` is handled by ``_done_k``.
+``submit(name, fn, *args, replace=True)``, ``cancel(name=None, keep=())``,
+``running_jobs()`` and ``busy``. A finished job named ``k`` is handled by ``_done_k``.
 
 A run arrives in two steps (``viewer.session.analysis``): the recording first, so the pair
 grid can be painted at once; then — when the pair grid has painted it (``painted``) or after
@@ -148,7 +148,7 @@ class Controller:
 
     def run_text(self, text: str, label: str | None = None) -> None:
         if self.state.model is None:
-            if "open" in self.worker.running_kinds():
+            if "open" in self.worker.running_jobs():
                 self._after_open = [self.run_current]
                 return
             self.view.show_error("no model is open yet; open a model folder first (Ctrl+O)")
@@ -409,18 +409,18 @@ class Controller:
         self._after_open.clear()
 
     # -- worker messages (GUI thread) -------------------------------------------------------------
-    def finished(self, kind: str, result: Any) -> None:
-        handler = getattr(self, f"_done_{kind.replace('-', '_')}", None)
-        if handler is not None:  # kinds without a handler only needed to run
+    def finished(self, name: str, result: Any) -> None:
+        handler = getattr(self, f"_done_{name.replace('-', '_')}", None)
+        if handler is not None:  # jobs without a handler only needed to run
             handler(result)
 
-    def failed(self, kind: str, message: str) -> None:
-        if kind == "figures":
+    def failed(self, name: str, message: str) -> None:
+        if name == "figures":
             self._figures_requested = False
-        if kind == "open":
+        if name == "open":
             self._after_open.clear()
         self.view.show_error(message)
 
-    def cancelled(self, kind: str) -> None:
+    def cancelled(self, name: str) -> None:
         if not self.worker.busy:
-            self.view.set_status(f"{kind} cancelled")
+            self.view.set_status(f"{name} cancelled")

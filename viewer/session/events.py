@@ -38,10 +38,6 @@ class Event:
         for callback in list(self._callbacks):
             callback(value)
 
-    @property
-    def n_callbacks(self) -> int:
-        return len(self._callbacks)
-
     def blocked(self) -> _Blocker:
         """``with event.blocked(): ...`` suppresses emissions inside the block."""
         return _Blocker(self)

@@ -6,7 +6,8 @@
 builder of ``viewer.figures`` the pane uses, headed by the model, the text, the layer/head and
 the metric, plus the numbers as a JSON dictionary and a CSV table. ``write_export`` writes the
 five files (``viewer.figures.export``: atomic, PNG at 300 dpi, SVG, PDF, CSV, JSON). The Qt
-half (menus, file dialogs, the clipboard) is ``viewer.gui.export``.
+half (menus, file dialogs, the clipboard) is ``viewer.gui.export``. ``export_card`` writes the
+card folder: the reports' numbers and words, the figures' drawings, put into one folder.
 
 numpy and matplotlib are imported inside the builders: the window appears before they load.
 """
@@ -14,12 +15,18 @@ numpy and matplotlib are imported inside the builders: the window appears before
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from viewer.errors import HeadlightError
 from viewer.files import sanitise_name
+
+if TYPE_CHECKING:
+    from viewer.model.loader import LoadedModel
+    from viewer.reports.shards import RunOptions
+    from viewer.reports.textsets import TextSource
 
 DATA_FORMATS = ("json", "csv")
 TEXT_CHARS = 70  # the text in an export's heading is shortened to this many characters
@@ -300,7 +307,7 @@ def links_export(
 
     from viewer.figures.links import LINK_UNITS, links_into
     from viewer.figures.style import head_name
-    from viewer.session.analysis import per_head_link, unit_links
+    from viewer.session.views import link_view
 
     if analysis is None:
         raise HeadlightError("nothing to export in the links pane yet: run a text first")
@@ -310,13 +317,9 @@ def links_export(
             "nothing to export in the links pane: pick a source token first (click a pair-grid cell)"
         )
     u = analysis.units
-    scores = unit_links(analysis, layer, head, query)
-    per_head = target_unit = None
-    if key is not None and key < rec.n_tokens:
-        per_head = per_head_link(analysis, query, key)
-        target_unit = u.unit_of(key)
-    source_name = u.names[u.unit_of(query)]
-    target_name = u.names[target_unit] if target_unit is not None else None
+    view = link_view(analysis, layer, head, query, key)
+    scores, per_head, target_unit = view.scores, view.per_head, view.target_unit
+    source_name, target_name = view.source_name, view.target_name
     where = head_name(layer, head)
     fig = print_figure()
     links_into(
@@ -359,7 +362,7 @@ def links_export(
 def evidence_export(analysis, evidence, source: Source, *, token: int | None = None) -> PaneExport:
     """The evidence strip; its data holds the keys of ``headlight evidence --json``."""
 
-    from viewer.figures.evidence import ROW_UNITS, evidence_into, mark_token, prediction_line
+    from viewer.figures.evidence import ROW_UNITS, mark_token, prediction_line, recording_evidence_into
 
     if analysis is None:
         raise HeadlightError("nothing to export in the evidence strip yet: run a text first")
@@ -368,27 +371,16 @@ def evidence_export(analysis, evidence, source: Source, *, token: int | None = N
     rec = analysis.recording
     probs = rec.class_probabilities()
     line = prediction_line(rec.labels, probs, rec.predicted(), analysis.label)
-    kinds, values, agreement = evidence.strip_rows()
+    row_labels, values, _ = evidence.strip_rows()
     fig = print_figure()
-    arts = evidence_into(
-        fig,
-        rec.tokens,
-        kinds,
-        values,
-        agreement,
-        labels=rec.labels,
-        probabilities=probs if len(probs) else None,
-        predicted=rec.predicted(),
-        gold=analysis.label,
-        title=line,
-    )
+    arts = recording_evidence_into(fig, rec, evidence, gold=analysis.label)
     mark_token(arts, token)
     units = " ".join(ROW_UNITS.split())
     heading = _heading(
         source.name,
         "evidence strip",
         "all layers and heads",
-        f"{len(kinds)} kinds, colours: {units}",
+        f"{len(row_labels)} rows, colours: {units}",
         rec.text,
     )
     add_heading(fig, heading)
@@ -398,13 +390,20 @@ def evidence_export(analysis, evidence, source: Source, *, token: int | None = N
         {
             "prediction": line,
             "gold": analysis.label,
-            "strip_rows": list(kinds),
+            "strip_rows": list(row_labels),
             "figure_colours": units + " (each row divided by its largest |value|)",
         }
     )
-    rows = [[i, tok, *(_cell(values[k, i]) for k in range(len(kinds)))] for i, tok in enumerate(rec.tokens)]
+    rows = [
+        [i, tok, *(_cell(values[k, i]) for k in range(len(row_labels)))] for i, tok in enumerate(rec.tokens)
+    ]
     return PaneExport(
-        fig, data, ["token", "token_text", *kinds], rows, export_stem(rec.text, "evidence strip"), heading
+        fig,
+        data,
+        ["token", "token_text", *row_labels],
+        rows,
+        export_stem(rec.text, "evidence strip"),
+        heading,
     )
 
 
@@ -473,3 +472,68 @@ def write_export(export: PaneExport, stem: str | Path, *, force: bool = False) -
     written = save_figure(export.figure, stem, force=force)
     written += save_data(stem, export.data, export.header, export.rows, force=force)
     return written
+
+
+# -- the card export --------------------------------------------------------------------------------
+
+CARD_FORMATS = ("png", "svg")
+
+
+def export_card(
+    loaded: LoadedModel,
+    texts: str | Path | TextSource,
+    out: str | Path,
+    *,
+    pairs_path: str | Path | None = None,
+    force: bool = False,
+    command: Sequence[str] = (),
+    batch_size: int = 16,
+    quiet: bool = False,
+    date: str | None = None,
+    run: RunOptions | None = None,
+) -> Path:
+    """Write the card folder at ``out``: ``card.md``, ``card.json`` and ``figures/`` (PNG and
+    SVG), refusing to replace an existing folder without ``force``.
+
+    The numbers and words are the reports' (``viewer.reports.card``), the figures are drawn by
+    ``viewer.figures.card``; the folder is built under a temporary name and moved into place
+    in one rename (``viewer.files.StagedFolder``). Apart from its one ``date`` line, an export
+    is reproducible byte for byte.
+    """
+    import os
+    import tempfile
+
+    from viewer.figures.card import card_figures
+    from viewer.figures.export import save_figure
+    from viewer.files import StagedFolder, atomic_write_text, json_text
+    from viewer.reports.card import CAUTIONS, card_data, card_markdown, reproducibility
+    from viewer.reports.shards import SERIAL
+    from viewer.reports.textsets import as_source
+
+    source = as_source(texts)
+    pairs_path = Path(pairs_path) if pairs_path is not None else None
+    out = Path(out)
+    if out.exists() and not force:
+        raise HeadlightError(f"{out} already exists; pass --force to replace it")
+    parent = out.parent if str(out.parent) else Path(".")
+    if not parent.is_dir():  # fail before the (long) computation, not after it
+        raise HeadlightError(f"cannot write {out}: folder {parent} does not exist")
+    try:  # the folder's mode does not say it all (root, read-only mounts): try it
+        os.rmdir(tempfile.mkdtemp(prefix=f".{out.name}.probe.", dir=parent))
+    except OSError as exc:
+        raise HeadlightError(f"cannot write {out}: {exc.strerror or type(exc).__name__}") from None
+    data = card_data(
+        loaded, source, pairs_path, batch_size=batch_size, quiet=quiet, run=SERIAL if run is None else run
+    )
+    data["reproducibility"] = reproducibility(loaded, source, pairs_path, command, date)
+    data["cautions"] = list(CAUTIONS)
+    with StagedFolder(out, force=force) as tmp:
+        (tmp / "figures").mkdir()
+        figures = {}
+        for name, fig in card_figures(data).items():
+            save_figure(fig, tmp / "figures" / name, CARD_FORMATS)
+            figures[name] = f"figures/{name}.png"
+        data["figures"] = figures
+        atomic_write_text(tmp / "card.md", card_markdown(data, figures))
+        atomic_write_text(tmp / "card.json", json_text(data))
+    return out

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -66,8 +66,9 @@ def settle_imports() -> None:
     """Move everything alive now (after the heavy imports) out of the garbage collector's view.
 
     The collector's full passes stop every thread for as long as it takes to traverse every
-    tracked object: with torch, transformers and matplotlib loaded that was up to 0.57 s
-    (measured in ``tests/benchmarks/bench_gui.py``), far over the 100 ms the window may stall.
+    tracked object: with torch, transformers and matplotlib loaded and the demo model open that
+    is 0.3 s (``tests/benchmarks/bench_collector.py``; more in the middle of a run), far over the
+    100 ms the window may stall.
     Modules, classes and functions never become garbage, so ``gc.freeze`` (made for this) loses
     nothing; objects created later (models, figures, recordings) are collected as usual.
     """
@@ -180,6 +181,8 @@ class TextSetRow:
 
     @property
     def correct(self) -> bool | None:
+        """Whether the prediction is the label; None without either (docs/definitions.md,
+        "Accuracy": a set's labels are checked before its rows exist, so none is unknown)."""
         if self.label is None or self.predicted is None:
             return None
         return self.label == self.predicted
@@ -191,6 +194,8 @@ class TextSetResult:
     rows: tuple[TextSetRow, ...]
     heads: Any  # HeadSummary over the whole set
     complete: bool = True
+    scores: dict = field(default_factory=lambda: {"labelled": 0})  # reports' ``accuracy_data``
+    _containing: dict[str, frozenset[int]] = field(default_factory=dict, init=False, repr=False)
 
     @property
     def mistakes(self) -> tuple[TextSetRow, ...]:
@@ -204,21 +209,45 @@ class TextSetResult:
 
     @property
     def accuracy(self) -> float | None:
-        known = [r.correct for r in self.rows if r.correct is not None]
-        return sum(known) / len(known) if known else None
+        """The set's accuracy by the reports' one rule (``viewer.reports.predictions``), None
+        for an unlabelled set or a model that is not a classifier."""
+        return self.scores.get("accuracy")
+
+    def containing(self, word: str) -> frozenset[int]:
+        """Indices of the rows whose text contains ``word``, a word or phrase of the shortcut
+        report (``viewer.core.words.contains``), kept for the next call."""
+        found = self._containing.get(word)
+        if found is None:
+            from viewer.core.words import contains
+
+            found = self._containing[word] = frozenset(r.index for r in self.rows if contains(r.text, word))
+        return found
+
+    def shown(self, mistakes_only: bool, word: str | None) -> list[TextSetRow]:
+        """The rows the text-set list shows: all, or only the mistakes, or only the texts
+        containing ``word``, or both."""
+        having = None if word is None else self.containing(word)
+        return [
+            r
+            for r in self.rows
+            if (not mistakes_only or r.correct is False) and (having is None or r.index in having)
+        ]
 
 
 def run_textset(ctx: JobContext, slot: str, path: str) -> TextSetResult:
     """Every text of a text-set file: prediction, correctness, and set-wide head metrics.
 
     One pass of the reports' own ``scan_text_set``: the head map's "text set" scope shows the
-    numbers ``headlight heads`` prints for the same file, to the last bit.
+    numbers ``headlight heads`` prints for the same file, to the last bit. The labels are
+    checked before the pass and the accuracy is the card's (``viewer.reports.predictions``).
     """
     from viewer.reports.heads import scan_text_set
+    from viewer.reports.predictions import accuracy_data, set_labels
     from viewer.reports.textsets import load_text_set
 
     items = load_text_set(path)
     loaded = ctx.model(slot)
+    gold = set_labels(loaded, items)  # a missing or unknown label is refused here, at once
     total = len(items)
     ctx.progress(0, total, f"recording {total} texts…")
     scan = scan_text_set(loaded, items, progress=ctx.counter("recorded texts"), cancelled=ctx.cancelled)
@@ -234,7 +263,8 @@ def run_textset(ctx: JobContext, slot: str, path: str) -> TextSetResult:
         )
         for p, item in zip(scan.rows, items, strict=True)
     )
-    return TextSetResult(str(path), rows, scan.heads)
+    scores = accuracy_data(loaded.labels, gold, [p.predicted for p in scan.rows])
+    return TextSetResult(str(path), rows, scan.heads, scores=scores)
 
 
 # -- link pairs ---------------------------------------------------------------------------------
@@ -318,13 +348,14 @@ def run_insertions(
     ctx: JobContext, slot: str, textset: TextSetResult, report: Any, words: tuple[str, ...]
 ) -> tuple[Any, dict[str, Any]]:
     """The insertion test (``viewer.reports.insertion``) for each of ``words`` over the open
-    text set, into the class knocking it out flips texts away from; a phrase is inserted as
+    text set, into the class knocking it out flips texts away from (read off the report's own
+    per-class breakdown when it has the word, else found by its knockout); a phrase is inserted as
     the texts most often write it (``insertion_phrase``: "via portal" as "[via portal]"). A word
     that points to no class is left out. Returns (``report``, {word: InsertionReport}): the
     shortcut report the words came from, so that results of an older search are not shown
     beside a newer one."""
     from viewer.errors import HeadlightError
-    from viewer.reports.insertion import insertion_phrase, insertion_test
+    from viewer.reports.insertion import insertion_phrase, insertion_test, searched_by_class
 
     loaded = ctx.model(slot)
     items = textset.items()
@@ -334,7 +365,11 @@ def run_insertions(
         ctx.progress(k, len(words), f"insertion test: '{word}' ({k + 1} of {len(words)})")
         try:
             results[word] = insertion_test(
-                loaded, items, insertion_phrase(items, word), cancelled=ctx.cancelled
+                loaded,
+                items,
+                insertion_phrase(items, word),
+                cancelled=ctx.cancelled,
+                by_class=searched_by_class(report, word),
             )
         except HeadlightError:
             continue  # e.g. knocking it out flips nothing: it points to no class
@@ -360,7 +395,7 @@ def card_job(ctx: JobContext, slot: str, texts: str, pairs: str | None, out: str
     """``export_card`` with the window's open model; returns the folder written."""
     loaded = ctx.model(slot)
     ctx.progress(0, 0, "writing the model-card folder (check, heads, links, shortcuts)…")
-    from viewer.figures.card import export_card
+    from viewer.session.exports import export_card
 
     command = card_command(str(loaded.folder), texts, pairs, out, force)
     path = export_card(loaded, texts, out, pairs_path=pairs, force=force, command=command, quiet=True)

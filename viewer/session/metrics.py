@@ -13,7 +13,7 @@ import numpy as np
 
 from viewer.core.headstats import METRICS as STAT_METRICS
 from viewer.session.analysis import TextAnalysis, per_head_link
-from viewer.session.state import METRICS, Selection
+from viewer.session.state import HEAD_MAP_METRICS, Selection
 
 EVIDENCE_METRICS = {"importance": "head_importance", "knockout": "head_knockout"}
 
@@ -26,7 +26,7 @@ class HeadValues:
     title: str
 
 
-def _one(
+def run_metric(
     state: Selection, analysis: TextAnalysis | None, evidence, name: str, scope: str
 ) -> np.ndarray | str:
     """The metric for one run (the current text, the compared one, or the text set)."""
@@ -54,37 +54,37 @@ def _one(
         return per_head_link(analysis, s, t)
     if name in ("importance", "knockout"):
         if evidence is None:
-            return f"{METRICS[name][0]} appears once the evidence for this text is computed"
+            return f"{HEAD_MAP_METRICS[name][0]} appears once the evidence for this text is computed"
         values = getattr(evidence, EVIDENCE_METRICS[name], None)
         if values is None:
-            return f"{METRICS[name][0]} is not available for this model or text"
+            return f"{HEAD_MAP_METRICS[name][0]} is not available for this model or text"
         return np.asarray(values)
     return f"unknown metric {name}"
 
 
 def available(state: Selection, name: str) -> bool:
-    return not isinstance(_one(state, state.analysis, state.evidence, name, state.scope), str)
+    return not isinstance(run_metric(state, state.analysis, state.evidence, name, state.scope), str)
 
 
 def head_values(state: Selection) -> HeadValues | str:
     name = state.metric
-    label = METRICS[name][1]
+    label = HEAD_MAP_METRICS[name][1]
     scope = state.scope if name in STAT_METRICS else "text"
-    base = _one(state, state.analysis, state.evidence, name, scope)
+    base = run_metric(state, state.analysis, state.evidence, name, scope)
     if isinstance(base, str):
         return base
     where = "over the text set" if scope == "set" else "this text"
     if state.difference and state.compare is not None:
         if name in ("importance", "knockout"):
-            return f"the difference view needs {METRICS[name][0]} of both runs; pick another metric"
+            return f"the difference view needs {HEAD_MAP_METRICS[name][0]} of both runs; pick another metric"
         if scope == "set":
             return "the difference view compares two single texts; switch the scope to this text"
-        other = _one(state, state.compare, None, name, "text")
+        other = run_metric(state, state.compare, None, name, "text")
         if isinstance(other, str):
             return other
         if np.shape(other) != np.shape(base):
             return "the compared checkpoint has a different number of layers or heads"
         return HeadValues(
-            np.asarray(other) - base, f"Δ {label}", True, f"{METRICS[name][0]}: compared − current"
+            np.asarray(other) - base, f"Δ {label}", True, f"{HEAD_MAP_METRICS[name][0]}: compared − current"
         )
-    return HeadValues(np.asarray(base), label, False, f"{METRICS[name][0]} · {where}")
+    return HeadValues(np.asarray(base), label, False, f"{HEAD_MAP_METRICS[name][0]} · {where}")

@@ -36,7 +36,7 @@ from typing import Any
 from viewer.errors import HeadlightError
 from viewer.files import atomic_write_text, json_text
 from viewer.safejson import load_file
-from viewer.session.state import METRICS, Selection
+from viewer.session.state import HEAD_MAP_METRICS, Selection
 
 FORMAT = "headlight-session"
 VERSION = 1
@@ -106,7 +106,7 @@ def from_dict(data: Any) -> Session:
     if clean.get("layer") is None:
         clean["layer"] = 0
     metric = sel.get("metric", "entropy")
-    clean["metric"] = metric if metric in METRICS else "entropy"
+    clean["metric"] = metric if metric in HEAD_MAP_METRICS else "entropy"
     clean["scope"] = sel.get("scope") if sel.get("scope") in ("text", "set") else "text"
     clean["mistakes_only"] = bool(sel.get("mistakes_only", False))
     clean["difference"] = bool(sel.get("difference", False))

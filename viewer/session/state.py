@@ -17,7 +17,7 @@ layer          selected layer (from 0)
 head           selected head (from 0), or None for the layer's head mean
 source         selected source (query) token, or None
 target         selected target (key) token, or None
-metric         head-map metric name (``METRICS``)
+metric         head-map metric name (``HEAD_MAP_METRICS``)
 scope          "text" (this text) or "set" (summaries over the text set)
 textset        ``TextSetResult`` of the open text set, or None
 mistakes_only  the text-set list shows only wrong predictions
@@ -41,7 +41,7 @@ from typing import Any
 from viewer.session.events import Event, same
 
 # name -> (label in the chooser, colour-bar label with units, explanation for the tooltip)
-METRICS: dict[str, tuple[str, str, str]] = {
+HEAD_MAP_METRICS: dict[str, tuple[str, str, str]] = {
     "entropy": (
         "entropy",
         "entropy (0–1)",
@@ -197,21 +197,20 @@ class Selection:
         }
 
     # -- sizes -----------------------------------------------------------------------------
+    def _size(self, name: str) -> int:
+        """``n_layers`` or ``n_heads`` of the current run, else of the open model, else 0."""
+        a, m = self._values["analysis"], self._values["model"]
+        if a is not None:
+            return getattr(a.recording, name)
+        return getattr(m, name) if m is not None else 0
+
     @property
     def n_layers(self) -> int:
-        a = self._values["analysis"]
-        if a is not None:
-            return a.recording.n_layers
-        m = self._values["model"]
-        return m.n_layers if m is not None else 0
+        return self._size("n_layers")
 
     @property
     def n_heads(self) -> int:
-        a = self._values["analysis"]
-        if a is not None:
-            return a.recording.n_heads
-        m = self._values["model"]
-        return m.n_heads if m is not None else 0
+        return self._size("n_heads")
 
     @property
     def n_tokens(self) -> int:
@@ -295,7 +294,7 @@ class Selection:
         self._set("target", None if target is None else int(target))
 
     def set_metric(self, name: str) -> None:
-        if name not in METRICS:
+        if name not in HEAD_MAP_METRICS:
             raise ValueError(f"unknown head-map metric {name!r}")
         self._set("metric", name)
 

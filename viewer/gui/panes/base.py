@@ -95,6 +95,21 @@ class TableDock(StateListener, QWidget):
         table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         return table
 
+    def show_selected(self, shown: Sequence, current) -> None:
+        """Select the row whose value is ``current`` (``shown``: each row's value, in table
+        order), or no row, without the table announcing it as the user's choice."""
+        self.table.blockSignals(True)
+        if current in shown:
+            self.table.selectRow(list(shown).index(current))
+        else:
+            self.table.clearSelection()
+        self.table.blockSignals(False)
+
+    def chosen(self, shown: Sequence):
+        """The value of the row the user selected, or None."""
+        rows = self.table.selectionModel().selectedRows()
+        return shown[rows[0].row()] if rows else None
+
 
 class FigurePane(StateListener, QWidget):
     """Base class: subclasses implement ``render`` (a build function, or a message).
@@ -124,8 +139,8 @@ class FigurePane(StateListener, QWidget):
         self.fast = False  # set by a build: only the blitter's artists changed
         self.size_px: tuple[int, int] = (500, 400)  # the view's size (GUI thread's copy)
         self._scheduled = False
-        self._frames_due = 0  # frames requested from the render thread, not yet arrived
-        self._frames_held = 0  # requests held back while a view handled an event
+        self.frames_due = 0  # frames requested from the render thread, not yet arrived
+        self.frames_held = 0  # requests held back while a view handled an event
         self._want_figure = False  # False while a message is shown instead
 
         outer = QVBoxLayout(self)
@@ -197,7 +212,7 @@ class FigurePane(StateListener, QWidget):
     @property
     def drawing(self) -> bool:
         """A frame is being drawn: the figure belongs to the render thread until it arrives."""
-        return self._frames_due > 0 or self._frames_held > 0
+        return self.frames_due > 0 or self.frames_held > 0
 
     @property
     def idle(self) -> bool:
@@ -255,7 +270,7 @@ class FigurePane(StateListener, QWidget):
 
     def frame_arrived(self, frame) -> None:
         """A frame from the render thread (GUI thread)."""
-        self._frames_due -= 1
+        self.frames_due -= 1
         if frame.error is not None:
             if not self.drawing:
                 self.show_message(frame.error)

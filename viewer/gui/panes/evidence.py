@@ -1,4 +1,4 @@
-"""The evidence-strip pane: per-token evidence for the prediction, one row per kind.
+"""The evidence-strip pane: per-token evidence for the prediction, one row per piece of evidence.
 
 Each row is scaled to its own largest value; ρ at the right is the row's rank agreement with
 knockout. Click a token to make it the source token; wheel to zoom along the text.
@@ -39,7 +39,7 @@ class EvidencePane(FigurePane):
         source = self.state.source
 
         def build() -> None:  # render thread
-            from viewer.figures.evidence import evidence_into, mark_token
+            from viewer.figures.evidence import mark_token, recording_evidence_into
 
             if self.artists is not None and self._drawn_for is ev:
                 mark_token(self.artists, source)  # only the source token moved
@@ -47,21 +47,9 @@ class EvidencePane(FigurePane):
                 return
             if self.blitter is not None:
                 self.blitter.detach()
-            kinds, values, agreement = ev.strip_rows()
-            self.artists = evidence_into(
-                self.figure,
-                rec.tokens,
-                kinds,
-                values,
-                agreement,
-                labels=rec.labels,
-                probabilities=probs if len(probs) else None,
-                predicted=rec.predicted(),
-                gold=a.label,
-                title=line,
-            )
+            self.artists = recording_evidence_into(self.figure, rec, ev, gold=a.label)
             n = rec.n_tokens
-            self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(kinds) - 0.5))
+            self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, len(self.artists.row_labels) - 0.5))
             self.blitter = Blitter(self.agg, [self.artists.marker])
             self._drawn_for = ev
             mark_token(self.artists, source)
@@ -82,10 +70,10 @@ class EvidencePane(FigurePane):
         rec = self.state.analysis.recording
         row = int(round(event.ydata))
         lines = [f"token {i} '{rec.tokens[i]}'"]
-        kinds, values, _ = ev.strip_rows()
-        for k, kind in enumerate(kinds):
+        row_labels, values, _ = ev.strip_rows()
+        for k, name in enumerate(row_labels):
             mark = "▸ " if k == row else "  "
-            lines.append(f"{mark}{kind}: {float(values[k, i]):.4g}")
+            lines.append(f"{mark}{name}: {float(values[k, i]):.4g}")
         return "\n".join(lines)
 
     def on_press(self, event) -> None:

@@ -11,7 +11,7 @@ from PySide6.QtWidgets import QCheckBox, QComboBox
 
 from viewer.figures.blit import Blitter
 from viewer.gui.panes.base import FigurePane
-from viewer.session.state import METRICS
+from viewer.session.state import HEAD_MAP_METRICS
 
 ANNOTATE_CELLS = 48  # write values into the cells of small head maps only
 
@@ -25,7 +25,7 @@ class HeadMapPane(FigurePane):
         self.shown = None  # the HeadValues drawn last
         self._key = None
         self.metric_box = QComboBox()
-        for name, (label, _units, explanation) in METRICS.items():
+        for name, (label, _units, explanation) in HEAD_MAP_METRICS.items():
             self.metric_box.addItem(label, name)
             self.metric_box.setItemData(self.metric_box.count() - 1, explanation, Qt.ItemDataRole.ToolTipRole)
         self.metric_box.setToolTip("metric that colours the head map")

@@ -45,7 +45,8 @@ class LinksPane(FigurePane):
             self.view_box.setCurrentIndex(1)
 
     def render(self):
-        from viewer.session.analysis import per_head_link, unit_links
+        from viewer.figures.style import head_name
+        from viewer.session.views import link_view
 
         run = self.state.link_pairs
         if run is not None and self.view_box.currentData() == "file":
@@ -78,18 +79,14 @@ class LinksPane(FigurePane):
                 "the target. Links show where the source's word attends."
             )
         layer, head = self.state.layer, self.state.head
-        u = a.units
-        scores = unit_links(a, layer, head, s)
-        per_head = target_unit = None
-        if t is not None and t < n:
-            per_head = per_head_link(a, s, t)
-            target_unit = u.unit_of(t)
-        head_title = f"layer {layer} · " + ("head mean" if head is None else f"head {head}")
-        source_name = u.names[u.unit_of(s)]
+        view = link_view(a, layer, head, s, t)
+        names = a.units.names
+        scores, per_head, target_unit = view.scores, view.per_head, view.target_unit
+        head_title, source_name = head_name(layer, head), view.source_name
         self.set_title(f"links · from '{source_name}'")
 
         # what the figure's layout and per-head map depend on: the same for another head
-        drawn_for = (a.recording, u.unit_of(s), target_unit)
+        drawn_for = (a.recording, view.source_unit, target_unit)
 
         def build() -> None:  # render thread
             from viewer.figures.links import links_into, relink
@@ -100,7 +97,7 @@ class LinksPane(FigurePane):
             if same:  # another head: new bars and outline, the axes and ticks stay
                 relink(
                     self.artists,
-                    u.names,
+                    names,
                     scores,
                     per_head_to_target=per_head,
                     target=target_unit,
@@ -112,12 +109,12 @@ class LinksPane(FigurePane):
             else:
                 self.artists = links_into(
                     self.figure,
-                    u.names,
+                    names,
                     scores,
                     per_head_to_target=per_head,
                     target=target_unit,
                     source_name=source_name,
-                    target_name=u.names[target_unit] if target_unit is not None else None,
+                    target_name=view.target_name,
                     head_title=head_title,
                     selected=(layer, head),
                     exclude=None,

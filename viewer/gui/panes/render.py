@@ -135,7 +135,7 @@ def text_recording_renderer(agg) -> Any:
     return renderer
 
 
-def _chain(
+def chain_builds(
     pane: Any, first: Callable[[], None] | None, then: Callable[[], None] | None
 ) -> Callable[[], None] | None:
     """Both builds, in order (builds are cheap next to the draw they share); the fast path
@@ -180,7 +180,7 @@ class Renderer(QObject):
         job = RenderJob(pane, build, size)
         if self._holding:
             self._held.append(job)
-            pane._frames_held += 1
+            pane.frames_held += 1
             return
         self._queue(job)
 
@@ -188,11 +188,11 @@ class Renderer(QObject):
         with self._cond:
             old = self._pending.get(id(job.pane))
             if old is not None:  # not started yet: one draw does both
-                old.build = _chain(job.pane, old.build, job.build)
+                old.build = chain_builds(job.pane, old.build, job.build)
                 old.size = job.size or old.size
                 return
             self._pending[id(job.pane)] = job
-            job.pane._frames_due += 1
+            job.pane.frames_due += 1
             self._cond.notify()
 
     def hold(self) -> None:
@@ -204,7 +204,7 @@ class Renderer(QObject):
         if self._holding == 0 and self._held:
             held, self._held = self._held, []
             for job in held:
-                job.pane._frames_held -= 1
+                job.pane.frames_held -= 1
                 self._queue(job)
 
     def _drain(self) -> None:

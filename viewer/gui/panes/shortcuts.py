@@ -184,14 +184,9 @@ class ShortcutPane(TableDock):
         return self._ranked[2]
 
     def _select_current(self) -> None:
-        self.table.blockSignals(True)
-        if self.state.word in self.words:
-            self.table.selectRow(self.words.index(self.state.word))
-        else:
-            self.table.clearSelection()
-        self.table.blockSignals(False)
+        self.show_selected(self.words, self.state.word)
 
     def _word_chosen(self) -> None:
-        rows = self.table.selectionModel().selectedRows()
-        if rows:
-            self.state.select_word(self.words[rows[0].row()])
+        word = self.chosen(self.words)
+        if word is not None:
+            self.state.select_word(word)

@@ -35,7 +35,6 @@ class TextSetPane(TableDock):
         super().__init__(parent)
         self.state = state
         self.rows_shown: list[int] = []  # text-set indices in table order
-        self._words: dict[int, set[str]] = {}
         layout = QVBoxLayout(self)
         layout.setContentsMargins(4, 2, 4, 2)
         top = QHBoxLayout()
@@ -72,18 +71,6 @@ class TextSetPane(TableDock):
         self.listen("item", lambda _v: self._select_current())
         self.refresh()
 
-    def _has_word(self, row) -> bool:
-        word = self.state.word
-        if word is None:
-            return True
-        keys = self._words.get(row.index)
-        if keys is None:
-            from viewer.core.shortcuts import phrase_spans, word_spans
-
-            keys = set(word_spans(row.text)) | set(phrase_spans(row.text))
-            self._words[row.index] = keys
-        return word in keys
-
     def refresh(self) -> None:
         ts = self.state.textset
         self.mistakes_box.blockSignals(True)
@@ -96,13 +83,10 @@ class TextSetPane(TableDock):
         self.table.setRowCount(0)
         self.rows_shown = []
         if ts is None:
-            self._words.clear()
             self.summary.setText("Open a text set (.txt, .jsonl or .csv) to list its predictions.")
             self.table.blockSignals(False)
             return
-        rows = [
-            r for r in ts.rows if (not self.state.mistakes_only or r.correct is False) and self._has_word(r)
-        ]
+        rows = ts.shown(self.state.mistakes_only, word)
         acc = ts.accuracy
         name = ts.path.replace("\\", "/").rsplit("/", 1)[-1]
         text = f"{name}: {len(ts.rows)} texts"
@@ -135,15 +119,9 @@ class TextSetPane(TableDock):
         self._select_current()
 
     def _select_current(self) -> None:
-        item = self.state.item
-        self.table.blockSignals(True)
-        if item in self.rows_shown:
-            self.table.selectRow(self.rows_shown.index(item))
-        else:
-            self.table.clearSelection()
-        self.table.blockSignals(False)
+        self.show_selected(self.rows_shown, self.state.item)
 
     def _row_chosen(self) -> None:
-        rows = self.table.selectionModel().selectedRows()
-        if rows:
-            self.state.select_item(self.rows_shown[rows[0].row()])
+        item = self.chosen(self.rows_shown)
+        if item is not None:
+            self.state.select_item(item)
