@@ -73,8 +73,14 @@ def mid_bert(tmp_path_factory):
 
 @pytest.mark.slow
 @pytest.mark.skipif(not Path("/proc/self/statm").exists(), reason="reads resident memory from /proc")
-def test_the_estimate_is_within_a_quarter_of_the_measured_peak(mid_bert):
-    """At three lengths (10 words make about 12 tokens here), in a fresh process."""
+def test_the_estimate_is_close_to_the_measured_peak_and_seldom_under_it(mid_bert):
+    """At three lengths (10 words make about 12 tokens here), in a fresh process.
+
+    The band is lopsided on purpose: an estimate under the peak is the dangerous side (a text
+    that was let in can run the machine out of memory), so it may be at most 20% under; an
+    estimate over the peak only refuses a text that would have fitted, and the allocator's reuse
+    of freed blocks moves the measured peak by a fifth from run to run, so it may be 45% over.
+    """
     out = subprocess.run(
         [sys.executable, "-c", MEASURE, str(ROOT), str(mid_bert), "120", "240", "330"],
         capture_output=True,
@@ -85,7 +91,7 @@ def test_the_estimate_is_within_a_quarter_of_the_measured_peak(mid_bert):
     rows = json.loads(out.stdout.strip().splitlines()[-1])
     assert [r["tokens"] > 1000 for r in rows] == [True, True, True]
     for row in rows:
-        assert 0.75 <= row["estimate"] / row["used"] <= 1.25, row
+        assert 0.8 <= row["estimate"] / row["used"] <= 1.45, row
 
 
 def test_a_text_over_the_budget_is_refused_in_one_line_naming_what_fits(mid_bert, capsys, monkeypatch):
