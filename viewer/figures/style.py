@@ -192,21 +192,30 @@ class TokenLocator(Locator):
 
 
 def set_token_axis(
-    ax: Axes, which: str, tokens: Sequence[str], rotate: bool = False, restyle: bool = True
+    ax: Axes,
+    which: str,
+    tokens: Sequence[str],
+    rotate: bool = False,
+    restyle: bool = True,
+    numbered: bool = False,
 ) -> None:
     """Label ``ax``'s x or y axis with ``tokens`` through a ``TokenLocator``.
 
     ``restyle`` False keeps the tick style of an axis this function already set up (restyling
-    every tick is slow), changing only the labels.
+    every tick is slow), changing only the labels. ``numbered`` puts each token's position
+    before it ("4000 the"), for texts too long to find one's way by tokens alone. A label is
+    made only when its tick is drawn, so a text of thousands of tokens costs what its few
+    shown labels cost.
     """
-    labels = token_labels(tokens)
 
     def name(value: float, _pos: int | None = None) -> str:
         i = int(round(value))
-        return labels[i] if 0 <= i < len(labels) else ""
+        if not 0 <= i < len(tokens):
+            return ""
+        return f"{i} {token_label(tokens[i])}" if numbered else token_label(tokens[i])
 
     axis = ax.xaxis if which == "x" else ax.yaxis
-    axis.set_major_locator(TokenLocator(len(labels)))
+    axis.set_major_locator(TokenLocator(len(tokens)))
     axis.set_major_formatter(FuncFormatter(name))
     axis.set_minor_locator(mpl.ticker.NullLocator())
     if not restyle:

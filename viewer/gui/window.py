@@ -40,6 +40,7 @@ from viewer.gui.panes.links import LinksPane
 from viewer.gui.panes.pair_grid import PairGridPane
 from viewer.gui.panes.shortcuts import ShortcutPane
 from viewer.gui.panes.textset import TextSetPane
+from viewer.gui.textbox import TextBox, note_label
 from viewer.gui.worker import Worker
 from viewer.session import session_file as sessions
 from viewer.session.controller import Controller
@@ -185,10 +186,15 @@ class MainWindow(QMainWindow):
         self.model_label.setWordWrap(True)
         open_button = QToolButton()
         open_button.setDefaultAction(self.open_model_action)
-        self.text_edit = QPlainTextEdit()
+        self.text_edit = TextBox()
         self.text_edit.setPlaceholderText("Type or paste a text, then press Ctrl+Enter")
         self.text_edit.setFixedHeight(58)
         self.text_edit.setTabChangesFocus(True)
+        self.text_note = note_label(self.text_edit)
+        middle = QVBoxLayout()
+        middle.setSpacing(2)
+        middle.addWidget(self.text_edit)
+        middle.addWidget(self.text_note)
         self.run_button = QPushButton("Run  (Ctrl+Enter)")
         self.run_button.setToolTip(self.run_action.toolTip())
         self.run_button.clicked.connect(self.run_current)
@@ -196,7 +202,7 @@ class MainWindow(QMainWindow):
         left.addWidget(open_button)
         left.addWidget(self.model_label)
         bar.addLayout(left)
-        bar.addWidget(self.text_edit, 1)
+        bar.addLayout(middle, 1)
         bar.addWidget(self.run_button)
         layout.addLayout(bar)
         self.head_map = HeadMapPane(self.state)
@@ -347,7 +353,7 @@ class MainWindow(QMainWindow):
 
     # -- the controller's view -------------------------------------------------------------------
     def editor_text(self) -> str:
-        return self.text_edit.toPlainText()
+        return self.text_edit.text()  # the whole text, also when the box shows only its start
 
     def set_editor_text(self, text: str) -> None:
         self.text_edit.setPlainText(text)
@@ -451,7 +457,7 @@ class MainWindow(QMainWindow):
     def open_model_dialog(self) -> None:
         folder = QFileDialog.getExistingDirectory(self, "Open a model folder")
         if folder:
-            self.open_model(folder, run_after=bool(self.text_edit.toPlainText().strip()))
+            self.open_model(folder, run_after=bool(self.text_edit.text().strip()))
 
     def open_model(self, folder: str, *, run_after: bool = False, remember: bool = True) -> None:
         self.controller.open_model(folder, run_after=run_after, remember=remember)

@@ -222,12 +222,15 @@ class FigurePane(StateListener, QWidget):
         self.refresh()
 
     def refresh(self) -> None:
-        """Render now: ``render`` returns a build for the render thread, or a message."""
+        """Render now: ``render`` returns a build for the render thread, a message, or None
+        to keep the frame on screen (what it needs is still being computed)."""
         self._scheduled = False
         if self.canvas is None:
             self.show_message(self.waiting_text)
             return
         result = self.render()
+        if result is None:
+            return
         if isinstance(result, str):
             self.show_message(result)
             return
@@ -277,7 +280,7 @@ class FigurePane(StateListener, QWidget):
     def showing_figure(self) -> bool:
         return self.canvas is not None and self.stack.currentWidget() is self.canvas
 
-    def render(self) -> str | Callable[[], None]:  # pragma: no cover - abstract
+    def render(self) -> str | Callable[[], None] | None:  # pragma: no cover - abstract
         raise NotImplementedError
 
     def set_title(self, text: str) -> None:
