@@ -158,3 +158,38 @@ def test_the_view_decides_between_blocks_and_exact_cells():
     assert rows == slice(1000 - more, 1000 + pair_view.EXACT_CELLS + more)
     assert pair_view.exact_region(slice(0, pair_view.EXACT_CELLS + 1), span, 8192) is None
     assert pair_view.exact_region(slice(0, 10), slice(8180, 8192), 8192) == (slice(0, 12), slice(8177, 8192))
+
+
+def test_word_units_by_binary_search_are_the_scan_of_every_token(causal_long):
+    """Reference: ``viewer.core.links.word_token_indices``, the scan over every token that
+    defines a word's sub-tokens (docs/definitions.md, "Link pairs"), for every word of a
+    1,500-token text; and the same answers when the offsets are out of order (the scan is then
+    used)."""
+    from viewer.core.links import text_words, word_token_indices
+    from viewer.session.analysis import overlapping_tokens, recorded_text
+
+    rec = causal_long[0].recording
+    text = recorded_text(rec)
+    spans = text_words(text)
+    assert len(spans) > 500
+    find = overlapping_tokens(rec.offsets)
+    for span in spans:
+        np.testing.assert_array_equal(find(span), word_token_indices(span, rec.offsets))
+    shuffled = rec.offsets[np.random.default_rng(0).permutation(rec.n_tokens)]
+    find = overlapping_tokens(shuffled)
+    for span in spans[:50]:
+        np.testing.assert_array_equal(find(span), word_token_indices(span, shuffled))
+
+
+def test_a_cut_text_is_read_for_words_only_as_far_as_its_tokens():
+    import dataclasses
+
+    from tests.core.test_attention import make_recording
+    from viewer.session.analysis import recorded_text, word_units
+
+    rec = make_recording(np.random.default_rng(0), t=4)
+    text = "brake pads squeal " + "spoke " * 100_000
+    offsets = np.array([[0, 0], [0, 5], [6, 9], [11, 13]])  # the last token ends inside "squeal"
+    rec = dataclasses.replace(rec, text=text, offsets=offsets)
+    assert recorded_text(rec) == "brake pads squeal"  # to the end of the word the last token is in
+    assert word_units(rec).names == ("t0", "brake", "pads", "squeal")  # t0: a token with no span

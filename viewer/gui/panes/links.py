@@ -79,11 +79,8 @@ class LinksPane(FigurePane):
             )
         layer, head = self.state.layer, self.state.head
         u = a.units
-        scores = unit_links(a, layer, head, s)
-        per_head = target_unit = None
-        if t is not None and t < n:
-            per_head = per_head_link(a, s, t)
-            target_unit = u.unit_of(t)
+        target = t if t is not None and t < n else None
+        target_unit = None if target is None else u.unit_of(target)
         head_title = f"layer {layer} · " + ("head mean" if head is None else f"head {head}")
         source_name = u.names[u.unit_of(s)]
         self.set_title(f"links · from '{source_name}'")
@@ -94,6 +91,10 @@ class LinksPane(FigurePane):
         def build() -> None:  # render thread
             from viewer.figures.links import links_into, relink
 
+            # rows of attention from the source: every layer's for the per-head scores, which
+            # at thousands of tokens take the GUI thread far over 100 ms, so they are read here
+            scores = unit_links(a, layer, head, s)
+            per_head = None if target is None else per_head_link(a, s, target)
             same = self.artists is not None and self._drawn_for == drawn_for
             self.scores, self.per_head = scores, per_head
             self.accuracy_artists = None
