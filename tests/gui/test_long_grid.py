@@ -171,23 +171,42 @@ def test_a_long_text_is_an_overview_with_exact_cells_when_zoomed(qtbot, tmp_path
 
 
 def test_a_text_over_the_memory_budget_is_refused_in_a_dialog(qtbot, tmp_path, long_folder, monkeypatch):
+    """A budget made for 600 tokens (``HEADLIGHT_MEMORY`` set to the estimate of a 600-token
+    recording): the 2,000-token text is refused in a dialog of one line naming the estimate and
+    the longest length that fits; the previous text's recording stays on screen, the refused
+    text stays in the box, and the window goes on working (heads, runs)."""
     from viewer.model.budget import pass_estimate
     from viewer.model.loader import open_model
 
     loaded = open_model(long_folder)
     monkeypatch.setenv("HEADLIGHT_MEMORY", str(pass_estimate(loaded, [600], keep=True, own_probs=True).total))
     w = open_window(qtbot, tmp_path, long_folder)
-    w.text_edit.setPlainText(text_of(LONG_WORDS))
+    previous = run_and_wait(qtbot, w, "she fixed the brake", evidence=False)
+    settle(qtbot, w.pair_grid)
+    assert w.pair_grid.drawn_recording is previous.recording
+    long_text = text_of(LONG_WORDS)
+    w.text_edit.setPlainText(long_text)
     w.run_current()
     qtbot.waitUntil(lambda: bool(w.errors), timeout=WAIT_MS)
     message = w.errors[-1]
     assert w.error_dialog is not None and w.error_dialog.isVisible() and w.error_dialog.text() == message
-    assert "\n" not in message and "needs about" in message
+    assert "\n" not in message and "needs about" in message and "is free" in message
+    assert message.startswith("recording ") and " tokens needs about " in message
     most = int(message.split("at most ")[1].split(" tokens")[0].replace(",", ""))
     assert 500 <= most < 1000  # the longest length that fits, near the 600 the budget was made for
-    assert w.state.analysis is None
+    assert f"--max-tokens {most}" in message
+    qtbot.waitUntil(lambda: not w.worker.busy, timeout=WAIT_MS)
+    # the previous text stays: its analysis, its drawn grid; the refused text is not lost
+    assert w.state.analysis is previous
+    assert w.pair_grid.drawn_recording is previous.recording
+    assert w.editor_text() == long_text
+    assert "error:" in w.status_label.text() and not w.progress.isVisible()
     w.error_dialog.accept()
-    assert run_and_wait(qtbot, w, "she fixed it", evidence=False).recording.n_tokens < 10  # still runs
+    # still usable: another head is drawn, another text runs
+    w.state.select_head(1, 2)
+    settle(qtbot, w.pair_grid)
+    assert any("layer 1 · head 2" in t for t in drawn_titles(w.pair_grid))
+    assert run_and_wait(qtbot, w, "she fixed it", evidence=False).recording.n_tokens < 10
     w.close()
 
 
