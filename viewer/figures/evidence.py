@@ -19,6 +19,7 @@ from matplotlib.colorbar import Colorbar
 from matplotlib.figure import Figure
 from matplotlib.image import AxesImage
 from matplotlib.patches import Rectangle
+from matplotlib.text import Text
 
 from viewer.figures import style
 from viewer.figures.layout import Box, InchLayout, line_height_in, text_width_in
@@ -35,6 +36,14 @@ class EvidenceArtists:
     n_tokens: int
     kinds: tuple[str, ...]
     signed: bool
+    agreements: tuple[Text, ...] = ()  # the ρ written right of each row
+
+    def thin_rows(self, height_px: float) -> None:
+        """Show the ρ of the rows the y axis labels (``style.IndexLocator``) at this height."""
+        need = style.FONT_SIZE * style.ROW_SPACING * self.ax.figure.dpi / 72.0
+        step = style.index_step(len(self.kinds), height_px, need)
+        for row, text in enumerate(self.agreements):
+            text.set_visible(row % step == 0)
 
 
 def normalise_rows(values: np.ndarray) -> np.ndarray:
@@ -93,10 +102,10 @@ def draw_evidence_strip(
     ax.set_ylim(extent[2], extent[3])
     style.style_axes(ax)
     style.set_token_axis(ax, "x", tokens, rotate=True)
-    ax.set_yticks(range(n_kinds), list(kinds))
+    style.set_index_axis(ax, "y", kinds)
     ax.tick_params(axis="y", length=0, labelsize=style.FONT_SIZE)
     agreement = list(agreement) if agreement is not None else [None] * n_kinds
-    for row, rho in enumerate(agreement):
+    agreements = [
         ax.text(
             1.012,
             row,
@@ -107,6 +116,8 @@ def draw_evidence_strip(
             fontsize=style.FONT_SIZE,
             color="#222222",
         )
+        for row, rho in enumerate(agreement)
+    ]
     if title:
         ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left")
     marker = Rectangle(
@@ -117,7 +128,7 @@ def draw_evidence_strip(
     if cax is not None:
         colorbar = ax.figure.colorbar(image, cax=cax)
         style.style_colorbar(colorbar, ROW_UNITS)
-    return EvidenceArtists(ax, image, colorbar, marker, n_tokens, tuple(kinds), signed)
+    return EvidenceArtists(ax, image, colorbar, marker, n_tokens, tuple(kinds), signed, tuple(agreements))
 
 
 def mark_token(artists: EvidenceArtists, token: int | None) -> None:
@@ -203,10 +214,14 @@ def evidence_into(
     label_width = text_width_in(max((len(str(s)) + 2 for s in labels), default=4))
     classes_width = (label_width + 1.05) if has_classes else 0.0
 
+    drawn: list[EvidenceArtists] = []
+
     def place(width: float, height: float) -> dict[Axes, Box]:
         rho, bar, bar_label = 0.72, 0.11, 0.8
         strip_w = width - left - rho - bar - bar_label - 0.1
         h = max(height - bottom - top, 0.1)
+        for artists in drawn:
+            artists.thin_rows(h * fig.dpi)
         show_classes = pax is not None and strip_w - classes_width >= max(2.5, 0.45 * width)
         if show_classes:
             strip_w -= classes_width
@@ -223,6 +238,7 @@ def evidence_into(
 
     fig.set_layout_engine(InchLayout(place))
     artists = draw_evidence_strip(ax, tokens, kinds, values, agreement, cax=cax, title=title)
+    drawn.append(artists)
     if pax is not None:
         draw_class_probabilities(pax, labels, probabilities, predicted, gold)
     return artists

@@ -18,7 +18,14 @@ from matplotlib.patches import Rectangle
 
 from viewer.figures import style
 from viewer.figures.cells import cell_image
-from viewer.figures.layout import InchLayout, line_height_in, main_with_colorbar, text_width_in
+from viewer.figures.layout import (
+    Box,
+    InchLayout,
+    line_height_in,
+    main_with_colorbar,
+    text_width_in,
+    widest_in,
+)
 
 ANNOTATE_MAX_CELLS = 160  # write values into cells only when there are this few
 
@@ -84,8 +91,9 @@ def draw_head_map(
     ax.set_xlim(extent[0], extent[1])
     ax.set_ylim(extent[2], extent[3])
     style.style_axes(ax)
-    ax.set_xticks(range(n_heads), [f"head {h}" if n_heads <= 8 else str(h) for h in range(n_heads)])
-    ax.set_yticks(range(n_layers), [f"layer {layer}" for layer in range(n_layers)])
+    heads = [f"head {h}" if n_heads <= 8 else str(h) for h in range(n_heads)]
+    style.set_index_axis(ax, "x", heads, along=True)
+    style.set_index_axis(ax, "y", [f"layer {layer}" for layer in range(n_layers)])
     ax.tick_params(axis="both", length=0, labelsize=style.FONT_SIZE)
     ax.xaxis.set_ticks_position("top")
     ax.xaxis.set_label_position("top")
@@ -205,10 +213,18 @@ def head_map_into(
     top = line_height_in(style.FONT_SIZE, 1.6) + (line_height_in(style.TITLE_SIZE, 1.8) if title else 0.0)
     if np.asarray(values).shape[1] > 8:
         top += line_height_in(style.LABEL_SIZE)
-    fig.set_layout_engine(
-        InchLayout(main_with_colorbar(ax, cax, left=left, bottom=0.1, top=top, right_label=0.66))
-    )
-    return draw_head_map(
+    place = main_with_colorbar(ax, cax, left=left, bottom=0.1, top=top, right_label=0.66)
+    drawn: list[HeadMapArtists] = []
+
+    def place_and_fit(width: float, height: float) -> dict[Axes, Box]:
+        boxes = place(width, height)
+        for artists in drawn:
+            _, _, w, h = boxes[ax]
+            fit_cell_texts(artists, w * 72.0 / artists.n_heads, h * 72.0 / artists.n_layers)
+        return boxes
+
+    fig.set_layout_engine(InchLayout(place_and_fit))
+    artists = draw_head_map(
         ax,
         values,
         label=label,
@@ -218,6 +234,20 @@ def head_map_into(
         cax=cax,
         annotate=annotate,
     )
+    drawn.append(artists)
+    return artists
+
+
+def fit_cell_texts(artists: HeadMapArtists, cell_width_pt: float, cell_height_pt: float) -> None:
+    """Show the values written into cells only when a cell holds its text: a line's height
+    (``style.ROW_SPACING`` font heights) and the widest value's width."""
+    if not artists.cell_texts:
+        return
+    font = artists.cell_texts[0].get_fontsize()
+    wide = widest_in([t.get_text() for t in artists.cell_texts], font) * 72.0 + 2.0
+    fits = cell_height_pt >= font * style.ROW_SPACING and cell_width_pt >= wide
+    for text in artists.cell_texts:
+        text.set_visible(fits)
 
 
 def head_map_figure(

@@ -67,6 +67,7 @@ def draw_link_bars(
     bars = ax.barh(range(n), s[chosen], color=colours, height=0.66, zorder=2)
     ax.set_yticks(range(n), [style.token_label(names[i]) for i in chosen])
     ax.set_ylim(n - 0.5, -0.5)
+    ax.link_rows = n  # bars drawn; ``links_into`` shows as many of them as the height holds
     peak = float(s[chosen].max()) if n else 1.0
     ax.set_xlim(0, max(peak * 1.25, 1e-6))
     style.style_axes(ax)
@@ -82,6 +83,7 @@ def draw_link_bars(
             fontsize=style.FONT_SIZE - 0.5,
             color="#222222",
             zorder=3,
+            clip_on=True,
         )
         for row, i in enumerate(chosen)
     ]
@@ -122,6 +124,9 @@ def links_into(
 
     def place(width: float, height: float) -> dict[Axes, Box]:
         h = max(height - top - bottom, 0.1)
+        # the best bars first, as many as have a line each (``style.ROW_SPACING``)
+        fit = max(1, int(h * 72.0 / (style.FONT_SIZE * style.ROW_SPACING)))
+        bars.set_ylim(min(getattr(bars, "link_rows", fit), fit) - 0.5, -0.5)
         if not has_map:
             return {bars: (label_w, bottom, width - label_w - 0.2, h)}
         usable = width - label_w - layer_w - 0.9 - 0.3

@@ -36,7 +36,7 @@ from matplotlib.text import Text
 from viewer.core.recording import Recording
 from viewer.figures import style
 from viewer.figures.cells import cell_image
-from viewer.figures.layout import InchLayout, line_height_in, main_with_colorbar, text_width_in
+from viewer.figures.layout import InchLayout, line_height_in, main_with_colorbar, text_width_in, widest_in
 
 
 @dataclass
@@ -339,15 +339,18 @@ TICK_ROOM_PT = style.TICK_LENGTH_PT + style.TICK_PAD_PT + 3.0
 
 def _longest_labels(
     query_tokens: Sequence[str], key_tokens: Sequence[str], numbered: bool = False
-) -> tuple[int, int]:
-    """Characters in the longest query and key token labels (with their positions when
-    ``numbered``: "8191 " adds the digits of the last position and a space)."""
-    q = max((len(style.token_label(t)) for t in query_tokens), default=1)
-    k = max((len(style.token_label(t)) for t in key_tokens), default=1)
-    if numbered:
-        q += len(str(max(0, len(query_tokens) - 1))) + 1
-        k += len(str(max(0, len(key_tokens) - 1))) + 1
-    return q, k
+) -> tuple[float, float]:
+    """Widths in inches of the widest query and key token labels (with their positions when
+    ``numbered``: "8191 the", the digits of the last position and a space before the token)."""
+
+    def widest(tokens: Sequence[str]) -> float:
+        labels = [style.token_label(t) for t in tokens]
+        if numbered:
+            last = str(max(0, len(tokens) - 1))
+            labels = [f"{last} {label}" for label in labels]
+        return max(widest_in(labels, style.FONT_SIZE), text_width_in(1))
+
+    return widest(query_tokens), widest(key_tokens)
 
 
 def place_axis_labels(
@@ -360,8 +363,8 @@ def place_axis_labels(
     from matplotlib.transforms import offset_copy
 
     q, k = _longest_labels(query_tokens, key_tokens, numbered)
-    down = text_width_in(k) * 72.0 + TICK_ROOM_PT
-    left = text_width_in(q) * 72.0 + TICK_ROOM_PT
+    down = k * 72.0 + TICK_ROOM_PT
+    left = q * 72.0 + TICK_ROOM_PT
     ax.xaxis.set_label_coords(
         0.5, 0.0, transform=offset_copy(ax.transAxes, fig=ax.figure, y=-down, units="points")
     )
@@ -376,8 +379,8 @@ def pair_grid_margins(
     """Margins in inches that fit the longest token labels, the axis labels and a title."""
     q, k = _longest_labels(query_tokens, key_tokens, numbered)
     return {
-        "left": text_width_in(q) + line_height_in(style.LABEL_SIZE) + 0.15,
-        "bottom": text_width_in(k) + line_height_in(style.LABEL_SIZE) + 0.15,
+        "left": q + line_height_in(style.LABEL_SIZE) + 0.15,
+        "bottom": k + line_height_in(style.LABEL_SIZE) + 0.15,
         "top": line_height_in(style.TITLE_SIZE, 1.6),
     }
 

@@ -136,16 +136,9 @@ def token_labels(tokens: Sequence[str]) -> list[str]:
     return [token_label(t) for t in tokens]
 
 
-def label_step(span: float, room_px: float, font_px: float) -> int:
-    """How many tokens apart labels must be so that ``span`` tokens fit in ``room_px`` pixels.
-
-    One label needs ``LABEL_SPACING`` font heights; the step is the smallest of 1, 2, 5, 10, 20,
-    50, ... that leaves that much room (round steps make the labelled positions easy to count).
-    """
-    if span <= 0 or room_px <= 0:
-        return 1
-    capacity = max(1.0, room_px / (font_px * LABEL_SPACING))
-    raw = span / capacity
+def nice_step(raw: float) -> int:
+    """The smallest of 1, 2, 5, 10, 20, 50, ... that is at least ``raw`` (round steps make the
+    labelled positions easy to count)."""
     if raw <= 1:
         return 1
     exponent = math.floor(math.log10(raw))
@@ -154,6 +147,77 @@ def label_step(span: float, room_px: float, font_px: float) -> int:
         if step >= raw:
             return int(step)
     return int(10 ** (exponent + 1))
+
+
+def label_step(span: float, room_px: float, font_px: float) -> int:
+    """How many tokens apart labels must be so that ``span`` tokens fit in ``room_px`` pixels.
+
+    One label needs ``LABEL_SPACING`` font heights; the step is the ``nice_step`` that leaves
+    that much room.
+    """
+    if span <= 0 or room_px <= 0:
+        return 1
+    capacity = max(1.0, room_px / (font_px * LABEL_SPACING))
+    return nice_step(span / capacity)
+
+
+ROW_SPACING = 1.25
+"""Font heights a one-line label needs across its line: the font's ascent plus descent is about
+1.17 em in DejaVu Sans (matplotlib's default face), and a little air between labels."""
+
+
+def index_step(span: float, room_px: float, need_px: float) -> int:
+    """Every how many rows (or columns) a label can be written when ``span`` of them share
+    ``room_px`` pixels and one label needs ``need_px`` pixels along the axis."""
+    if span <= 0 or room_px <= 0:
+        return 1
+    return nice_step(need_px * span / room_px)
+
+
+class IndexLocator(Locator):
+    """Ticks at the integer positions 0 … n−1 of a labelled axis (layers, heads, evidence
+    rows), thinned to every ``index_step``-th when the axis is too short for one label each.
+
+    ``need_pt`` is the room one label takes along the axis in points: a line's height across
+    horizontal text, the widest label's width along it."""
+
+    def __init__(self, n: int, need_pt: float) -> None:
+        self.n = int(n)
+        self.need_pt = float(need_pt)
+
+    def step(self) -> int:
+        axes = self.axis.axes
+        box = axes.get_window_extent()
+        room = float(box.width if self.axis is axes.xaxis else box.height)
+        lo, hi = sorted(self.axis.get_view_interval())
+        return index_step(hi - lo, room, self.need_pt * axes.figure.dpi / 72.0)
+
+    def __call__(self) -> list[int]:
+        lo, hi = sorted(self.axis.get_view_interval())
+        step = self.step()
+        first, last = max(0, math.ceil(lo)), min(self.n - 1, math.floor(hi))
+        return [i for i in range(first + (-first) % step, last + 1, step)]
+
+
+def set_index_axis(ax: Axes, which: str, labels: Sequence[str], *, along: bool = False) -> IndexLocator:
+    """Label ``ax``'s x or y axis at 0 … n−1 with ``labels`` through an ``IndexLocator``;
+    ``along`` when the labels are written along the axis (horizontal text on an x axis), so a
+    label needs its width rather than its line height."""
+    from viewer.figures.layout import widest_in
+
+    labels = [str(label) for label in labels]
+    need = widest_in(labels, FONT_SIZE) * 72.0 + FONT_SIZE * 0.6 if along else FONT_SIZE * ROW_SPACING
+
+    def name(value: float, _pos: int | None = None) -> str:
+        i = int(round(value))
+        return labels[i] if 0 <= i < len(labels) and abs(value - i) < 1e-6 else ""
+
+    axis = ax.xaxis if which == "x" else ax.yaxis
+    locator = IndexLocator(len(labels), need)
+    axis.set_major_locator(locator)
+    axis.set_major_formatter(FuncFormatter(name))
+    axis.set_minor_locator(mpl.ticker.NullLocator())
+    return locator
 
 
 class TokenLocator(Locator):
@@ -252,13 +316,35 @@ COLORBAR_TICKS = 4
 COLORBAR_LABEL_GAP = 31.0  # points from the bar's right edge to its units label
 
 
+class ColorbarLocator(MaxNLocator):
+    """At most ``COLORBAR_TICKS`` round ticks, fewer when the bar is too short for their labels
+    (one label needs ``LABEL_SPACING`` font heights); one tick when only one fits."""
+
+    def __init__(self, font_size: float = FONT_SIZE) -> None:
+        super().__init__(COLORBAR_TICKS)
+        self.font_size = font_size
+
+    def __call__(self):
+        axes = self.axis.axes
+        box = axes.get_window_extent()
+        room = float(box.height if self.axis is axes.yaxis else box.width)
+        capacity = int(room / (self.font_size * axes.figure.dpi / 72.0 * LABEL_SPACING))
+        self.set_params(nbins=max(1, min(COLORBAR_TICKS, capacity - 1)))
+        ticks = super().__call__()
+        if capacity < 2:  # room for one label: the lowest in view
+            lo, hi = sorted(self.axis.get_view_interval())
+            inside = [t for t in ticks if lo <= t <= hi]
+            return inside[:1] if capacity == 1 else []
+        return ticks
+
+
 def style_colorbar(cbar, label: str) -> None:
     """House look of a colour bar: a few ticks and the units written beside it.
 
     The units are a text of the colour bar's axes (``cbar.units``) rather than its axis label,
     so that a pane can redraw the ticks alone when the scale changes.
     """
-    cbar.locator = MaxNLocator(COLORBAR_TICKS)
+    cbar.locator = ColorbarLocator()
     cbar.update_ticks()
     cbar.ax.tick_params(labelsize=FONT_SIZE, width=0.6, length=2)
     cbar.outline.set_linewidth(0.6)
@@ -277,6 +363,7 @@ def style_colorbar(cbar, label: str) -> None:
         rotation_mode="anchor",
         multialignment="center",
     )
+    cbar.ax.units_text = cbar.units  # sized to the bar's height by ``layout.InchLayout``
 
 
 def rescale_by_ticks(cbar) -> None:

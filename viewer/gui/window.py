@@ -11,8 +11,8 @@ import sys
 import time
 from pathlib import Path
 
-from PySide6.QtCore import QByteArray, QSettings, QSize, QStandardPaths, Qt, QTimer, Signal
-from PySide6.QtGui import QAction, QIcon, QKeySequence, QShortcut
+from PySide6.QtCore import QByteArray, QRect, QSettings, QSize, QStandardPaths, Qt, QTimer, Signal
+from PySide6.QtGui import QAction, QGuiApplication, QIcon, QKeySequence, QShortcut
 from PySide6.QtWidgets import (
     QDockWidget,
     QFileDialog,
@@ -47,6 +47,12 @@ from viewer.session.controller import Controller
 from viewer.session.state import Selection
 
 RECENT_MAX = 8
+DEFAULT_SIZE = QSize(1440, 900)  # the window's size on a screen with room for it
+FRAME_ROOM = QSize(16, 40)  # left for the window manager's frame and title bar (common practice)
+COMPARE_DOCK_HEIGHT = 360
+PANE_MINIMUM_HEIGHTS = {"head_map": 140, "links": 120, "pair_grid": 200, "evidence": 130}
+"""Heights below which a pane's figure no longer holds its labels and a few rows (measured on
+the demo at 1366 × 768): the pair grid keeps several query rows beside its key labels."""
 IDLE_COLLECT_S = 1.5  # no drawing or model work for this long: time for a full collection
 IDLE_CHECK_MS = 1000
 ICON = Path(__file__).parent / "icons" / "headlight.svg"
@@ -104,7 +110,7 @@ class MainWindow(QMainWindow):
         self.collector.setInterval(IDLE_CHECK_MS)
         self.collector.timeout.connect(self.collect_when_idle)
         self.collector.start()
-        self.resize(1440, 900)
+        self.setGeometry(default_geometry(available_geometry()))
         if restore_geometry:
             geometry = self.settings.value("window/geometry")
             if isinstance(geometry, QByteArray):
@@ -212,6 +218,8 @@ class MainWindow(QMainWindow):
         self.evidence = EvidencePane(self.state)
         for pane in (self.head_map, self.links, self.evidence):
             pane.waits_for = self.pair_grid  # after a run, the pair grid is painted first
+        for name, height in PANE_MINIMUM_HEIGHTS.items():
+            getattr(self, name).setMinimumHeight(height)
         left_split = QSplitter(Qt.Orientation.Vertical)
         left_split.addWidget(self.head_map)
         left_split.addWidget(self.links)
@@ -372,8 +380,11 @@ class MainWindow(QMainWindow):
             name
         ]
         dock.raise_()
-        if name == "compare" and dock.height() < 300:
-            self.resizeDocks([dock], [340], Qt.Orientation.Vertical)
+        if name == "compare":
+            # room for the compared grid, and the panes above keep theirs (their minimum sizes)
+            want = min(COMPARE_DOCK_HEIGHT, int(self.height() * 0.45))
+            if dock.height() < want:
+                self.resizeDocks([dock], [want], Qt.Orientation.Vertical)
 
     def evidence_after_runs(self) -> bool:
         return self.evidence_action.isChecked()
@@ -584,6 +595,22 @@ class MainWindow(QMainWindow):
         self.textset_pane.detach()
         self.shortcut_pane.detach()
         super().closeEvent(event)
+
+
+def available_geometry() -> QRect:
+    """The part of the primary screen a window may cover (without task bars and panels)."""
+    screen = QGuiApplication.primaryScreen()
+    return screen.availableGeometry() if screen is not None else QRect(0, 0, 1440, 900)
+
+
+def default_geometry(available: QRect) -> QRect:
+    """The window's first place: ``DEFAULT_SIZE``, or less so that it and its frame fit the
+    ``available`` screen area, centred on it."""
+    width = min(DEFAULT_SIZE.width(), available.width() - FRAME_ROOM.width())
+    height = min(DEFAULT_SIZE.height(), available.height() - FRAME_ROOM.height())
+    rect = QRect(0, 0, width, height)
+    rect.moveCenter(available.center())
+    return rect
 
 
 def choose_base_folder(parent: QWidget, adapter: str, message: str) -> str | None:

@@ -70,7 +70,7 @@ class ComparePane(QWidget):
         inputs.addWidget(self.browse)
         layout.addLayout(inputs)
         self.grid = PairGridPane(state, slot="compare")
-        self.grid.setMinimumSize(160, 60)
+        self.grid.setMinimumSize(160, 130)
         layout.addWidget(self.grid, 1)
         self.text_radio.toggled.connect(self._write)
         self.text_edit.textChanged.connect(self._write)
