@@ -39,19 +39,18 @@ class InchLayout(LayoutEngine):
             w = max(w, 0.05)
             h = max(h, 0.05)
             ax.set_position((left / width, bottom / height, w / width, h / height))
-            units = getattr(ax, "units_text", None)
-            if units is not None:  # a colour bar's units, written along it, centred on it
+            for text in getattr(ax, "fit_texts", ()):  # written up the axes, centred on it
                 middle = bottom + h / 2
-                fit_along(units, 2 * min(middle, height - middle) * 72.0)
+                fit_along(text, 2 * min(middle, height - middle) * 72.0)
 
 
 UNITS_SIZES = (LABEL_SIZE, FONT_SIZE, 7.0)
 
 
 def fit_along(text, room_pt: float) -> None:
-    """Give a rotated label (a colour bar's units) the largest of ``UNITS_SIZES`` at which its
-    longest line fits ``room_pt`` points; hide it when none does (it would be cut off at the
-    figure's edge or run into another pane's text)."""
+    """Give a label written upwards beside an axes (a colour bar's units, a y-axis label) the
+    largest of ``UNITS_SIZES`` at which its longest line fits ``room_pt`` points; hide it when
+    none does (it would be cut off at the figure's edge or run into another pane's text)."""
     lines = text.get_text().split("\n")
     for size in UNITS_SIZES:
         if widest_in(lines, size) * 72.0 <= room_pt:

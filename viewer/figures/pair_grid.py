@@ -371,6 +371,7 @@ def place_axis_labels(
     ax.yaxis.set_label_coords(
         0.0, 0.5, transform=offset_copy(ax.transAxes, fig=ax.figure, x=-left, units="points")
     )
+    ax.fit_texts = [ax.yaxis.label]  # smaller, or left out, where the grid is short
 
 
 def pair_grid_margins(

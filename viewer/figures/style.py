@@ -363,7 +363,7 @@ def style_colorbar(cbar, label: str) -> None:
         rotation_mode="anchor",
         multialignment="center",
     )
-    cbar.ax.units_text = cbar.units  # sized to the bar's height by ``layout.InchLayout``
+    cbar.ax.fit_texts = [cbar.units]  # sized to the bar's height by ``layout.InchLayout``
 
 
 def rescale_by_ticks(cbar) -> None:

@@ -84,7 +84,9 @@ def head_values(state: Selection) -> HeadValues | str:
             return other
         if np.shape(other) != np.shape(base):
             return "the compared checkpoint has a different number of layers or heads"
-        return HeadValues(
-            np.asarray(other) - base, f"Δ {label}", True, f"{METRICS[name][0]}: compared − current"
-        )
+        difference = np.asarray(other) - base
+        if not np.any(np.nan_to_num(difference)):
+            # a colour bar of ±1e-12 would paint noise: the runs agree exactly
+            return f"identical: the compared run gives the same {METRICS[name][0]} in every head"
+        return HeadValues(difference, f"Δ {label}", True, f"{METRICS[name][0]}: compared − current")
     return HeadValues(np.asarray(base), label, False, f"{METRICS[name][0]} · {where}")
