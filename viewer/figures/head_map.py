@@ -7,6 +7,7 @@ two runs (compare mode) is drawn with the diverging map centred on zero.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -42,18 +43,32 @@ class HeadMapArtists:
     cell_texts: list = field(default_factory=list)  # the values written into cells, if any
 
 
-def format_value(value: float) -> str:
-    """Compact cell text: two significant decimals for 0-1 metrics, fewer for large numbers."""
+def value_format(values: np.ndarray) -> str:
+    """One number format for every cell of a grid, from its largest |value|: fixed decimals
+    that give that value two significant digits (at least two decimals, as 0–1 metrics read
+    best), whole numbers from 100 up, and one shared scientific format when fixed decimals
+    would need more than five."""
+    finite = np.abs(np.asarray(values, dtype=np.float64))
+    finite = finite[np.isfinite(finite)]
+    top = float(finite.max()) if finite.size else 0.0
+    if top >= 100:
+        return "{:.0f}"
+    if top >= 10:
+        return "{:.1f}"
+    if top == 0:
+        return "{:.2f}"
+    decimals = max(2, 1 - math.floor(math.log10(top)))
+    return f"{{:.{decimals}f}}" if decimals <= 5 else "{:.1e}"
+
+
+def format_value(value: float, fmt: str = "{:.2f}") -> str:
+    """A cell's text in its grid's format (``value_format``); "–" where undefined."""
     if not np.isfinite(value):
         return "–"
-    a = abs(value)
-    if a >= 100:
-        return f"{value:.0f}"
-    if a >= 10:
-        return f"{value:.1f}"
-    if a >= 0.01 or a == 0:
-        return f"{value:.2f}"
-    return f"{value:.0e}"
+    text = fmt.format(value)
+    if text.startswith("-") and float(text) == 0:  # "-0.00": a tiny negative, shown as zero
+        text = text[1:]
+    return text
 
 
 def draw_head_map(
@@ -105,6 +120,7 @@ def draw_head_map(
     if annotate is None:
         annotate = n_layers * n_heads <= ANNOTATE_MAX_CELLS
     cell_texts = []
+    fmt = value_format(data)
     if annotate:
         font = style.FONT_SIZE - (1.5 if n_heads > 8 else 0.5)
         for layer in range(n_layers):
@@ -114,7 +130,7 @@ def draw_head_map(
                     ax.text(
                         head,
                         layer,
-                        format_value(v),
+                        format_value(v, fmt),
                         ha="center",
                         va="center",
                         fontsize=font,
@@ -165,8 +181,9 @@ def update_head_map(artists: HeadMapArtists, values: np.ndarray) -> None:
         )
     artists.image.set_data(grid)
     artists.image.set_clim(norm.vmin, norm.vmax)
+    fmt = value_format(data)
     for text, v in zip(artists.cell_texts, data.ravel(), strict=False):
-        text.set_text(format_value(v))
+        text.set_text(format_value(v, fmt))
         text.set_color(_text_colour(cmap, artists.image.norm, v))
 
 

@@ -16,6 +16,9 @@ from viewer.session.analysis import TextAnalysis, per_head_link
 from viewer.session.state import METRICS, Selection
 
 EVIDENCE_METRICS = {"importance": "head_importance", "knockout": "head_knockout"}
+SIGNED_METRICS = {"knockout"}
+"""Metrics whose sign means something (a knocked-out head can raise the prediction's
+probability): drawn on a diverging scale centred at 0, as differences are."""
 
 
 @dataclass(frozen=True, eq=False)
@@ -89,4 +92,4 @@ def head_values(state: Selection) -> HeadValues | str:
             # a colour bar of ±1e-12 would paint noise: the runs agree exactly
             return f"identical: the compared run gives the same {METRICS[name][0]} in every head"
         return HeadValues(difference, f"Δ {label}", True, f"{METRICS[name][0]}: compared − current")
-    return HeadValues(np.asarray(base), label, False, f"{METRICS[name][0]} · {where}")
+    return HeadValues(np.asarray(base), label, name in SIGNED_METRICS, f"{METRICS[name][0]} · {where}")
