@@ -144,7 +144,10 @@ class MainWindow(QMainWindow):
         self.cancel_action = self._action("Cancel", self.cancel, "Esc", "stop the model work in progress")
         self.cancel_action.setEnabled(False)
         self.open_set_action = self._action(
-            "Open text set…", self.open_textset_dialog, None, "list a .txt, .jsonl or .csv file's predictions"
+            "Open text set…",
+            self.open_textset_dialog,
+            None,
+            "list the predictions of a .txt, .jsonl, .csv or .parquet file or a saved dataset folder",
         )
         self.open_pairs_action = self._action(
             "Open link pairs…", self.open_pairs_dialog, None, "per-head link accuracy over a link-pairs file"
@@ -507,11 +510,14 @@ class MainWindow(QMainWindow):
         self.controller.cancel()
 
     def open_textset_dialog(self) -> None:
-        path, _ = QFileDialog.getOpenFileName(self, "Open a text set", "", "Text sets (*.txt *.jsonl *.csv)")
-        if path:
-            self.open_textset(path)
+        from viewer.gui.textset_dialog import TextSetDialog
 
-    def open_textset(self, path: str) -> None:
+        dialog = TextSetDialog(self)
+        if dialog.exec() == TextSetDialog.DialogCode.Accepted and dialog.source() is not None:
+            self.open_textset(dialog.source())
+
+    def open_textset(self, path) -> None:
+        """Open a text set: a path, or a ``TextSource`` naming its columns and split."""
         self.controller.open_textset(path)
 
     def open_pairs_dialog(self) -> None:

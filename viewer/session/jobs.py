@@ -191,6 +191,7 @@ class TextSetResult:
     rows: tuple[TextSetRow, ...]
     heads: Any  # HeadSummary over the whole set
     complete: bool = True
+    source: Any = None  # the ``TextSource`` read (columns, split), when not the file's defaults
 
     @property
     def mistakes(self) -> tuple[TextSetRow, ...]:
@@ -208,16 +209,17 @@ class TextSetResult:
         return sum(known) / len(known) if known else None
 
 
-def run_textset(ctx: JobContext, slot: str, path: str) -> TextSetResult:
+def run_textset(ctx: JobContext, slot: str, path: Any) -> TextSetResult:
     """Every text of a text-set file: prediction, correctness, and set-wide head metrics.
 
     One pass of the reports' own ``scan_text_set``: the head map's "text set" scope shows the
     numbers ``headlight heads`` prints for the same file, to the last bit.
     """
     from viewer.reports.heads import scan_text_set
-    from viewer.reports.textsets import load_text_set
+    from viewer.reports.textsets import as_source, load_text_set
 
-    items = load_text_set(path)
+    source = as_source(path)  # a path, or a TextSource naming its columns and split
+    items = load_text_set(source)
     loaded = ctx.model(slot)
     total = len(items)
     ctx.progress(0, total, f"recording {total} texts…")
@@ -234,7 +236,7 @@ def run_textset(ctx: JobContext, slot: str, path: str) -> TextSetResult:
         )
         for p, item in zip(scan.rows, items, strict=True)
     )
-    return TextSetResult(str(path), rows, scan.heads)
+    return TextSetResult(str(source.path), rows, scan.heads, source=source)
 
 
 # -- link pairs ---------------------------------------------------------------------------------
