@@ -237,47 +237,19 @@ def child_window(folder: Path, tokens: int) -> dict:
     """The window on a text of ``tokens`` tokens (offscreen): run to painted overview, head
     switches, the longest event-loop gap, peak memory."""
     import statistics
-    import tempfile
 
     os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     sys.path.insert(0, str(ROOT))
-    from PySide6.QtCore import QElapsedTimer, QSettings, QTimer
+    from tests.benchmarks.bench_gui import GapClock, PaintProbe, idle, open_bench_window, pump_until
 
-    from tests.benchmarks.bench_gui import PaintProbe, idle, pump_until
-    from viewer.gui.app import application, tune_collector
-    from viewer.gui.window import MainWindow
-
-    application()
-    tune_collector()  # as ``headlight`` does
-    tmp = Path(tempfile.mkdtemp(prefix="headlight-bench-"))
-    window = MainWindow(
-        settings=QSettings(str(tmp / "s.ini"), QSettings.Format.IniFormat),
-        config_dir=tmp,
-        restore_geometry=False,
-    )
-    window.resize(1600, 1000)
-    window.show()
-    window.start(model=str(folder), restore_last=False)
-    pump_until(lambda: window.canvases_ready and window.state.model is not None and not window.worker.busy)
+    window = open_bench_window(str(folder), evidence=True)
     text = text_of(words_for(folder, tokens))
     window.text_edit.setPlainText(text)
     state, grid = window.state, window.pair_grid
     probe = PaintProbe(grid.canvas)
 
-    clock = QElapsedTimer()
-    clock.start()
-    gap, last = [0], [0]
-
-    def tick() -> None:
-        now = clock.elapsed()
-        gap[0] = max(gap[0], now - last[0])
-        last[0] = now
-
-    timer = QTimer()
-    timer.setInterval(10)
-    timer.timeout.connect(tick)
-    timer.start()
-    last[0] = clock.elapsed()
+    gaps = GapClock()
+    gaps.start()
     start = time.perf_counter()
     window.run_current()
     probe.wait(lambda: state.analysis is not None and grid.drawn_recording is state.analysis.recording, 7200)
@@ -293,7 +265,7 @@ def child_window(folder: Path, tokens: int) -> dict:
         lambda: state.analysis.summarised and state.evidence is not None and not window.worker.busy, 7200
     )
     pump_until(lambda: all(pane.idle for pane in window.figure_panes), 600)
-    timer.stop()
+    gaps.stop()
     whole = time.perf_counter() - start
     heads = [(layer, head) for layer in range(state.n_layers) for head in range(state.n_heads)]
     switches = []
@@ -313,7 +285,7 @@ def child_window(folder: Path, tokens: int) -> dict:
         "first_switch": first_switch,
         "switch_median": statistics.median(switches),
         "switch_worst": max(switches),
-        "gap_ms": gap[0],
+        "gap_ms": gaps.longest,
         "whole": whole,
         "peak": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024,
     }
@@ -335,6 +307,11 @@ def window_rows(sizes: list[str], lengths: list[int]) -> None:
         for tokens in lengths:
             before = load()
             bare = measure("bare", folder, tokens)
+            print(
+                f"{size:>10} {bare['tokens']:>5} tokens: bare sdpa forward {bare['seconds']:.1f} s, "
+                f"peak {bare['peak'] / GB:.2f} GB; now the window…",
+                flush=True,
+            )
             win = measure("window", folder, tokens)
             print(
                 f"{size:>10} {win['tokens']:>5} tokens ({before}; after: {load()})\n"
