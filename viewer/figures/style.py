@@ -168,10 +168,11 @@ ROW_SPACING = 1.25
 
 def index_step(span: float, room_px: float, need_px: float) -> int:
     """Every how many rows (or columns) a label can be written when ``span`` of them share
-    ``room_px`` pixels and one label needs ``need_px`` pixels along the axis."""
+    ``room_px`` pixels and one label needs ``need_px`` pixels along the axis (every 2nd, 3rd,
+    ...: a handful of rows, unlike a text's tokens, is counted without round steps)."""
     if span <= 0 or room_px <= 0:
         return 1
-    return nice_step(need_px * span / room_px)
+    return max(1, math.ceil(need_px * span / room_px - 1e-9))
 
 
 class IndexLocator(Locator):
