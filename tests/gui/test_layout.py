@@ -172,3 +172,17 @@ def test_the_default_size_fits_the_available_screen(qtbot, tmp_path, monkeypatch
     least = w.minimumSizeHint()
     assert least.width() <= room.width() and least.height() <= room.height(), least
     w.close()
+
+
+def test_dock_tables_have_rows_one_line_high(qtbot):
+    """Reference: Qt's own metrics of the table's font (a row was about two lines high, so a
+    short dock showed three or four rows of the shortcut report)."""
+    from viewer.gui.panes.base import TableDock
+
+    table = TableDock.make_table(["word", "texts"])
+    qtbot.addWidget(table)
+    table.setRowCount(3)
+    line = table.fontMetrics().height()
+    assert all(table.rowHeight(row) <= line + 6 for row in range(3))
+    table.resizeRowsToContents()  # stays fixed: nothing grows a row back
+    assert all(table.rowHeight(row) <= line + 6 for row in range(3))

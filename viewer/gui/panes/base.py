@@ -21,6 +21,7 @@ from PySide6.QtGui import QCursor, QPainter, QPalette
 from PySide6.QtWidgets import (
     QAbstractItemView,
     QHBoxLayout,
+    QHeaderView,
     QLabel,
     QSizePolicy,
     QStackedWidget,
@@ -93,6 +94,11 @@ class TableDock(StateListener, QWidget):
         table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
         table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
         table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        # rows one line of text high (Qt's default is about 30 pixels): a short dock shows twice
+        # as many of them
+        rows = table.verticalHeader()
+        rows.setSectionResizeMode(QHeaderView.ResizeMode.Fixed)
+        rows.setDefaultSectionSize(table.fontMetrics().height() + 6)
         return table
 
 
