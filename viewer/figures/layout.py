@@ -44,7 +44,7 @@ class InchLayout(LayoutEngine):
                 fit_along(text, 2 * min(middle, height - middle) * 72.0)
 
 
-UNITS_SIZES = (LABEL_SIZE, FONT_SIZE, 7.0)
+UNITS_SIZES = (LABEL_SIZE, FONT_SIZE, 7.0, 6.0)
 
 
 def fit_along(text, room_pt: float) -> None:
