@@ -15,7 +15,7 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 from matplotlib.layout_engine import LayoutEngine
 
-from viewer.figures.style import FONT_SIZE, LABEL_SIZE
+from viewer.figures.style import FONT_SIZE, LABEL_SIZE, widest_in
 
 Box = tuple[float, float, float, float]  # left, bottom, width, height in inches
 Placer = Callable[[float, float], dict[Axes, Box]]
@@ -63,22 +63,6 @@ def fit_along(text, room_pt: float) -> None:
 def text_width_in(chars: int, font_size: float = FONT_SIZE) -> float:
     """Rough width in inches of ``chars`` characters of the sans-serif font (0.6 em each)."""
     return chars * 0.6 * font_size / 72.0
-
-
-def widest_in(labels, font_size: float = FONT_SIZE, candidates: int = 32) -> float:
-    """Width in inches of the widest of ``labels`` in matplotlib's default font, from the glyph
-    advances matplotlib itself lays text out with (``TextToPath``); only the ``candidates``
-    longest labels are measured ("someone" is wider than 0.6 em a character, "[CLS]" than
-    "iii"), so a text of thousands of tokens costs a few measurements."""
-    from matplotlib.font_manager import FontProperties
-    from matplotlib.textpath import text_to_path
-
-    unique = sorted({str(s).replace("\\$", "$") for s in labels}, key=len, reverse=True)[:candidates]
-    if not unique:
-        return 0.0
-    prop = FontProperties(size=font_size)
-    widest = max(text_to_path.get_text_width_height_descent(s, prop, ismath=False)[0] for s in unique)
-    return widest / 72.0  # text_to_path measures in points at this size
 
 
 def line_height_in(font_size: float = FONT_SIZE, lines: float = 1.0) -> float:

@@ -136,6 +136,22 @@ def token_labels(tokens: Sequence[str]) -> list[str]:
     return [token_label(t) for t in tokens]
 
 
+def widest_in(labels, font_size: float = FONT_SIZE, candidates: int = 32) -> float:
+    """Width in inches of the widest of ``labels`` in matplotlib's default font, from the glyph
+    advances matplotlib itself lays text out with (``TextToPath``); only the ``candidates``
+    longest labels are measured ("someone" is wider than 0.6 em a character, "[CLS]" than
+    "iii"), so a text of thousands of tokens costs a few measurements."""
+    from matplotlib.font_manager import FontProperties
+    from matplotlib.textpath import text_to_path
+
+    unique = sorted({str(s).replace("\\$", "$") for s in labels}, key=len, reverse=True)[:candidates]
+    if not unique:
+        return 0.0
+    prop = FontProperties(size=font_size)
+    widest = max(text_to_path.get_text_width_height_descent(s, prop, ismath=False)[0] for s in unique)
+    return widest / 72.0  # text_to_path measures in points at this size
+
+
 def nice_step(raw: float) -> int:
     """The smallest of 1, 2, 5, 10, 20, 50, ... that is at least ``raw`` (round steps make the
     labelled positions easy to count)."""
@@ -204,8 +220,6 @@ def set_index_axis(ax: Axes, which: str, labels: Sequence[str], *, along: bool =
     """Label ``ax``'s x or y axis at 0 … n−1 with ``labels`` through an ``IndexLocator``;
     ``along`` when the labels are written along the axis (horizontal text on an x axis), so a
     label needs its width rather than its line height."""
-    from viewer.figures.layout import widest_in
-
     labels = [str(label) for label in labels]
     need = widest_in(labels, FONT_SIZE) * 72.0 + FONT_SIZE * 0.6 if along else FONT_SIZE * ROW_SPACING
 

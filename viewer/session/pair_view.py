@@ -24,6 +24,7 @@ from viewer.core.overview import Overview
 from viewer.core.recording import Recording
 from viewer.core.terms import visible_rows
 from viewer.figures.style import ATTENTION_UNITS, head_name
+from viewer.session.state import BLOCK_MODES
 
 EXACT_CELLS = 512
 """A zoomed view of a long text shows exact cells once it spans at most this many query rows and
@@ -35,8 +36,6 @@ pixel each, so every cell is seen."""
 MARGIN = 0.25
 """Exact cells are computed for the view widened by this share of its span on each side, so a
 small pan stays inside what is computed."""
-
-BLOCK_MODES = {"max": "block max", "mean": "block mean"}
 
 
 def view_span(lo: float, hi: float, n_tokens: int) -> slice:

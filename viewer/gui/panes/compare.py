@@ -92,13 +92,13 @@ class ComparePane(QWidget):
 
     def _summarise(self, *_args) -> None:
         """Both predictions and their difference, or "identical" (``viewer.session.compare``)."""
-        from viewer.session.compare import compare_summary
-
         current, compared = self.state.analysis, self.state.compare
         if current is None or compared is None:
             self.summary.setText("")
             self.summary.setVisible(False)
             return
+        from viewer.session.compare import compare_summary  # numpy: not before a run
+
         model = self.state.model
         summary = compare_summary(current, compared, self.state.compare_target, model and model.folder)
         self.summary.setText("\n".join(summary.lines()))

@@ -22,7 +22,7 @@ from PySide6.QtWidgets import QCheckBox, QComboBox, QPushButton
 from viewer.figures.blit import Blitter
 from viewer.figures.zoom import Extent, ZoomPan
 from viewer.gui.panes.base import FigurePane
-from viewer.session.pair_view import BLOCK_MODES
+from viewer.session.state import BLOCK_MODES
 
 
 def _head_name(layer: int, head: int | None) -> str:
