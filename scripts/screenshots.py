@@ -1,12 +1,14 @@
-"""Save screenshots of the window's main states into ``docs/`` (offscreen Qt, demo model).
+"""Save screenshots of the window's main states into ``docs/`` (demo model).
 
-    QT_QPA_PLATFORM=offscreen python scripts/screenshots.py [--out docs]
+    xvfb-run -s "-screen 0 1920x1080x24" python scripts/screenshots.py [--out docs]
+    QT_QPA_PLATFORM=offscreen python scripts/screenshots.py [--out docs]   # without an X server
 
 States: the demo text with the footer shortcut caught (evidence strip + shortcut report), a
 text set filtered to the model's mistakes, compare mode (the same message without its footer),
-and the re-derivation check's per-layer dialog. The sample text set is
-``sample_sentences/coop_messages.jsonl`` when it exists, otherwise it is generated the same way
-(``scripts.demo.generate.write_samples``) into a temporary folder.
+and the re-derivation check's per-layer dialog. Each window state is saved at 1920 × 1080
+(``window-demo.png``, ...) and at a laptop's 1366 × 768 (``window-demo-1366x768.png``, ...).
+The sample text set is ``sample_sentences/coop_messages.jsonl`` when it exists, otherwise it is
+generated the same way (``scripts.demo.generate.write_samples``) into a temporary folder.
 """
 
 from __future__ import annotations
@@ -19,7 +21,8 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+if not os.environ.get("DISPLAY"):
+    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
@@ -32,7 +35,7 @@ from viewer.gui.window import MainWindow  # noqa: E402
 from viewer.session.analysis import per_head_link  # noqa: E402
 from viewer.session.controller import DEMO_TEXT  # noqa: E402
 
-SIZE = (1600, 1000)
+SIZES = ((1920, 1080, ""), (1366, 768, "-1366x768"))
 WITHOUT_FOOTER = DEMO_TEXT.replace(" [via portal]", "")
 
 
@@ -89,13 +92,27 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--out", type=Path, default=ROOT / "docs")
     args = parser.parse_args(argv)
     args.out.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix="headlight-shots-"))
     application()
+    for width, height, suffix in SIZES:
+        shoot_all(args.out, (width, height), suffix, dialog=not suffix)
+    return 0
+
+
+def shoot_all(out: Path, size: tuple[int, int], suffix: str, dialog: bool) -> None:
+    """Every window state at ``size``, saved as ``<name><suffix>.png``."""
+    tmp = Path(tempfile.mkdtemp(prefix="headlight-shots-"))
+
+    def px(height: int) -> int:  # a dock height chosen at 1,000 pixels, scaled to this window
+        return int(height * size[1] / 1000)
+
+    def name(stem: str) -> str:
+        return f"{stem}{suffix}.png"
+
     settings = QSettings(str(tmp / "settings.ini"), QSettings.Format.IniFormat)
     window = MainWindow(settings=settings, config_dir=tmp, restore_geometry=False)
     global WINDOW
     WINDOW = window
-    window.resize(*SIZE)
+    window.resize(*size)
     window.show()
     window.start(restore_last=False)
     wait(lambda: window.canvases_ready and window.state.evidence is not None, what="demo run")
@@ -116,18 +133,18 @@ def main(argv: list[str] | None = None) -> int:
     s.select_head(layer, head)
     s.select_tokens(rec.summary_index(), portal)
     window.shortcut_dock.raise_()
-    window.resizeDocks([window.shortcut_dock], [260], Qt.Orientation.Vertical)
-    shoot(window, args.out, "window-demo.png")
+    window.resizeDocks([window.shortcut_dock], [px(260)], Qt.Orientation.Vertical)
+    shoot(window, out, name("window-demo"))
 
     # 2. the insertion tests of the report's top words and the fixation plot
     window.run_insertions()
     wait(lambda: s.insertions is not None, what="insertion tests")
-    shoot(window, args.out, "window-insertion.png")
+    shoot(window, out, name("window-insertion"))
     s.select_word("portal")
     window.fixation_dock.raise_()
-    window.resizeDocks([window.fixation_dock], [330], Qt.Orientation.Vertical)
-    shoot(window, args.out, "window-fixation.png")
-    window.resizeDocks([window.fixation_dock], [260], Qt.Orientation.Vertical)
+    window.resizeDocks([window.fixation_dock], [px(330)], Qt.Orientation.Vertical)
+    shoot(window, out, name("window-fixation"))
+    window.resizeDocks([window.fixation_dock], [px(260)], Qt.Orientation.Vertical)
 
     # 3. the text set, mistakes only, one mistake selected
     window.textset_dock.raise_()
@@ -144,11 +161,11 @@ def main(argv: list[str] | None = None) -> int:
     if pairs.is_file():  # the links pane's per-head accuracy over the link pairs
         window.open_pairs(str(pairs))
         wait(lambda: s.link_pairs is not None, what="link pairs")
-    shoot(window, args.out, "window-textset.png")
+    shoot(window, out, name("window-textset"))
 
     # 4. compare: the demo message against itself without the footer
     window.links.view_box.setCurrentIndex(0)
-    window.resizeDocks([window.textset_dock], [170], Qt.Orientation.Vertical)
+    window.resizeDocks([window.textset_dock], [px(170)], Qt.Orientation.Vertical)
     s.set_mistakes_only(False)
     s.set_scope("text")
     s.set_metric("entropy")
@@ -157,17 +174,17 @@ def main(argv: list[str] | None = None) -> int:
     window.run_compare()
     wait(lambda: s.compare is not None, what="compare run")
     s.select_head(0, 1)
-    shoot(window, args.out, "window-compare.png")
+    shoot(window, out, name("window-compare"))
 
-    # 5. the check badge's per-layer dialog
-    window.badge.open_details()
-    settle(window)
-    path = args.out / "check-dialog.png"
-    window.badge.dialog.grab().save(str(path))
-    print(path)
-    window.badge.dialog.close()
+    # 5. the check badge's per-layer dialog (one size: it is a dialog of its own)
+    if dialog:
+        window.badge.open_details()
+        settle(window)
+        path = out / "check-dialog.png"
+        window.badge.dialog.grab().save(str(path))
+        print(path)
+        window.badge.dialog.close()
     window.close()
-    return 0
 
 
 if __name__ == "__main__":

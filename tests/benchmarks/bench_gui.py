@@ -305,33 +305,67 @@ def bench_startup(repeats: int = 5) -> tuple[float, float]:
 # -- 4. responsiveness ---------------------------------------------------------------------------
 
 
+def open_bench_window(model: str, *, evidence: bool):
+    """The window as ``headlight`` opens it (collector tuned), on ``model``, ready to run."""
+    from viewer.gui.app import application, tune_collector
+    from viewer.gui.window import MainWindow
+
+    application()
+    tune_collector()  # as ``headlight`` does
+    tmp = Path(tempfile.mkdtemp(prefix="headlight-bench-"))
+    window = MainWindow(
+        settings=QSettings(str(tmp / "s.ini"), QSettings.Format.IniFormat),
+        config_dir=tmp,
+        restore_geometry=False,
+    )
+    window.evidence_action.setChecked(evidence)
+    window.resize(1600, 1000)
+    window.show()
+    window.start(model=model, restore_last=False)
+    pump_until(lambda: window.canvases_ready and window.state.model is not None and not window.worker.busy)
+    return window
+
+
+class GapClock:
+    """The longest time between ticks of a 10 ms timer of the GUI thread (``start``, ``stop``,
+    ``longest`` in ms): how long the event loop was kept from turning."""
+
+    def __init__(self) -> None:
+        self.clock = QElapsedTimer()
+        self.clock.start()
+        self.longest = 0
+        self.last = 0
+        self.timer = QTimer()
+        self.timer.setInterval(10)
+        self.timer.timeout.connect(self._tick)
+
+    def _tick(self) -> None:
+        now = self.clock.elapsed()
+        self.longest = max(self.longest, now - self.last)
+        self.last = now
+
+    def start(self) -> None:
+        self.timer.start()
+        self.last = self.clock.elapsed()
+
+    def stop(self) -> None:
+        self.timer.stop()
+
+
 def bench_gaps(window, text: str) -> tuple[float, int]:
     """Longest event-loop gap (ms) while a long text is recorded, checked and drawn."""
-    clock = QElapsedTimer()
-    clock.start()
-    gaps = [0]
-    last = [clock.elapsed()]
-
-    def tick() -> None:
-        now = clock.elapsed()
-        gaps[0] = max(gaps[0], now - last[0])
-        last[0] = now
-
-    timer = QTimer()
-    timer.setInterval(10)
-    timer.timeout.connect(tick)
+    gaps = GapClock()
     probe = PaintProbe(window.pair_grid.canvas)
     before = probe.count
     old = window.state.analysis
     window.text_edit.setPlainText(text)
-    timer.start()
-    last[0] = clock.elapsed()
+    gaps.start()
     window.run_current()
     pump_until(lambda: window.state.analysis is not old and probe.count > before and window.pair_grid.idle)
     pump_until(lambda: window.state.analysis.summarised)
     idle(1.0)  # the other panes' draws
-    timer.stop()
-    return float(gaps[0]), window.state.analysis.recording.n_tokens
+    gaps.stop()
+    return float(gaps.longest), window.state.analysis.recording.n_tokens
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -349,25 +383,11 @@ def main(argv: list[str] | None = None) -> int:
 
         args.model = str(minilm_folder())
 
-    from viewer.gui.app import application, tune_collector
-    from viewer.gui.window import MainWindow
     from viewer.model.loader import open_model
 
-    application()
     if args.switch_interval is not None:
         sys.setswitchinterval(args.switch_interval)
-    tune_collector()  # as ``headlight`` does
-    tmp = Path(tempfile.mkdtemp(prefix="headlight-bench-"))
-    window = MainWindow(
-        settings=QSettings(str(tmp / "s.ini"), QSettings.Format.IniFormat),
-        config_dir=tmp,
-        restore_geometry=False,
-    )
-    window.evidence_action.setChecked(False)  # measure the run itself, not the evidence
-    window.resize(1600, 1000)
-    window.show()
-    window.start(model=args.model, restore_last=False)
-    pump_until(lambda: window.canvases_ready and window.state.model is not None and not window.worker.busy)
+    window = open_bench_window(args.model, evidence=False)  # the run itself, not the evidence
     loaded = open_model(args.model)
     text128 = text_of(loaded, 128)
     long_text = text_of(loaded, min(512, loaded.max_tokens))

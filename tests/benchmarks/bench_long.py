@@ -1,6 +1,8 @@
 """Texts as long as the model reads: memory and time of `headlight check` against a bare forward.
 
     python tests/benchmarks/bench_long.py [--sizes modernbert,qwen2] [--lengths 512,2048,8192]
+    QT_QPA_PLATFORM=offscreen python tests/benchmarks/bench_long.py --window --sizes modernbert \
+        --lengths 2048,8192
 
 Two random-initialised checkpoints of the sizes people fine-tune are built once and kept in
 ``~/.cache/headlight-bench`` (nothing is downloaded):
@@ -21,6 +23,19 @@ resident memory (``ru_maxrss``) and time, side by side:
 
 Goals (issue of long texts): check peak <= 1.5 × bare peak + 1 GB; check time <= 1.5 × bare time
 at 8,192 tokens; the estimate within 25 % of the measured increase.
+
+With ``--window`` the window is measured instead, in a fresh process, beside the bare forward:
+
+- **run to painted overview**: Ctrl+Enter until the pair grid has painted the new text (the
+  recording, then the overview of the selected head); goal <= 2 × the bare forward;
+- **head switch**: selecting another head until the pair grid has painted it, after the summary
+  pass has stored every head's overview (median and worst of several, across layers); goal
+  <= 300 ms at 8,192 tokens; and, for information, the first switch before that pass (the
+  overview is then computed for that head);
+- **peak memory** of the window's process (``ru_maxrss``); goal <= 4 GB at 8,192 tokens;
+- **longest event-loop gap**: the longest time between 10 ms timer ticks of the GUI thread from
+  Ctrl+Enter until the check, the head metrics and the evidence have arrived and every pane has
+  drawn them; goal <= 100 ms.
 """
 
 from __future__ import annotations
@@ -218,7 +233,99 @@ def child_estimate(folder: Path, tokens: int) -> dict:
     }
 
 
-CHILDREN = {"bare": child_bare, "check": child_check, "estimate": child_estimate}
+def child_window(folder: Path, tokens: int) -> dict:
+    """The window on a text of ``tokens`` tokens (offscreen): run to painted overview, head
+    switches, the longest event-loop gap, peak memory."""
+    import statistics
+
+    os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    sys.path.insert(0, str(ROOT))
+    from tests.benchmarks.bench_gui import GapClock, PaintProbe, idle, open_bench_window, pump_until
+
+    window = open_bench_window(str(folder), evidence=True)
+    text = text_of(words_for(folder, tokens))
+    window.text_edit.setPlainText(text)
+    state, grid = window.state, window.pair_grid
+    probe = PaintProbe(grid.canvas)
+
+    gaps = GapClock()
+    gaps.start()
+    start = time.perf_counter()
+    window.run_current()
+    probe.wait(lambda: state.analysis is not None and grid.drawn_recording is state.analysis.recording, 7200)
+    painted = probe.last - start
+    n = state.analysis.recording.n_tokens
+    # one switch before the summary pass has stored this layer's overviews (computed on demand)
+    before = probe.count
+    switched = time.perf_counter()
+    state.select_head(state.n_layers - 1, state.n_heads - 1)
+    pump_until(lambda: probe.count > before and grid.idle, 7200)
+    first_switch = probe.last - switched
+    pump_until(
+        lambda: state.analysis.summarised and state.evidence is not None and not window.worker.busy, 7200
+    )
+    pump_until(lambda: all(pane.idle for pane in window.figure_panes), 600)
+    gaps.stop()
+    whole = time.perf_counter() - start
+    heads = [(layer, head) for layer in range(state.n_layers) for head in range(state.n_heads)]
+    switches = []
+    for k in range(12):
+        idle(0.4)
+        before = probe.count
+        switched = time.perf_counter()
+        state.select_head(*heads[(37 * k + 5) % len(heads)])
+        pump_until(lambda before=before: probe.count > before and grid.idle, 600)
+        switches.append(probe.last - switched)
+    import resource
+
+    window.close()
+    return {
+        "tokens": n,
+        "painted": painted,
+        "first_switch": first_switch,
+        "switch_median": statistics.median(switches),
+        "switch_worst": max(switches),
+        "gap_ms": gaps.longest,
+        "whole": whole,
+        "peak": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024,
+    }
+
+
+CHILDREN = {"bare": child_bare, "check": child_check, "estimate": child_estimate, "window": child_window}
+
+
+def load() -> str:
+    """The machine's load averages (other work on it changes every absolute time)."""
+    one, five, fifteen = os.getloadavg()
+    return f"load {one:.1f} / {five:.1f} / {fifteen:.1f} on {os.cpu_count()} cores"
+
+
+def window_rows(sizes: list[str], lengths: list[int]) -> None:
+    """The window beside the bare forward, each length in fresh processes."""
+    for size in sizes:
+        folder = folder_of(size)
+        for tokens in lengths:
+            before = load()
+            bare = measure("bare", folder, tokens)
+            print(
+                f"{size:>10} {bare['tokens']:>5} tokens: bare sdpa forward {bare['seconds']:.1f} s, "
+                f"peak {bare['peak'] / GB:.2f} GB; now the window…",
+                flush=True,
+            )
+            win = measure("window", folder, tokens)
+            print(
+                f"{size:>10} {win['tokens']:>5} tokens ({before}; after: {load()})\n"
+                f"{'':>10} run to painted overview {win['painted']:7.1f} s, bare sdpa forward "
+                f"{bare['seconds']:7.1f} s: ratio {win['painted'] / bare['seconds']:.2f} (goal <= 2)\n"
+                f"{'':>10} head switch after the summary: median {win['switch_median'] * 1000:.0f} ms, "
+                f"worst {win['switch_worst'] * 1000:.0f} ms (goal <= 300 ms at 8192); first switch "
+                f"before it {win['first_switch'] * 1000:.0f} ms\n"
+                f"{'':>10} window peak {win['peak'] / GB:.2f} GB (goal <= 4 GB at 8192), bare sdpa "
+                f"forward peak {bare['peak'] / GB:.2f} GB: ratio {win['peak'] / bare['peak']:.2f}\n"
+                f"{'':>10} longest event-loop gap {win['gap_ms']:.0f} ms over {win['whole']:.0f} s "
+                f"(run, check, metrics, evidence, drawing; goal <= 100 ms)",
+                flush=True,
+            )
 
 
 def measure(what: str, folder: Path, tokens: int) -> dict:
@@ -241,10 +348,14 @@ def main() -> None:
     parser.add_argument("--sizes", default="modernbert,qwen2")
     parser.add_argument("--lengths", default="512,2048,8192")
     parser.add_argument("--child", nargs=3, metavar=("WHAT", "FOLDER", "TOKENS"))
+    parser.add_argument("--window", action="store_true", help="measure the window instead of check")
     args = parser.parse_args()
     if args.child:
         what, folder, tokens = args.child
         print(json.dumps(CHILDREN[what](Path(folder), int(tokens))))
+        return
+    if args.window:
+        window_rows(args.sizes.split(","), [int(n) for n in args.lengths.split(",")])
         return
     for size in args.sizes.split(","):
         folder = folder_of(size)

@@ -81,3 +81,21 @@ def test_labels_do_not_overlap():
         for b in boxes[i + 1 :]:
             assert not a.overlaps(b)
     assert "alone" in [t.get_text() for t in arts.labels]
+
+
+def test_the_y_label_stays_inside_a_short_plot():
+    """Reference: matplotlib's own extent of the drawn label; at 1366 × 768 the fixation dock
+    was about 1.8 inches high and the label ran off both ends."""
+    words, x, y, counts = sample()
+    for height in (4.0, 1.8, 1.0):
+        fig = Figure(figsize=(9, height), dpi=100)
+        canvas = FigureCanvasAgg(fig)
+        arts = fixation_into(fig, words, x, y, counts, title="fixation")
+        canvas.draw()
+        label = arts.ax.yaxis.label
+        if label.get_visible():
+            box = label.get_window_extent(canvas.get_renderer())
+            assert box.y0 >= -0.5 and box.y1 <= fig.bbox.height + 0.5, (height, box)
+        else:
+            assert height < 1.8  # left out only where no size fits
+    assert label.get_fontsize() <= 8.5

@@ -33,8 +33,10 @@ def textset_file(tmp_path):
 
 
 def open_set(qtbot, window, path):
-    window.open_textset(str(path))
-    qtbot.waitUntil(lambda: window.state.textset is not None, timeout=WAIT_MS)
+    old = window.state.textset
+    window.open_textset(path if hasattr(path, "split") else str(path))
+    qtbot.waitUntil(lambda: window.state.textset not in (None, old) or bool(window.errors), timeout=WAIT_MS)
+    assert not window.errors, window.errors
     return window.state.textset
 
 
@@ -190,3 +192,54 @@ def test_the_set_scope_head_map_equals_headlight_heads(qtbot, window, textset_fi
     np.testing.assert_allclose(
         np.ma.getdata(pane.displayed_values()), expected, rtol=1e-12, atol=1e-15, equal_nan=True
     )
+
+
+def test_the_text_set_dialog_reads_every_format_with_its_columns_and_split(qtbot, window, tmp_path):
+    """Reference: the CSV's own column as the standard library reads it, and the saved
+    dataset's chosen split as datasets loads it."""
+    import csv
+
+    import datasets
+
+    from viewer.gui.textset_dialog import FILE_FILTERS, TextSetDialog
+
+    for pattern in ("*.txt", "*.jsonl", "*.csv", "*.parquet", "All files (*)"):
+        assert pattern in FILE_FILTERS
+    dialog = TextSetDialog(window)
+    qtbot.addWidget(dialog)
+    assert dialog.folder_button.text() == "Saved dataset folder…"
+    path = tmp_path / "routed.csv"
+    with path.open("w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["id", "message", "route"])
+        w.writerows([i, t, y] for i, (t, y) in enumerate(TEXTS))
+    dialog.set_path(str(path))
+    assert [dialog.text_box.itemText(i) for i in range(dialog.text_box.count())] == ["id", "message", "route"]
+    assert not dialog.split_box.isEnabled()
+    dialog.text_box.setCurrentText("message")
+    dialog.label_box.setCurrentText("route")
+    source = dialog.source()
+    assert (source.text_column, source.label_column, source.split) == ("message", "route", None)
+    ts = open_set(qtbot, window, source)
+    with path.open(newline="", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    assert [(r.text, r.label) for r in ts.rows] == [(r["message"], r["route"]) for r in rows]
+    # a saved DatasetDict: the split chooser lists its splits
+    folder = tmp_path / "saved"
+    part = datasets.Dataset.from_dict({"body": [t for t, _ in TEXTS], "gold": [y for _, y in TEXTS]})
+    datasets.DatasetDict({"train": part.select(range(3)), "test": part.select(range(3, 8))}).save_to_disk(
+        str(folder)
+    )
+    dialog.set_path(str(folder))
+    assert [dialog.split_box.itemText(i) for i in range(dialog.split_box.count())] == ["train", "test"]
+    dialog.split_box.setCurrentText("test")
+    dialog.text_box.setCurrentText("body")
+    dialog.label_box.setCurrentText("gold")
+    ts = open_set(qtbot, window, dialog.source())
+    expected = datasets.load_from_disk(str(folder))["test"]
+    assert [(r.text, r.label) for r in ts.rows] == list(zip(expected["body"], expected["gold"], strict=True))
+    # a file the commands cannot read says so in the dialog, and cannot be opened
+    bad = tmp_path / "notes.parquet"
+    bad.write_text("not parquet", encoding="utf-8")
+    dialog.set_path(str(bad))
+    assert "is not a readable Parquet file" in dialog.note.text() and dialog.source() is None

@@ -11,6 +11,7 @@ import csv
 import json
 from pathlib import Path
 
+import datasets
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
@@ -158,3 +159,41 @@ def test_the_commands_read_parquet_as_the_jsonl(tmp_path, capsys):
     assert main(["heads", str(MODEL_DIR), "--texts", str(bad), "--quiet"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert err == ["headlight: error: row 2: label 'refund' is not one of repair, billing, membership"]
+
+
+def test_the_columns_and_splits_a_text_set_offers(jsonl, tmp_path):
+    """Reference: the files as the standard library (csv, json), pyarrow and datasets wrote them."""
+    from viewer.reports.textsets import layout_of
+
+    with (tmp_path / "s.csv").open("w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["message", "route, as given"])
+        w.writerows(jsonl)
+    assert layout_of(tmp_path / "s.csv").columns == ("message", "route, as given")
+    (tmp_path / "s.jsonl").write_text(
+        "\n" + "".join(json.dumps({"message": t, "route": y}) + "\n" for t, y in jsonl), encoding="utf-8"
+    )
+    assert layout_of(tmp_path / "s.jsonl").columns == ("message", "route")
+    pq.write_table(pa.table({"body": ["a"], "gold": ["x"]}), tmp_path / "t.parquet")
+    assert layout_of(tmp_path / "t.parquet").columns == ("body", "gold")
+    (tmp_path / "t.txt").write_text("one\ntwo\n", encoding="utf-8")
+    assert layout_of(tmp_path / "t.txt").columns == ()
+    one = datasets.Dataset.from_dict({"body": ["a", "b"], "y": [0, 1]})
+    one.save_to_disk(str(tmp_path / "one"))
+    assert layout_of(tmp_path / "one") == type(layout_of(tmp_path / "one"))(("body", "y"), ())
+    datasets.DatasetDict({"train": one, "test": one}).save_to_disk(str(tmp_path / "two"))
+    got = layout_of(tmp_path / "two")
+    assert got.splits == ("train", "test") and got.columns == ("body", "y")
+
+
+def test_the_csv_error_says_how_to_name_another_column(jsonl, tmp_path):
+    with (tmp_path / "s.csv").open("w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["message", "route"])
+        w.writerows(jsonl)
+    with pytest.raises(HeadlightError) as caught:
+        list(read_text_set(tmp_path / "s.csv"))
+    message = str(caught.value)
+    assert "\n" not in message
+    assert "no column 'text' (columns: message, route)" in message
+    assert "--text-column" in message and "Open text set" in message

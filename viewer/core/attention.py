@@ -233,14 +233,15 @@ def check_recording(
     rec: Recording,
     tolerance: float = DEFAULT_TOLERANCE,
     threads: int | None = None,
-    consumers: Callable[[int], dict[str, Iterable[Callable[[Block], None]]]] | None = None,
+    consumers: Callable[[int], dict[str, Iterable[Callable[..., None]]]] | None = None,
 ) -> CheckResult:
     """Re-derive every layer's and head's attention from the recording and compare.
 
     ``consumers(layer)`` may hand further consumers of each block (``{"heads": [...],
     "mean": [...]}``, see ``layer_pass``: head metrics, overviews), so that they are computed
-    in the same pass. Layers run on up to ``threads`` threads; the window passes 1 to leave a
-    core for drawing.
+    in the same pass, and under ``"done"`` functions called without arguments once the layer's
+    pass is over (the window shows a layer's overviews as soon as they are complete). Layers
+    run on up to ``threads`` threads; the window passes 1 to leave a core for drawing.
     """
     checks = [LayerCheck(rec.layer(layer), rec.v[layer], rec.context[layer]) for layer in range(rec.n_layers)]
 
@@ -253,6 +254,8 @@ def check_recording(
             mean_consumers=more.get("mean", ()),
         )
         checks[layer].release()
+        for done in more.get("done", ()):
+            done()
 
     run_parallel([lambda layer=layer: task(layer) for layer in range(rec.n_layers)], threads)
     return result_of(checks, tolerance, rec.own_probs is not None, rec.truncated)

@@ -16,6 +16,7 @@ so a head's T × T never exists at once.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -100,9 +101,14 @@ def _cuts(span: slice, c: int) -> tuple[np.ndarray, np.ndarray]:
     return starts, cells
 
 
-def head_overview(scores: LayerScores, head: int, cells: int = OVERVIEW_CELLS) -> Overview:
-    """The overview of one head, computed block by block of rows (that head's only)."""
+def head_overview(
+    scores: LayerScores, head: int, cells: int = OVERVIEW_CELLS, tick: Callable[[], None] | None = None
+) -> Overview:
+    """The overview of one head, computed block by block of rows (that head's only); ``tick``
+    is called before each block (a caller's cancel check may raise there)."""
     builder = OverviewBuilder(1, scores.n_tokens, cells)
     for block in scores.blocks(own=True, heads=slice(head, head + 1)):
+        if tick is not None:
+            tick()
         builder.add(Block(slice(0, 1), block.rows, block.keys, block.p, block.visible))
     return builder.done()

@@ -19,6 +19,7 @@ from matplotlib.colorbar import Colorbar
 from matplotlib.figure import Figure
 from matplotlib.image import AxesImage
 from matplotlib.patches import Rectangle
+from matplotlib.text import Text
 
 from viewer.figures import style
 from viewer.figures.layout import Box, InchLayout, line_height_in, text_width_in
@@ -35,6 +36,14 @@ class EvidenceArtists:
     n_tokens: int
     row_labels: tuple[str, ...]
     signed: bool
+    agreements: tuple[Text, ...] = ()  # the ρ written right of each row
+
+    def thin_rows(self, height_px: float) -> None:
+        """Show the ρ of the rows the y axis labels (``style.IndexLocator``) at this height."""
+        need = style.FONT_SIZE * style.ROW_SPACING * self.ax.figure.dpi / 72.0
+        step = style.index_step(len(self.row_labels), height_px, need)
+        for row, text in enumerate(self.agreements):
+            text.set_visible(row % step == 0)
 
 
 def normalise_rows(values: np.ndarray) -> np.ndarray:
@@ -79,10 +88,10 @@ def draw_evidence_strip(
         cmap, norm = style.sequential_cmap(), style.sequential_norm(np.array([0.0, 1.0]))
     image = style.cell_grid(ax, np.ma.masked_invalid(shown), cmap=cmap, norm=norm)
     style.set_token_axis(ax, "x", tokens, rotate=True)
-    ax.set_yticks(range(n_rows), list(row_labels))
+    style.set_index_axis(ax, "y", row_labels)
     ax.tick_params(axis="y", length=0, labelsize=style.FONT_SIZE)
     agreement = list(agreement) if agreement is not None else [None] * n_rows
-    for row, rho in enumerate(agreement):
+    agreements = [
         ax.text(
             1.012,
             row,
@@ -93,6 +102,8 @@ def draw_evidence_strip(
             fontsize=style.FONT_SIZE,
             color="#222222",
         )
+        for row, rho in enumerate(agreement)
+    ]
     if title:
         ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left")
     marker = Rectangle(
@@ -103,7 +114,9 @@ def draw_evidence_strip(
     if cax is not None:
         colorbar = ax.figure.colorbar(image, cax=cax)
         style.style_colorbar(colorbar, ROW_UNITS)
-    return EvidenceArtists(ax, image, colorbar, marker, n_tokens, tuple(row_labels), signed)
+    return EvidenceArtists(
+        ax, image, colorbar, marker, n_tokens, tuple(row_labels), signed, tuple(agreements)
+    )
 
 
 def mark_token(artists: EvidenceArtists, token: int | None) -> None:
@@ -189,10 +202,14 @@ def evidence_into(
     label_width = text_width_in(max((len(str(s)) + 2 for s in labels), default=4))
     classes_width = (label_width + 1.05) if has_classes else 0.0
 
+    drawn: list[EvidenceArtists] = []
+
     def place(width: float, height: float) -> dict[Axes, Box]:
         rho, bar, bar_label = 0.72, 0.11, 0.8
         strip_w = width - left - rho - bar - bar_label - 0.1
         h = max(height - bottom - top, 0.1)
+        for artists in drawn:
+            artists.thin_rows(h * fig.dpi)
         show_classes = pax is not None and strip_w - classes_width >= max(2.5, 0.45 * width)
         if show_classes:
             strip_w -= classes_width
@@ -209,6 +226,7 @@ def evidence_into(
 
     fig.set_layout_engine(InchLayout(place))
     artists = draw_evidence_strip(ax, tokens, row_labels, values, agreement, cax=cax, title=title)
+    drawn.append(artists)
     if pax is not None:
         draw_class_probabilities(pax, labels, probabilities, predicted, gold)
     return artists

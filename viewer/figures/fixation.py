@@ -163,6 +163,7 @@ def fixation_into(
     style.style_axes(ax)
     ax.set_xlabel(x_units, fontsize=style.LABEL_SIZE)
     ax.set_ylabel(Y_UNITS, fontsize=style.LABEL_SIZE)
+    ax.fit_texts = [ax.yaxis.label]  # smaller, or left out, where the plot is short
     if title:
         ax.set_title(title, fontsize=style.TITLE_SIZE, loc="left", y=1.0)
     return FixationArtists(ax, points, labels, chosen, x, y, mark)

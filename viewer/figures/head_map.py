@@ -7,6 +7,7 @@ two runs (compare mode) is drawn with the diverging map centred on zero.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -18,7 +19,14 @@ from matplotlib.patches import Rectangle
 
 from viewer.figures import style
 from viewer.figures.cells import cell_image
-from viewer.figures.layout import InchLayout, line_height_in, main_with_colorbar, text_width_in
+from viewer.figures.layout import (
+    Box,
+    InchLayout,
+    line_height_in,
+    main_with_colorbar,
+    text_width_in,
+    widest_in,
+)
 
 ANNOTATE_MAX_CELLS = 160  # write values into cells only when there are this few
 
@@ -35,18 +43,32 @@ class HeadMapArtists:
     cell_texts: list = field(default_factory=list)  # the values written into cells, if any
 
 
-def format_value(value: float) -> str:
-    """Compact cell text: two significant decimals for 0-1 metrics, fewer for large numbers."""
+def value_format(values: np.ndarray) -> str:
+    """One number format for every cell of a grid, from its largest |value|: fixed decimals
+    that give that value two significant digits (at least two decimals, as 0–1 metrics read
+    best), whole numbers from 100 up, and one shared scientific format when fixed decimals
+    would need more than five."""
+    finite = np.abs(np.asarray(values, dtype=np.float64))
+    finite = finite[np.isfinite(finite)]
+    top = float(finite.max()) if finite.size else 0.0
+    if top >= 100:
+        return "{:.0f}"
+    if top >= 10:
+        return "{:.1f}"
+    if top == 0:
+        return "{:.2f}"
+    decimals = max(2, 1 - math.floor(math.log10(top)))
+    return f"{{:.{decimals}f}}" if decimals <= 5 else "{:.1e}"
+
+
+def format_value(value: float, fmt: str = "{:.2f}") -> str:
+    """A cell's text in its grid's format (``value_format``); "–" where undefined."""
     if not np.isfinite(value):
         return "–"
-    a = abs(value)
-    if a >= 100:
-        return f"{value:.0f}"
-    if a >= 10:
-        return f"{value:.1f}"
-    if a >= 0.01 or a == 0:
-        return f"{value:.2f}"
-    return f"{value:.0e}"
+    text = fmt.format(value)
+    if text.startswith("-") and float(text) == 0:  # "-0.00": a tiny negative, shown as zero
+        text = text[1:]
+    return text
 
 
 def draw_head_map(
@@ -69,8 +91,9 @@ def draw_head_map(
     data, grid, cmap, norm = _scaled(values, diverging)
     n_layers, n_heads = data.shape
     image = style.cell_grid(ax, grid, cmap=cmap, norm=norm, draw=lambda *a, **k: cell_image(ax, *a, **k))
-    ax.set_xticks(range(n_heads), [f"head {h}" if n_heads <= 8 else str(h) for h in range(n_heads)])
-    ax.set_yticks(range(n_layers), [f"layer {layer}" for layer in range(n_layers)])
+    heads = [f"head {h}" if n_heads <= 8 else str(h) for h in range(n_heads)]
+    style.set_index_axis(ax, "x", heads, along=True)
+    style.set_index_axis(ax, "y", [f"layer {layer}" for layer in range(n_layers)])
     ax.tick_params(axis="both", length=0, labelsize=style.FONT_SIZE)
     ax.xaxis.set_ticks_position("top")
     ax.xaxis.set_label_position("top")
@@ -82,6 +105,7 @@ def draw_head_map(
     if annotate is None:
         annotate = n_layers * n_heads <= ANNOTATE_MAX_CELLS
     cell_texts = []
+    fmt = value_format(data)
     if annotate:
         font = style.FONT_SIZE - (1.5 if n_heads > 8 else 0.5)
         for layer in range(n_layers):
@@ -91,7 +115,7 @@ def draw_head_map(
                     ax.text(
                         head,
                         layer,
-                        format_value(v),
+                        format_value(v, fmt),
                         ha="center",
                         va="center",
                         fontsize=font,
@@ -142,8 +166,9 @@ def update_head_map(artists: HeadMapArtists, values: np.ndarray) -> None:
         )
     artists.image.set_data(grid)
     artists.image.set_clim(norm.vmin, norm.vmax)
+    fmt = value_format(data)
     for text, v in zip(artists.cell_texts, data.ravel(), strict=False):
-        text.set_text(format_value(v))
+        text.set_text(format_value(v, fmt))
         text.set_color(_text_colour(cmap, artists.image.norm, v))
 
 
@@ -190,10 +215,18 @@ def head_map_into(
     top = line_height_in(style.FONT_SIZE, 1.6) + (line_height_in(style.TITLE_SIZE, 1.8) if title else 0.0)
     if np.asarray(values).shape[1] > 8:
         top += line_height_in(style.LABEL_SIZE)
-    fig.set_layout_engine(
-        InchLayout(main_with_colorbar(ax, cax, left=left, bottom=0.1, top=top, right_label=0.66))
-    )
-    return draw_head_map(
+    place = main_with_colorbar(ax, cax, left=left, bottom=0.1, top=top, right_label=0.66)
+    drawn: list[HeadMapArtists] = []
+
+    def place_and_fit(width: float, height: float) -> dict[Axes, Box]:
+        boxes = place(width, height)
+        for artists in drawn:
+            _, _, w, h = boxes[ax]
+            fit_cell_texts(artists, w * 72.0 / artists.n_heads, h * 72.0 / artists.n_layers)
+        return boxes
+
+    fig.set_layout_engine(InchLayout(place_and_fit))
+    artists = draw_head_map(
         ax,
         values,
         label=label,
@@ -203,3 +236,17 @@ def head_map_into(
         cax=cax,
         annotate=annotate,
     )
+    drawn.append(artists)
+    return artists
+
+
+def fit_cell_texts(artists: HeadMapArtists, cell_width_pt: float, cell_height_pt: float) -> None:
+    """Show the values written into cells only when a cell holds its text: a line's height
+    (``style.ROW_SPACING`` font heights) and the widest value's width."""
+    if not artists.cell_texts:
+        return
+    font = artists.cell_texts[0].get_fontsize()
+    wide = widest_in([t.get_text() for t in artists.cell_texts], font) * 72.0 + 2.0
+    fits = cell_height_pt >= font * style.ROW_SPACING and cell_width_pt >= wide
+    for text in artists.cell_texts:
+        text.set_visible(fits)

@@ -15,7 +15,7 @@ from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 from matplotlib.layout_engine import LayoutEngine
 
-from viewer.figures.style import FONT_SIZE
+from viewer.figures.style import FONT_SIZE, LABEL_SIZE, widest_in
 
 Box = tuple[float, float, float, float]  # left, bottom, width, height in inches
 Placer = Callable[[float, float], dict[Axes, Box]]
@@ -39,6 +39,25 @@ class InchLayout(LayoutEngine):
             w = max(w, 0.05)
             h = max(h, 0.05)
             ax.set_position((left / width, bottom / height, w / width, h / height))
+            for text in getattr(ax, "fit_texts", ()):  # written up the axes, centred on it
+                middle = bottom + h / 2
+                fit_along(text, 2 * min(middle, height - middle) * 72.0)
+
+
+UNITS_SIZES = (LABEL_SIZE, FONT_SIZE, 7.0, 6.0)
+
+
+def fit_along(text, room_pt: float) -> None:
+    """Give a label written upwards beside an axes (a colour bar's units, a y-axis label) the
+    largest of ``UNITS_SIZES`` at which its longest line fits ``room_pt`` points; hide it when
+    none does (it would be cut off at the figure's edge or run into another pane's text)."""
+    lines = text.get_text().split("\n")
+    for size in UNITS_SIZES:
+        if widest_in(lines, size) * 72.0 <= room_pt:
+            text.set_fontsize(size)
+            text.set_visible(True)
+            return
+    text.set_visible(False)
 
 
 def text_width_in(chars: int, font_size: float = FONT_SIZE) -> float:

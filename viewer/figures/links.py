@@ -22,7 +22,7 @@ from matplotlib.figure import Figure
 
 from viewer.figures import style
 from viewer.figures.head_map import HeadMapArtists, draw_head_map, mark_head
-from viewer.figures.layout import Box, InchLayout, line_height_in, text_width_in
+from viewer.figures.layout import Box, InchLayout, line_height_in, text_width_in, widest_in
 
 LINK_UNITS = "link score (attention probability)"
 
@@ -67,8 +67,10 @@ def draw_link_bars(
     bars = ax.barh(range(n), s[chosen], color=colours, height=0.66, zorder=2)
     ax.set_yticks(range(n), [style.token_label(names[i]) for i in chosen])
     ax.set_ylim(n - 0.5, -0.5)
+    ax.link_rows = n  # bars drawn; ``links_into`` shows as many of them as the height holds
     peak = float(s[chosen].max()) if n else 1.0
     ax.set_xlim(0, max(peak * 1.25, 1e-6))
+    ax.link_peak = peak  # ``links_into`` widens the scale until the longest bar's value fits
     style.style_axes(ax)
     ax.tick_params(axis="y", length=0)
     ax.set_xlabel(LINK_UNITS, fontsize=style.LABEL_SIZE)
@@ -82,6 +84,7 @@ def draw_link_bars(
             fontsize=style.FONT_SIZE - 0.5,
             color="#222222",
             zorder=3,
+            clip_on=True,
         )
         for row, i in enumerate(chosen)
     ]
@@ -93,6 +96,20 @@ def draw_link_bars(
         drawn.append(bars)
         drawn.extend(values)
     return tuple(int(i) for i in chosen)
+
+
+VALUE_WIDTH_PT = widest_in(["0.000"], style.FONT_SIZE - 0.5) * 72.0 + 2.0  # a bar's value text
+
+
+def fit_values(ax: Axes, width_in: float) -> None:
+    """Widen the bars' scale so that the longest bar's value, written just after it, ends inside
+    axes ``width_in`` inches wide (at least 1.25 × the longest bar)."""
+    peak = getattr(ax, "link_peak", None)
+    if peak is None:
+        return
+    share = VALUE_WIDTH_PT / max(width_in * 72.0, 1e-6)
+    reach = peak * 1.02 / (1.0 - share) if share < 0.8 else peak * 1.25
+    ax.set_xlim(0, max(peak * 1.25, reach, 1e-6))
 
 
 def links_into(
@@ -122,10 +139,15 @@ def links_into(
 
     def place(width: float, height: float) -> dict[Axes, Box]:
         h = max(height - top - bottom, 0.1)
+        # the best bars first, as many as have a line each (``style.ROW_SPACING``)
+        fit = max(1, int(h * 72.0 / (style.FONT_SIZE * style.ROW_SPACING)))
+        bars.set_ylim(min(getattr(bars, "link_rows", fit), fit) - 0.5, -0.5)
         if not has_map:
+            fit_values(bars, width - label_w - 0.2)
             return {bars: (label_w, bottom, width - label_w - 0.2, h)}
         usable = width - label_w - layer_w - 0.9 - 0.3
         bars_w = usable * 0.42
+        fit_values(bars, bars_w)
         map_w = usable - bars_w
         map_top = top + line_height_in(style.FONT_SIZE, 1.6) + line_height_in(style.LABEL_SIZE)
         mh = max(height - map_top - 0.15, 0.1)

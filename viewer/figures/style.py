@@ -160,16 +160,25 @@ def token_labels(tokens: Sequence[str]) -> list[str]:
     return [token_label(t) for t in tokens]
 
 
-def label_step(span: float, room_px: float, font_px: float) -> int:
-    """How many tokens apart labels must be so that ``span`` tokens fit in ``room_px`` pixels.
+def widest_in(labels, font_size: float = FONT_SIZE, candidates: int = 32) -> float:
+    """Width in inches of the widest of ``labels`` in matplotlib's default font, from the glyph
+    advances matplotlib itself lays text out with (``TextToPath``); only the ``candidates``
+    longest labels are measured ("someone" is wider than 0.6 em a character, "[CLS]" than
+    "iii"), so a text of thousands of tokens costs a few measurements."""
+    from matplotlib.font_manager import FontProperties
+    from matplotlib.textpath import text_to_path
 
-    One label needs ``LABEL_SPACING`` font heights; the step is the smallest of 1, 2, 5, 10, 20,
-    50, ... that leaves that much room (round steps make the labelled positions easy to count).
-    """
-    if span <= 0 or room_px <= 0:
-        return 1
-    capacity = max(1.0, room_px / (font_px * LABEL_SPACING))
-    raw = span / capacity
+    unique = sorted({str(s).replace("\\$", "$") for s in labels}, key=len, reverse=True)[:candidates]
+    if not unique:
+        return 0.0
+    prop = FontProperties(size=font_size)
+    widest = max(text_to_path.get_text_width_height_descent(s, prop, ismath=False)[0] for s in unique)
+    return widest / 72.0  # text_to_path measures in points at this size
+
+
+def nice_step(raw: float) -> int:
+    """The smallest of 1, 2, 5, 10, 20, 50, ... that is at least ``raw`` (round steps make the
+    labelled positions easy to count)."""
     if raw <= 1:
         return 1
     exponent = math.floor(math.log10(raw))
@@ -178,6 +187,76 @@ def label_step(span: float, room_px: float, font_px: float) -> int:
         if step >= raw:
             return int(step)
     return int(10 ** (exponent + 1))
+
+
+def label_step(span: float, room_px: float, font_px: float) -> int:
+    """How many tokens apart labels must be so that ``span`` tokens fit in ``room_px`` pixels.
+
+    One label needs ``LABEL_SPACING`` font heights; the step is the ``nice_step`` that leaves
+    that much room.
+    """
+    if span <= 0 or room_px <= 0:
+        return 1
+    capacity = max(1.0, room_px / (font_px * LABEL_SPACING))
+    return nice_step(span / capacity)
+
+
+ROW_SPACING = 1.25
+"""Font heights a one-line label needs across its line: the font's ascent plus descent is about
+1.17 em in DejaVu Sans (matplotlib's default face), and a little air between labels."""
+
+
+def index_step(span: float, room_px: float, need_px: float) -> int:
+    """Every how many rows (or columns) a label can be written when ``span`` of them share
+    ``room_px`` pixels and one label needs ``need_px`` pixels along the axis (every 2nd, 3rd,
+    ...: a handful of rows, unlike a text's tokens, is counted without round steps)."""
+    if span <= 0 or room_px <= 0:
+        return 1
+    return max(1, math.ceil(need_px * span / room_px - 1e-9))
+
+
+class IndexLocator(Locator):
+    """Ticks at the integer positions 0 … n−1 of a labelled axis (layers, heads, evidence
+    rows), thinned to every ``index_step``-th when the axis is too short for one label each.
+
+    ``need_pt`` is the room one label takes along the axis in points: a line's height across
+    horizontal text, the widest label's width along it."""
+
+    def __init__(self, n: int, need_pt: float) -> None:
+        self.n = int(n)
+        self.need_pt = float(need_pt)
+
+    def step(self) -> int:
+        axes = self.axis.axes
+        box = axes.get_window_extent()
+        room = float(box.width if self.axis is axes.xaxis else box.height)
+        lo, hi = sorted(self.axis.get_view_interval())
+        return index_step(hi - lo, room, self.need_pt * axes.figure.dpi / 72.0)
+
+    def __call__(self) -> list[int]:
+        lo, hi = sorted(self.axis.get_view_interval())
+        step = self.step()
+        first, last = max(0, math.ceil(lo)), min(self.n - 1, math.floor(hi))
+        return [i for i in range(first + (-first) % step, last + 1, step)]
+
+
+def set_index_axis(ax: Axes, which: str, labels: Sequence[str], *, along: bool = False) -> IndexLocator:
+    """Label ``ax``'s x or y axis at 0 … n−1 with ``labels`` through an ``IndexLocator``;
+    ``along`` when the labels are written along the axis (horizontal text on an x axis), so a
+    label needs its width rather than its line height."""
+    labels = [str(label) for label in labels]
+    need = widest_in(labels, FONT_SIZE) * 72.0 + FONT_SIZE * 0.6 if along else FONT_SIZE * ROW_SPACING
+
+    def name(value: float, _pos: int | None = None) -> str:
+        i = int(round(value))
+        return labels[i] if 0 <= i < len(labels) and abs(value - i) < 1e-6 else ""
+
+    axis = ax.xaxis if which == "x" else ax.yaxis
+    locator = IndexLocator(len(labels), need)
+    axis.set_major_locator(locator)
+    axis.set_major_formatter(FuncFormatter(name))
+    axis.set_minor_locator(mpl.ticker.NullLocator())
+    return locator
 
 
 class TokenLocator(Locator):
@@ -216,21 +295,30 @@ class TokenLocator(Locator):
 
 
 def set_token_axis(
-    ax: Axes, which: str, tokens: Sequence[str], rotate: bool = False, restyle: bool = True
+    ax: Axes,
+    which: str,
+    tokens: Sequence[str],
+    rotate: bool = False,
+    restyle: bool = True,
+    numbered: bool = False,
 ) -> None:
     """Label ``ax``'s x or y axis with ``tokens`` through a ``TokenLocator``.
 
     ``restyle`` False keeps the tick style of an axis this function already set up (restyling
-    every tick is slow), changing only the labels.
+    every tick is slow), changing only the labels. ``numbered`` puts each token's position
+    before it ("4000 the"), for texts too long to find one's way by tokens alone. A label is
+    made only when its tick is drawn, so a text of thousands of tokens costs what its few
+    shown labels cost.
     """
-    labels = token_labels(tokens)
 
     def name(value: float, _pos: int | None = None) -> str:
         i = int(round(value))
-        return labels[i] if 0 <= i < len(labels) else ""
+        if not 0 <= i < len(tokens):
+            return ""
+        return f"{i} {token_label(tokens[i])}" if numbered else token_label(tokens[i])
 
     axis = ax.xaxis if which == "x" else ax.yaxis
-    axis.set_major_locator(TokenLocator(len(labels)))
+    axis.set_major_locator(TokenLocator(len(tokens)))
     axis.set_major_formatter(FuncFormatter(name))
     axis.set_minor_locator(mpl.ticker.NullLocator())
     if not restyle:
@@ -257,13 +345,35 @@ COLORBAR_TICKS = 4
 COLORBAR_LABEL_GAP = 31.0  # points from the bar's right edge to its units label
 
 
+class ColorbarLocator(MaxNLocator):
+    """At most ``COLORBAR_TICKS`` round ticks, fewer when the bar is too short for their labels
+    (one label needs ``LABEL_SPACING`` font heights); one tick when only one fits."""
+
+    def __init__(self, font_size: float = FONT_SIZE) -> None:
+        super().__init__(COLORBAR_TICKS)
+        self.font_size = font_size
+
+    def __call__(self):
+        axes = self.axis.axes
+        box = axes.get_window_extent()
+        room = float(box.height if self.axis is axes.yaxis else box.width)
+        capacity = int(room / (self.font_size * axes.figure.dpi / 72.0 * LABEL_SPACING))
+        self.set_params(nbins=max(1, min(COLORBAR_TICKS, capacity - 1)))
+        ticks = super().__call__()
+        if capacity < 2:  # room for one label: the lowest in view
+            lo, hi = sorted(self.axis.get_view_interval())
+            inside = [t for t in ticks if lo <= t <= hi]
+            return inside[:1] if capacity == 1 else []
+        return ticks
+
+
 def style_colorbar(cbar, label: str) -> None:
     """House look of a colour bar: a few ticks and the units written beside it.
 
     The units are a text of the colour bar's axes (``cbar.units``) rather than its axis label,
     so that a pane can redraw the ticks alone when the scale changes.
     """
-    cbar.locator = MaxNLocator(COLORBAR_TICKS)
+    cbar.locator = ColorbarLocator()
     cbar.update_ticks()
     cbar.ax.tick_params(labelsize=FONT_SIZE, width=0.6, length=2)
     cbar.outline.set_linewidth(0.6)
@@ -282,6 +392,7 @@ def style_colorbar(cbar, label: str) -> None:
         rotation_mode="anchor",
         multialignment="center",
     )
+    cbar.ax.fit_texts = [cbar.units]  # sized to the bar's height by ``layout.InchLayout``
 
 
 def rescale_by_ticks(cbar) -> None:

@@ -63,6 +63,7 @@ def build_export(pane) -> PaneExport:
             query=state.source if marked else None,
             key=state.target if marked else None,
             pane=name,
+            block=pane.block_mode,
         )
     if isinstance(pane, HeadMapPane):
         from viewer.session.metrics import head_values

@@ -11,8 +11,8 @@ import sys
 import time
 from pathlib import Path
 
-from PySide6.QtCore import QByteArray, QSettings, QSize, QStandardPaths, Qt, QTimer, Signal
-from PySide6.QtGui import QAction, QIcon, QKeySequence, QShortcut
+from PySide6.QtCore import QByteArray, QRect, QSettings, QSize, QStandardPaths, Qt, QTimer, Signal
+from PySide6.QtGui import QAction, QGuiApplication, QIcon, QKeySequence, QShortcut
 from PySide6.QtWidgets import (
     QDockWidget,
     QFileDialog,
@@ -40,12 +40,19 @@ from viewer.gui.panes.links import LinksPane
 from viewer.gui.panes.pair_grid import PairGridPane
 from viewer.gui.panes.shortcuts import ShortcutPane
 from viewer.gui.panes.textset import TextSetPane
+from viewer.gui.textbox import TextBox, note_label
 from viewer.gui.worker import Worker
 from viewer.session import session_file as sessions
 from viewer.session.controller import Controller
 from viewer.session.state import Selection
 
 RECENT_MAX = 8
+DEFAULT_SIZE = QSize(1440, 900)  # the window's size on a screen with room for it
+FRAME_ROOM = QSize(16, 40)  # left for the window manager's frame and title bar (common practice)
+COMPARE_DOCK_HEIGHT = 360
+PANE_MINIMUM_HEIGHTS = {"head_map": 140, "links": 120, "pair_grid": 200, "evidence": 130}
+"""Heights below which a pane's figure no longer holds its labels and a few rows (measured on
+the demo at 1366 × 768): the pair grid keeps several query rows beside its key labels."""
 IDLE_COLLECT_S = 1.5  # no drawing or model work for this long: time for a full collection
 IDLE_CHECK_MS = 1000
 ICON = Path(__file__).parent / "icons" / "headlight.svg"
@@ -103,7 +110,7 @@ class MainWindow(QMainWindow):
         self.collector.setInterval(IDLE_CHECK_MS)
         self.collector.timeout.connect(self.collect_when_idle)
         self.collector.start()
-        self.resize(1440, 900)
+        self.setGeometry(default_geometry(available_geometry()))
         if restore_geometry:
             geometry = self.settings.value("window/geometry")
             if isinstance(geometry, QByteArray):
@@ -137,7 +144,10 @@ class MainWindow(QMainWindow):
         self.cancel_action = self._action("Cancel", self.cancel, "Esc", "stop the model work in progress")
         self.cancel_action.setEnabled(False)
         self.open_set_action = self._action(
-            "Open text set…", self.open_textset_dialog, None, "list a .txt, .jsonl or .csv file's predictions"
+            "Open text set…",
+            self.open_textset_dialog,
+            None,
+            "list the predictions of a .txt, .jsonl, .csv or .parquet file or a saved dataset folder",
         )
         self.open_pairs_action = self._action(
             "Open link pairs…", self.open_pairs_dialog, None, "per-head link accuracy over a link-pairs file"
@@ -185,10 +195,15 @@ class MainWindow(QMainWindow):
         self.model_label.setWordWrap(True)
         open_button = QToolButton()
         open_button.setDefaultAction(self.open_model_action)
-        self.text_edit = QPlainTextEdit()
+        self.text_edit = TextBox()
         self.text_edit.setPlaceholderText("Type or paste a text, then press Ctrl+Enter")
         self.text_edit.setFixedHeight(58)
         self.text_edit.setTabChangesFocus(True)
+        self.text_note = note_label(self.text_edit)
+        middle = QVBoxLayout()
+        middle.setSpacing(2)
+        middle.addWidget(self.text_edit)
+        middle.addWidget(self.text_note)
         self.run_button = QPushButton("Run  (Ctrl+Enter)")
         self.run_button.setToolTip(self.run_action.toolTip())
         self.run_button.clicked.connect(self.run_current)
@@ -196,7 +211,7 @@ class MainWindow(QMainWindow):
         left.addWidget(open_button)
         left.addWidget(self.model_label)
         bar.addLayout(left)
-        bar.addWidget(self.text_edit, 1)
+        bar.addLayout(middle, 1)
         bar.addWidget(self.run_button)
         layout.addLayout(bar)
         self.head_map = HeadMapPane(self.state)
@@ -206,6 +221,8 @@ class MainWindow(QMainWindow):
         self.evidence = EvidencePane(self.state)
         for pane in (self.head_map, self.links, self.evidence):
             pane.waits_for = self.pair_grid  # after a run, the pair grid is painted first
+        for name, height in PANE_MINIMUM_HEIGHTS.items():
+            getattr(self, name).setMinimumHeight(height)
         left_split = QSplitter(Qt.Orientation.Vertical)
         left_split.addWidget(self.head_map)
         left_split.addWidget(self.links)
@@ -347,7 +364,7 @@ class MainWindow(QMainWindow):
 
     # -- the controller's view -------------------------------------------------------------------
     def editor_text(self) -> str:
-        return self.text_edit.toPlainText()
+        return self.text_edit.text()  # the whole text, also when the box shows only its start
 
     def set_editor_text(self, text: str) -> None:
         self.text_edit.setPlainText(text)
@@ -366,8 +383,11 @@ class MainWindow(QMainWindow):
             name
         ]
         dock.raise_()
-        if name == "compare" and dock.height() < 300:
-            self.resizeDocks([dock], [340], Qt.Orientation.Vertical)
+        if name == "compare":
+            # room for the compared grid, and the panes above keep theirs (their minimum sizes)
+            want = min(COMPARE_DOCK_HEIGHT, int(self.height() * 0.45))
+            if dock.height() < want:
+                self.resizeDocks([dock], [want], Qt.Orientation.Vertical)
 
     def evidence_after_runs(self) -> bool:
         return self.evidence_action.isChecked()
@@ -451,7 +471,7 @@ class MainWindow(QMainWindow):
     def open_model_dialog(self) -> None:
         folder = QFileDialog.getExistingDirectory(self, "Open a model folder")
         if folder:
-            self.open_model(folder, run_after=bool(self.text_edit.toPlainText().strip()))
+            self.open_model(folder, run_after=bool(self.text_edit.text().strip()))
 
     def open_model(self, folder: str, *, run_after: bool = False, remember: bool = True) -> None:
         self.controller.open_model(folder, run_after=run_after, remember=remember)
@@ -490,11 +510,14 @@ class MainWindow(QMainWindow):
         self.controller.cancel()
 
     def open_textset_dialog(self) -> None:
-        path, _ = QFileDialog.getOpenFileName(self, "Open a text set", "", "Text sets (*.txt *.jsonl *.csv)")
-        if path:
-            self.open_textset(path)
+        from viewer.gui.textset_dialog import TextSetDialog
 
-    def open_textset(self, path: str) -> None:
+        dialog = TextSetDialog(self)
+        if dialog.exec() == TextSetDialog.DialogCode.Accepted and dialog.source() is not None:
+            self.open_textset(dialog.source())
+
+    def open_textset(self, path) -> None:
+        """Open a text set: a path, or a ``TextSource`` naming its columns and split."""
         self.controller.open_textset(path)
 
     def open_pairs_dialog(self) -> None:
@@ -578,6 +601,22 @@ class MainWindow(QMainWindow):
         self.textset_pane.detach()
         self.shortcut_pane.detach()
         super().closeEvent(event)
+
+
+def available_geometry() -> QRect:
+    """The part of the primary screen a window may cover (without task bars and panels)."""
+    screen = QGuiApplication.primaryScreen()
+    return screen.availableGeometry() if screen is not None else QRect(0, 0, 1440, 900)
+
+
+def default_geometry(available: QRect) -> QRect:
+    """The window's first place: ``DEFAULT_SIZE``, or less so that it and its frame fit the
+    ``available`` screen area, centred on it."""
+    width = min(DEFAULT_SIZE.width(), available.width() - FRAME_ROOM.width())
+    height = min(DEFAULT_SIZE.height(), available.height() - FRAME_ROOM.height())
+    rect = QRect(0, 0, width, height)
+    rect.moveCenter(available.center())
+    return rect
 
 
 def choose_base_folder(parent: QWidget, adapter: str, message: str) -> str | None:

@@ -133,10 +133,9 @@ def read_text_set(source: str | os.PathLike | TextSource) -> Iterator[TextItem]:
     elif suffix == ".csv":
         lines = (line for _, line in _lines(path))
         reader = csv.DictReader(lines)
-        if reader.fieldnames is None or text_col not in reader.fieldnames:
-            raise HeadlightError(f"{path.name}: the CSV header needs a '{text_col}' column")
-        if source.label_column and label_col not in reader.fieldnames:
-            raise HeadlightError(f"{path.name}: the CSV header has no '{label_col}' column")
+        _columns(
+            path.name, list(reader.fieldnames or ()), text_col, label_col, source.label_column is not None
+        )
         for row in reader:
             text = (row.get(text_col) or "").strip()
             if text:
@@ -168,8 +167,8 @@ def _read_jsonl(path: Path, text_col: str, label_col: str, label_given: bool) ->
 def _columns(name: str, present: list[str], text_col: str, label_col: str, label_given: bool) -> list[str]:
     if text_col not in present:
         raise HeadlightError(
-            f"{name}: no column '{text_col}' (columns: {', '.join(present)}); "
-            "name the text column with --text-column"
+            f"{name}: no column '{text_col}' (columns: {', '.join(present) or 'none'}); name the "
+            "text column with --text-column (in the window: the text column of Open text set)"
         )
     if label_col in present:
         return [text_col, label_col]
@@ -273,6 +272,52 @@ def _read_saved_dataset(source: TextSource) -> Iterator[TextItem]:
     ds = ds.select_columns(cols).with_format(None)
     batches = ([b[c] for c in cols] for b in ds.iter(batch_size=ARROW_BATCH))
     yield from _table_items(name, batches, text_col, names)
+
+
+@dataclass(frozen=True)
+class Layout:
+    """What a text set offers to read: its columns (fields) and, for a saved ``DatasetDict``,
+    its splits (the columns are then the first split's)."""
+
+    columns: tuple[str, ...]
+    splits: tuple[str, ...] = ()
+
+
+def layout_of(path: str | os.PathLike) -> Layout:
+    """The columns and splits of a text set, read from its header, first object or schema only
+    (a ``.txt`` file has none: one text a line)."""
+    path = Path(path)
+    if path.is_dir():
+        if (path / "dataset_dict.json").is_file():
+            dict_info = safejson.load_file(path / "dataset_dict.json", f"{path.name}/dataset_dict.json")
+            splits = (
+                tuple(str(s) for s in dict_info.get("splits") or ()) if isinstance(dict_info, dict) else ()
+            )
+            return Layout(layout_of(path / splits[0]).columns if splits else (), splits)
+        if not (path / "dataset_info.json").is_file():
+            raise HeadlightError(f"{path} is a folder but not one saved by datasets' save_to_disk")
+        info = safejson.load_file(path / "dataset_info.json", f"{path.name}/dataset_info.json")
+        return Layout(tuple(info.get("features") or ()) if isinstance(info, dict) else ())
+    suffix = path.suffix.lower()
+    if suffix == ".csv":
+        for _, line in _lines(path):
+            return Layout(tuple(next(csv.reader([line]), [])))
+        return Layout(())
+    if suffix == ".jsonl":
+        for number, line in _lines(path):
+            if line.strip():
+                obj = safejson.loads(line, f"{path.name} line {number}")
+                return Layout(tuple(obj) if isinstance(obj, dict) else ())
+        return Layout(())
+    if suffix == ".parquet":
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        try:
+            return Layout(tuple(pq.ParquetFile(path).schema_arrow.names))
+        except (pa.ArrowException, OSError) as exc:
+            raise HeadlightError(f"{path.name} is not a readable Parquet file ({exc})") from None
+    return Layout(())
 
 
 @dataclass(frozen=True)

@@ -8,18 +8,21 @@ A run arrives in two steps, so the pair grid can be painted as soon as the model
    ``viewer.core.headstats`` for this one text (the costly part for long texts), and for a long
    text every head's overview, all in one pass over each layer's probabilities, as a new
    ``TextAnalysis`` with the *same* recording, so panes that depend only on the recording keep
-   what they drew.
+   what they drew. Each layer's overviews are stored as soon as that layer's pass is over.
 
 A text of up to ``DENSE_TOKENS`` tokens is drawn cell by cell (``grid``); a longer one as an
 overview of pooled blocks (``overview``, ``viewer.core.overview``), with exact cells computed for
-the part a zoomed view shows (``cells``). Nothing here holds every head's T × T at once.
+the part a zoomed view shows (``cells``, ``visible``) and single rows for a hovered cell
+(``row``). Nothing here holds every head's T × T at once.
 
-Everything the GUI thread later needs per selection is stored here or a cheap slice of it, so a
-selection change never does heavy work on the GUI thread.
+What a selection change needs on the GUI thread is stored here or a cheap slice of it
+(``cached_overview`` never computes); what is not there yet is computed off the GUI thread.
 """
 
 from __future__ import annotations
 
+import re
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -30,6 +33,9 @@ from viewer.core.headstats import HeadStats, HeadSummary
 from viewer.core.links import PairTokens, link_scores, text_words, word_token_indices
 from viewer.core.overview import DENSE_TOKENS, Overview, OverviewBuilder, head_overview
 from viewer.core.recording import Recording
+from viewer.core.terms import visible_rows
+
+_WORD_REST = re.compile(r"\S*")  # the rest of a whitespace word (str.split's whitespace)
 
 
 @dataclass(frozen=True, eq=False)
@@ -55,16 +61,51 @@ class WordUnits:
         return int(self.tokens[self.unit_of(token)][0])
 
 
+def recorded_text(rec: Recording) -> str:
+    """The part of the recording's text its tokens cover, to the end of the whitespace word the
+    last token ends in: the words beyond a cut text have no tokens, and a text of megabytes need
+    not be read to the end for the few thousand tokens the model took."""
+    ends = rec.offsets[:, 1] if rec.n_tokens else np.zeros(0)
+    end = int(ends.max()) if ends.size else 0
+    return rec.text[: _WORD_REST.match(rec.text, end).end()]
+
+
+def overlapping_tokens(offsets: np.ndarray):
+    """``word_token_indices(span, offsets)`` for many spans, each by two binary searches.
+
+    The tokens overlapping [s, e) are those with a non-empty span, start < e and end > s. When the
+    non-empty spans' starts and ends both grow with the token index (as a tokenizer's offsets of
+    one text do), those tokens are a run of consecutive ones, found by binary search; a text of
+    8,192 tokens and 3,000 words then takes milliseconds instead of a scan of every token per
+    word. Offsets out of order fall back to the scan."""
+    off = np.asarray(offsets).reshape(-1, 2)
+    start, end = off[:, 0], off[:, 1]
+    real = np.flatnonzero(end > start)  # tokens with a span, in order
+    starts, ends = start[real], end[real]
+    if np.any(np.diff(starts) < 0) or np.any(np.diff(ends) < 0):
+        return lambda span: word_token_indices(span, off)
+
+    def find(span) -> np.ndarray:
+        s, e = span
+        lo = int(np.searchsorted(ends, s, side="right"))  # first with end > s
+        hi = int(np.searchsorted(starts, e, side="left"))  # first with start >= e
+        return real[lo:hi].astype(np.int64)
+
+    return find
+
+
 def word_units(rec: Recording) -> WordUnits:
     t = rec.n_tokens
     of_token = np.full(t, -1, dtype=np.int64)
     groups: list[tuple[int, np.ndarray, str]] = []
-    for span in text_words(rec.text):
-        idx = word_token_indices(span, rec.offsets)
+    text = recorded_text(rec)
+    tokens_of = overlapping_tokens(rec.offsets)
+    for span in text_words(text):
+        idx = tokens_of(span)
         idx = idx[of_token[idx] < 0] if idx.size else idx
         if idx.size:
             of_token[idx] = 0
-            groups.append((int(idx[0]), idx, rec.text[span[0] : span[1]]))
+            groups.append((int(idx[0]), idx, text[span[0] : span[1]]))
     for i in np.flatnonzero(of_token < 0):
         groups.append((int(i), np.array([i], dtype=np.int64), rec.tokens[i]))
     groups.sort(key=lambda g: g[0])
@@ -109,31 +150,73 @@ class TextAnalysis:
             mean = self._cache[key] = self.cells(layer, None, slice(0, self.recording.n_tokens))
         return mean
 
-    def cells(self, layer: int, head: int | None, rows: slice, cols: slice | None = None) -> np.ndarray:
+    def cells(
+        self,
+        layer: int,
+        head: int | None,
+        rows: slice,
+        cols: slice | None = None,
+        tick: Callable[[], None] | None = None,
+    ) -> np.ndarray:
         """(rows, cols) float32 exact attention of one head, or the head mean, for a part of
-        the grid (a zoomed view of a long text); computed by blocks of rows."""
+        the grid (a zoomed view of a long text); computed by blocks of rows, calling ``tick``
+        before each (a caller's cancel check may raise there)."""
         scores = self.recording.layer(layer)
         cols = cols or slice(0, self.recording.n_tokens)
         out = np.empty((rows.stop - rows.start, cols.stop - cols.start), dtype=np.float32)
         heads = None if head is None else slice(head, head + 1)
         for part in scores.row_blocks(rows, heads=scores.n_heads if head is None else 1):
+            if tick is not None:
+                tick()
             block = scores.rows(part, heads)  # (h, b, T) float64
             out[part.start - rows.start : part.stop - rows.start] = block[:, :, cols].mean(axis=0)
         return out
 
-    def overview(self, layer: int, head: int | None) -> Overview:
+    def visible(self, layer: int, rows: slice, cols: slice) -> np.ndarray | None:
+        """(rows, cols) bool: which of these cells of ``layer`` a query sees (causal rule,
+        window; ``viewer.core.terms.visible_rows``), or None when it sees all of them. Only
+        the rows asked for are built, never the T × T mask."""
+        rec = self.recording
+        full = visible_rows(rows, rec.n_tokens, rec.causal, rec.terms.layer_window(layer))
+        if full is None:
+            return None
+        part = full[:, cols]
+        return None if part.all() else part
+
+    def row(self, layer: int, head: int | None, i: int) -> np.ndarray:
+        """(T,) float64 exact attention from query row i in one head or the head mean (zeros
+        where the row sees no key); the last row asked for is kept (a hovered row is asked
+        for again at every move along it)."""
+        key = (layer, head, i)
+        kept = self._cache.get("row")
+        if kept is not None and kept[0] == key:
+            return kept[1]
+        if (
+            self.dense
+            and self._cache.get(("grid", layer, head) if head is not None else ("mean", layer)) is not None
+        ):
+            values = np.asarray(self.grid(layer, head)[i], dtype=np.float64)
+        else:
+            scores = self.recording.layer(layer)
+            heads = None if head is None else slice(head, head + 1)
+            values = scores.rows(slice(i, i + 1), heads)[:, 0].mean(axis=0)  # (T,)
+        self._cache["row"] = (key, values)
+        return values
+
+    def cached_overview(self, layer: int, head: int | None) -> Overview | None:
+        """The overview of one head (or the head mean) if it is computed already, else None;
+        never computes, so the GUI thread may ask."""
+        return self._cache.get(("overview", layer, head))
+
+    def overview(self, layer: int, head: int | None, tick: Callable[[], None] | None = None) -> Overview:
         """The pooled overview of one head (or the head mean, ``head`` None): from the summary
-        pass when it has run, else computed now (one head, or the layer's head mean)."""
-        overviews = self._cache.get("overviews")
-        if overviews is not None:
-            return overviews[layer][head]
-        key = ("overview", layer, head)
-        view = self._cache.get(key)
+        pass when it has reached the layer, else computed now (one head, or the layer's head
+        mean; ``tick`` is called before each block of rows)."""
+        view = self.cached_overview(layer, head)
         if view is None:
             scores = self.recording.layer(layer)
-            view = self._cache[key] = (
-                head_overview(scores, head) if head is not None else mean_overview(scores)
-            )
+            view = head_overview(scores, head, tick=tick) if head is not None else mean_overview(scores, tick)
+            self._cache[("overview", layer, head)] = view
         return view
 
     def query_rows(self, i: int) -> np.ndarray:
@@ -189,7 +272,6 @@ def summarise(analysis: TextAnalysis, threads: int | None = None) -> TextAnalysi
     rec = analysis.recording
     stats = HeadStats(rec.n_layers, rec.n_heads)
     long_text = not analysis.dense
-    builders: dict[int, tuple[OverviewBuilder, OverviewBuilder]] = {}
 
     def consumers(layer: int) -> dict:
         special = rec.special
@@ -197,33 +279,36 @@ def summarise(analysis: TextAnalysis, threads: int | None = None) -> TextAnalysi
         if long_text:
             heads = OverviewBuilder(rec.n_heads, rec.n_tokens)
             mean = OverviewBuilder(1, rec.n_tokens)
-            builders[layer] = (heads, mean)
             more["heads"].append(heads.add)
             more["mean"] = [mean.add]
+            more["done"] = [lambda: publish(layer, heads, mean)]
         return more
+
+    def publish(layer: int, heads: OverviewBuilder, mean: OverviewBuilder) -> None:
+        # as soon as the layer is complete: the pane shows any of its heads at once from now
+        done = heads.done()
+        for h in range(rec.n_heads):
+            view = Overview(done.size, done.n_tokens, done.maximum[h : h + 1], done.mean[h : h + 1])
+            analysis._cache[("overview", layer, h)] = view
+        analysis._cache[("overview", layer, None)] = mean.done()
 
     check = check_recording(rec, threads=threads, consumers=consumers)
     stats.count_text()
-    if long_text:
-        overviews = {}
-        for layer, (heads, mean) in builders.items():
-            done = heads.done()
-            views = {
-                h: Overview(done.size, done.n_tokens, done.maximum[h : h + 1], done.mean[h : h + 1])
-                for h in range(rec.n_heads)
-            }
-            views[None] = mean.done()
-            overviews[layer] = views
-        analysis._cache["overviews"] = overviews
     return replace(analysis, check=check, heads=stats.summary())
 
 
-def mean_overview(scores) -> Overview:
-    """The overview of a layer's head mean, block by block of rows (``viewer.core.overview``)."""
+def mean_overview(scores, tick: Callable[[], None] | None = None) -> Overview:
+    """The overview of a layer's head mean, block by block of rows (``viewer.core.overview``);
+    ``tick`` is called before each block."""
     builder = OverviewBuilder(1, scores.n_tokens)
     from viewer.core.attention import layer_pass
 
-    layer_pass(scores, mean_consumers=[builder.add])
+    def add(block) -> None:
+        if tick is not None:
+            tick()
+        builder.add(block)
+
+    layer_pass(scores, mean_consumers=[add])
     return builder.done()
 
 

@@ -223,11 +223,12 @@ class Controller:
         self.view.set_status("cancelling…")
 
     # -- text sets, link pairs, shortcut search ---------------------------------------------------
-    def open_textset(self, path: str) -> None:
+    def open_textset(self, path) -> None:
+        """Read a text set: a path (its default columns), or a ``TextSource`` naming them."""
         if self.state.model is None:
             self.view.show_error("open a model before a text set: the list shows its predictions")
             return
-        self.worker.submit("textset", jobs.run_textset, "main", str(path))
+        self.worker.submit("textset", jobs.run_textset, "main", path if hasattr(path, "path") else str(path))
         self.view.show_panel("textset")
 
     def _done_textset(self, result) -> None:

@@ -153,9 +153,11 @@ def pair_grid_export(
     query: int | None = None,
     key: int | None = None,
     pane: str = "pair grid",
+    block: str = "max",
 ) -> PaneExport:
     """One head's (or the head mean's) attention as the pair grid draws it; ``query``/``key``
-    mark the selected cell."""
+    mark the selected cell. A long text is exported as the pane draws it: its overview, the
+    ``block`` max or mean (``overview_export``)."""
     import numpy as np
 
     from viewer.figures.pair_grid import mark_cell, pair_grid_into, visible_cells
@@ -166,6 +168,10 @@ def pair_grid_export(
     rec = analysis.recording
     layer = min(layer, rec.n_layers - 1)
     head = head if head is None else min(head, rec.n_heads - 1)
+    if not analysis.dense:
+        return overview_export(
+            analysis, source, layer=layer, head=head, block=block, query=query, key=key, pane=pane
+        )
     grid = np.asarray(analysis.grid(layer, head))
     visible = visible_cells(rec, layer)
     where = head_name(layer, head)
@@ -203,6 +209,78 @@ def pair_grid_export(
         for j in range(grid.shape[1])
     ]
     header = ["query", "query_token", "key", "key_token", "attention_probability", "visible"]
+    return PaneExport(fig, data, header, rows, export_stem(rec.text, pane), heading)
+
+
+def overview_export(
+    analysis,
+    source: Source,
+    *,
+    layer: int,
+    head: int | None,
+    block: str,
+    query: int | None = None,
+    key: int | None = None,
+    pane: str = "pair grid",
+) -> PaneExport:
+    """A long text's pair grid as its overview (``viewer.core.overview``): one value per block
+    of c × c tokens, the block max or block mean, NaN (empty in the CSV) for a block with no
+    visible cell. The overview must have been computed (the pane computes it when shown)."""
+    import numpy as np
+
+    from viewer.figures.pair_grid import mark_cell, pair_grid_into
+    from viewer.figures.style import head_name
+    from viewer.session.pair_view import block_values, overview_label, overview_units
+
+    rec = analysis.recording
+    where = head_name(layer, head)
+    overview = analysis.cached_overview(layer, head)
+    if overview is None:
+        raise HeadlightError(
+            f"the overview of {where} is still being computed; export it once the pane shows it"
+        )
+    values = block_values(overview, block)
+    shown = np.isfinite(values)
+    what = overview_label(overview, block)
+    units = overview_units(block)
+    fig = print_figure()
+    arts = pair_grid_into(
+        fig,
+        values,
+        rec.tokens,
+        visible=None if shown.all() else shown,
+        title=f"{where} · {what}",
+        units=units,
+        block=overview.size,
+        numbered=True,
+    )
+    if query is not None and query < rec.n_tokens:
+        mark_cell(arts, query, key if key is not None and key < rec.n_tokens else None)
+    heading = _heading(source.name, pane, where, what, rec.text)
+    add_heading(fig, heading)
+    edges = overview.edges()  # (n + 1,) token boundaries of the blocks
+    data = _base_data(pane, source, rec.text)
+    data.update(
+        {
+            "layer": layer,
+            "head": head,
+            "metric": units,
+            "units": units,
+            "overview": {"block": int(overview.size), "pooling": block, "tokens": rec.n_tokens},
+            "block_edges": plain(edges),
+            "rows": "blocks of query tokens",
+            "columns": "blocks of key tokens",
+            "causal": bool(rec.causal),
+            "values": plain(values.astype(np.float64)),
+        }
+    )
+    n = values.shape[0]
+    rows = [
+        [int(edges[i]), int(edges[i + 1]) - 1, int(edges[j]), int(edges[j + 1]) - 1, _cell(values[i, j])]
+        for i in range(n)
+        for j in range(n)
+    ]
+    header = ["query_first", "query_last", "key_first", "key_last", f"block_{block}"]
     return PaneExport(fig, data, header, rows, export_stem(rec.text, pane), heading)
 
 

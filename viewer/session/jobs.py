@@ -195,6 +195,7 @@ class TextSetResult:
     heads: Any  # HeadSummary over the whole set
     complete: bool = True
     scores: dict = field(default_factory=lambda: {"labelled": 0})  # reports' ``accuracy_data``
+    source: Any = None  # the ``TextSource`` read (columns, split), when not the file's defaults
     _containing: dict[str, frozenset[int]] = field(default_factory=dict, init=False, repr=False)
 
     @property
@@ -234,7 +235,7 @@ class TextSetResult:
         ]
 
 
-def run_textset(ctx: JobContext, slot: str, path: str) -> TextSetResult:
+def run_textset(ctx: JobContext, slot: str, path: Any) -> TextSetResult:
     """Every text of a text-set file: prediction, correctness, and set-wide head metrics.
 
     One pass of the reports' own ``scan_text_set``: the head map's "text set" scope shows the
@@ -243,9 +244,10 @@ def run_textset(ctx: JobContext, slot: str, path: str) -> TextSetResult:
     """
     from viewer.reports.heads import scan_text_set
     from viewer.reports.predictions import accuracy_data, set_labels
-    from viewer.reports.textsets import load_text_set
+    from viewer.reports.textsets import as_source, load_text_set
 
-    items = load_text_set(path)
+    source = as_source(path)  # a path, or a TextSource naming its columns and split
+    items = load_text_set(source)
     loaded = ctx.model(slot)
     gold = set_labels(loaded, items)  # a missing or unknown label is refused here, at once
     total = len(items)
@@ -264,7 +266,7 @@ def run_textset(ctx: JobContext, slot: str, path: str) -> TextSetResult:
         for p, item in zip(scan.rows, items, strict=True)
     )
     scores = accuracy_data(loaded.labels, gold, [p.predicted for p in scan.rows])
-    return TextSetResult(str(path), rows, scan.heads, scores=scores)
+    return TextSetResult(str(source.path), rows, scan.heads, scores=scores, source=source)
 
 
 # -- link pairs ---------------------------------------------------------------------------------

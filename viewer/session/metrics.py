@@ -16,6 +16,9 @@ from viewer.session.analysis import TextAnalysis, per_head_link
 from viewer.session.state import HEAD_MAP_METRICS, Selection
 
 EVIDENCE_METRICS = {"importance": "head_importance", "knockout": "head_knockout"}
+SIGNED_METRICS = {"knockout"}
+"""Metrics whose sign means something (a knocked-out head can raise the prediction's
+probability): drawn on a diverging scale centred at 0, as differences are."""
 
 
 @dataclass(frozen=True, eq=False)
@@ -84,7 +87,11 @@ def head_values(state: Selection) -> HeadValues | str:
             return other
         if np.shape(other) != np.shape(base):
             return "the compared checkpoint has a different number of layers or heads"
-        return HeadValues(
-            np.asarray(other) - base, f"Δ {label}", True, f"{HEAD_MAP_METRICS[name][0]}: compared − current"
-        )
-    return HeadValues(np.asarray(base), label, False, f"{HEAD_MAP_METRICS[name][0]} · {where}")
+        difference = np.asarray(other) - base
+        if not np.any(np.nan_to_num(difference)):
+            # a colour bar of ±1e-12 would paint noise: the runs agree exactly
+            return f"identical: the compared run gives the same {HEAD_MAP_METRICS[name][0]} in every head"
+        return HeadValues(difference, f"Δ {label}", True, f"{HEAD_MAP_METRICS[name][0]}: compared − current")
+    return HeadValues(
+        np.asarray(base), label, name in SIGNED_METRICS, f"{HEAD_MAP_METRICS[name][0]} · {where}"
+    )

@@ -41,6 +41,9 @@ from typing import Any
 from viewer.session.events import Event, same
 
 # name -> (label in the chooser, colour-bar label with units, explanation for the tooltip)
+BLOCK_MODES = {"max": "block max", "mean": "block mean"}
+"""How an overview pools a block of cells (docs/definitions.md, "Overview"), as the pane names it."""
+
 HEAD_MAP_METRICS: dict[str, tuple[str, str, str]] = {
     "entropy": (
         "entropy",

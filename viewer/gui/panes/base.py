@@ -21,6 +21,7 @@ from PySide6.QtGui import QCursor, QPainter, QPalette
 from PySide6.QtWidgets import (
     QAbstractItemView,
     QHBoxLayout,
+    QHeaderView,
     QLabel,
     QSizePolicy,
     QStackedWidget,
@@ -93,6 +94,11 @@ class TableDock(StateListener, QWidget):
         table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
         table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
         table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        # rows one line of text high (Qt's default is about 30 pixels): a short dock shows twice
+        # as many of them
+        rows = table.verticalHeader()
+        rows.setSectionResizeMode(QHeaderView.ResizeMode.Fixed)
+        rows.setDefaultSectionSize(table.fontMetrics().height() + 6)
         return table
 
     def show_selected(self, shown: Sequence, current) -> None:
@@ -237,12 +243,15 @@ class FigurePane(StateListener, QWidget):
         self.refresh()
 
     def refresh(self) -> None:
-        """Render now: ``render`` returns a build for the render thread, or a message."""
+        """Render now: ``render`` returns a build for the render thread, a message, or None
+        to keep the frame on screen (what it needs is still being computed)."""
         self._scheduled = False
         if self.canvas is None:
             self.show_message(self.waiting_text)
             return
         result = self.render()
+        if result is None:
+            return
         if isinstance(result, str):
             self.show_message(result)
             return
@@ -292,7 +301,7 @@ class FigurePane(StateListener, QWidget):
     def showing_figure(self) -> bool:
         return self.canvas is not None and self.stack.currentWidget() is self.canvas
 
-    def render(self) -> str | Callable[[], None]:  # pragma: no cover - abstract
+    def render(self) -> str | Callable[[], None] | None:  # pragma: no cover - abstract
         raise NotImplementedError
 
     def set_title(self, text: str) -> None:

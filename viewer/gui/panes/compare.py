@@ -7,12 +7,13 @@ show the metric difference (compared − current).
 
 from __future__ import annotations
 
-from PySide6.QtCore import QSize
+from PySide6.QtCore import QSize, Qt
 from PySide6.QtGui import QAction
 from PySide6.QtWidgets import (
     QButtonGroup,
     QFileDialog,
     QHBoxLayout,
+    QLabel,
     QLineEdit,
     QRadioButton,
     QToolButton,
@@ -47,14 +48,7 @@ class ComparePane(QWidget):
         group.addButton(self.model_radio)
         row.addWidget(self.text_radio)
         row.addWidget(self.model_radio)
-        row.addStretch(1)
-        for action in (compare_action, clear_action):
-            if action is not None:
-                button = QToolButton()
-                button.setDefaultAction(action)
-                row.addWidget(button)
-        layout.addLayout(row)
-        inputs = QHBoxLayout()
+        # one row: what to compare with, its input, and the buttons (a short dock keeps its grid)
         self.text_edit = QLineEdit()
         self.text_edit.setPlaceholderText("a second text to run through the same checkpoint")
         self.folder_edit = QLineEdit()
@@ -65,24 +59,54 @@ class ComparePane(QWidget):
         self.browse.setText("…")
         self.browse.setToolTip("choose the second checkpoint's folder")
         self.browse.clicked.connect(self._browse)
-        inputs.addWidget(self.text_edit, 1)
-        inputs.addWidget(self.folder_edit, 1)
-        inputs.addWidget(self.browse)
-        layout.addLayout(inputs)
+        row.addWidget(self.text_edit, 1)
+        row.addWidget(self.folder_edit, 1)
+        row.addWidget(self.browse)
+        for action in (compare_action, clear_action):
+            if action is not None:
+                button = QToolButton()
+                button.setDefaultAction(action)
+                row.addWidget(button)
+        layout.addLayout(row)
+        self.summary = QLabel("")
+        self.summary.setObjectName("paneMessage")
+        self.summary.setTextFormat(Qt.TextFormat.PlainText)
+        self.summary.setWordWrap(True)
+        self.summary.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        layout.addWidget(self.summary)
         self.grid = PairGridPane(state, slot="compare")
-        self.grid.setMinimumSize(160, 60)
+        self.grid.setMinimumSize(160, 130)
         layout.addWidget(self.grid, 1)
         self.text_radio.toggled.connect(self._write)
         self.text_edit.textChanged.connect(self._write)
         self.folder_edit.textChanged.connect(self._write)
         state.events.compare_target.connect(self._read)
+        state.events.compare.connect(self._summarise)
+        state.events.analysis.connect(self._summarise)
         self._read(state.compare_target)
+        self._summarise()
         self._show_inputs()
 
     def sizeHint(self) -> QSize:  # noqa: N802
         return QSize(480, 150)
 
+    def _summarise(self, *_args) -> None:
+        """Both predictions and their difference, or "identical" (``viewer.session.compare``)."""
+        current, compared = self.state.analysis, self.state.compare
+        if current is None or compared is None:
+            self.summary.setText("")
+            self.summary.setVisible(False)
+            return
+        from viewer.session.compare import compare_summary  # numpy: not before a run
+
+        model = self.state.model
+        summary = compare_summary(current, compared, self.state.compare_target, model and model.folder)
+        self.summary.setText("\n".join(summary.lines()))
+        self.summary.setVisible(True)
+
     def detach(self) -> None:
+        self.state.events.compare.disconnect(self._summarise)
+        self.state.events.analysis.disconnect(self._summarise)
         self.state.events.compare_target.disconnect(self._read)
         self.grid.detach()
 

@@ -79,18 +79,23 @@ class LinksPane(FigurePane):
                 "the target. Links show where the source's word attends."
             )
         layer, head = self.state.layer, self.state.head
-        view = link_view(a, layer, head, s, t)
-        names = a.units.names
-        scores, per_head, target_unit = view.scores, view.per_head, view.target_unit
-        head_title, source_name = head_name(layer, head), view.source_name
+        u = a.units
+        names = u.names
+        source_unit = u.unit_of(s)
+        target_unit = None if t is None or t >= n else u.unit_of(t)
+        head_title, source_name = head_name(layer, head), names[source_unit]
         self.set_title(f"links · from '{source_name}'")
 
         # what the figure's layout and per-head map depend on: the same for another head
-        drawn_for = (a.recording, view.source_unit, target_unit)
+        drawn_for = (a.recording, source_unit, target_unit)
 
         def build() -> None:  # render thread
             from viewer.figures.links import links_into, relink
 
+            # rows of attention from the source: every layer's for the per-head scores, which
+            # at thousands of tokens take the GUI thread far over 100 ms, so they are read here
+            view = link_view(a, layer, head, s, t)
+            scores, per_head = view.scores, view.per_head
             same = self.artists is not None and self._drawn_for == drawn_for
             self.scores, self.per_head = scores, per_head
             self.accuracy_artists = None

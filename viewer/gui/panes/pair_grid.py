@@ -3,19 +3,40 @@
 Hover a cell for its exact probability with both tokens and the head; click a cell to select
 its query as the source token and its key as the target token; wheel to zoom, right-drag (or
 Shift-drag) to pan, "fit" to see the whole text again.
+
+A text longer than ``DENSE_TOKENS`` tokens is shown as an overview (``viewer.session.pair_view``):
+blocks of c × c tokens, each its block max or block mean (the chooser in the header), named in
+the header and the figure's title. Zoomed in to at most ``EXACT_CELLS`` rows and columns, the
+view shows the exact cells instead. Overviews that the summary pass has not stored yet and exact
+cells are computed by the pane's own worker thread (``computer``), never on the GUI thread; the
+pane keeps showing what it drew until they arrive, and says in its header what it is computing.
 """
 
 from __future__ import annotations
 
-from PySide6.QtWidgets import QCheckBox, QPushButton
+from dataclasses import dataclass
+from typing import Any
+
+from PySide6.QtWidgets import QCheckBox, QComboBox, QPushButton
 
 from viewer.figures.blit import Blitter
 from viewer.figures.zoom import Extent, ZoomPan
 from viewer.gui.panes.base import FigurePane
+from viewer.session.state import BLOCK_MODES
 
 
 def _head_name(layer: int, head: int | None) -> str:
     return f"layer {layer} · head mean" if head is None else f"layer {layer} · head {head}"
+
+
+@dataclass(frozen=True, eq=False)
+class Shown:
+    """What the figure shows (set on the render thread, read by hover on the GUI thread)."""
+
+    analysis: Any  # TextAnalysis
+    layer: int
+    head: int | None
+    overview: Any  # Overview of a long text whose blocks are shown, else None
 
 
 class PairGridPane(FigurePane):
@@ -27,13 +48,32 @@ class PairGridPane(FigurePane):
         self.slot = slot  # "analysis" (the current run) or "compare"
         self.artists = None
         self._drawn_for = None  # the recording the axes were laid out for
+        self._drawn_view = None  # the view (rows, cols) of the last full draw
+        self.shown: Shown | None = None
         self.zoom = ZoomPan(both=True)
+        self.computer = None  # Worker for overviews and exact cells of long texts (first use)
+        self.exact = None  # the last ExactCells computed
+        self._asked: dict[str, tuple] = {}  # kind -> what is being computed
+        self._view = None  # (rows, cols) of tokens in view when zoomed; the GUI thread's copy
+        self._view_for = None  # the recording ``_view`` belongs to
+        self._fit_pending = False
+        self.block_box = QComboBox()
+        for mode, label in BLOCK_MODES.items():
+            self.block_box.addItem(label, mode)
+        self.block_box.setToolTip(
+            "a long text is shown in blocks of tokens: each block's largest probability (block "
+            "max: a single strong link stays visible) or the mean over its visible cells "
+            "(block mean: where the attention goes); zoom in for exact cells"
+        )
+        self.block_box.currentIndexChanged.connect(lambda _i: self.schedule())
+        self.block_box.setVisible(False)
         self.mean_box = QCheckBox("head mean")
         self.mean_box.setToolTip("show the mean over all heads of the selected layer")
         self.mean_box.toggled.connect(self._mean_toggled)
         self.fit_button = QPushButton("fit")
         self.fit_button.setToolTip("show the whole text again after zooming (wheel) or panning")
         self.fit_button.clicked.connect(self._fit)
+        self.header.addWidget(self.block_box)
         self.header.addWidget(self.mean_box)
         self.header.addWidget(self.fit_button)
         self.observe(slot, "layer", "head", "source", "target")
@@ -49,6 +89,11 @@ class PairGridPane(FigurePane):
     def analysis(self):
         return getattr(self.state, self.slot)
 
+    @property
+    def block_mode(self) -> str:
+        """ "max" or "mean": what an overview's blocks show."""
+        return self.block_box.currentData()
+
     def _sync_mean_box(self, head) -> None:
         self.mean_box.blockSignals(True)
         self.mean_box.setChecked(head is None)
@@ -62,70 +107,203 @@ class PairGridPane(FigurePane):
             self.state.select_head(self.state.layer, 0)
 
     def _fit(self) -> None:
-        self.request_draw(self.zoom.reset)
+        self._view = None
+        self._fit_pending = True
+        self.schedule()
+
+    # -- computing off the GUI thread -------------------------------------------------------------
+    @property
+    def idle(self) -> bool:
+        """Nothing scheduled, drawn or computed: the view shows the current selection."""
+        return super().idle and not self._asked
+
+    def _compute(self, kind: str, fn, *args) -> None:
+        """Have the pane's worker run ``fn(ctx, *args)`` unless it is at it already; a new job
+        of the same kind replaces (cancels) the one in progress."""
+        if self._asked.get(kind) == args:
+            return
+        if self.computer is None:
+            from viewer.gui.worker import Worker
+
+            self.computer = Worker(self)
+            self.computer.finished.connect(self._computed)
+            self.computer.failed.connect(self._compute_failed)
+            self.computer.cancelled.connect(lambda kind: None)
+        self._asked[kind] = args
+        self.computer.submit(kind, fn, *args)
+
+    def _computed(self, kind: str, result) -> None:
+        self._asked.pop(kind, None)
+        if kind == "cells":
+            self.exact = result
+        self.schedule()
+
+    def _compute_failed(self, kind: str, message: str) -> None:
+        self._asked.pop(kind, None)
+        self.show_message(
+            f"could not compute the {'overview' if kind == 'overview' else 'exact cells'}: {message}"
+        )
+
+    def detach(self) -> None:
+        if self.computer is not None:
+            self.computer.cancel()
+        super().detach()
 
     # -- drawing --------------------------------------------------------------------------------
-    def current_grid(self):
-        a = self.analysis
-        layer = min(self.state.layer, a.recording.n_layers - 1)
+    def selected(self) -> tuple[int, int | None]:
+        """(layer, head) of the selection, within the current recording's size."""
+        rec = self.analysis.recording
+        layer = min(self.state.layer, rec.n_layers - 1)
         head = self.state.head
         if head is not None:
-            head = min(head, a.recording.n_heads - 1)
-        return a.grid(layer, head), layer, head
+            head = min(head, rec.n_heads - 1)
+        return layer, head
 
     def render(self):
         a = self.analysis
         if a is None:
             self.set_title(self.title)
+            self.block_box.setVisible(False)
             return self._empty_text()
         rec = a.recording
-        grid, layer, head = self.current_grid()
+        layer, head = self.selected()
         name = _head_name(layer, head)
         model = self.state.model.name if self.state.model is not None else rec.model_name
         who = "compared: " + (a.origin or "second text") if self.slot == "compare" else model
-        title = f"{who} · {name}"
-        self.set_title(f"pair grid · {name} · {rec.n_tokens} tokens")
         source, target = self.state.source, self.state.target
         if source is None or source >= rec.n_tokens:
             source = target = None
         elif target is not None and target >= rec.n_tokens:
             target = None
+        if self._view_for is not rec:  # a new text is shown whole
+            self._view, self._view_for, self.exact = None, rec, None
+        view = self._view
+        reset, self._fit_pending = self._fit_pending, False
+        self.block_box.setVisible(not a.dense)
+        if a.dense:
+            return self._render_cells(a, layer, head, name, who, source, target, view, reset)
+        return self._render_overview(a, layer, head, name, who, source, target, view, reset)
+
+    def _render_cells(self, a, layer, head, name, who, source, target, view, reset):
+        from viewer.figures.style import ATTENTION_UNITS
+
+        rec = a.recording
+        title = f"{who} · {name}"
+        self.set_title(f"pair grid · {name} · {rec.n_tokens} tokens")
 
         def build() -> None:  # render thread
-            from viewer.figures.pair_grid import mark_cell, update_pair_grid, visible_cells
+            from viewer.figures.pair_grid import visible_cells
 
-            visible = visible_cells(rec, layer)
-            if self.artists is not None and self._drawn_for is rec:
-                # same tokens: only image, title, colour bar and outline change — unless the
-                # hatching behind masked cells appears or goes (a windowed layer next to a
-                # global one): the background the blitter keeps has it or not
-                hatched = self.artists.background.get_visible()
-                update_pair_grid(self.artists, grid, visible=visible, title=title)
-                self.fast = self.artists.background.get_visible() == hatched
-            else:
-                self._lay_out(rec.tokens, grid, visible, title)
-            self._drawn_for = rec
-            mark_cell(self.artists, source, target)
+            grid = a.grid(layer, head)  # computed here (render thread) when first asked for
+            self._draw(rec, grid, visible_cells(rec, layer), title, ATTENTION_UNITS, 1, view, reset)
+            self.shown = Shown(a, layer, head, None)
+            self._mark(source, target)
 
         return build
 
-    def _lay_out(self, tokens, grid, visible, title) -> None:
+    def _render_overview(self, a, layer, head, name, who, source, target, view, reset):
+        import numpy as np
+
+        from viewer.figures.style import ATTENTION_UNITS
+        from viewer.session import pair_view
+
+        rec = a.recording
+        t = rec.n_tokens
+        overview = a.cached_overview(layer, head)
+        if overview is None:  # the summary pass has not reached this layer: compute it now
+            self._compute("overview", pair_view.overview_job, a, layer, head)
+            self.set_title(f"pair grid · {name} · {t:,} tokens · computing the overview…")
+            if self._drawn_for is not rec:
+                return f"computing the overview of {name} ({t:,} tokens)…"
+            return None  # the figure keeps what it shows (its own title says what) until then
+        mode = self.block_mode
+        exact = None
+        region = None if view is None else pair_view.exact_region(*view, t)
+        if region is not None:
+            e = self.exact
+            if e is not None and e.covers(rec, layer, head, *view):
+                exact = e
+            else:
+                self._compute("cells", pair_view.cells_job, a, layer, head, *region)
+        else:
+            self._asked.pop("cells", None)
+            if self.computer is not None:
+                self.computer.cancel("cells")
+        if exact is not None:
+            what, units = "exact cells", ATTENTION_UNITS
+        else:
+            what, units = pair_view.overview_label(overview, mode), pair_view.overview_units(mode)
+        waiting = " · computing exact cells…" if region is not None and exact is None else ""
+        self.set_title(f"pair grid · {name} · {t:,} tokens · {what}{waiting}")
+        title = f"{who} · {name} · {what}"
+        values = pair_view.block_values(overview, mode)
+        visible = np.isfinite(values)
+        visible = None if visible.all() else visible
+
+        def build() -> None:  # render thread
+            from viewer.figures.pair_grid import show_exact
+
+            self._draw(rec, values, visible, title, units, overview.size, view, reset)
+            if exact is not None:
+                hatched = self.artists.background.get_visible()
+                show_exact(self.artists, exact.values, exact.rows, exact.cols, visible=exact.visible)
+                self.fast = self.fast and self.artists.background.get_visible() == hatched
+            self.shown = Shown(a, layer, head, None if exact is not None else overview)
+            self._mark(source, target)
+
+        return build
+
+    def _draw(self, rec, values, visible, title, units, block, view, reset) -> None:
+        """Show ``values`` (render thread): in place when the same text is laid out, else lay
+        it out; sets ``fast`` when only the blitter's artists changed."""
+        from viewer.figures.pair_grid import update_pair_grid
+
+        if reset:
+            self.zoom.reset()
+        if self.artists is not None and self._drawn_for is rec:
+            # same tokens: only image, title, colour bar and outline change — unless the
+            # hatching behind masked cells appears or goes (a windowed layer next to a
+            # global one): the background the blitter keeps has it or not; or the view moved
+            hatched = self.artists.background.get_visible()
+            update_pair_grid(self.artists, values, visible=visible, title=title, units=units)
+            self.fast = (
+                self.artists.background.get_visible() == hatched and view == self._drawn_view and not reset
+            )
+        else:
+            self._lay_out(rec.tokens, values, visible, title, units, block)
+        self._drawn_for = rec
+        self._drawn_view = view
+
+    def _mark(self, source, target) -> None:
+        from viewer.figures.pair_grid import mark_cell
+
+        mark_cell(self.artists, source, target)
+
+    def _lay_out(self, tokens, grid, visible, title, units, block) -> None:
         """Put ``tokens`` on the axes (render thread): reuse the axes when there are some."""
         from viewer.figures.pair_grid import pair_grid_into, retoken_pair_grid
 
+        numbered = block > 1  # a long text: positions before the tokens on the axes
+        kwargs = {"visible": visible, "title": title, "units": units, "block": block, "numbered": numbered}
         if self.artists is not None:  # laid out on this pane's one figure before
-            retoken_pair_grid(self.artists, grid, tokens, visible=visible, title=title)
+            retoken_pair_grid(self.artists, grid, tokens, **kwargs)
         else:
             if self.blitter is not None:
                 self.blitter.detach()
-            self.artists = pair_grid_into(self.figure, grid, tokens, visible=visible, title=title)
+            self.artists = pair_grid_into(self.figure, grid, tokens, **kwargs)
             # token labels and tick marks are painted by ``overlay_texts``: the same labels
             # and marks, in a fraction of the time matplotlib takes to lay out and draw ticks
             self.artists.ax.tick_params(labelbottom=False, labelleft=False, bottom=False, left=False)
             arts = self.artists
             self.blitter = Blitter(
                 self.agg,
-                [arts.image, arts.marker, arts.ax.title, arts.colorbar.ax if arts.colorbar else None],
+                [
+                    arts.image,
+                    arts.exact,
+                    arts.marker,
+                    arts.title,
+                    arts.colorbar.ax if arts.colorbar else None,
+                ],
             )
         n = len(tokens)
         self.zoom.attach(self.artists.ax, Extent(-0.5, n - 0.5, -0.5, n - 0.5))
@@ -143,8 +321,13 @@ class PairGridPane(FigurePane):
         return self._drawn_for
 
     def displayed_values(self):
-        """The values the image currently holds (masked array), for tests and export."""
-        return None if self.artists is None else self.artists.image.get_array()
+        """The values the image currently holds (masked array), for tests and export: the cells,
+        an overview's blocks, or the exact cells shown in their place."""
+        if self.artists is None:
+            return None
+        if self.artists.exact_span is not None:
+            return self.artists.exact.get_array()
+        return self.artists.image.get_array()
 
     # -- mouse ------------------------------------------------------------------------------------
     def _cell(self, event):
@@ -155,25 +338,13 @@ class PairGridPane(FigurePane):
         return cell_at(self.artists, event.xdata, event.ydata)
 
     def hover_at(self, event) -> str | None:
+        from viewer.session.pair_view import describe_cell
+
         cell = self._cell(event)
-        if cell is None or self.analysis is None:
+        shown = self.shown
+        if cell is None or shown is None or shown.analysis.recording is not self._drawn_for:
             return None
-        row, col = cell
-        rec = self.analysis.recording
-        grid, layer, head = self.current_grid()
-        if not rec.key_mask(layer)[row, col]:
-            why = (
-                "a causal query cannot see later keys"
-                if rec.causal and col > row
-                else "outside this layer's attention window"
-            )
-            value = f"masked ({why})"
-        else:
-            value = f"{float(grid[row, col]):.6f}"
-        return (
-            f"{_head_name(layer, head)}\nquery {row} '{rec.tokens[row]}' → "
-            f"key {col} '{rec.tokens[col]}'\nattention probability {value}"
-        )
+        return describe_cell(shown.analysis, shown.layer, shown.head, *cell, overview=shown.overview)
 
     def on_press(self, event) -> None:
         shift = bool(event.key and "shift" in str(event.key))
@@ -188,7 +359,7 @@ class PairGridPane(FigurePane):
 
     def on_motion(self, event) -> None:
         if self.zoom.dragging and self.zoom.drag_to(event.x, event.y):
-            self.canvas.draw_idle()
+            self._view_changed()
 
     def on_release(self, event) -> None:
         self.zoom.end_drag()
@@ -197,4 +368,18 @@ class PairGridPane(FigurePane):
         if self.artists is None or event.inaxes is not self.artists.ax:
             return
         if self.zoom.zoom(event.xdata, event.ydata, event.step):
-            self.canvas.draw_idle()
+            self._view_changed()
+
+    def _view_changed(self) -> None:
+        """The axes' limits moved (wheel or drag, GUI thread, between frames): keep the tokens
+        in view, and redraw — with exact cells when a long text's view is small enough."""
+        from viewer.session.pair_view import view_span
+
+        arts = self.artists
+        if self.zoom.zoomed:
+            x0, x1 = arts.ax.get_xlim()
+            y0, y1 = arts.ax.get_ylim()
+            self._view = (view_span(y0, y1, arts.n_rows), view_span(x0, x1, arts.n_cols))
+        else:
+            self._view = None
+        self.schedule()
