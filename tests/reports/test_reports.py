@@ -119,20 +119,23 @@ def test_planted_token_ranks_first(tmp_path):
         loss.backward()
         opt.step()
     items = [TextItem(sample(i % 2 == 0), None, i) for i in range(40)]
-    report = shortcut_search(loaded, items, batch_size=16)
-    top = report.words.ranking()[0]
-    assert top["token"] == "tuesday", report.words.ranking()[:3]
-    assert top["flip_rate"] > 0.8 and top["mean_drop"] > 0.3
-    assert report.texts == 40
-    # Phrases containing the planted word are listed separately and rank high too.
-    assert "tuesday" in report.phrases.ranking()[0]["token"]
+    # Both searches, screened (the default) and exhaustive, put the planted word first.
+    for exhaustive in (False, True):
+        report = shortcut_search(loaded, items, batch_size=16, exhaustive=exhaustive)
+        top = report.words.ranking()[0]
+        assert top["token"] == "tuesday", (exhaustive, report.words.ranking()[:3])
+        assert top["flip_rate"] > 0.8 and top["mean_drop"] > 0.3
+        assert report.texts == 40
+        # Phrases containing the planted word are listed separately and rank high too.
+        assert "tuesday" in report.phrases.ranking()[0]["token"]
+    assert report.mode == "exhaustive"
 
 
 def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
     """count = texts a word occurs in; drop = p(pred) before minus after deleting its tokens."""
     text = "the chain and the wheel"
     items = [TextItem(text, None, 1), TextItem("the invoice", None, 2), TextItem("the member", None, 3)]
-    report = shortcut_search(bert, items, phrases=False)
+    report = shortcut_search(bert, items, phrases=False, exhaustive=True)
     entry = report.words.entry("the")
     assert entry["count"] == 3
     # By hand for "chain" in the first text (reference: docs/definitions.md "Word knockout").
