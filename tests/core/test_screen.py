@@ -70,6 +70,9 @@ def test_state_round_trip_and_merge_equal_one_tally():
     for got in (parts, ScreenTally.from_state(whole.state())):
         state, want = got.state(), whole.state()
         assert set(state) == set(want) and all(np.array_equal(state[k], want[k]) for k in want)
+    # a causal LM's tally keeps no classes
+    plain = tally_of(texts, labels=())
+    assert ScreenTally.from_state(plain.state()).rows(["a"]) == plain.rows(["a"])
     rows = whole.rows(["a"])["a"]
     assert (rows["count"], rows["reaches"], rows["grad_input"]) == (2, 2, pytest.approx(0.35))
     assert whole.knockouts() == 5 and whole.texts == 3

@@ -131,6 +131,25 @@ def test_planted_token_ranks_first(tmp_path):
     assert report.mode == "exhaustive"
 
 
+@pytest.mark.parametrize("kind", ["gpt2", "deberta-v2"])
+def test_screened_search_on_a_decoder_and_on_deberta(kind, tmp_path):
+    """A causal LM (no classes: no association, the top next token predicted) and DeBERTa's
+    disentangled attention: the screened search runs, and every key it confirms has the
+    exhaustive search's count and flip rate (the same knockouts on the same texts)."""
+    loaded = open_model(tiny.save(tmp_path / kind, kind))
+    items = [TextItem(t, None, n) for n, t in enumerate(tiny.CORPUS * 2)]
+    screened = shortcut_search(loaded, items, batch_size=8)
+    every = shortcut_search(loaded, items, batch_size=8, exhaustive=True)
+    assert screened.mode == "screened" and screened.confirmed > 0 and screened.texts == len(items)
+    assert (
+        screened.forwards < every.forwards == len(items) + every.words.knockouts() + every.phrases.knockouts()
+    )
+    for got, want in ((screened.words, every.words), (screened.phrases, every.phrases)):
+        for key in got.keys():
+            a, b = got.entry(key), want.entry(key)
+            assert (a["count"], a["flip_rate"]) == (b["count"], b["flip_rate"]), key
+
+
 def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
     """count = texts a word occurs in; drop = p(pred) before minus after deleting its tokens."""
     text = "the chain and the wheel"

@@ -25,7 +25,6 @@ rule that picks what the knockout confirmation runs for.
 
 from __future__ import annotations
 
-import json
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -33,7 +32,7 @@ from typing import Any
 
 import numpy as np
 
-from viewer.core.shortcuts import MIN_TEXTS
+from viewer.core.shortcuts import MIN_TEXTS, _from_json_bytes, _json_bytes
 from viewer.core.stats import wilson_interval
 
 REACH = 0.1
@@ -55,14 +54,6 @@ LEAST = 256
 
 LEVEL = 0.05
 """Benjamini–Hochberg false-discovery level at which an association counts as significant."""
-
-
-def _json_bytes(value: Any) -> np.ndarray:
-    return np.frombuffer(json.dumps(value, ensure_ascii=False).encode("utf-8"), np.uint8)
-
-
-def _from_json_bytes(array: np.ndarray) -> Any:
-    return json.loads(np.asarray(array, dtype=np.uint8).tobytes().decode("utf-8"))
 
 
 @dataclass(frozen=True)
@@ -159,8 +150,8 @@ class ScreenTally:
             "labels": _json_bytes(list(self.labels)),
             "counts": np.array([[r[0], r[1]] for r in rows], dtype=np.int64).reshape(-1, 2),
             "sums": np.array([[r[2], r[3]] for r in rows], dtype=np.float64).reshape(-1, 2),
-            "predicted": np.array([self._predicted[k] for k in keys], dtype=np.int64).reshape(-1, c),
-            "gold": np.array([self._gold[k] for k in keys], dtype=np.int64).reshape(-1, c),
+            "predicted": np.array([self._predicted[k] for k in keys], dtype=np.int64).reshape(len(keys), c),
+            "gold": np.array([self._gold[k] for k in keys], dtype=np.int64).reshape(len(keys), c),
             "totals": self.totals.copy(),
         }
 

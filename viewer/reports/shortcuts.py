@@ -151,6 +151,22 @@ def knock_out(
                 tally.add_text(outcomes[name])
 
 
+def joined_state(words: Any, phrases: Any) -> State:
+    """A words tally's and a phrases tally's states as one, their keys prefixed."""
+    return {
+        **{f"words.{k}": v for k, v in words.state().items()},
+        **{f"phrases.{k}": v for k, v in phrases.state().items()},
+    }
+
+
+def split_state(tally: Any, state: State) -> tuple[Any, Any]:
+    """The words and phrases tallies (of class ``tally``) of a ``joined_state``; the exhaustive
+    search's states are read as they always were."""
+    words = tally.from_state({k[6:]: v for k, v in state.items() if k.startswith("words.")})
+    phrases = tally.from_state({k[8:]: v for k, v in state.items() if k.startswith("phrases.")})
+    return words, phrases
+
+
 def class_labels(loaded: LoadedModel) -> tuple[str, ...]:
     """The classes a knockout tally breaks its flips down by: a classifier's, else none."""
     return tuple(loaded.labels) if loaded.head_kind == "classifier" else ()
@@ -185,14 +201,10 @@ class ShortcutKind:
         return ShortcutReport(words, pairs, words.texts)
 
     def state(self, partial: ShortcutReport) -> State:
-        return {
-            **{f"words.{k}": v for k, v in partial.words.state().items()},
-            **{f"phrases.{k}": v for k, v in partial.phrases.state().items()},
-        }
+        return joined_state(partial.words, partial.phrases)
 
     def load(self, state: State) -> ShortcutReport:
-        words = KnockoutTally.from_state({k[6:]: v for k, v in state.items() if k.startswith("words.")})
-        pairs = KnockoutTally.from_state({k[8:]: v for k, v in state.items() if k.startswith("phrases.")})
+        words, pairs = split_state(KnockoutTally, state)
         return ShortcutReport(words, pairs, words.texts)
 
 
@@ -254,15 +266,10 @@ class ScreenKind:
         return ScreenReport(words, pairs)
 
     def state(self, partial: ScreenReport) -> State:
-        return {
-            **{f"words.{k}": v for k, v in partial.words.state().items()},
-            **{f"phrases.{k}": v for k, v in partial.phrases.state().items()},
-        }
+        return joined_state(partial.words, partial.phrases)
 
     def load(self, state: State) -> ScreenReport:
-        words = ScreenTally.from_state({k[6:]: v for k, v in state.items() if k.startswith("words.")})
-        pairs = ScreenTally.from_state({k[8:]: v for k, v in state.items() if k.startswith("phrases.")})
-        return ScreenReport(words, pairs)
+        return ScreenReport(*split_state(ScreenTally, state))
 
 
 @dataclass(frozen=True)
