@@ -331,6 +331,22 @@ def test_run_folders_are_keyed_by_content_and_options_and_hold_no_code(demo, ite
     assert len(list(work.iterdir())) == 3  # another input is another run
 
 
+def test_a_screened_search_keeps_both_passes_in_run_folders(demo, items, tmp_path, monkeypatch):
+    """The screen and the confirmation are two report kinds with their own run folders; the
+    same command again answers from both without running a shard, with the same numbers."""
+    texts = tmp_path / "t.jsonl"
+    texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in items[:16]), encoding="utf-8")
+    work = tmp_path / "work"
+    run = RunOptions(work=work, shard_size=8)
+    first = shortcuts_data(demo, texts, quiet=True, run=run)
+    assert sorted(p.name.split("-")[1] for p in work.iterdir()) == ["confirm", "screen"]
+    calls = []
+    for kind in (ScreenKind, ConfirmKind):
+        monkeypatch.setattr(kind, "map", lambda *a, **k: calls.append(a))
+    again = shortcuts_data(demo, texts, quiet=True, run=run)
+    assert calls == [] and again == first and first["mode"] == "screened"
+
+
 def test_window_scan_equals_heads_and_the_models_own_predictions(demo, items, tmp_path):
     """scan_text_set's head summary is `headlight heads`' to the bit (same kind, same shards);
     its predictions are transformers' own argmax of the classifier's logits."""
