@@ -8,10 +8,14 @@ each head of the last layer, ``head_focus``, and for a classifier the texts and 
 originally predicted class, ``by_class``), and words seen in at least 3 texts are ranked by the
 lower end of the Wilson interval of their flip rate.
 
-Cost: one forward per (text, word) plus one per (text, phrase), batched across the texts of a
-shard, so the work grows linearly with the total number of words. The search is a report kind
-(``ShortcutKind``) mapped over shards (``viewer.reports.shards``): each shard folds into its own
-pair of ``KnockoutTally``; the tallies merge in shard order.
+Cost of the exhaustive search (``ShortcutKind``): one forward per (text, word) plus one per
+(text, phrase), batched across the texts of a shard, so the work grows linearly with the total
+number of words. The default, screened search (docs/definitions.md, "Screen and
+confirmation") first scores every word with one forward and one backward per text
+(``ScreenKind``), then runs the same knockout loop for the candidates only (``ConfirmKind``),
+within 1/16 of the exhaustive knockouts. Each is a report kind mapped over shards
+(``viewer.reports.shards``): each shard folds into its own pair of tallies; the tallies merge
+in shard order.
 """
 
 from __future__ import annotations
