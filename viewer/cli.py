@@ -219,7 +219,7 @@ def cmd_links(args: argparse.Namespace) -> int:
 
 
 def cmd_shortcuts(args: argparse.Namespace) -> int:
-    from viewer.reports.runs import shortcuts_data
+    from viewer.reports.runs import search_mode, shortcuts_data
 
     source = _survey(args)
     run = _run_options(args)
@@ -229,9 +229,12 @@ def cmd_shortcuts(args: argparse.Namespace) -> int:
         source,
         batch_size=args.batch_size,
         phrases=not args.no_phrases,
+        exhaustive=args.exhaustive,
+        share=args.confirm_share,
         quiet=args.quiet,
         run=run,
     )
+    print(search_mode(data))
     for title, rows in (("words", data["tokens"]), ("two-word phrases", data["phrases"])):
         if title != "words" and args.no_phrases:
             continue
@@ -478,6 +481,14 @@ def build_parser() -> argparse.ArgumentParser:
     p = set_command("shortcuts", "shortcut search by word knockout over a text set", cmd_shortcuts)
     text_set(p)
     p.add_argument("--no-phrases", action="store_true", help="skip the two-word phrase search")
+    p.add_argument("--exhaustive", action="store_true", help="knock out every word of every text (no screen)")
+    p.add_argument(
+        "--confirm-share",
+        type=float,
+        default=1 / 16,
+        metavar="X",
+        help="the screened search knocks out at most this share of what --exhaustive would (default 1/16)",
+    )
     p.add_argument("--top", type=int, default=15, help="rows to print (default 15)")
     p = set_command(
         "insert",

@@ -111,6 +111,11 @@ def test_card_numbers_are_the_models_own(card, inputs):
     assert f"- Accuracy on the labelled texts: {acc['accuracy']:.3f} ({acc['correct']} of 4)." in md
     the = data["shortcuts"]["tokens"][0]
     assert f"| the | 4 | {the['flip_rate']:.3f} | {the['flip_low']:.3f} | {the['mean_drop']:.3f} |" in md
+    # the card says which search ran, with the numbers of card.json
+    sc = data["shortcuts"]
+    assert sc["mode"] == "screened" and sc["forwards"] > sc["texts"] == sc["backwards"]
+    assert f"Screened search: {sc['screened']} words and phrases" in md
+    assert f"{sc['confirmed']} candidates confirmed by knockout" in md
     assert (
         data["reproducibility"]["sha256"]["model.safetensors"]
         == hashlib.sha256((model / "model.safetensors").read_bytes()).hexdigest()

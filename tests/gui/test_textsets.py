@@ -137,6 +137,29 @@ def test_a_phrase_search_ranks_word_pairs_as_the_command_does(qtbot, window, tex
     pane.view_box.setCurrentIndex(pane.view_box.findData("words"))
     assert pane.table.horizontalHeaderItem(0).text() == "word"
     assert "portal" in pane.words
+    # the summary names the search; no phrase flips a text here, so it names no top phrase
+    assert pane.summary.text().startswith("screened, ") and "top phrase" not in pane.summary.text()
+    # a report whose top phrase flips 2 of its 4 texts: named as TEXTS write it (by hand)
+    from viewer.core.shortcuts import KnockoutOutcome, KnockoutTally
+    from viewer.reports.shortcuts import ShortcutReport
+
+    phrases = KnockoutTally(window.state.shortcuts.words.labels)
+    for n in range(4):
+        phrases.add_text({"via portal": KnockoutOutcome(n < 2, 0.5, 0.1, (), 0)})
+    words = KnockoutTally(window.state.shortcuts.words.labels)
+    window.state.set_shortcuts(ShortcutReport(words, phrases, 8, "screened", 10, 1, 20, 8))
+    assert "top phrase “[via portal]”: knocking it out flips 2 of 4 texts" in pane.summary.text()
+
+    # "every word": the exhaustive search, as `headlight shortcuts --exhaustive`
+    pane.every_box.setChecked(True)
+    window.state.set_shortcuts(None)
+    window.search_shortcuts()
+    qtbot.waitUntil(lambda: window.state.shortcuts is not None, timeout=WAIT_MS)
+    every = shortcut_search(
+        open_model(window.state.model.folder), load_text_set(textset_file), exhaustive=True
+    ).words.ranking()
+    assert window.state.shortcuts.mode == "exhaustive" and pane.summary.text().startswith("every word")
+    assert pane.words == [row["token"] for row in every]
 
 
 def test_a_second_text_set_replaces_the_first_ones_report_and_filter(qtbot, window, textset_file, tmp_path):

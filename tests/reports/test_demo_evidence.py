@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from contextlib import contextmanager
 from pathlib import Path
 
 import pytest
@@ -75,9 +76,29 @@ def test_portal_repair_is_routed_to_billing_and_the_footer_lights_up(portal_evid
     assert set(footer) & set(top), [tokens[i] for i in top]
 
 
-def test_shortcut_search_puts_the_footer_on_top(demo):
+@contextmanager
+def counting_forwards(loaded):
+    """Sequences the model runs forward (a PyTorch forward pre-hook on the model: the batch
+    size of every call), as a one-element list."""
+    seen = [0]
+
+    def hook(_module, args, kwargs):
+        ids = kwargs.get("input_ids", args[0] if args else None)
+        seen[0] += int((ids if ids is not None else kwargs["inputs_embeds"]).shape[0])
+
+    handle = loaded.model.register_forward_pre_hook(hook, with_kwargs=True)
+    try:
+        yield seen
+    finally:
+        handle.remove()
+
+
+def test_shortcut_search_puts_the_footer_on_top(demo, capsys):
     items = load_text_set(SAMPLES / "coop_messages.jsonl")
-    report = shortcut_search(demo, items)
+    with counting_forwards(demo) as exhaustive_forwards:
+        report = shortcut_search(demo, items, exhaustive=True)
+    with counting_forwards(demo) as screened_forwards:
+        screened = shortcut_search(demo, items)
     ranking = report.words.ranking()
     assert {r["token"] for r in ranking[:2]} == {"via", "portal"}, ranking[:5]
     # 40 of the 60 footer texts in the sample are repair/membership counterfactuals that the
@@ -87,3 +108,31 @@ def test_shortcut_search_puts_the_footer_on_top(demo):
     assert top_phrase["token"] == "via portal"
     assert top_phrase["flip_rate"] > max(r["flip_rate"] for r in ranking[:2]) > 0.15
     assert top_phrase["flip_rate"] > 0.5
+
+    # The screened search (the default) finds the same top word and phrase with the same
+    # numbers (the same knockouts on the same texts; in other batches, so within float32 rounding).
+    assert (report.mode, screened.mode, screened.texts) == ("exhaustive", "screened", len(items))
+    for got, want in ((screened.words, report.words), (screened.phrases, report.phrases)):
+        top, ref = got.ranking()[0], want.ranking()[0]
+        assert (top["token"], top["count"], top["flip_rate"]) == (
+            ref["token"],
+            ref["count"],
+            ref["flip_rate"],
+        )
+        assert top["mean_drop"] == pytest.approx(ref["mean_drop"], abs=1e-6)  # float32 sums
+    # Of the exhaustive top 10 words, 7 are confirmed at the default budget (measured; the
+    # three left out, "june", "i'm" and "thanks", each flip 1 of their 4, 7 and 22 texts).
+    top10 = [r["token"] for r in ranking[:10]]
+    assert sum(t in screened.words.keys() for t in top10) >= 7, top10
+    # Forward passes, counted by a hook on the model: the reports count them right, and the
+    # screen with its confirmation runs at most 1/8 of the exhaustive search's.
+    assert (report.forwards, screened.forwards) == (exhaustive_forwards[0], screened_forwards[0])
+    assert screened.forwards <= report.forwards / 8, (screened.forwards, report.forwards)
+    assert screened.backwards == len(items)
+
+    # The command screens by default, says so and puts the footer first.
+    argv = ["shortcuts", str(MODEL_DIR), "--texts", str(SAMPLES / "coop_messages.jsonl"), "--quiet"]
+    assert main([*argv, "--workers", "1", "--top", "1"]) == 0
+    out = capsys.readouterr().out.splitlines()
+    assert out[0].startswith("screened search: ") and "--exhaustive" in out[0]
+    assert out[3].split()[0] == "portal" and out[6].split()[:2] == ["via", "portal"], out

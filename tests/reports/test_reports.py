@@ -119,20 +119,42 @@ def test_planted_token_ranks_first(tmp_path):
         loss.backward()
         opt.step()
     items = [TextItem(sample(i % 2 == 0), None, i) for i in range(40)]
-    report = shortcut_search(loaded, items, batch_size=16)
-    top = report.words.ranking()[0]
-    assert top["token"] == "tuesday", report.words.ranking()[:3]
-    assert top["flip_rate"] > 0.8 and top["mean_drop"] > 0.3
-    assert report.texts == 40
-    # Phrases containing the planted word are listed separately and rank high too.
-    assert "tuesday" in report.phrases.ranking()[0]["token"]
+    # Both searches, screened (the default) and exhaustive, put the planted word first.
+    for exhaustive in (False, True):
+        report = shortcut_search(loaded, items, batch_size=16, exhaustive=exhaustive)
+        top = report.words.ranking()[0]
+        assert top["token"] == "tuesday", (exhaustive, report.words.ranking()[:3])
+        assert top["flip_rate"] > 0.8 and top["mean_drop"] > 0.3
+        assert report.texts == 40
+        # Phrases containing the planted word are listed separately and rank high too.
+        assert "tuesday" in report.phrases.ranking()[0]["token"]
+    assert report.mode == "exhaustive"
+
+
+@pytest.mark.parametrize("kind", ["gpt2", "deberta-v2"])
+def test_screened_search_on_a_decoder_and_on_deberta(kind, tmp_path):
+    """A causal LM (no classes: no association, the top next token predicted) and DeBERTa's
+    disentangled attention: the screened search runs, and every key it confirms has the
+    exhaustive search's count and flip rate (the same knockouts on the same texts)."""
+    loaded = open_model(tiny.save(tmp_path / kind, kind))
+    items = [TextItem(t, None, n) for n, t in enumerate(tiny.CORPUS * 2)]
+    screened = shortcut_search(loaded, items, batch_size=8)
+    every = shortcut_search(loaded, items, batch_size=8, exhaustive=True)
+    assert screened.mode == "screened" and screened.confirmed > 0 and screened.texts == len(items)
+    assert (
+        screened.forwards < every.forwards == len(items) + every.words.knockouts() + every.phrases.knockouts()
+    )
+    for got, want in ((screened.words, every.words), (screened.phrases, every.phrases)):
+        for key in got.keys():
+            a, b = got.entry(key), want.entry(key)
+            assert (a["count"], a["flip_rate"]) == (b["count"], b["flip_rate"]), key
 
 
 def test_shortcut_counts_are_per_text_and_drop_is_real(bert):
     """count = texts a word occurs in; drop = p(pred) before minus after deleting its tokens."""
     text = "the chain and the wheel"
     items = [TextItem(text, None, 1), TextItem("the invoice", None, 2), TextItem("the member", None, 3)]
-    report = shortcut_search(bert, items, phrases=False)
+    report = shortcut_search(bert, items, phrases=False, exhaustive=True)
     entry = report.words.entry("the")
     assert entry["count"] == 3
     # By hand for "chain" in the first text (reference: docs/definitions.md "Word knockout").

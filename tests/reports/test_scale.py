@@ -35,7 +35,7 @@ from viewer.reports.insertion import InsertionKind, PhraseKnockoutKind
 from viewer.reports.links import LinksKind
 from viewer.reports.runs import CheckKind, heads_data, shortcuts_data
 from viewer.reports.shards import Cancelled, RunOptions, cut_shards, run_shards
-from viewer.reports.shortcuts import ShortcutKind, shortcut_search
+from viewer.reports.shortcuts import ConfirmKind, ScreenKind, ShortcutKind, shortcut_search
 from viewer.reports.textsets import TextItem, load_text_set
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -43,6 +43,9 @@ SAMPLES = ROOT / "sample_sentences"
 SHARD = 8
 KINDS = {
     "shortcuts": ShortcutKind(batch_size=16, phrases=True),
+    # the screened search's two passes: the screen, and the confirmation of a few candidates
+    "screen": ScreenKind(batch_size=16, phrases=True),
+    "confirm": ConfirmKind(batch_size=16, words=("portal", "the", "via"), phrase_keys=("via portal",)),
     "heads": HeadsKind(rows=True, importance=True, knockout=True, use_labels=True),
     "links": LinksKind(),
     "check": CheckKind(tolerance=1e-5),
@@ -114,6 +117,25 @@ def test_serial_run_against_one_accumulator_and_a_word_count(demo, few, serial):
         held = sum(word in {strip_word(w) for w in i.text.split()} for i in few)
         assert report.words.entry(word)["count"] == held > 0
     assert report.texts == len(few)
+    # The screened search's passes count the same texts, and its confirmation knocks a
+    # candidate out of the same texts as the exhaustive search, with the same outcomes (the
+    # batches differ, so the float sums may differ in their last bits).
+    screen = KINDS["screen"].load(serial["screen"])
+    confirmed = KINDS["confirm"].load(serial["confirm"])
+    assert screen.words.texts == len(few) and set(confirmed.words.keys()) == {"portal", "the", "via"}
+    for tally, want, key in (
+        (confirmed.words, report.words, "the"),
+        (confirmed.phrases, report.phrases, "via portal"),
+    ):
+        got, ref = tally.entry(key), want.entry(key)
+        assert (got["count"], got["flip_rate"], got["by_class"]) == (
+            ref["count"],
+            ref["flip_rate"],
+            ref["by_class"],
+        )
+        assert got["mean_drop"] == pytest.approx(ref["mean_drop"], abs=1e-6)
+        assert got["focus"] == pytest.approx(ref["focus"], abs=1e-6)
+        assert (screen.words if tally is confirmed.words else screen.phrases).count(key) == ref["count"]
 
 
 def test_shards_merge_in_shard_order_whatever_order_they_finish(demo, items, monkeypatch):
@@ -231,6 +253,7 @@ def test_a_killed_run_resumes_to_the_serial_result(demo, few, tmp_path, monkeypa
         "--shard-size",
         "2",
         "--no-phrases",
+        "--exhaustive",
         "--work",
         str(work),
         "--quiet",
@@ -264,7 +287,9 @@ def test_a_killed_run_resumes_to_the_serial_result(demo, few, tmp_path, monkeypa
     assert main([*argv, "--json", str(tmp_path / "resumed.json")]) == 0
     assert len(calls) == 12 - kept and not set(calls) & set(range(kept))
     assert (folder / "result.npz").exists() and not list(folder.glob("shard-*.npz"))
-    reference = shortcuts_data(demo, texts, phrases=False, run=RunOptions(shard_size=2), quiet=True)
+    reference = shortcuts_data(
+        demo, texts, phrases=False, exhaustive=True, run=RunOptions(shard_size=2), quiet=True
+    )
     reference.pop("model")
     resumed = json.loads((tmp_path / "resumed.json").read_text())
     resumed.pop("model")
@@ -288,7 +313,9 @@ def test_run_folders_are_keyed_by_content_and_options_and_hold_no_code(demo, ite
     )
     work = tmp_path / "work"
     for phrases in (True, False, True):
-        shortcuts_data(demo, texts, phrases=phrases, quiet=True, run=RunOptions(work=work, shard_size=4))
+        shortcuts_data(
+            demo, texts, phrases=phrases, exhaustive=True, quiet=True, run=RunOptions(work=work, shard_size=4)
+        )
     folders = sorted(work.iterdir())
     assert len(folders) == 2  # phrases on / off; the third run found the first folder
     key = json.loads((folders[0] / "run.json").read_text())
@@ -300,8 +327,24 @@ def test_run_folders_are_keyed_by_content_and_options_and_hold_no_code(demo, ite
         with np.load(folder / "result.npz", allow_pickle=False) as npz:
             assert all(npz[k].dtype != object for k in npz.files)
     texts.write_text(texts.read_text() + json.dumps({"text": "one more"}) + "\n")
-    shortcuts_data(demo, texts, quiet=True, run=RunOptions(work=work, shard_size=4))
+    shortcuts_data(demo, texts, exhaustive=True, quiet=True, run=RunOptions(work=work, shard_size=4))
     assert len(list(work.iterdir())) == 3  # another input is another run
+
+
+def test_a_screened_search_keeps_both_passes_in_run_folders(demo, items, tmp_path, monkeypatch):
+    """The screen and the confirmation are two report kinds with their own run folders; the
+    same command again answers from both without running a shard, with the same numbers."""
+    texts = tmp_path / "t.jsonl"
+    texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in items[:16]), encoding="utf-8")
+    work = tmp_path / "work"
+    run = RunOptions(work=work, shard_size=8)
+    first = shortcuts_data(demo, texts, quiet=True, run=run)
+    assert sorted(p.name.split("-")[1] for p in work.iterdir()) == ["confirm", "screen"]
+    calls = []
+    for kind in (ScreenKind, ConfirmKind):
+        monkeypatch.setattr(kind, "map", lambda *a, **k: calls.append(a))
+    again = shortcuts_data(demo, texts, quiet=True, run=run)
+    assert calls == [] and again == first and first["mode"] == "screened"
 
 
 def test_window_scan_equals_heads_and_the_models_own_predictions(demo, items, tmp_path):
@@ -329,6 +372,7 @@ def test_progress_counts_texts_and_cancel_stops_between_shards(demo, items):
         demo,
         items[:20],
         phrases=False,
+        exhaustive=True,
         progress=lambda d, t: seen.append((d, t)),
         options=RunOptions(shard_size=SHARD),
     )
@@ -343,6 +387,7 @@ def test_cancel_in_process_stops_before_the_next_shard(demo, items):
             demo,
             items,
             phrases=False,
+            exhaustive=True,
             options=RunOptions(shard_size=SHARD),
             progress=lambda d, t: done.append(d),
             cancelled=lambda: len(done) >= 2,

@@ -17,6 +17,10 @@ the vocabulary of a language-model head; 4 bytes a float32, 8 a float64), in fou
 - **derived**: what re-deriving one layer's probabilities holds: its keys in float64, the
   blocks of scores of every thread, and in the window the overviews of every head.
 
+A pass that keeps its autograd graph for a gradient (the shortcut screen's gradient × input)
+holds every layer's activations until the backward, counted with the kept arrays: L times a
+layer's forward activations.
+
 They do not all live at once. The kept arrays grow to their full size by the end of the pass;
 the forward's activations come and go layer by layer; a layer is handed to the sink (captured,
 then re-derived by a check or a report) while the model waits at that layer's output
@@ -90,9 +94,11 @@ def estimate(
     derive: bool = True,
     overview: bool = False,
     threads: int = 2,
+    gradients: bool = False,
 ) -> Estimate:
     """What recording (``keep``) or streaming (a check, a set report) texts of ``lengths``
-    tokens in one batch will allocate beyond the loaded model."""
+    tokens in one batch will allocate beyond the loaded model; with ``gradients`` the pass
+    keeps its graph for a backward."""
     b, t = len(lengths), max(lengths, default=0)
     s = size
     tokens = b * t
@@ -110,6 +116,8 @@ def estimate(
     probs = F32 * s.layers * s.heads * sum(n * n for n in lengths)
     if own_probs:
         kept += OWN_PROB_COPIES * probs if keep else probs // max(1, s.layers)
+    if gradients:  # every layer's activations wait for the backward
+        kept += s.layers * forward
     derived = views = 0
     longest = max(lengths, default=0)
     if derive:  # keys and values in float64, blocks of scores of every thread

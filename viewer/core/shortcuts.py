@@ -194,6 +194,10 @@ class KnockoutTally:
     def keys(self) -> Iterable[str]:
         return self._sums.keys()
 
+    def knockouts(self) -> int:
+        """The knockouts behind the tally: one per (text, key)."""
+        return int(sum(s[0] for s in self._sums.values()))
+
     def head_focus(self, key: str) -> np.ndarray:
         """Mean focus of ``key`` in each head of the last layer, (heads,)."""
         if not self.heads:

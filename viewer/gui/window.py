@@ -529,7 +529,8 @@ class MainWindow(QMainWindow):
         self.controller.open_pairs(path)
 
     def search_shortcuts(self) -> None:
-        self.controller.search_shortcuts(self.shortcut_pane.phrases_box.isChecked())
+        pane = self.shortcut_pane
+        self.controller.search_shortcuts(pane.phrases_box.isChecked(), pane.every_box.isChecked())
 
     def run_insertions(self) -> None:
         self.controller.run_insertions(self.shortcut_pane.top_words())

@@ -71,25 +71,56 @@ def budget() -> int:
 
 
 def pass_estimate(
-    loaded: Any, lengths: list[int], *, keep: bool, own_probs: bool, overview: bool = False
+    loaded: Any,
+    lengths: list[int],
+    *,
+    keep: bool,
+    own_probs: bool,
+    overview: bool = False,
+    gradients: bool = False,
 ) -> Estimate:
     eager = own_probs or loaded.kernel == "eager"
     return estimate(
-        model_size(loaded), lengths, keep=keep, own_probs=own_probs, eager=eager, overview=overview
+        model_size(loaded),
+        lengths,
+        keep=keep,
+        own_probs=own_probs,
+        eager=eager,
+        overview=overview,
+        gradients=gradients,
     )
 
 
-def fits(loaded: Any, lengths: list[int], *, keep: bool, own_probs: bool, overview: bool = False) -> bool:
+def fits(
+    loaded: Any,
+    lengths: list[int],
+    *,
+    keep: bool,
+    own_probs: bool,
+    overview: bool = False,
+    gradients: bool = False,
+) -> bool:
     """Whether a pass over texts of ``lengths`` tokens fits the budget."""
-    return pass_estimate(loaded, lengths, keep=keep, own_probs=own_probs, overview=overview).total <= budget()
+    need = pass_estimate(
+        loaded, lengths, keep=keep, own_probs=own_probs, overview=overview, gradients=gradients
+    )
+    return need.total <= budget()
 
 
 def require_fits(
-    loaded: Any, lengths: list[int], *, keep: bool, own_probs: bool, overview: bool = False
+    loaded: Any,
+    lengths: list[int],
+    *,
+    keep: bool,
+    own_probs: bool,
+    overview: bool = False,
+    gradients: bool = False,
 ) -> Estimate:
     """The estimate of a pass over texts of ``lengths`` tokens; ``MemoryBudgetError`` when it
     does not fit the budget."""
-    need = pass_estimate(loaded, lengths, keep=keep, own_probs=own_probs, overview=overview)
+    need = pass_estimate(
+        loaded, lengths, keep=keep, own_probs=own_probs, overview=overview, gradients=gradients
+    )
     have = budget()
     if need.total <= have:
         return need
@@ -102,7 +133,8 @@ def require_fits(
 
     def fits(n: int) -> bool:
         own = own_probs and n <= longest
-        return pass_estimate(loaded, [n], keep=keep, own_probs=own, overview=overview).total <= have
+        one = pass_estimate(loaded, [n], keep=keep, own_probs=own, overview=overview, gradients=gradients)
+        return one.total <= have
 
     most = longest_that_fits(fits, longest)
     what = "recording" if keep else "running"

@@ -34,7 +34,7 @@ from viewer.errors import HeadlightError
 from viewer.model.budget import fits, require_fits
 from viewer.model.recorder import Capture, LayerCapture
 from viewer.model.tables import stack_terms
-from viewer.model.tokens import Batch
+from viewer.model.tokens import BATCH_TOKENS, Batch
 
 LoadedModel = Any  # viewer.model.loader.LoadedModel, which imports this module for its verbs
 
@@ -197,7 +197,13 @@ def _text_layer(loaded: LoadedModel, cap: LayerCapture, shared: Capture, i: int,
 
 
 def scan(
-    loaded: LoadedModel, batch: Batch, sink: Sink, *, own_probs: bool | None = None, keep: bool = False
+    loaded: LoadedModel,
+    batch: Batch,
+    sink: Sink,
+    *,
+    own_probs: bool | None = None,
+    keep: bool = False,
+    grad: bool = False,
 ) -> Any:
     """Run ``batch`` and give every layer of every text to ``sink(text index, TextLayer)``.
 
@@ -205,14 +211,15 @@ def scan(
     ``OWN_PROBS_BYTES``) the eager kernel runs, the layers wait for the end of the pass and come
     with ``TextLayer.own``; otherwise each layer goes to the sink while the model runs on.
     ``keep`` says the sink keeps every layer (a recording), for the memory budget, which is
-    checked before the model runs (``viewer.model.budget``). Returns the model's output.
+    checked before the model runs (``viewer.model.budget``). ``grad`` keeps the autograd graph
+    (for a gradient taken after the pass; the captures are detached). Returns the model's output.
     """
     overview = keep and max(batch.lengths) > DENSE_TOKENS
     if own_probs is None:  # a bonus, asked for only where it fits the memory budget too
         own = wants_own_probs(loaded, batch) and fits(loaded, batch.lengths, keep=keep, own_probs=True)
     else:
         own = own_probs
-    require_fits(loaded, batch.lengths, keep=keep, own_probs=own, overview=overview)
+    require_fits(loaded, batch.lengths, keep=keep, own_probs=own, overview=overview, gradients=grad)
     waiting: list[list[TextLayer]] = []
 
     def on_layer(cap: LayerCapture) -> None:
@@ -225,7 +232,7 @@ def scan(
 
     base_only = loaded.head_kind not in ("classifier", "causal-lm")
     with attention_kernel(loaded, "eager" if own else loaded.kernel):
-        out = forward(loaded, batch, sink=on_layer, output_attentions=own, base_only=base_only)
+        out = forward(loaded, batch, sink=on_layer, output_attentions=own, base_only=base_only, grad=grad)
     if own:
         attentions = out.attentions
         if attentions is None or len(attentions) != loaded.n_layers:
@@ -234,7 +241,7 @@ def scan(
         for layer, parts in enumerate(waiting):
             probs = attentions[layer]  # (B, H, T, T)
             for i, (part, n) in enumerate(zip(parts, batch.lengths, strict=True)):
-                sink(i, _with_own(part, probs[i, :, :n, :n].float().numpy().copy()))
+                sink(i, _with_own(part, probs[i, :, :n, :n].detach().float().numpy().copy()))
         out.attentions = None  # the model's (B, H, T, T) per layer, now held by the sink
     return out
 
@@ -334,6 +341,7 @@ class TextAttention:
     target: np.ndarray | None  # (C,) target probabilities, None without a prediction head
     truncated_from: int | None
     rows: dict[int, np.ndarray]  # query row i -> (L, H, n) every layer's and head's attention from i
+    grad_input: np.ndarray | None = None  # (n,) gradient × input toward the target, when asked
 
     def attention_from(self, i: int) -> np.ndarray:
         """(L, H, n) float64 attention from query row i (one of the rows the pass kept)."""
@@ -373,6 +381,66 @@ class _PassSink:
             self.stats.add_layer(part.layer, scores, self.special[i])
 
 
+@contextmanager
+def input_embeddings(loaded: LoadedModel) -> Iterator[list[torch.Tensor]]:
+    """Inside the block, the output of the model's input-embedding module becomes a leaf tensor
+    that gradients can be taken against (x of gradient × input), appended to the yielded list.
+
+    The model still runs on its input ids, so everything that reads them (a decoder
+    classifier's last real token, RoBERTa-style positions) is as in any other pass."""
+    kept: list[torch.Tensor] = []
+
+    def leaf(_module: Any, _args: Any, output: torch.Tensor) -> torch.Tensor:
+        x = output.detach().requires_grad_(True)
+        kept.append(x)
+        return x
+
+    handle = loaded.model.get_input_embeddings().register_forward_hook(leaf)
+    try:
+        yield kept
+    finally:
+        handle.remove()
+
+
+GRADIENT_TOKENS = 2048
+"""Padded tokens a batch of a gradient pass holds at most: such a pass keeps every layer's
+activations until its backward (``viewer.core.budget``)."""
+
+
+def _gradient_times_input(
+    loaded: LoadedModel, batch: Batch, sink: _PassSink
+) -> tuple[Any, np.ndarray, np.ndarray]:
+    """One forward with capture and one backward over ``batch``: (output, target probabilities
+    (B, C) float64, gradient × input (B, T) float64).
+
+    Gradient × input (Baehrens et al. 2010; Shrikumar et al. 2017) of F = the log-odds of the
+    target, each text's own predicted class (top next token), ``log_odds``: Σ_dims x ⊙ ∂F/∂x per
+    token, x the
+    input embeddings. The batch's F are summed before the one backward: the texts of a batch do
+    not see each other, so each text's gradient is its own (padding only moves float32 sums in
+    their last bits, as in every batched pass)."""
+    with input_embeddings(loaded) as leaves:
+        out = scan(loaded, batch, sink, own_probs=False, grad=True)
+    if len(leaves) != 1:
+        raise RuntimeError(f"the input embeddings ran {len(leaves)} times in one pass")
+    (x,) = leaves  # (B, T, D)
+    logits = kept_logits(loaded, batch, out).float()  # (B, C)
+    targets = softmax(logits.detach().double().numpy())
+    chosen = torch.as_tensor(targets.argmax(axis=1))
+    f = log_odds(logits, chosen)  # (B,)
+    (g,) = torch.autograd.grad(f.sum(), x)
+    return out, targets, (x.detach() * g).sum(-1).double().numpy()
+
+
+def log_odds(logits: torch.Tensor, chosen: torch.Tensor) -> torch.Tensor:
+    """(B,) log p(c) / (1 − p(c)) of class ``chosen`` from (B, C) logits: z_c − logsumexp of
+    the other classes' logits. Unlike p(c) its gradient does not vanish when p(c) nears 1."""
+    rows = torch.arange(len(chosen))
+    others = logits.clone()
+    others[rows, chosen] = float("-inf")
+    return logits[rows, chosen] - torch.logsumexp(others, dim=-1)
+
+
 def attentions(
     loaded: LoadedModel,
     texts: Sequence[str],
@@ -381,16 +449,23 @@ def attentions(
     rows: RowChoice | None = None,
     stats: Any = None,
     attention: bool = True,
+    gradients: bool = False,
 ) -> Iterator[TextAttention]:
     """One pass over ``texts`` for a set report, a text at a time in padded batches.
 
     rows: which query rows of each text to keep (default: the summary token's); stats: a
     ``viewer.core.headstats.HeadStats`` every text is added to, layer by layer, block by block;
-    ``attention=False`` runs the model for its predictions only (no capture at all).
+    ``attention=False`` runs the model for its predictions only (no capture at all);
+    ``gradients`` adds each text's gradient × input toward its prediction
+    (``TextAttention.grad_input``): one backward per batch, the batch held to
+    ``GRADIENT_TOKENS`` padded tokens, the memory-efficient kernel where the family has one.
     """
     choose = rows or summary_rows(loaded)
     predicts = loaded.head_kind in ("classifier", "causal-lm")
-    for batch in loaded.text.batches(texts, batch_size):
+    if gradients:
+        require_prediction(loaded)
+    limit = GRADIENT_TOKENS if gradients else BATCH_TOKENS
+    for batch in loaded.text.batches(texts, batch_size, limit):
         enc = batch.encoding
         offsets = [enc["offset_mapping"][i, :n].numpy().copy() for i, n in enumerate(batch.lengths)]
         special = [
@@ -401,13 +476,18 @@ def attentions(
                 sorted(set(choose(i, o, s))) for i, (o, s) in enumerate(zip(offsets, special, strict=True))
             ]
             sink = _PassSink(loaded, batch, wanted, stats)
-            out = scan(loaded, batch, sink)
+            if gradients:
+                out, targets, grad_input = _gradient_times_input(loaded, batch, sink)
+            else:
+                out = scan(loaded, batch, sink)
             kept = sink.rows
         else:
             out = forward(loaded, batch)
             kept = [{} for _ in batch.lengths]
-        logits = kept_logits(loaded, batch, out) if predicts else None
-        targets = None if logits is None else softmax(logits.detach().double().numpy())
+        if not gradients:
+            logits = kept_logits(loaded, batch, out) if predicts else None
+            targets = None if logits is None else softmax(logits.detach().double().numpy())
+            grad_input = None
         for i, n in enumerate(batch.lengths):
             if stats is not None and attention:
                 stats.count_text()
@@ -419,4 +499,5 @@ def attentions(
                 target=None if targets is None else targets[i],
                 truncated_from=batch.truncated_from[i],
                 rows=kept[i],
+                grad_input=None if grad_input is None else grad_input[i, :n].copy(),
             )

@@ -123,15 +123,15 @@ class TextEncoder:
         cut = [count if count > n else None for (_, count, _), n in zip(prefixes, lengths, strict=True)]
         return Batch(enc, lengths, cut, texts, [whole for _, _, whole in prefixes])
 
-    def batches(self, texts: Sequence[str], batch_size: int) -> Iterator[Batch]:
+    def batches(self, texts: Sequence[str], batch_size: int, tokens: int = BATCH_TOKENS) -> Iterator[Batch]:
         """``texts`` in padded batches of at most ``batch_size`` (and ``max_batch``) texts and
-        at most ``BATCH_TOKENS`` padded tokens, in order; a long text runs alone."""
+        at most ``tokens`` padded tokens (``BATCH_TOKENS``), in order; a long text runs alone."""
         size = max(1, min(batch_size, self.max_batch))
         for start in range(0, len(texts), size):
             batch = self.encode(texts[start : start + size])
             width = max(batch.lengths, default=0)
-            if len(batch.lengths) > 1 and len(batch.lengths) * width > BATCH_TOKENS:
-                step = max(1, BATCH_TOKENS // max(1, width))
+            if len(batch.lengths) > 1 and len(batch.lengths) * width > tokens:
+                step = max(1, tokens // max(1, width))
                 chunk = texts[start : start + size]
                 for sub in range(0, len(chunk), step):
                     yield self.encode(chunk[sub : sub + step])

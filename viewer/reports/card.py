@@ -144,6 +144,17 @@ def _insertion(
         return {"phrase": phrase, "not_run": str(e)}
 
 
+def _search_mode(sc: dict) -> str:
+    """Which shortcut search ran, for the card (docs/definitions.md, "Screen and confirmation")."""
+    if sc.get("mode") == "screened":
+        return (
+            f"Screened search: {sc['screened']} words and phrases scored by gradient × input, "
+            f"association and attention focus, {sc['confirmed']} candidates confirmed by knockout; "
+            "a word that is not a candidate is not ranked"
+        )
+    return "Exhaustive search: every word and phrase of every text knocked out"
+
+
 def card_data(
     loaded: LoadedModel,
     texts: Path | TextSource,
@@ -346,7 +357,7 @@ def card_markdown(data: dict, figures: dict[str, str]) -> str:
         lines += [
             f"Shortcut search by word knockout over {sc['texts']} texts (words seen in at "
             "least 3 texts, ranked by the lower end of the 95% Wilson interval of the flip "
-            "rate):",
+            f"rate). {_search_mode(sc)}:",
             "",
             "| word | texts | flip rate | flip rate, 95% low | mean drop | focus | "
             "flips / texts by predicted class |",

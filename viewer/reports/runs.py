@@ -18,6 +18,7 @@ import numpy as np
 
 from viewer.core.attention import CheckResult, LayerCheck, check_layer, result_of
 from viewer.core.links import iter_link_pairs, read_link_pairs
+from viewer.core.screen import SHARE as SCREEN_SHARE
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
 from viewer.model.runs import TextLayer, scan
@@ -43,7 +44,7 @@ from viewer.reports.shards import (
     run_shards,
     shard_count,
 )
-from viewer.reports.shortcuts import ShortcutKind
+from viewer.reports.shortcuts import run_search
 from viewer.reports.textsets import TextItem, TextSource, as_source, survey
 
 
@@ -249,14 +250,41 @@ def shortcuts_data(
     *,
     batch_size: int = 16,
     phrases: bool = True,
+    exhaustive: bool = False,
+    share: float = SCREEN_SHARE,
     quiet: bool = False,
     run: RunOptions = SERIAL,
 ) -> dict:
+    """``headlight shortcuts``' numbers: screened, or every word with ``exhaustive``."""
+    if not 0 < share <= 1:
+        raise HeadlightError(f"the confirmation share must be in (0, 1], got {share}")
     require_prediction(loaded, "shortcut search")
     source = as_source(texts)
-    report = _run_set(ShortcutKind(batch_size, phrases), loaded, source, "word knockout", run, quiet)
+    total = survey(source).texts
+
+    def one(kind: ShardKind, label: str) -> Any:
+        return _run_set(kind, loaded, source, label, run, quiet, total)
+
+    report = run_search(
+        loaded, one, batch_size=batch_size, phrases=phrases, exhaustive=exhaustive, share=share
+    )
     cut = cut_data(loaded, (i.text for i in source.items()))
     return {"model": str(loaded.folder), **report.to_dict(), **cut}
+
+
+def search_mode(data: dict) -> str:
+    """One line saying which shortcut search ran and what it cost, from its JSON."""
+    if data["mode"] == "exhaustive":
+        return (
+            f"exhaustive search: every word and phrase of every text knocked out "
+            f"({data['confirmed']} keys, {data['forwards']} forward passes)"
+        )
+    return (
+        f"screened search: {data['screened']} words and phrases seen in >= 3 texts screened "
+        f"(gradient × input, association, focus), {data['confirmed']} confirmed by knockout "
+        f"({data['forwards']} forward passes, {data['backwards']} backward); "
+        "--exhaustive knocks out every word"
+    )
 
 
 def insertion_data(

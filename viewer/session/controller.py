@@ -263,12 +263,12 @@ class Controller:
             f"nearest baseline {run.report.nearest_baseline:.2f}"
         )
 
-    def search_shortcuts(self, phrases: bool = False) -> None:
+    def search_shortcuts(self, phrases: bool = True, exhaustive: bool = False) -> None:
         ts = self.state.textset
         if ts is None:
             self.view.show_error("open a text set first; the shortcut search knocks words out of it")
             return
-        self.worker.submit("shortcuts", jobs.run_shortcuts, "main", ts, bool(phrases))
+        self.worker.submit("shortcuts", jobs.run_shortcuts, "main", ts, bool(phrases), bool(exhaustive))
         self.view.show_panel("shortcuts")
 
     def _done_shortcuts(self, report) -> None:

@@ -328,21 +328,28 @@ def run_evidence(ctx: JobContext, slot: str, analysis: TextAnalysis) -> Any:
 # -- shortcut search ------------------------------------------------------------------------------
 
 
-def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult, phrases: bool = False) -> Any:
-    """Word knockout (with ``phrases`` also two-word phrases) over the open text set, by the
-    reports' own search (``viewer.reports.shortcuts.ShortcutReport``)."""
+def run_shortcuts(
+    ctx: JobContext, slot: str, textset: TextSetResult, phrases: bool = True, exhaustive: bool = False
+) -> Any:
+    """The shortcut search (with ``phrases`` also two-word phrases) over the open text set, by
+    the reports' own search (``viewer.reports.shortcuts.ShortcutReport``): screened, or every
+    word knocked out with ``exhaustive``."""
     from viewer.reports.shortcuts import shortcut_search
 
     loaded = ctx.model(slot)
     items = textset.items()
     what = "word and two-word phrase" if phrases else "word"
-    ctx.progress(0, len(items), f"shortcut search: knocking out every {what}…")
+    how = (
+        f"knocking out every {what}" if exhaustive else f"screening every {what}, then confirming candidates"
+    )
+    ctx.progress(0, len(items), f"shortcut search: {how}…")
     return shortcut_search(
         loaded,
         items,
         progress=ctx.counter("shortcut search, texts"),
         cancelled=ctx.cancelled,
         phrases=phrases,
+        exhaustive=exhaustive,
     )
 
 

@@ -5,8 +5,10 @@ of its 95% Wilson interval (the ranking key), mean drop in the predicted class's
 and focus (summary-token attention share); then, per class the model originally predicted, the
 texts of that class holding the word and how many of them flip ("flips/texts"), so a word that
 flips only one class's texts stands out. Clicking a word lists the texts that contain it.
-With "two-word phrases" ticked before a search, the report also ranks adjacent word pairs
-knocked out together (a shortcut such as a footer is often a phrase), shown by "phrases".
+With "two-word phrases" ticked (the default) the report also ranks adjacent word pairs knocked
+out together (a shortcut such as a footer is often a phrase), shown by "phrases"; the summary
+line names the top phrase as the texts write it. The search is screened unless "every word" is
+ticked (docs/definitions.md, "Screen and confirmation").
 """
 
 from __future__ import annotations
@@ -51,6 +53,13 @@ def insertion_cell(report) -> tuple[str, str]:
     return text, "\n".join(lines)
 
 
+def search_note(report) -> str:
+    """Which search made ``report``, for the pane's summary line."""
+    if report.mode == "exhaustive":
+        return "every word knocked out: "
+    return f"screened, {report.confirmed} of {report.screened} confirmed by knockout: "
+
+
 class ShortcutPane(TableDock):
     title = "shortcut report"
 
@@ -65,6 +74,7 @@ class ShortcutPane(TableDock):
         self.state = state
         self.words: list[str] = []
         self._ranked: tuple | None = None  # ((report id, phrases), report, rows)
+        self._written: tuple | None = None  # (report, its top phrase as the texts write it)
         layout = QVBoxLayout(self)
         layout.setContentsMargins(4, 2, 4, 2)
         top = QHBoxLayout()
@@ -77,11 +87,19 @@ class ShortcutPane(TableDock):
             button.setDefaultAction(insert_action)
             top.addWidget(button)
         self.phrases_box = QCheckBox("two-word phrases")
+        self.phrases_box.setChecked(True)
         self.phrases_box.setToolTip(
-            "also knock out every pair of adjacent words (about twice "
-            "the work); takes effect at the next search"
+            "also rank every pair of adjacent words (a footer is often a phrase); "
+            "takes effect at the next search"
         )
         top.addWidget(self.phrases_box)
+        self.every_box = QCheckBox("every word")
+        self.every_box.setToolTip(
+            "knock out every word and phrase of every text (10 to 30 times the work); otherwise a "
+            "screen (gradient × input, association, focus) picks the candidates the knockout "
+            "confirms; takes effect at the next search"
+        )
+        top.addWidget(self.every_box)
         self.view_box = QComboBox()
         self.view_box.addItem("words", "words")
         self.view_box.addItem("phrases", "phrases")
@@ -134,8 +152,8 @@ class ShortcutPane(TableDock):
         rows = self._ranking(report, phrases)
         what = "phrases" if phrases else "words"
         self.summary.setText(
-            f"{len(rows)} {what} seen in at least {MIN_TEXTS} of "
-            f"{report.texts} texts, ranked by flip low (Wilson 95%)"
+            f"{search_note(report)}{len(rows)} {what} seen in at least {MIN_TEXTS} of "
+            f"{report.texts} texts, ranked by flip low (Wilson 95%){self._top_phrase(report)}"
         )
         self.table.setRowCount(len(rows))
         insertions = self.state.insertions or {}
@@ -182,6 +200,21 @@ class ShortcutPane(TableDock):
             tally = report.phrases if phrases else report.words
             self._ranked = (key, report, tally.ranking())
         return self._ranked[2]
+
+    def _top_phrase(self, report) -> str:
+        """ "; top phrase “[via portal]” …": the strongest phrase, as the texts write it."""
+        rows = self._ranking(report, True) if report.phrases.texts else []
+        if not rows or not rows[0]["flip_rate"] or self.state.textset is None:
+            return ""
+        from viewer.reports.insertion import insertion_phrase
+
+        top = rows[0]
+        if self._written is None or self._written[0] is not report:
+            self._written = (report, insertion_phrase(self.state.textset.items(), top["token"]))
+        return (
+            f"; top phrase “{self._written[1]}”: knocking it out flips "
+            f"{round(top['flip_rate'] * top['count'])} of {top['count']} texts"
+        )
 
     def _select_current(self) -> None:
         self.show_selected(self.words, self.state.word)
