@@ -26,6 +26,7 @@ from viewer.errors import HeadlightError
 from viewer.files import atomic_write_bytes, check_output, write_json
 from viewer.reports.shards import SHARD_SIZE
 
+DEMO = "demo"  # as a model folder: the embedded demo model (write ./demo for a folder of that name)
 DEFAULT_CHECK_TEXT = (
     "The mechanic at the co-op trued the rear wheel, then she checked the brake cables twice."
 )
@@ -235,8 +236,15 @@ def cmd_shortcuts(args: argparse.Namespace) -> int:
     for title, rows in (("words", data["tokens"]), ("two-word phrases", data["phrases"])):
         if title != "words" and args.no_phrases:
             continue
+        if not rows:
+            print(
+                f"shortcut search, {title}: none is seen in 3 or more of the {data['texts']} texts, "
+                "the fewest the search ranks; give a larger set"
+            )
+            continue
         print(f"shortcut search, {title} (seen in >= 3 of {data['texts']} texts), strongest first")
-        print(f"{'word':<24} {'count':>6} {'flip rate':>9} {'flip low':>8} {'mean drop':>9} {'focus':>6}")
+        name = "word" if title == "words" else "phrase"
+        print(f"{name:<24} {'count':>6} {'flip rate':>9} {'flip low':>8} {'mean drop':>9} {'focus':>6}")
         for r in rows[: args.top]:
             print(
                 f"{r['token'][:24]:<24} {r['count']:>6} {r['flip_rate']:>9.3f} "
@@ -362,13 +370,17 @@ def build_parser() -> argparse.ArgumentParser:
         "every number checked against the model's own computation.",
     )
     parser.add_argument("--version", action="version", version=f"headlight {__version__}")
-    parser.add_argument("--model", help="model folder to open in the window (default: demo)")
+    parser.add_argument(
+        "--model", help="model folder to open in the window (default, or 'demo': the embedded demo model)"
+    )
     parser.add_argument("--text", help="text to run when the window opens")
     sub = parser.add_subparsers(dest="command", parser_class=_Parser)
 
     def model_command(name: str, help_text: str) -> argparse.ArgumentParser:
         p = sub.add_parser(name, help=help_text, description=help_text)
-        p.add_argument("model", metavar="DIR", help="local model folder")
+        p.add_argument(
+            "model", metavar="DIR", help="local model folder, or 'demo' for the embedded demo model"
+        )
         p.add_argument(
             "--allow-pickle",
             action="store_true",
@@ -511,6 +523,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     args.argv = list(sys.argv[1:] if argv is None else argv)
+    if getattr(args, "model", None) == DEMO:  # the embedded demo, in every command as in the window
+        from viewer.demo import MODEL_DIR
+
+        args.model = str(MODEL_DIR)
     func = getattr(args, "func", cmd_window)
     try:
         _check_arguments(args)

@@ -60,6 +60,10 @@ class FakeView:
 
     def model_opened(self, info, remember):
         self.opened.append((info.folder, remember))
+        self.label = info
+
+    def model_not_opened(self, info):
+        self.label = info
 
     def show_panel(self, name):
         self.panels.append(name)
@@ -107,6 +111,31 @@ def test_a_run_without_a_model_or_text_is_refused_with_one_line():
     c.run_text("the chain \ud800 slips")  # pasted half of a UTF-16 pair: not Unicode text
     assert "lone surrogate" in view.errors[-1] and "\n" not in view.errors[-1]
     assert "run" not in worker.names()
+
+
+def test_a_failed_or_cancelled_open_gives_the_label_back_to_the_open_model():
+    c, state, worker, view = make()
+    c.open_model("/a")
+    worker.submitted.clear()  # the worker has delivered the job
+    c.failed("open", "model folder not found: /a")
+    assert view.label is None  # no model was open before
+    c.open_model("/m")
+    worker.submitted.clear()
+    c.finished("open", info("/m"))
+    c.open_model("/b", run_after=True)
+    worker.submitted.clear()
+    c.failed("open", "config.json in /b is not valid JSON")
+    assert view.label is state.model and view.label.folder == "/m"
+    assert c._after_open == []
+    c.open_model("/c")
+    c.open_model("/d")  # replaces /c: the cancelled /c must not reset the label of /d's opening
+    view.label = "opening"
+    worker.submitted = [s for s in worker.submitted if s[2][1] == "/d"]
+    c.cancelled("open")
+    assert view.label == "opening"
+    worker.submitted.clear()
+    c.cancelled("open")
+    assert view.label is state.model
 
 
 class _Rec:

@@ -361,6 +361,11 @@ class MainWindow(QMainWindow):
         if remember:
             self._add_recent(info.folder)
 
+    def model_not_opened(self, info) -> None:
+        """An open failed or was cancelled: the label names the model still open, if any."""
+        self.model_label.setText(info.describe() if info is not None else "no model open")
+        self.model_label.setToolTip(info.folder if info is not None else "")
+
     def show_panel(self, name: str) -> None:
         dock = {"textset": self.textset_dock, "shortcuts": self.shortcut_dock, "compare": self.compare_dock}[
             name

@@ -28,6 +28,7 @@ from viewer.core.insertion import POSITION_NAMES
 from viewer.core.words import contains
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
+from viewer.model.names import HEAD_KIND_NAMES
 from viewer.reports.evidence import ROW_TITLES, evidence_for
 from viewer.reports.heads import predicts
 from viewer.reports.predictions import accuracy_data, set_labels
@@ -54,13 +55,6 @@ CAUTIONS = (
     "Decisions about deploying this model follow the team's own review process; the numbers "
     "here are inputs to that review, not a verdict.",
 )
-
-HEAD_KIND_NAMES = {
-    "classifier": "sequence classifier",
-    "causal-lm": "causal language model",
-    "masked-lm": "masked language model",
-    "encoder": "bare encoder",
-}
 
 
 def versions() -> dict[str, str]:

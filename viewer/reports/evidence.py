@@ -37,6 +37,7 @@ from viewer.core.summary import summary_attention
 from viewer.errors import HeadlightError
 from viewer.model.attribution import gradient_evidence, token_knockout
 from viewer.model.loader import LoadedModel
+from viewer.model.names import head_phrase
 from viewer.reports.heads import predicts
 
 ROWS = ("attention", "rollout", "flow", "value_norm", "grad_input", "integrated_gradients", "knockout")
@@ -191,7 +192,7 @@ def evidence_for(
             )
     else:
         notes.append(
-            f"{loaded.name} has a {loaded.head_kind} head: no prediction to explain, so "
+            f"{loaded.name} has {head_phrase(loaded.head_kind)}: no prediction to explain, so "
             "no gradient or knockout rows"
         )
 

@@ -30,6 +30,7 @@ from viewer.core.shortcuts import KnockoutTally
 from viewer.core.words import Span, contains, occurrences, phrase_keys, split_words
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
+from viewer.model.names import head_phrase
 from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 from viewer.reports.shortcuts import ShortcutReport, class_labels, knock_out
 from viewer.reports.textsets import TextItem, TextSource
@@ -38,8 +39,8 @@ from viewer.reports.textsets import TextItem, TextSource
 def _require_classifier(loaded: LoadedModel) -> None:
     if loaded.head_kind != "classifier":
         raise HeadlightError(
-            f"the insertion test counts texts flipping into a class; {loaded.name} has a "
-            f"{loaded.head_kind} head, not a sequence classifier"
+            f"the insertion test counts texts flipping into a class; {loaded.name} has "
+            f"{head_phrase(loaded.head_kind)}, not a sequence classifier"
         )
 
 

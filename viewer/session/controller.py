@@ -47,6 +47,7 @@ class View(Protocol):
     def set_editor_text(self, text: str) -> None: ...
     def model_opening(self, folder: str) -> None: ...
     def model_opened(self, info: ModelInfo, remember: bool) -> None: ...
+    def model_not_opened(self, info: ModelInfo | None) -> None: ...  # the open model stays (or none)
     def show_panel(self, name: str) -> None: ...  # "textset", "shortcuts", "compare"
     def evidence_after_runs(self) -> bool: ...
     def later(self, msecs: int, fn: Callable[[], None]) -> None: ...
@@ -128,6 +129,7 @@ class Controller:
             base = self.view.ask_base_model(info.folder, info.message)
             if not base:
                 self._after_open.clear()
+                self.view.model_not_opened(self.state.model)
                 self.view.show_error(info.message)
                 return
             self.worker.submit("open", jobs.open_model, "main", info.folder, str(base))
@@ -140,6 +142,13 @@ class Controller:
         todo, self._after_open = self._after_open, []
         for fn in todo:
             fn()
+
+    def _open_ended(self) -> None:
+        """An open failed or was cancelled: unless a newer open is on its way, the model label
+        names the model still open (or none), not the folder that did not open."""
+        if "open" not in self.worker.running_jobs():
+            self._after_open.clear()
+            self.view.model_not_opened(self.state.model)
 
     # -- runs -----------------------------------------------------------------------------------
     def run_current(self) -> None:
@@ -418,9 +427,11 @@ class Controller:
         if name == "figures":
             self._figures_requested = False
         if name == "open":
-            self._after_open.clear()
+            self._open_ended()
         self.view.show_error(message)
 
     def cancelled(self, name: str) -> None:
+        if name == "open":
+            self._open_ended()
         if not self.worker.busy:
             self.view.set_status(f"{name} cancelled")
