@@ -106,12 +106,13 @@ def _check_arguments(args: argparse.Namespace) -> None:
     """What can be checked before any work: texts given on the command line and ``--json``."""
     from viewer.safejson import check_text
 
-    for name in ("text", "word"):
+    for name in ("text", "word", "knockout_span"):
         value = getattr(args, name, None)
         if value is not None:
+            option = "--" + name.replace("_", "-")
             if not value.strip():
-                raise HeadlightError(f"--{name} is empty; give the {name} to use")
-            check_text(value, f"--{name}")
+                raise HeadlightError(f"{option} is empty; give the {name.replace('_', ' ')} to use")
+            check_text(value, option)
     if getattr(args, "json", None):
         check_output(args.json, [getattr(args, n, None) for n in INPUT_OPTIONS], "--json")
     if getattr(args, "command", None) and getattr(args, "model", None):
@@ -295,10 +296,12 @@ def cmd_insert(args: argparse.Namespace) -> int:
 
 
 def cmd_evidence(args: argparse.Namespace) -> int:
-    from viewer.reports.evidence import ROW_TITLES, ROWS, evidence_for
+    from viewer.reports.evidence import ROW_TITLES, ROWS, evidence_for, with_span_of
 
     loaded = _open(args)
     ev = evidence_for(loaded, args.text, steps=args.steps)
+    if args.knockout_span:
+        ev = with_span_of(loaded, ev, args.knockout_span)
     data = {"model": str(loaded.folder), **ev.to_dict()}
     if ev.target_label is not None:
         print(f"prediction: {ev.target_label}")
@@ -318,6 +321,10 @@ def cmd_evidence(args: argparse.Namespace) -> int:
         print("rank agreement with knockout (Spearman):")
         for row, rho in ev.agreement.items():
             print(f"  {ROW_TITLES[row]:<50} {rho:+.3f}")
+    elif ev.withheld:
+        print("rank agreement with knockout (Spearman): withheld, see the note")
+    if ev.span is not None:
+        print(ev.span.line())
     for note in ev.notes:
         print(f"note: {note}")
     if args.json:
@@ -510,6 +517,12 @@ def build_parser() -> argparse.ArgumentParser:
     p = model_command("evidence", "per-token evidence for one prediction (the evidence strip)")
     p.add_argument("--text", required=True, help="the text to explain")
     p.add_argument("--steps", type=int, default=50, help="integrated-gradients steps (default 50)")
+    p.add_argument(
+        "--knockout-span",
+        metavar="PHRASE",
+        help="also knock out the tokens of PHRASE's first occurrence in the text together, and "
+        "print the drop (for a knockout row too flat to rank, e.g. a whole footer)",
+    )
     p.set_defaults(func=cmd_evidence)
     p = set_command("card", "card export: Markdown section, figures and numbers for a model card", cmd_card)
     text_set(p)

@@ -204,6 +204,7 @@ class MainWindow(QMainWindow):
         self.pair_grid = PairGridPane(self.state)
         self.pair_grid.painted.connect(self._grid_painted)
         self.evidence = EvidencePane(self.state)
+        self.evidence.span_chosen.connect(lambda first, last: self.controller.knock_out_span(first, last))
         for pane in (self.head_map, self.links, self.evidence):
             pane.waits_for = self.pair_grid  # after a run, the pair grid is painted first
         left_split = QSplitter(Qt.Orientation.Vertical)

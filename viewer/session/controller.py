@@ -226,6 +226,22 @@ class Controller:
         if evidence.notes:
             self.view.set_status(evidence.notes[0])
 
+    def knock_out_span(self, first: int, last: int) -> None:
+        """Knock tokens ``first``..``last`` of the current run out together (docs/definitions.md,
+        "Flat knockout"); the evidence strip then shows the drop."""
+        ev = self.state.evidence
+        if ev is None or ev.target is None:
+            self.view.show_error("wait for the evidence strip; a span is knocked out of its prediction")
+            return
+        self.worker.submit("span", jobs.run_span_knockout, "main", ev, int(first), int(last))
+
+    def _done_span(self, evidence) -> None:
+        current = self.state.evidence
+        if current is None or evidence.recording is not current.recording:
+            return  # a newer run has arrived meanwhile
+        self.state.set_evidence(evidence)
+        self.view.set_status(evidence.span.line())
+
     def cancel(self) -> None:
         self.worker.cancel(keep=("figures",))
         self._after_open.clear()

@@ -344,6 +344,17 @@ def run_shortcuts(ctx: JobContext, slot: str, textset: TextSetResult, phrases: b
     )
 
 
+def run_span_knockout(ctx: JobContext, slot: str, evidence: Any, first: int, last: int) -> Any:
+    """``evidence`` with tokens ``first``..``last`` knocked out together
+    (``viewer.reports.evidence.span_knockout``)."""
+    import dataclasses
+
+    from viewer.reports.evidence import span_knockout
+
+    ctx.progress(0, 0, f"knocking out tokens {min(first, last)}–{max(first, last)} together…")
+    return dataclasses.replace(evidence, span=span_knockout(ctx.model(slot), evidence, first, last))
+
+
 def run_insertions(
     ctx: JobContext, slot: str, textset: TextSetResult, report: Any, words: tuple[str, ...]
 ) -> tuple[Any, dict[str, Any]]:
