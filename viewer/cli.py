@@ -258,11 +258,13 @@ def cmd_shortcuts(args: argparse.Namespace) -> int:
 
 
 def cmd_insert(args: argparse.Namespace) -> int:
+    from viewer.reports.insertion import heads_text, parse_heads
     from viewer.reports.runs import insertion_data
 
     source = _survey(args)
     run = _run_options(args)
     loaded = _open(args)
+    heads = parse_heads(args.knockout_heads, loaded.n_layers, loaded.n_heads) if args.knockout_heads else ()
     data = insertion_data(
         loaded,
         source,
@@ -272,6 +274,7 @@ def cmd_insert(args: argparse.Namespace) -> int:
         batch_size=args.batch_size,
         quiet=args.quiet,
         run=run,
+        heads=heads,
     )
     how = "given" if data["class_chosen_by"] == "given" else "by knockout"
     print(
@@ -290,9 +293,29 @@ def cmd_insert(args: argparse.Namespace) -> int:
             f"{row['position']:<9} {row['tried']:>6} {row['flips']:>6} {row['flip_rate']:>9.3f} "
             f"{row['flip_low']:>8.3f} {row['flip_high']:>8.3f} {row['mean_gain']:>+9.3f}"
         )
+    mech = data.get("knockout_heads")
+    if mech:
+        print(
+            f"mechanism check: the same test with {heads_text(heads)} knocked out; "
+            f"{mech['skipped']} of {mech['texts']} texts are then already {data['class']}"
+        )
+        print(
+            f"{'position':<9} {'tried':>6} {'flips':>6} {'flip rate':>9} {'intact':>8} {'share carried':>13}"
+        )
+        for row in mech["positions"]:
+            share = row["share_carried"]
+            print(
+                f"{row['position']:<9} {row['tried']:>6} {row['flips']:>6} "
+                f"{_rate(row['flip_rate']):>9} {_rate(row['intact_flip_rate']):>8} "
+                f"{'-' if share is None else f'{share:.0%}':>13}"
+            )
     if args.json:
         write_json(args.json, data)
     return 0
+
+
+def _rate(value: float | None) -> str:
+    return "-" if value is None else f"{value:.3f}"
 
 
 def cmd_evidence(args: argparse.Namespace) -> int:
@@ -514,6 +537,12 @@ def build_parser() -> argparse.ArgumentParser:
         "out most often flips texts away from)",
     )
     p.add_argument("--seed", type=int, default=0, help="seed of the random insertion points (default 0)")
+    p.add_argument(
+        "--knockout-heads",
+        metavar="L.H,...",
+        help="mechanism check: run the test again with these heads knocked out (e.g. 1.2,3.0; 2.* "
+        "is all of layer 2) and report the share of the flip rate they carry",
+    )
     p = model_command("evidence", "per-token evidence for one prediction (the evidence strip)")
     p.add_argument("--text", required=True, help="the text to explain")
     p.add_argument("--steps", type=int, default=50, help="integrated-gradients steps (default 50)")

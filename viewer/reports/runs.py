@@ -9,7 +9,7 @@ report over a set runs through the shard engine (``viewer.reports.shards``) with
 from __future__ import annotations
 
 import os
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any, ClassVar
@@ -270,9 +270,11 @@ def insertion_data(
     quiet: bool = False,
     run: RunOptions = SERIAL,
     by_class: np.ndarray | None = None,
+    heads: Sequence[tuple[int, int]] = (),
 ) -> dict:
     """``headlight insert``'s numbers; ``by_class``: the phrase's per-class knockout breakdown
-    when a shortcut search already has it (``viewer.reports.insertion.run_insertion``)."""
+    when a shortcut search already has it (``viewer.reports.insertion.run_insertion``); ``heads``:
+    also the mechanism check with those heads knocked out."""
     from viewer.reports.insertion import run_insertion
 
     source = as_source(texts)
@@ -285,5 +287,6 @@ def insertion_data(
         batch_size,
         lambda kind, label: _run_set(kind, loaded, source, label, run, quiet, total),
         by_class,
+        heads,
     )
     return {"model": str(loaded.folder), **report.to_dict()}
