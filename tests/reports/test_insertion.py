@@ -300,7 +300,7 @@ def test_the_mechanism_check_reruns_the_test_without_the_heads(tmp_path, capsys)
     r, r2 = intact["flips"] / intact["tried"], len(flipped) / len(tried)
     assert end["share_carried"] == pytest.approx((r - r2) / r, abs=1e-12) and end["share_carried"] > 0.02
     printed = capsys.readouterr().out
-    assert "mechanism check: the same test with layer 1 · head 0" in printed
+    assert "mechanism check: the same test with layer 1 · heads 0, 1, 2, 3 knocked out" in printed
     assert f"{end['share_carried']:.0%}" in printed
     assert main([*argv, "--knockout-heads", "9.0"]) == 2  # no such layer: one line, exit 2
 

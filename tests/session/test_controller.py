@@ -235,3 +235,53 @@ def test_an_unreadable_last_session_opens_the_demo_and_is_kept_aside(tmp_path):
         assert not last.exists()
         (kept,) = folder.glob("last-session.unreadable-*.json")
         assert kept.read_bytes() == raw and kept.name in note, name
+
+
+class _Tally:
+    def __init__(self, flips: int, tried: int) -> None:
+        self.flips, self.tried = flips, tried
+
+    def entry(self, position):
+        return {"flips": self.flips, "tried": self.tried, "flip_rate": self.flips / self.tried}
+
+
+class _Inserted:
+    def __init__(self, phrase: str, flips: int, tried: int = 56) -> None:
+        self.phrase, self.tally, self.mechanism = phrase, _Tally(flips, tried), None
+
+    def headline(self) -> str:
+        return f"'{self.phrase}' {self.tally.flips} of {self.tally.tried}"
+
+
+def test_the_insertion_test_takes_the_users_own_word_first_and_the_mechanism_check_the_selected_heads():
+    c, state, worker, view = make()
+    c.finished("open", info())
+    c.run_insertions(["portal"], own="  my  phrase ")
+    assert "insertions" not in worker.names() and view.errors  # no text set yet
+    state.set_textset(object())
+    c.run_insertions(["portal"], own="  my  phrase ")  # no search: only the user's own phrase
+    assert worker.submitted[-1][2][2:] == (None, ("my phrase",), "my phrase")
+    report = object()
+    state.set_shortcuts(report)
+    c.run_insertions(["portal", "via portal", "my phrase"], own="my phrase")
+    assert worker.submitted[-1][2][2:] == (report, ("my phrase", "portal", "via portal"), "my phrase")
+    results = {"portal": _Inserted("portal", 30), "via portal": _Inserted("[via portal]", 55)}
+    c.finished("insertions", (report, results, None, None))
+    assert view.status[-1] == "insertion test: '[via portal]' 55 of 56"  # the lead: the highest rate
+    c.finished("insertions", (object(), {}, None, None))  # an older search's: not shown
+    assert set(state.insertions) == {"portal", "via portal"}
+
+    state.select_head(1, None)
+    c.mechanism_check()
+    name, _fn, args = worker.submitted[-1]
+    assert name == "mechanism" and args[3] == "via portal" and args[5] == ((1, 0), (1, 1), (1, 2), (1, 3))
+    state.select_head(0, 2)
+    c.mechanism_check(own="portal")
+    assert worker.submitted[-1][2][3:] == ("portal", results["portal"], ((0, 2),))
+    checked = _Inserted("portal", 30)
+    checked.tally = results["portal"].tally
+    c.finished("mechanism", (report, "portal", checked))
+    assert state.insertions["portal"] is checked and view.status[-1].startswith("mechanism check: ")
+    stale = _Inserted("portal", 30)  # its test was replaced meanwhile
+    c.finished("mechanism", (report, "portal", stale))
+    assert state.insertions["portal"] is checked

@@ -152,6 +152,13 @@ class MainWindow(QMainWindow):
             "insert each of the report's top words into the texts of other classes and count "
             "the flips into its class (does the word alone drive the prediction?)",
         )
+        self.mechanism_action = self._action(
+            "Mechanism check",
+            self.run_mechanism,
+            None,
+            "rerun the lead insertion test with the selected head knocked out (the selected "
+            "layer's heads when the head mean is selected): how much of the flip rate they carry",
+        )
         self.compare_action = self._action(
             "Compare", self.run_compare, None, "run the second text or checkpoint"
         )
@@ -231,7 +238,9 @@ class MainWindow(QMainWindow):
 
     def _build_docks(self) -> None:
         self.textset_pane = TextSetPane(self.state, self.open_set_action)
-        self.shortcut_pane = ShortcutPane(self.state, self.shortcuts_action, self.insert_action)
+        self.shortcut_pane = ShortcutPane(
+            self.state, self.shortcuts_action, self.insert_action, mechanism_action=self.mechanism_action
+        )
         self.fixation = FixationPane(self.state)
         self.compare_pane = ComparePane(self.state, self.compare_action, self.clear_compare_action)
         self.notes_edit = _NotesEdit()
@@ -515,7 +524,11 @@ class MainWindow(QMainWindow):
         self.controller.search_shortcuts(self.shortcut_pane.phrases_box.isChecked())
 
     def run_insertions(self) -> None:
-        self.controller.run_insertions(self.shortcut_pane.top_words())
+        pane = self.shortcut_pane
+        self.controller.run_insertions(pane.insertion_words(), own=pane.own_word())
+
+    def run_mechanism(self) -> None:
+        self.controller.mechanism_check(own=self.shortcut_pane.own_word())
 
     def run_compare(self) -> None:
         self.controller.run_compare()

@@ -24,7 +24,7 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Callable, Iterable, Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import Any, ClassVar
 
 import numpy as np
@@ -187,8 +187,16 @@ def parse_heads(text: str, n_layers: int, n_heads: int) -> tuple[Head, ...]:
 
 
 def heads_text(heads: Sequence[Head]) -> str:
-    """ "layer 1 · head 2, layer 3 · head 0" for titles and messages."""
-    return ", ".join(f"layer {layer} · head {head}" for layer, head in heads)
+    """ "layer 1 · head 2, layer 3 · heads 0, 1" for titles and messages (one group a layer)."""
+    layers: dict[int, list[int]] = {}
+    for layer, head in sorted(set(heads)):
+        layers.setdefault(layer, []).append(head)
+    return ", ".join(
+        f"layer {layer} · head {hs[0]}"
+        if len(hs) == 1
+        else f"layer {layer} · heads {', '.join(map(str, hs))}"
+        for layer, hs in layers.items()
+    )
 
 
 def insertion_shard(
@@ -294,6 +302,38 @@ class InsertionReport:
         if self.mechanism is not None:
             out["knockout_heads"] = self.mechanism.to_dict()
         return out
+
+    def headline(self) -> str:
+        """The test in one line, at the end of the texts (where a footer goes), with the
+        mechanism check's share when there is one."""
+        label, end = self.target_label, self.tally.entry("end")
+        if not end["tried"]:
+            return f"'{self.phrase}': every text is already predicted {label}"
+        line = (
+            f"'{self.phrase}' inserted at the end: {end['flips']} of {end['tried']} texts not "
+            f"predicted {label} flip into {label} (95% low {end['flip_low']:.2f})"
+        )
+        if self.mechanism is not None:
+            m = self.mechanism.tally.entry("end")
+            share = self.mechanism.share_carried("end")
+            carried = "no share to give" if share is None else f"they carry {share:.0%} of the flip rate"
+            line += f"; without {heads_text(self.mechanism.heads)}: {m['flips']} of {m['tried']}, {carried}"
+        return line
+
+
+def lead_insertion(results: dict[str, InsertionReport], own: str | None = None) -> str | None:
+    """The key of the result to state first: the user's own word or phrase when it has one,
+    else the highest flip rate at the end (then more flips; the first key on a tie)."""
+    if own is not None and own in results:
+        return own
+    if not results:
+        return None
+
+    def strength(key: str) -> tuple[float, int]:
+        end = results[key].tally.entry("end")
+        return (end["flip_rate"] or 0.0, end["flips"])
+
+    return max(results, key=strength)
 
 
 @dataclass(frozen=True)
@@ -407,6 +447,37 @@ def insertion_test(
     pointed class, then the insertions): a one-shot stream of items is read into a list first.
     ``progress(done, total)`` follows the insertion pass.
     """
+    run = _set_runner(loaded, items, options, cancelled, progress)
+    return run_insertion(loaded, phrase, target, seed, batch_size, run, by_class, heads)
+
+
+def mechanism_test(
+    loaded: LoadedModel,
+    items: Iterable[TextItem] | TextSource,
+    report: InsertionReport,
+    heads: Sequence[Head],
+    *,
+    batch_size: int = 32,
+    progress: Callable[..., None] | None = None,
+    cancelled: Callable[[], bool] | None = None,
+    options: RunOptions = SERIAL,
+) -> InsertionReport:
+    """``report`` (an insertion test over ``items``) with its mechanism check of ``heads``: the
+    intact test is not run again."""
+    run = _set_runner(loaded, items, options, cancelled, progress)
+    return replace(report, mechanism=mechanism_check(report, heads, batch_size, run))
+
+
+def _set_runner(
+    loaded: LoadedModel,
+    items: Iterable[TextItem] | TextSource,
+    options: RunOptions,
+    cancelled: Callable[[], bool] | None,
+    progress: Callable[..., None] | None,
+) -> Callable[[Any, str], Any]:
+    """``run(kind, label)`` mapping a report kind over the shards of ``items`` (a one-shot
+    stream of items is read into a list first, since a test may read the set twice);
+    ``progress(done, total)`` follows the insertion passes."""
     if not isinstance(items, TextSource):
         items = list(items)
 
@@ -420,4 +491,4 @@ def insertion_test(
             progress=progress if isinstance(kind, InsertionKind) else None,
         )
 
-    return run_insertion(loaded, phrase, target, seed, batch_size, run, by_class, heads)
+    return run

@@ -356,21 +356,29 @@ def run_span_knockout(ctx: JobContext, slot: str, evidence: Any, first: int, las
 
 
 def run_insertions(
-    ctx: JobContext, slot: str, textset: TextSetResult, report: Any, words: tuple[str, ...]
-) -> tuple[Any, dict[str, Any]]:
+    ctx: JobContext,
+    slot: str,
+    textset: TextSetResult,
+    report: Any,
+    words: tuple[str, ...],
+    own: str | None = None,
+) -> tuple[Any, dict[str, Any], str | None, str | None]:
     """The insertion test (``viewer.reports.insertion``) for each of ``words`` over the open
-    text set, into the class knocking it out flips texts away from (read off the report's own
-    per-class breakdown when it has the word, else found by its knockout); a phrase is inserted as
-    the texts most often write it (``insertion_phrase``: "via portal" as "[via portal]"). A word
-    that points to no class is left out. Returns (``report``, {word: InsertionReport}): the
-    shortcut report the words came from, so that results of an older search are not shown
-    beside a newer one."""
+    text set, into the class knocking it out flips texts away from (read off the shortcut
+    report's own per-class breakdown when it has the word, else found by its knockout); a phrase
+    is inserted as the texts most often write it (``insertion_phrase``: "via portal" as "[via
+    portal]"). A report word that points to no class is left out; ``own``, the user's own word
+    or phrase (one of ``words``), is not: why it gives no result is returned. Returns
+    (``report``, {word: InsertionReport}, ``own``, why ``own`` has no result or None): the
+    shortcut report the words came from (None without a search), so that results of an older
+    search are not shown beside a newer one."""
     from viewer.errors import HeadlightError
     from viewer.reports.insertion import insertion_phrase, insertion_test, searched_by_class
 
     loaded = ctx.model(slot)
     items = textset.items()
     results: dict[str, Any] = {}
+    failed = None
     for k, word in enumerate(words):
         ctx.check()
         ctx.progress(k, len(words), f"insertion test: '{word}' ({k + 1} of {len(words)})")
@@ -380,12 +388,27 @@ def run_insertions(
                 items,
                 insertion_phrase(items, word),
                 cancelled=ctx.cancelled,
-                by_class=searched_by_class(report, word),
+                by_class=None if report is None else searched_by_class(report, word),
             )
-        except HeadlightError:
+        except HeadlightError as exc:
+            if word == own:
+                failed = f"insertion test of '{own}': {exc}"
             continue  # e.g. knocking it out flips nothing: it points to no class
     ctx.progress(len(words), len(words), "insertion tests done")
-    return report, results
+    return report, results, own, failed
+
+
+def run_mechanism(
+    ctx: JobContext, slot: str, textset: TextSetResult, report: Any, word: str, result: Any, heads: tuple
+) -> tuple[Any, str, Any]:
+    """The mechanism check (``viewer.reports.insertion.mechanism_test``): ``word``'s insertion
+    test ``result`` rerun with ``heads`` knocked out. Returns (``report``, ``word``, the result
+    with its check)."""
+    from viewer.reports.insertion import heads_text, mechanism_test
+
+    ctx.progress(0, 0, f"mechanism check: '{result.phrase}' without {heads_text(heads)}…")
+    checked = mechanism_test(ctx.model(slot), textset.items(), result, heads, cancelled=ctx.cancelled)
+    return report, word, checked
 
 
 # -- card export ----------------------------------------------------------------------------------
