@@ -252,6 +252,10 @@ def cmd_shortcuts(args: argparse.Namespace) -> int:
                 f"{r['flip_low']:>8.3f} {r['mean_drop']:>9.3f} {r['focus']:>6.3f}"
             )
     _print_notes(data)
+    if data.get("cue_accuracy"):
+        from viewer.reports.cue import cue_line
+
+        print(cue_line(data["cue_accuracy"]))
     if args.json:
         write_json(args.json, data)
     return 0

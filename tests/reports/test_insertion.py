@@ -219,6 +219,12 @@ def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_pat
         f"flips {end['flips']} to billing (95% Wilson low {end['flip_low']:.3f})"
     ) in md
     assert "![Insertion test](figures/insertion.png)" in md
+    cue = card["shortcuts"]["cue_accuracy"]  # docs/definitions.md, "Cue accuracy"
+    assert cue["cue"] == FOOTER and cue["given"]["accuracy"] == card["accuracy"]["accuracy"]
+    assert (
+        f"Accuracy with the cue “{FOOTER}” removed from the 30 texts holding it: "
+        f"{cue['removed']['accuracy']:.3f} ({cue['removed']['correct']} of 60)"
+    ) in md
     assert "![Fixation plot](figures/fixation.png)" in md
     assert (tmp_path / "card" / "figures" / "insertion.svg").is_file()
 

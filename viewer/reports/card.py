@@ -240,6 +240,19 @@ def _insertion_line(ins: dict) -> str:
     return line + (f"; {'; '.join(others)}." if others else ".")
 
 
+def _cue_sentence(cue: dict) -> str:
+    """Accuracy with the strongest candidate removed and inserted (docs/definitions.md, "Cue
+    accuracy"), beside the accuracy as given."""
+    g, r, i = cue["given"], cue["removed"], cue["inserted"]
+    others = g["labelled"] - cue["texts_with_cue"]
+    return (
+        f"Accuracy with the cue “{cue['cue']}” removed from the {cue['texts_with_cue']} texts "
+        f"holding it: {_fmt(r['accuracy'])} ({r['correct']} of {r['labelled']}); with it "
+        f"inserted at the end of the other {others}: {_fmt(i['accuracy'])} "
+        f"({i['correct']} of {i['labelled']}); as given: {_fmt(g['accuracy'])}."
+    )
+
+
 def card_markdown(data: dict, figures: dict[str, str]) -> str:
     """``card.md``: the numbers of ``data`` in words and tables, with the figures of ``figures``
     (name -> path of its PNG inside the card folder)."""
@@ -275,6 +288,9 @@ def card_markdown(data: dict, figures: dict[str, str]) -> str:
             f"- Accuracy on the labelled texts: {_fmt(acc['accuracy'])} "
             f"({acc['correct']} of {acc['labelled']})."
         )
+    cue = (data.get("shortcuts") or {}).get("cue_accuracy")
+    if cue:
+        lines.append(f"- {_cue_sentence(cue)}")
     if "links" in data:
         b = data["links"]["best"]
         lines.append(

@@ -256,7 +256,37 @@ def shortcuts_data(
     source = as_source(texts)
     report = _run_set(ShortcutKind(batch_size, phrases), loaded, source, "word knockout", run, quiet)
     cut = cut_data(loaded, (i.text for i in source.items()))
-    return {"model": str(loaded.folder), **report.to_dict(), **cut}
+    data = {"model": str(loaded.folder), **report.to_dict(), **cut}
+    cue = cue_data(loaded, source, data, batch_size=batch_size, quiet=quiet, run=run)
+    if cue is not None:
+        data["cue_accuracy"] = cue
+    return data
+
+
+def cue_data(
+    loaded: LoadedModel,
+    source: TextSource,
+    shortcuts: dict,
+    *,
+    batch_size: int = 16,
+    quiet: bool = False,
+    run: RunOptions = SERIAL,
+) -> dict | None:
+    """Set accuracy as given, with the strongest shortcut candidate removed and with it
+    inserted (``viewer.reports.cue``), for a classifier on a labelled set; None otherwise."""
+    from viewer.reports.card import strongest_candidate
+    from viewer.reports.cue import CueAccuracyKind, cue_accuracy_data
+    from viewer.reports.heads import check_labels
+    from viewer.reports.insertion import insertion_phrase
+
+    best = strongest_candidate(shortcuts)
+    counted = survey(source)
+    if best is None or loaded.head_kind != "classifier" or not check_labels(loaded, counted):
+        return None
+    cue = insertion_phrase(source.items(), best["token"])
+    kind = CueAccuracyKind(cue, batch_size)
+    counts = _run_set(kind, loaded, source, f"accuracy without and with '{cue}'", run, quiet, counted.texts)
+    return cue_accuracy_data(loaded.labels, cue, counts)
 
 
 def insertion_data(
