@@ -219,6 +219,7 @@ def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_pat
         f"flips {end['flips']} to billing (95% Wilson low {end['flip_low']:.3f})"
     ) in md
     assert "![Insertion test](figures/insertion.png)" in md
+    assert "the line across its end the 95% Wilson score interval (Wilson 1927)" in md
     cue = card["shortcuts"]["cue_accuracy"]  # docs/definitions.md, "Cue accuracy"
     assert cue["cue"] == FOOTER and cue["given"]["accuracy"] == card["accuracy"]["accuracy"]
     assert (

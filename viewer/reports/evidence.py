@@ -127,13 +127,7 @@ class Evidence:
         """
         names = [k for k in ROWS if np.isfinite(self.rows[k]).any()]
         values = np.stack([np.asarray(self.rows[k], dtype=np.float64) for k in names])
-        other = "ρ withheld" if self.withheld else None
-        agreement = tuple(
-            ("knockout flat" if self.withheld else "reference")
-            if k == "knockout"
-            else self.agreement.get(k, other)
-            for k in names
-        )
+        agreement = tuple(strip_agreement(k, self.agreement, self.withheld) for k in names)
         return tuple(ROW_LABELS[k] for k in names), values, agreement
 
     def to_dict(self) -> dict:
@@ -165,6 +159,14 @@ class Evidence:
                 )
             },
         }
+
+
+def strip_agreement(row: str, agreement: dict, withheld: str | None) -> float | str | None:
+    """What the strip writes at the right of ``row``: its ρ with knockout, "reference" for the
+    knockout row itself, "ρ withheld" / "knockout flat" when the knockout row is flat."""
+    if row == "knockout":
+        return "knockout flat" if withheld else "reference"
+    return agreement.get(row, "ρ withheld" if withheld else None)
 
 
 def value_norm_row(loaded: LoadedModel, rec: Recording, summary: int) -> np.ndarray:

@@ -77,15 +77,10 @@ def settle_imports() -> None:
     gc.freeze()
 
 
-DEMO_NAME = "Northgate demo router"
-
-
 def info_of(loaded: Any) -> ModelInfo:
-    folder = Path(loaded.folder)
-    name = DEMO_NAME if folder.resolve() == demo_folder().resolve() else loaded.name
     return ModelInfo(
         folder=str(loaded.folder),
-        name=name,
+        name=loaded.display_name,  # what the model's own card calls it, as the card export does
         family=loaded.family.name,
         n_layers=int(loaded.n_layers),
         n_heads=int(loaded.n_heads),
