@@ -128,6 +128,19 @@ def test_the_footer_headline_after_search_and_insertion_test_then_its_mechanism(
     headline = f"'{FOOTER}' inserted at the end: {len(flipped)} of {len(tried)} texts not predicted billing"
     assert pane.insertion_line.isVisible() and headline in pane.insertion_line.text()
     assert headline in w.status_label.text()
+    # beside it, the set's accuracy with the footer removed and inserted (docs/definitions.md,
+    # "Cue accuracy"), against transformers' own forward (tests/reports/test_cue_accuracy.py)
+    from tests.reports.test_cue_accuracy import reference_predictions
+
+    expected = reference_predictions(items)
+    gold = [w.state.model.labels.index(i.label) for i in items]
+    shares = {v: sum(p == y for p, y in zip(expected[v], gold, strict=True)) / len(gold) for v in expected}
+    for variant, share in shares.items():
+        assert footer.cue_accuracy[variant]["accuracy"] == pytest.approx(share), variant
+    assert (
+        f"set accuracy {shares['given']:.3f} as given, {shares['removed']:.3f} with it removed, "
+        f"{shares['inserted']:.3f} with it inserted"
+    ) in pane.insertion_line.text()
 
     # the user's own word: tested first and stated first; one that points to no class says why
     pane.own_edit.setText("  portal ")

@@ -286,6 +286,7 @@ class InsertionReport:
     tally: InsertionTally
     pointed: PointedClass | None = None
     mechanism: MechanismCheck | None = None  # the same test with chosen heads knocked out
+    cue_accuracy: dict | None = None  # the set's accuracy with the phrase removed / inserted
 
     def to_dict(self) -> dict[str, Any]:
         out = {
@@ -318,6 +319,9 @@ class InsertionReport:
             share = self.mechanism.share_carried("end")
             carried = "no share to give" if share is None else f"they carry {share:.0%} of the flip rate"
             line += f"; without {heads_text(self.mechanism.heads)}: {m['flips']} of {m['tried']}, {carried}"
+        if self.cue_accuracy is not None:
+            g, r, i = (self.cue_accuracy[v]["accuracy"] for v in ("given", "removed", "inserted"))
+            line += f"; set accuracy {g:.3f} as given, {r:.3f} with it removed, {i:.3f} with it inserted"
         return line
 
 

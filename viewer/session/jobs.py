@@ -389,8 +389,35 @@ def run_insertions(
             if word == own:
                 failed = f"insertion test of '{own}': {exc}"
             continue  # e.g. knocking it out flips nothing: it points to no class
+    lead = own if own in results else _strongest(report, results)
+    if lead is not None and textset.scores.get("labelled"):
+        ctx.progress(len(words), len(words), f"set accuracy without and with '{results[lead].phrase}'…")
+        results[lead] = _with_cue_accuracy(loaded, items, results[lead], ctx)
     ctx.progress(len(words), len(words), "insertion tests done")
     return report, results, own, failed
+
+
+def _strongest(report: Any, results: dict[str, Any]) -> str | None:
+    """The shortcut report's strongest candidate (the card's rule,
+    ``viewer.reports.card.strongest_candidate``) when it has an insertion result."""
+    from viewer.reports.card import strongest_candidate
+
+    if report is None:
+        return None
+    best = strongest_candidate(report.to_dict(limit=1))
+    return best["token"] if best is not None and best["token"] in results else None
+
+
+def _with_cue_accuracy(loaded: Any, items: list, result: Any, ctx: JobContext) -> Any:
+    """``result`` with the set's accuracy with its phrase removed and inserted
+    (``viewer.reports.cue``, docs/definitions.md "Cue accuracy")."""
+    import dataclasses
+
+    from viewer.reports.cue import CueAccuracyKind, cue_accuracy_data
+    from viewer.reports.shards import run_report
+
+    counts = run_report(CueAccuracyKind(result.phrase), loaded, items, cancelled=ctx.cancelled)
+    return dataclasses.replace(result, cue_accuracy=cue_accuracy_data(loaded.labels, result.phrase, counts))
 
 
 def run_mechanism(
