@@ -42,10 +42,27 @@ def others():
     ]
 
 
-def transformers_predict(texts: list[str]) -> list[str]:
+def transformers_predict(texts: list[str], heads=()) -> list[str]:
+    """transformers' own forward; ``heads`` (layer, head) knocked out by an independent hook:
+    each head's slice of the input to the layer's attention output projection is zeroed (head
+    masking, Michel et al. 2019: ξ_h = 0 on the head's output)."""
     tok = AutoTokenizer.from_pretrained(MODEL_DIR, local_files_only=True)
     model = AutoModelForSequenceClassification.from_pretrained(MODEL_DIR, local_files_only=True)
     model.eval()
+    d = model.config.hidden_size // model.config.num_attention_heads
+
+    def zero(cols):
+        def hook(_module, args):
+            x = args[0].clone()
+            for h in cols:
+                x[..., h * d : (h + 1) * d] = 0
+            return (x,)
+
+        return hook
+
+    for layer in {layer for layer, _ in heads}:
+        dense = model.bert.encoder.layer[layer].attention.output.dense
+        dense.register_forward_pre_hook(zero([h for lay, h in heads if lay == layer]))
     out = []
     with torch.no_grad():
         for i in range(0, len(texts), 32):
@@ -62,12 +79,12 @@ def test_the_footer_points_to_billing_by_knockout(demo):
     assert pointed.flips_from["billing"] > 0 and pointed.flips_from["repair"] == 0
 
 
-def footer_at_the_end_of(items) -> tuple[list[int], list[int]]:
-    """transformers' own forward on ``items``, then on those not predicted billing with the
-    footer appended: (texts tried, texts flipped into billing), by index."""
-    before = transformers_predict([i.text for i in items])
+def footer_at_the_end_of(items, heads=()) -> tuple[list[int], list[int]]:
+    """transformers' own forward on ``items`` (with ``heads`` knocked out), then on those not
+    predicted billing with the footer appended: (texts tried, texts flipped into billing)."""
+    before = transformers_predict([i.text for i in items], heads)
     tried = [k for k, p in enumerate(before) if p != "billing"]
-    after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried])
+    after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried], heads)
     return tried, [k for k, p in zip(tried, after, strict=True) if p == "billing"]
 
 
@@ -246,39 +263,7 @@ def test_parse_heads():
 
 
 def footer_at_the_end_without(items, heads) -> tuple[list[int], list[int]]:
-    """``footer_at_the_end_of`` with ``heads`` knocked out by an independent hook on
-    transformers' own model: each head's slice of the input to the layer's attention output
-    projection is zeroed (head masking, Michel et al. 2019: ξ_h = 0 on the head's output)."""
-    tok = AutoTokenizer.from_pretrained(MODEL_DIR, local_files_only=True)
-    model = AutoModelForSequenceClassification.from_pretrained(MODEL_DIR, local_files_only=True)
-    model.eval()
-    d = model.config.hidden_size // model.config.num_attention_heads
-
-    def zero(cols):
-        def hook(_module, args):
-            x = args[0].clone()
-            for h in cols:
-                x[..., h * d : (h + 1) * d] = 0
-            return (x,)
-
-        return hook
-
-    for layer in {layer for layer, _ in heads}:
-        dense = model.bert.encoder.layer[layer].attention.output.dense
-        dense.register_forward_pre_hook(zero([h for lay, h in heads if lay == layer]))
-
-    def predict(texts):
-        out = []
-        with torch.no_grad():
-            for i in range(0, len(texts), 32):
-                batch = tok(texts[i : i + 32], padding=True, truncation=True, return_tensors="pt")
-                out += [model.config.id2label[int(k)] for k in model(**batch).logits.argmax(-1)]
-        return out
-
-    before = predict([i.text for i in items])
-    tried = [k for k, p in enumerate(before) if p != "billing"]
-    after = predict([items[k].text.strip() + " " + FOOTER for k in tried])
-    return tried, [k for k, p in zip(tried, after, strict=True) if p == "billing"]
+    return footer_at_the_end_of(items, heads)
 
 
 def test_the_mechanism_check_reruns_the_test_without_the_heads(tmp_path, capsys):

@@ -30,6 +30,7 @@ from viewer.core.words import contains
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
 from viewer.model.names import HEAD_KIND_NAMES
+from viewer.reports.cue import strongest_candidate
 from viewer.reports.evidence import ROW_LABELS, ROW_TITLES, ROWS, evidence_for
 from viewer.reports.heads import predicts
 from viewer.reports.predictions import accuracy_data, set_labels
@@ -89,17 +90,6 @@ def example_text(
             if label is not None and label != labels[predicted[k]]:
                 return items[k].text
     return items[having[0]].text if having else items[0].text
-
-
-def strongest_candidate(shortcuts: dict) -> dict | None:
-    """The top word or the top two-word phrase, whichever ranks higher (flip low, then mean
-    drop; the word on a tie); None when knocking out neither flips anything."""
-    candidates = [
-        rows[0]
-        for rows in (shortcuts["tokens"], shortcuts.get("phrases") or [])
-        if rows and rows[0]["flip_rate"] > 0
-    ]
-    return max(candidates, key=lambda r: (r["flip_low"], r["mean_drop"]), default=None)
 
 
 def by_class_counts(labels: Sequence[str], row: dict) -> np.ndarray:

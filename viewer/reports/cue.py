@@ -65,6 +65,17 @@ class CueCounts:
         return accuracy_data(labels, gold.tolist(), predicted.tolist())
 
 
+def strongest_candidate(shortcuts: dict) -> dict | None:
+    """The top word or the top two-word phrase, whichever ranks higher (flip low, then mean
+    drop; the word on a tie); None when knocking out neither flips anything."""
+    candidates = [
+        rows[0]
+        for rows in (shortcuts["tokens"], shortcuts.get("phrases") or [])
+        if rows and rows[0]["flip_rate"] > 0
+    ]
+    return max(candidates, key=lambda r: (r["flip_low"], r["mean_drop"]), default=None)
+
+
 def cue_shard(
     loaded: LoadedModel, texts: Sequence[str], gold: Sequence[int], cue: str, batch_size: int = 16
 ) -> CueCounts:

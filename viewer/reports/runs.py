@@ -274,8 +274,7 @@ def cue_data(
 ) -> dict | None:
     """Set accuracy as given, with the strongest shortcut candidate removed and with it
     inserted (``viewer.reports.cue``), for a classifier on a labelled set; None otherwise."""
-    from viewer.reports.card import strongest_candidate
-    from viewer.reports.cue import CueAccuracyKind, cue_accuracy_data
+    from viewer.reports.cue import CueAccuracyKind, cue_accuracy_data, strongest_candidate
     from viewer.reports.heads import check_labels
     from viewer.reports.insertion import insertion_phrase
 

@@ -400,7 +400,7 @@ def run_insertions(
 def _strongest(report: Any, results: dict[str, Any]) -> str | None:
     """The shortcut report's strongest candidate (the card's rule,
     ``viewer.reports.card.strongest_candidate``) when it has an insertion result."""
-    from viewer.reports.card import strongest_candidate
+    from viewer.reports.cue import strongest_candidate
 
     if report is None:
         return None
