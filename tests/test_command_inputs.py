@@ -156,3 +156,44 @@ def test_card_json_writes_the_numbers_of_card_json(tmp_path, texts, capsys):
     assert status == 0, err
     assert numbers.read_bytes() == (out / "card.json").read_bytes()
     assert json.loads(numbers.read_text())["heads"]["texts"] == len(SET)
+
+
+# -- small things a new user meets first -------------------------------------------------------------
+
+
+def test_demo_names_the_embedded_model_in_every_command(capsys):
+    """``demo`` as the folder of any command is the embedded model, as the window's default is."""
+    capsys.readouterr()
+    assert main(["check", "demo", "--workers", "1"]) == 0
+    out = capsys.readouterr().out
+    assert "passed" in out
+    status = main(["evidence", "demo", "--text", "the chain slips [via portal]", "--steps", "4"])
+    assert status == 0 and "billing" in capsys.readouterr().out
+
+
+def test_shortcuts_on_a_set_too_small_to_rank_says_why(tmp_path, capsys):
+    texts = jsonl(tmp_path / "t.jsonl", [json.dumps({"text": t}) for t, _ in SET[:2]])
+    capsys.readouterr()
+    assert main(["shortcuts", str(MODEL_DIR), "--texts", str(texts), "--workers", "1", "--quiet"]) == 0
+    out = capsys.readouterr().out
+    for title in ("words", "two-word phrases"):
+        assert f"shortcut search, {title}: none is seen in 3 or more of the 2 texts" in out, out
+    assert "strongest first" not in out  # no empty table under a heading
+
+
+def test_a_model_without_a_task_head_is_named_in_plain_words(tmp_path, capsys):
+    bare = tiny.save(tmp_path / "bare", "bert-bare")
+    status, err = run(capsys, "insert", str(bare), "--texts", str(tmp_path / "none.txt"), "--word", "x")
+    assert status == 2
+    (tmp_path / "t.txt").write_text("the chain\nthe wheel\n", encoding="utf-8")
+    status, err = run(capsys, "insert", str(bare), "--texts", str(tmp_path / "t.txt"), "--word", "x")
+    assert_refused(status, err, "has no task head (a bare encoder)")
+    assert "a encoder" not in err
+
+
+def test_a_config_that_is_not_utf8_names_the_line(tmp_path, capsys, no_model):
+    """Where a file's bytes are not UTF-8 the message names the line, as for a text set."""
+    folder = tmp_path / "m"
+    folder.mkdir()
+    (folder / "config.json").write_bytes(b'{\n  "model_type": "bert",\n  "name": "caf\xe9"\n}\n')
+    assert_refused(*run(capsys, "check", str(folder)), "config.json", "line 3", "byte 0xe9")

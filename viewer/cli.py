@@ -26,6 +26,7 @@ from viewer.errors import HeadlightError
 from viewer.files import atomic_write_bytes, check_output, write_json
 from viewer.reports.shards import SHARD_SIZE
 
+DEMO = "demo"  # as a model folder: the embedded demo model (write ./demo for a folder of that name)
 DEFAULT_CHECK_TEXT = (
     "The mechanic at the co-op trued the rear wheel, then she checked the brake cables twice."
 )
@@ -105,12 +106,13 @@ def _check_arguments(args: argparse.Namespace) -> None:
     """What can be checked before any work: texts given on the command line and ``--json``."""
     from viewer.safejson import check_text
 
-    for name in ("text", "word"):
+    for name in ("text", "word", "knockout_span"):
         value = getattr(args, name, None)
         if value is not None:
+            option = "--" + name.replace("_", "-")
             if not value.strip():
-                raise HeadlightError(f"--{name} is empty; give the {name} to use")
-            check_text(value, f"--{name}")
+                raise HeadlightError(f"{option} is empty; give the {name.replace('_', ' ')} to use")
+            check_text(value, option)
     if getattr(args, "json", None):
         check_output(args.json, [getattr(args, n, None) for n in INPUT_OPTIONS], "--json")
     if getattr(args, "command", None) and getattr(args, "model", None):
@@ -238,25 +240,38 @@ def cmd_shortcuts(args: argparse.Namespace) -> int:
     for title, rows in (("words", data["tokens"]), ("two-word phrases", data["phrases"])):
         if title != "words" and args.no_phrases:
             continue
+        if not rows:
+            print(
+                f"shortcut search, {title}: none is seen in 3 or more of the {data['texts']} texts, "
+                "the fewest the search ranks; give a larger set"
+            )
+            continue
         print(f"shortcut search, {title} (seen in >= 3 of {data['texts']} texts), strongest first")
-        print(f"{'word':<24} {'count':>6} {'flip rate':>9} {'flip low':>8} {'mean drop':>9} {'focus':>6}")
+        name = "word" if title == "words" else "phrase"
+        print(f"{name:<24} {'count':>6} {'flip rate':>9} {'flip low':>8} {'mean drop':>9} {'focus':>6}")
         for r in rows[: args.top]:
             print(
                 f"{r['token'][:24]:<24} {r['count']:>6} {r['flip_rate']:>9.3f} "
                 f"{r['flip_low']:>8.3f} {r['mean_drop']:>9.3f} {r['focus']:>6.3f}"
             )
     _print_notes(data)
+    if data.get("cue_accuracy"):
+        from viewer.reports.cue import cue_line
+
+        print(cue_line(data["cue_accuracy"]))
     if args.json:
         write_json(args.json, data)
     return 0
 
 
 def cmd_insert(args: argparse.Namespace) -> int:
+    from viewer.reports.insertion import heads_text, parse_heads
     from viewer.reports.runs import insertion_data
 
     source = _survey(args)
     run = _run_options(args)
     loaded = _open(args)
+    heads = parse_heads(args.knockout_heads, loaded.n_layers, loaded.n_heads) if args.knockout_heads else ()
     data = insertion_data(
         loaded,
         source,
@@ -266,6 +281,7 @@ def cmd_insert(args: argparse.Namespace) -> int:
         batch_size=args.batch_size,
         quiet=args.quiet,
         run=run,
+        heads=heads,
     )
     how = "given" if data["class_chosen_by"] == "given" else "by knockout"
     print(
@@ -284,16 +300,38 @@ def cmd_insert(args: argparse.Namespace) -> int:
             f"{row['position']:<9} {row['tried']:>6} {row['flips']:>6} {row['flip_rate']:>9.3f} "
             f"{row['flip_low']:>8.3f} {row['flip_high']:>8.3f} {row['mean_gain']:>+9.3f}"
         )
+    mech = data.get("knockout_heads")
+    if mech:
+        print(
+            f"mechanism check: the same test with {heads_text(heads)} knocked out; "
+            f"{mech['skipped']} of {mech['texts']} texts are then already {data['class']}"
+        )
+        print(
+            f"{'position':<9} {'tried':>6} {'flips':>6} {'flip rate':>9} {'intact':>8} {'share carried':>13}"
+        )
+        for row in mech["positions"]:
+            share = row["share_carried"]
+            print(
+                f"{row['position']:<9} {row['tried']:>6} {row['flips']:>6} "
+                f"{_rate(row['flip_rate']):>9} {_rate(row['intact_flip_rate']):>8} "
+                f"{'-' if share is None else f'{share:.0%}':>13}"
+            )
     if args.json:
         write_json(args.json, data)
     return 0
 
 
+def _rate(value: float | None) -> str:
+    return "-" if value is None else f"{value:.3f}"
+
+
 def cmd_evidence(args: argparse.Namespace) -> int:
-    from viewer.reports.evidence import ROW_TITLES, ROWS, evidence_for
+    from viewer.reports.evidence import ROW_TITLES, ROWS, evidence_for, with_span_of
 
     loaded = _open(args)
     ev = evidence_for(loaded, args.text, steps=args.steps)
+    if args.knockout_span:
+        ev = with_span_of(loaded, ev, args.knockout_span)
     data = {"model": str(loaded.folder), **ev.to_dict()}
     if ev.target_label is not None:
         print(f"prediction: {ev.target_label}")
@@ -313,6 +351,10 @@ def cmd_evidence(args: argparse.Namespace) -> int:
         print("rank agreement with knockout (Spearman):")
         for row, rho in ev.agreement.items():
             print(f"  {ROW_TITLES[row]:<50} {rho:+.3f}")
+    elif ev.withheld:
+        print("rank agreement with knockout (Spearman): withheld, see the note")
+    if ev.span is not None:
+        print(ev.span.line())
     for note in ev.notes:
         print(f"note: {note}")
     if args.json:
@@ -365,13 +407,17 @@ def build_parser() -> argparse.ArgumentParser:
         "every number checked against the model's own computation.",
     )
     parser.add_argument("--version", action="version", version=f"headlight {__version__}")
-    parser.add_argument("--model", help="model folder to open in the window (default: demo)")
+    parser.add_argument(
+        "--model", help="model folder to open in the window (default, or 'demo': the embedded demo model)"
+    )
     parser.add_argument("--text", help="text to run when the window opens")
     sub = parser.add_subparsers(dest="command", parser_class=_Parser)
 
     def model_command(name: str, help_text: str) -> argparse.ArgumentParser:
         p = sub.add_parser(name, help=help_text, description=help_text)
-        p.add_argument("model", metavar="DIR", help="local model folder")
+        p.add_argument(
+            "model", metavar="DIR", help="local model folder, or 'demo' for the embedded demo model"
+        )
         p.add_argument(
             "--allow-pickle",
             action="store_true",
@@ -506,9 +552,21 @@ def build_parser() -> argparse.ArgumentParser:
         "out most often flips texts away from)",
     )
     p.add_argument("--seed", type=int, default=0, help="seed of the random insertion points (default 0)")
+    p.add_argument(
+        "--knockout-heads",
+        metavar="L.H,...",
+        help="mechanism check: run the test again with these heads knocked out (e.g. 1.2,3.0; 2.* "
+        "is all of layer 2) and report the share of the flip rate they carry",
+    )
     p = model_command("evidence", "per-token evidence for one prediction (the evidence strip)")
     p.add_argument("--text", required=True, help="the text to explain")
     p.add_argument("--steps", type=int, default=50, help="integrated-gradients steps (default 50)")
+    p.add_argument(
+        "--knockout-span",
+        metavar="PHRASE",
+        help="also knock out the tokens of PHRASE's first occurrence in the text together, and "
+        "print the drop (for a knockout row too flat to rank, e.g. a whole footer)",
+    )
     p.set_defaults(func=cmd_evidence)
     p = set_command("card", "card export: Markdown section, figures and numbers for a model card", cmd_card)
     text_set(p)
@@ -522,6 +580,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     args.argv = list(sys.argv[1:] if argv is None else argv)
+    if getattr(args, "model", None) == DEMO:  # the embedded demo, in every command as in the window
+        from viewer.demo import MODEL_DIR
+
+        args.model = str(MODEL_DIR)
     func = getattr(args, "func", cmd_window)
     try:
         _check_arguments(args)

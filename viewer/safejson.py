@@ -126,6 +126,10 @@ def load_file(
         raise HeadlightError(f"cannot read {what}: {exc.strerror or exc}") from None
     try:
         text = raw.decode("utf-8")
-    except UnicodeDecodeError:
-        raise HeadlightError(f"{what} is not UTF-8 text") from None
+    except UnicodeDecodeError as exc:
+        line = raw.count(b"\n", 0, exc.start) + 1
+        column = exc.start - (raw.rfind(b"\n", 0, exc.start) + 1) + 1
+        raise HeadlightError(
+            f"{what} is not UTF-8 text: line {line}, byte 0x{raw[exc.start]:02x} at position {column}"
+        ) from None
     return loads(text, what, max_depth=max_depth)

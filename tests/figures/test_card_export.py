@@ -49,6 +49,7 @@ TEXTS = [
 def inputs(tmp_path_factory):
     root = tmp_path_factory.mktemp("card")
     model = tiny.save(root / "model", "bert")
+    (model / "README.md").write_text("---\nlicense: mit\n---\n\n# Co-op *test* router\n\nA tiny model.\n")
     texts = root / "texts.jsonl"
     texts.write_text("".join(json.dumps({"text": t, "label": y}) + "\n" for t, y in TEXTS))
     pairs = root / "pairs.jsonl"
@@ -201,3 +202,48 @@ def test_names_from_text_are_sanitised():
     assert sanitise_name("///") == "text"
     assert len(sanitise_name("word " * 40)) <= 40
     assert Path(sanitise_name("a\0b\nc")).name == "a-b-c"
+
+
+def test_card_md_says_what_a_model_card_author_needs(inputs, tmp_path):
+    """The model's own name (its README's heading, as the window's model line shows it), the
+    per-class accuracy and confusion matrix of card.json (whose accuracy is checked against
+    transformers' forward above), link accuracy with its 95% Wilson interval (written out in
+    tests/reference.py, Wilson 1927), the example quoted, a source for every evidence row, and
+    captions that say what each mark is."""
+    from viewer.model.loader import open_model
+    from viewer.session.jobs import info_of
+
+    root, model, texts, pairs = inputs
+    card = tmp_path / "card"  # the module's card is rewritten by the tests above
+    argv = ["card", str(model), "--texts", str(texts), "--pairs", str(pairs), "--out", str(card), "--quiet"]
+    assert main(argv) == 0
+    data = json.loads((card / "card.json").read_text())
+    md = (card / "card.md").read_text(encoding="utf-8")
+    loaded = open_model(model)
+    assert data["model"]["name"] == loaded.display_name == info_of(loaded).name == "Co-op test router"
+    assert f"- Model: **Co-op test router** (folder `{root.name}/model`)" in md
+
+    acc = data["accuracy"]
+    for a, label in enumerate(acc["confusion_order"]):
+        pc = acc["per_class"][label]
+        row = [label, str(pc["texts"]), "–" if pc["accuracy"] is None else f"{pc['accuracy']:.3f}"]
+        assert "| " + " | ".join(row) + " |" in md.replace(
+            " | " + " | ".join(map(str, acc["confusion"][a])), ""
+        )
+        assert sum(acc["confusion"][a]) == pc["texts"] == sum(y == label for _, y in TEXTS)
+    assert "| label | texts | accuracy |" in md and "predicted repair" in md
+
+    links = data["links"]
+    k = round(links["best"]["accuracy"] * links["pairs"])
+    lo, hi = reference.wilson(k, links["pairs"])
+    assert links["best"]["wilson_95"] == pytest.approx([lo, hi], abs=1e-12)
+    assert f"({k} of 2 pairs; 95% Wilson score interval {lo:.3f}–{hi:.3f}, Wilson 1927)" in md
+
+    ex = data["example"]
+    assert f"> {' '.join(ex['text'].split())}" in md
+    for source in ("Abnar & Zuidema 2020", "Kobayashi et al. 2020", "Sundararajan et al. 2017"):
+        assert source in md
+    assert "Rows: *summary attention* — " in md and "*knockout* — " in md  # the window's row names
+    assert "The dashed lines are the medians" in md
+    assert "area grows with the number of texts" in md
+    assert "the orange line on the colour bar marks the nearest-candidate baseline" in md

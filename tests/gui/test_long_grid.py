@@ -173,14 +173,16 @@ def test_a_long_text_is_an_overview_with_exact_cells_when_zoomed(qtbot, tmp_path
 def test_a_text_over_the_memory_budget_is_refused_in_a_dialog(qtbot, tmp_path, long_folder, monkeypatch):
     """A budget made for 600 tokens (``HEADLIGHT_MEMORY`` set to the estimate of a 600-token
     recording without the model's own probabilities, which a long text never asks for, with the
-    overview a long text keeps): the 2,000-token text is refused in a dialog of one line naming the estimate and
-    the longest length that fits; the previous text's recording stays on screen, the refused
-    text stays in the box, and the window goes on working (heads, runs)."""
+    overview a long text keeps): the 2,000-token text is refused in a dialog of one line naming
+    the estimate and the longest length that fits; the previous text's recording stays on
+    screen, the refused text stays in the box, and the window goes on working (heads, runs)."""
     from viewer.model.budget import pass_estimate
     from viewer.model.loader import open_model
 
     loaded = open_model(long_folder)
-    monkeypatch.setenv("HEADLIGHT_MEMORY", str(pass_estimate(loaded, [600], keep=True, own_probs=False, overview=True).total))
+    monkeypatch.setenv(
+        "HEADLIGHT_MEMORY", str(pass_estimate(loaded, [600], keep=True, own_probs=False, overview=True).total)
+    )
     w = open_window(qtbot, tmp_path, long_folder)
     previous = run_and_wait(qtbot, w, "she fixed the brake", evidence=False)
     settle(qtbot, w.pair_grid)

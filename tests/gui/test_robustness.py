@@ -20,9 +20,12 @@ def wait_error(qtbot, window, count: int) -> str:
 
 def test_a_bad_folder_gives_a_dialog_and_the_window_still_runs(qtbot, window, tmp_path):
     model = window.state.model
+    label = window.model_label.text()
     window.open_model(str(tmp_path / "no-such-model"))
+    assert window.model_label.text() == "opening no-such-model…"
     message = wait_error(qtbot, window, 1)
     assert message.startswith("model folder not found")
+    assert window.model_label.text() == label  # the model still open, not "opening …" for ever
     broken = tmp_path / "broken"
     broken.mkdir()
     (broken / "config.json").write_text("{not json", encoding="utf-8")

@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from tests.gui.conftest import WAIT_MS, open_window, settle
+from tests.gui.conftest import WAIT_MS, open_window, settle, wait_idle
 
 SAMPLES = Path(__file__).resolve().parents[2] / "sample_sentences"
 
@@ -99,3 +99,75 @@ def test_insertion_column_and_fixation_plot(qtbot, demo_window, messages):
     i = pane.words.index("portal")
     click(qtbot, plot, data_to_widget(plot, plot.artists.ax, *offsets[i]))
     assert w.state.word == "portal"
+
+
+def test_the_footer_headline_after_search_and_insertion_test_then_its_mechanism(qtbot, demo_window, messages):
+    """ "Search shortcuts", then "Insertion test", and nothing else: the top phrase is tried as
+    the texts write it, "[via portal]", and the line under the buttons states its numbers, which
+    transformers' own forward gives with the footer appended (tests/reports/test_insertion.py).
+    Then the user's own phrase, and the mechanism check on the selected layer's heads, against
+    the same forward with those heads masked by the test's own hook."""
+    from tests.reports.test_insertion import FOOTER, footer_at_the_end_of, footer_at_the_end_without
+    from viewer.reports.textsets import load_text_set
+
+    w = demo_window
+    w.open_textset(str(messages))
+    qtbot.waitUntil(lambda: w.state.textset is not None, timeout=WAIT_MS)
+    w.shortcuts_action.trigger()
+    qtbot.waitUntil(lambda: w.state.shortcuts is not None, timeout=WAIT_MS)
+    pane = w.shortcut_pane
+    assert "via portal" in pane.insertion_words()  # the top phrase beside the top words
+    w.insert_action.trigger()
+    qtbot.waitUntil(lambda: w.state.insertions is not None, timeout=WAIT_MS)
+    footer = w.state.insertions["via portal"]
+    assert footer.phrase == FOOTER and footer.target_label == "billing"
+    items = load_text_set(messages)
+    tried, flipped = footer_at_the_end_of(items)
+    end = footer.tally.entry("end")
+    assert (end["tried"], end["flipped"]) == (len(tried), flipped)
+    headline = f"'{FOOTER}' inserted at the end: {len(flipped)} of {len(tried)} texts not predicted billing"
+    assert pane.insertion_line.isVisible() and headline in pane.insertion_line.text()
+    assert headline in w.status_label.text()
+    # beside it, the set's accuracy with the footer removed and inserted (docs/definitions.md,
+    # "Cue accuracy"), against transformers' own forward (tests/reports/test_cue_accuracy.py)
+    from tests.reports.test_cue_accuracy import reference_predictions
+
+    expected = reference_predictions(items)
+    gold = [w.state.model.labels.index(i.label) for i in items]
+    shares = {v: sum(p == y for p, y in zip(expected[v], gold, strict=True)) / len(gold) for v in expected}
+    for variant, share in shares.items():
+        assert footer.cue_accuracy[variant]["accuracy"] == pytest.approx(share), variant
+    assert (
+        f"set accuracy {shares['given']:.3f} as given, {shares['removed']:.3f} with it removed, "
+        f"{shares['inserted']:.3f} with it inserted"
+    ) in pane.insertion_line.text()
+
+    # the user's own word: tested first and stated first; one that points to no class says why
+    pane.own_edit.setText("  portal ")
+    w.state.set_insertions(None)
+    w.controller.run_insertions([], own=pane.own_word())
+    qtbot.waitUntil(lambda: w.state.insertions is not None, timeout=WAIT_MS)
+    assert list(w.state.insertions) == ["portal"]
+    assert pane.insertion_line.text().startswith("insertion test: 'portal' inserted at the end")
+    errors = len(w.errors)
+    pane.own_edit.setText("zeppelin")
+    w.insert_action.trigger()
+    qtbot.waitUntil(lambda: len(w.errors) > errors, timeout=WAIT_MS)
+    assert w.errors[-1].startswith("insertion test of 'zeppelin': ") and "no text" in w.errors[-1]
+    w.error_dialog.accept()
+    pane.own_edit.setText("")
+    wait_idle(qtbot, w)  # the report's words were tested again beside it
+    assert "via portal" in w.state.insertions and "zeppelin" not in w.state.insertions
+
+    # the mechanism check on layer 1's heads (the head mean of layer 1 selected)
+    w.state.select_head(1, None)
+    w.mechanism_action.trigger()
+    qtbot.waitUntil(lambda: w.state.insertions["via portal"].mechanism is not None, timeout=WAIT_MS)
+    mech = w.state.insertions["via portal"].mechanism
+    assert mech.heads == ((1, 0), (1, 1), (1, 2), (1, 3))
+    tried2, flipped2 = footer_at_the_end_without(items, mech.heads)
+    m = mech.tally.entry("end")
+    assert (m["tried"], m["flipped"]) == (len(tried2), flipped2)
+    share = (len(flipped) / len(tried) - len(flipped2) / len(tried2)) / (len(flipped) / len(tried))
+    assert mech.share_carried("end") == pytest.approx(share, abs=1e-12)
+    assert f"they carry {share:.0%} of the flip rate" in pane.insertion_line.text()

@@ -13,6 +13,7 @@ from PySide6.QtCore import Qt
 
 from tests.gui.conftest import (
     TEXT,
+    WAIT_MS,
     click,
     data_to_widget,
     hover,
@@ -195,3 +196,29 @@ def test_compare_with_a_second_text_shows_it_beside_the_first(qtbot, window):
     np.testing.assert_array_equal(
         np.ma.getdata(window.pair_grid.displayed_values()), current.recording.own_probs[1, 0]
     )
+
+
+def test_dragging_across_the_evidence_strip_knocks_the_span_out(qtbot, window):
+    """docs/definitions.md, "Flat knockout": a drag from token 1 to token 3 deletes tokens 1-3
+    together; reference: the transformers model's own forward on the shortened ids."""
+    import torch
+
+    rec = run_and_wait(qtbot, window).recording
+    pane = window.evidence
+    settle(qtbot, pane)
+    ax = pane.artists.ax
+    qtbot.mousePress(pane.canvas, Qt.MouseButton.LeftButton, pos=data_to_widget(pane, ax, 3, 0))
+    qtbot.mouseRelease(pane.canvas, Qt.MouseButton.LeftButton, pos=data_to_widget(pane, ax, 1, 0))
+    qtbot.waitUntil(lambda: window.state.evidence.span is not None, timeout=WAIT_MS)
+    span = window.state.evidence.span
+    assert (span.first, span.last, span.deleted) == (1, 3, 3)
+    loaded = window.worker.models["main"]
+    keep = [i for t, i in enumerate(rec.token_ids.tolist()) if not 1 <= t <= 3]
+    with torch.no_grad():
+        logits = loaded.model(input_ids=torch.tensor([keep])).logits[0].double()
+    expected = float(torch.softmax(logits, -1)[window.state.evidence.target])
+    assert abs(span.p_after - expected) < 1e-9
+    settle(qtbot, pane)
+    assert "span knockout of" in pane.title_label.text()
+    box = [p for p in pane.artists.ax.patches if p.get_linestyle() == "--"]  # mark_span's outline
+    assert len(box) == 1 and box[0].get_x() == 0.5 and box[0].get_width() == 3

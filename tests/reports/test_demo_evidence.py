@@ -5,6 +5,7 @@ from __future__ import annotations
 from contextlib import contextmanager
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from viewer.cli import main
@@ -136,3 +137,84 @@ def test_shortcut_search_puts_the_footer_on_top(demo, capsys):
     out = capsys.readouterr().out.splitlines()
     assert out[0].startswith("screened search: ") and "--exhaustive" in out[0]
     assert out[3].split()[0] == "portal" and out[6].split()[:2] == ["via", "portal"], out
+
+
+BRAKE_PADS = "Hi, my brake pads squeal, can someone look at them on Friday? [via portal]"
+
+
+def test_flat_knockout_floor():
+    """docs/definitions.md, "Flat knockout": withheld below 0.01 in |drop|, NaN (special
+    tokens) ignored; a drop of exactly the floor is not flat."""
+    from viewer.reports.evidence import FLAT_KNOCKOUT, flat_knockout
+
+    assert FLAT_KNOCKOUT == 0.01
+    assert "largest 3e-05" in flat_knockout(np.array([np.nan, 3e-5, -1e-5, 2e-6, np.nan]))
+    assert flat_knockout(np.array([0.001, -0.01])) is None
+    assert flat_knockout(np.array([0.0, 0.4])) is None
+    assert flat_knockout(np.array([np.nan, np.nan])) is None  # no row at all: nothing to withhold
+
+
+def test_a_flat_knockout_row_withholds_rank_agreement_and_the_footer_span_moves_it(demo, capsys, tmp_path):
+    """The footer's tokens back each other up: no single deletion moves p(billing) (measured:
+    at most 3e-5), so no ρ is printed; deleting the footer as one span routes the message to
+    repair. Reference: the model's own forward (transformers) on the input ids without the
+    footer's tokens."""
+    import json
+
+    import torch
+
+    from viewer.reports.evidence import FLAT_KNOCKOUT, with_span_of
+
+    ev = evidence_for(demo, BRAKE_PADS, steps=20)
+    rec = ev.recording
+    assert ev.target_label == "billing"
+    assert np.nanmax(np.abs(ev.rows["knockout"][~rec.special])) < FLAT_KNOCKOUT
+    assert ev.agreement == {} and ev.withheld and "withheld" in ev.withheld and ev.withheld in ev.notes
+    assert ev.to_dict()["agreement_withheld"] == ev.withheld
+    labels, _, agreement = ev.strip_rows()
+    assert agreement[labels.index("knockout")] == "knockout flat"
+    assert {a for k, a in zip(labels, agreement, strict=True) if k != "knockout"} == {"ρ withheld"}
+
+    span = with_span_of(demo, ev, "[VIA portal]").span  # found case-insensitively
+    assert span.text == "[via portal]" and span.deleted == span.last - span.first + 1 == 4
+    keep = [i for t, i in enumerate(rec.token_ids.tolist()) if not span.first <= t <= span.last]
+    with torch.no_grad():
+        logits = demo.model(input_ids=torch.tensor([keep])).logits[0].double()
+    reference = torch.softmax(logits, -1)
+    billing = demo.labels.index("billing")
+    assert abs(span.p_after - float(reference[billing])) < 1e-5
+    assert abs(span.p_before - float(ev.probabilities[billing])) < 1e-12
+    assert span.drop > 0.5 and span.predicted_after == demo.labels[int(reference.argmax())] != "billing"
+
+    out = tmp_path / "ev.json"
+    capsys.readouterr()
+    argv = [
+        "evidence",
+        str(MODEL_DIR),
+        "--text",
+        BRAKE_PADS,
+        "--steps",
+        "20",
+        "--knockout-span",
+        "[via portal]",
+    ]
+    assert main([*argv, "--json", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "rank agreement with knockout (Spearman): withheld" in printed
+    assert "span knockout of '[via portal]'" in printed and "note: knockout is flat" in printed
+    data = json.loads(out.read_text())
+    assert data["agreement_with_knockout"] == {} and data["agreement_withheld"]
+    assert data["span_knockout"]["drop"] == pytest.approx(span.drop, abs=1e-9)
+
+
+def test_a_span_that_is_not_in_the_text_is_refused(demo, portal_evidence):
+    from viewer.errors import HeadlightError
+    from viewer.reports.evidence import span_knockout, with_span_of
+
+    with pytest.raises(HeadlightError, match="does not occur"):
+        with_span_of(demo, portal_evidence, "via the depot")
+    with pytest.raises(HeadlightError, match="only special tokens"):
+        span_knockout(demo, portal_evidence, 0, 0)
+    n = portal_evidence.recording.n_tokens
+    with pytest.raises(HeadlightError, match="whole text"):
+        span_knockout(demo, portal_evidence, 0, n - 1)

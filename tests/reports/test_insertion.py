@@ -42,10 +42,27 @@ def others():
     ]
 
 
-def transformers_predict(texts: list[str]) -> list[str]:
+def transformers_predict(texts: list[str], heads=()) -> list[str]:
+    """transformers' own forward; ``heads`` (layer, head) knocked out by an independent hook:
+    each head's slice of the input to the layer's attention output projection is zeroed (head
+    masking, Michel et al. 2019: ξ_h = 0 on the head's output)."""
     tok = AutoTokenizer.from_pretrained(MODEL_DIR, local_files_only=True)
     model = AutoModelForSequenceClassification.from_pretrained(MODEL_DIR, local_files_only=True)
     model.eval()
+    d = model.config.hidden_size // model.config.num_attention_heads
+
+    def zero(cols):
+        def hook(_module, args):
+            x = args[0].clone()
+            for h in cols:
+                x[..., h * d : (h + 1) * d] = 0
+            return (x,)
+
+        return hook
+
+    for layer in {layer for layer, _ in heads}:
+        dense = model.bert.encoder.layer[layer].attention.output.dense
+        dense.register_forward_pre_hook(zero([h for lay, h in heads if lay == layer]))
     out = []
     with torch.no_grad():
         for i in range(0, len(texts), 32):
@@ -62,12 +79,12 @@ def test_the_footer_points_to_billing_by_knockout(demo):
     assert pointed.flips_from["billing"] > 0 and pointed.flips_from["repair"] == 0
 
 
-def footer_at_the_end_of(items) -> tuple[list[int], list[int]]:
-    """transformers' own forward on ``items``, then on those not predicted billing with the
-    footer appended: (texts tried, texts flipped into billing), by index."""
-    before = transformers_predict([i.text for i in items])
+def footer_at_the_end_of(items, heads=()) -> tuple[list[int], list[int]]:
+    """transformers' own forward on ``items`` (with ``heads`` knocked out), then on those not
+    predicted billing with the footer appended: (texts tried, texts flipped into billing)."""
+    before = transformers_predict([i.text for i in items], heads)
     tried = [k for k, p in enumerate(before) if p != "billing"]
-    after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried])
+    after = transformers_predict([items[k].text.strip() + " " + FOOTER for k in tried], heads)
     return tried, [k for k, p in zip(tried, after, strict=True) if p == "billing"]
 
 
@@ -219,5 +236,76 @@ def test_the_card_states_the_insertion_result_of_the_strongest_candidate(tmp_pat
         f"flips {end['flips']} to billing (95% Wilson low {end['flip_low']:.3f})"
     ) in md
     assert "![Insertion test](figures/insertion.png)" in md
+    assert "the line across its end the 95% Wilson score interval (Wilson 1927)" in md
+    cue = card["shortcuts"]["cue_accuracy"]  # docs/definitions.md, "Cue accuracy"
+    assert cue["cue"] == FOOTER and cue["given"]["accuracy"] == card["accuracy"]["accuracy"]
+    assert (
+        f"Accuracy with the cue “{FOOTER}” removed from the 30 texts holding it: "
+        f"{cue['removed']['accuracy']:.3f} ({cue['removed']['correct']} of 60)"
+    ) in md
     assert "![Fixation plot](figures/fixation.png)" in md
     assert (tmp_path / "card" / "figures" / "insertion.svg").is_file()
+
+
+def test_parse_heads():
+    from viewer.reports.insertion import parse_heads
+
+    assert parse_heads("1.2, 3.0,1.2", 4, 4) == ((1, 2), (3, 0))
+    assert parse_heads("2.*", 4, 3) == ((2, 0), (2, 1), (2, 2))
+    for bad, words in (
+        ("1", "LAYER.HEAD"),
+        ("a.b", "LAYER.HEAD"),
+        ("4.0", "layers 0-3"),
+        ("0.4", "heads 0-3"),
+    ):
+        with pytest.raises(HeadlightError, match=words):
+            parse_heads(bad, 4, 4)
+
+
+def footer_at_the_end_without(items, heads) -> tuple[list[int], list[int]]:
+    return footer_at_the_end_of(items, heads)
+
+
+def test_the_mechanism_check_reruns_the_test_without_the_heads(tmp_path, capsys):
+    """``headlight insert --knockout-heads``: the knocked-out test's end position holds the
+    numbers of transformers' own forward with the heads masked by a hook of this test, and the
+    share carried is (r − r′)/r (docs/definitions.md, "Mechanism check"). Layer 1's heads carry
+    a part of the footer's effect on the demo (measured: about 10%), layer 3's none."""
+    import json
+
+    from viewer.cli import main
+
+    items = load_text_set(SAMPLES / "coop_messages.jsonl")[::2]
+    texts = tmp_path / "half.jsonl"
+    texts.write_text("".join(json.dumps({"text": i.text}) + "\n" for i in items), "utf-8")
+    out = tmp_path / "insert.json"
+    argv = ["insert", str(MODEL_DIR), "--texts", str(texts), "--word", FOOTER, "--quiet", "--workers", "1"]
+    assert main([*argv, "--knockout-heads", "1.*", "--json", str(out)]) == 0
+    data = json.loads(out.read_text(encoding="utf-8"))
+    mech = data["knockout_heads"]
+    assert mech["heads"] == [[1, 0], [1, 1], [1, 2], [1, 3]]
+    end = next(r for r in mech["positions"] if r["position"] == "end")
+    tried, flipped = footer_at_the_end_without(items, [(1, h) for h in range(4)])
+    assert (end["tried"], end["flipped"]) == (len(tried), flipped)
+    intact = next(r for r in data["positions"] if r["position"] == "end")
+    assert end["intact_flip_rate"] == intact["flip_rate"]
+    r, r2 = intact["flips"] / intact["tried"], len(flipped) / len(tried)
+    assert end["share_carried"] == pytest.approx((r - r2) / r, abs=1e-12) and end["share_carried"] > 0.02
+    printed = capsys.readouterr().out
+    assert "mechanism check: the same test with layer 1 · heads 0, 1, 2, 3 knocked out" in printed
+    assert f"{end['share_carried']:.0%}" in printed
+    assert main([*argv, "--knockout-heads", "9.0"]) == 2  # no such layer: one line, exit 2
+
+
+def test_share_carried_worked_example():
+    """Worked example: intact 55 of 56 flip, without the heads 11 of 56: (55 − 11)/55 = 80%."""
+    from viewer.core.insertion import InsertionTally
+    from viewer.reports.insertion import MechanismCheck
+
+    intact, without = InsertionTally(("end",)), InsertionTally(("end",))
+    for k in range(56):
+        intact.add("end", k, k < 55, 0.5)
+        without.add("end", k, k < 11, 0.1)
+    assert MechanismCheck(((0, 0),), without, intact).share_carried("end") == pytest.approx(0.8)
+    empty = InsertionTally(("end",))
+    assert MechanismCheck(((0, 0),), without, empty).share_carried("end") is None

@@ -60,6 +60,10 @@ class FakeView:
 
     def model_opened(self, info, remember):
         self.opened.append((info.folder, remember))
+        self.label = info
+
+    def model_not_opened(self, info):
+        self.label = info
 
     def show_panel(self, name):
         self.panels.append(name)
@@ -107,6 +111,31 @@ def test_a_run_without_a_model_or_text_is_refused_with_one_line():
     c.run_text("the chain \ud800 slips")  # pasted half of a UTF-16 pair: not Unicode text
     assert "lone surrogate" in view.errors[-1] and "\n" not in view.errors[-1]
     assert "run" not in worker.names()
+
+
+def test_a_failed_or_cancelled_open_gives_the_label_back_to_the_open_model():
+    c, state, worker, view = make()
+    c.open_model("/a")
+    worker.submitted.clear()  # the worker has delivered the job
+    c.failed("open", "model folder not found: /a")
+    assert view.label is None  # no model was open before
+    c.open_model("/m")
+    worker.submitted.clear()
+    c.finished("open", info("/m"))
+    c.open_model("/b", run_after=True)
+    worker.submitted.clear()
+    c.failed("open", "config.json in /b is not valid JSON")
+    assert view.label is state.model and view.label.folder == "/m"
+    assert c._after_open == []
+    c.open_model("/c")
+    c.open_model("/d")  # replaces /c: the cancelled /c must not reset the label of /d's opening
+    view.label = "opening"
+    worker.submitted = [s for s in worker.submitted if s[2][1] == "/d"]
+    c.cancelled("open")
+    assert view.label == "opening"
+    worker.submitted.clear()
+    c.cancelled("open")
+    assert view.label is state.model
 
 
 class _Rec:
@@ -206,3 +235,53 @@ def test_an_unreadable_last_session_opens_the_demo_and_is_kept_aside(tmp_path):
         assert not last.exists()
         (kept,) = folder.glob("last-session.unreadable-*.json")
         assert kept.read_bytes() == raw and kept.name in note, name
+
+
+class _Tally:
+    def __init__(self, flips: int, tried: int) -> None:
+        self.flips, self.tried = flips, tried
+
+    def entry(self, position):
+        return {"flips": self.flips, "tried": self.tried, "flip_rate": self.flips / self.tried}
+
+
+class _Inserted:
+    def __init__(self, phrase: str, flips: int, tried: int = 56) -> None:
+        self.phrase, self.tally, self.mechanism = phrase, _Tally(flips, tried), None
+
+    def headline(self) -> str:
+        return f"'{self.phrase}' {self.tally.flips} of {self.tally.tried}"
+
+
+def test_the_insertion_test_takes_the_users_own_word_first_and_the_mechanism_check_the_selected_heads():
+    c, state, worker, view = make()
+    c.finished("open", info())
+    c.run_insertions(["portal"], own="  my  phrase ")
+    assert "insertions" not in worker.names() and view.errors  # no text set yet
+    state.set_textset(object())
+    c.run_insertions(["portal"], own="  my  phrase ")  # no search: only the user's own phrase
+    assert worker.submitted[-1][2][2:] == (None, ("my phrase",), "my phrase")
+    report = object()
+    state.set_shortcuts(report)
+    c.run_insertions(["portal", "via portal", "my phrase"], own="my phrase")
+    assert worker.submitted[-1][2][2:] == (report, ("my phrase", "portal", "via portal"), "my phrase")
+    results = {"portal": _Inserted("portal", 30), "via portal": _Inserted("[via portal]", 55)}
+    c.finished("insertions", (report, results, None, None))
+    assert view.status[-1] == "insertion test: '[via portal]' 55 of 56"  # the lead: the highest rate
+    c.finished("insertions", (object(), {}, None, None))  # an older search's: not shown
+    assert set(state.insertions) == {"portal", "via portal"}
+
+    state.select_head(1, None)
+    c.mechanism_check()
+    name, _fn, args = worker.submitted[-1]
+    assert name == "mechanism" and args[3] == "via portal" and args[5] == ((1, 0), (1, 1), (1, 2), (1, 3))
+    state.select_head(0, 2)
+    c.mechanism_check(own="portal")
+    assert worker.submitted[-1][2][3:] == ("portal", results["portal"], ((0, 2),))
+    checked = _Inserted("portal", 30)
+    checked.tally = results["portal"].tally
+    c.finished("mechanism", (report, "portal", checked))
+    assert state.insertions["portal"] is checked and view.status[-1].startswith("mechanism check: ")
+    stale = _Inserted("portal", 30)  # its test was replaced meanwhile
+    c.finished("mechanism", (report, "portal", stale))
+    assert state.insertions["portal"] is checked

@@ -16,7 +16,8 @@ from viewer.figures.fixation import X_UNITS, fixation_into
 from viewer.figures.head_map import head_map_into
 from viewer.figures.insertion import insertion_into
 from viewer.figures.links import accuracy_into
-from viewer.reports.evidence import ROW_TITLES, ROWS
+from viewer.model.names import short_name
+from viewer.reports.evidence import ROW_LABELS, ROWS, strip_agreement
 
 
 def _figure() -> Figure:
@@ -26,7 +27,7 @@ def _figure() -> Figure:
 def card_figures(data: dict) -> dict[str, Figure]:
     """name -> figure for every figure the card's numbers call for, in the card's order."""
     made: dict[str, Figure] = {}
-    model = data["model"]["folder"]
+    model = short_name(data["model"].get("name") or data["model"]["folder"])  # as the window names it
     heads = data["heads"]
     head_maps = (
         (
@@ -74,14 +75,15 @@ def card_figures(data: dict) -> dict[str, Figure]:
         insertion_into(fig, ins)
     if "example" in data:
         ex = data["example"]
-        values = np.array([[np.nan if v is None else v for v in ex["rows"][k]] for k in ROWS])
-        rho = [ex["agreement_with_knockout"].get(k) for k in ROWS]
+        shown = [k for k in ROWS if any(v is not None for v in ex["rows"][k])]  # as the window's strip
+        values = np.array([[np.nan if v is None else v for v in ex["rows"][k]] for k in shown])
+        rho = [strip_agreement(k, ex["agreement_with_knockout"], ex.get("agreement_withheld")) for k in shown]
         labels = list(ex["probabilities"])
         fig = made["evidence_example"] = Figure(figsize=(9.0, 3.6), dpi=100)
         evidence_into(
             fig,
             ex["tokens"],
-            [ROW_TITLES[k] for k in ROWS],
+            [ROW_LABELS[k] for k in shown],
             values,
             rho,
             labels=labels,

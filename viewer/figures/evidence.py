@@ -238,7 +238,7 @@ def recording_evidence_into(fig: Figure, rec, evidence, gold: str | None = None)
     prediction line: what the evidence pane shows and its export draws."""
     probs = rec.class_probabilities()
     row_labels, values, agreement = evidence.strip_rows()
-    return evidence_into(
+    artists = evidence_into(
         fig,
         rec.tokens,
         row_labels,
@@ -250,3 +250,24 @@ def recording_evidence_into(fig: Figure, rec, evidence, gold: str | None = None)
         gold=gold,
         title=prediction_line(rec.labels, probs, rec.predicted(), gold),
     )
+    span = getattr(evidence, "span", None)
+    if span is not None:
+        mark_span(artists, span.first, span.last)
+    return artists
+
+
+def mark_span(artists: EvidenceArtists, first: int, last: int) -> Rectangle:
+    """A dashed outline around tokens ``first``..``last`` on every row: the span knocked out
+    together (its drop is in the title of the pane and in the command's output)."""
+    box = Rectangle(
+        (first - 0.5, -0.5),
+        last - first + 1,
+        len(artists.row_labels),
+        fill=False,
+        edgecolor=style.ACCENT,
+        linewidth=1.6,
+        linestyle="--",
+        zorder=4,
+    )
+    artists.ax.add_patch(box)
+    return box

@@ -162,6 +162,13 @@ class MainWindow(QMainWindow):
             "insert each of the report's top words into the texts of other classes and count "
             "the flips into its class (does the word alone drive the prediction?)",
         )
+        self.mechanism_action = self._action(
+            "Mechanism check",
+            self.run_mechanism,
+            None,
+            "rerun the lead insertion test with the selected head knocked out (the selected "
+            "layer's heads when the head mean is selected): how much of the flip rate they carry",
+        )
         self.compare_action = self._action(
             "Compare", self.run_compare, None, "run the second text or checkpoint"
         )
@@ -219,6 +226,7 @@ class MainWindow(QMainWindow):
         self.pair_grid = PairGridPane(self.state)
         self.pair_grid.painted.connect(self._grid_painted)
         self.evidence = EvidencePane(self.state)
+        self.evidence.span_chosen.connect(lambda first, last: self.controller.knock_out_span(first, last))
         for pane in (self.head_map, self.links, self.evidence):
             pane.waits_for = self.pair_grid  # after a run, the pair grid is painted first
         for name, height in PANE_MINIMUM_HEIGHTS.items():
@@ -247,7 +255,9 @@ class MainWindow(QMainWindow):
 
     def _build_docks(self) -> None:
         self.textset_pane = TextSetPane(self.state, self.open_set_action)
-        self.shortcut_pane = ShortcutPane(self.state, self.shortcuts_action, self.insert_action)
+        self.shortcut_pane = ShortcutPane(
+            self.state, self.shortcuts_action, self.insert_action, mechanism_action=self.mechanism_action
+        )
         self.fixation = FixationPane(self.state)
         self.compare_pane = ComparePane(self.state, self.compare_action, self.clear_compare_action)
         self.notes_edit = _NotesEdit()
@@ -377,6 +387,11 @@ class MainWindow(QMainWindow):
         self.model_label.setToolTip(info.folder)
         if remember:
             self._add_recent(info.folder)
+
+    def model_not_opened(self, info) -> None:
+        """An open failed or was cancelled: the label names the model still open, if any."""
+        self.model_label.setText(info.describe() if info is not None else "no model open")
+        self.model_label.setToolTip(info.folder if info is not None else "")
 
     def show_panel(self, name: str) -> None:
         dock = {"textset": self.textset_dock, "shortcuts": self.shortcut_dock, "compare": self.compare_dock}[
@@ -533,7 +548,11 @@ class MainWindow(QMainWindow):
         self.controller.search_shortcuts(pane.phrases_box.isChecked(), pane.every_box.isChecked())
 
     def run_insertions(self) -> None:
-        self.controller.run_insertions(self.shortcut_pane.top_words())
+        pane = self.shortcut_pane
+        self.controller.run_insertions(pane.insertion_words(), own=pane.own_word())
+
+    def run_mechanism(self) -> None:
+        self.controller.mechanism_check(own=self.shortcut_pane.own_word())
 
     def run_compare(self) -> None:
         self.controller.run_compare()

@@ -53,6 +53,7 @@ from viewer.model.folders import (  # noqa: E402
     is_adapter_folder,
     model_folder,
 )
+from viewer.model.names import card_name_of, display_name  # noqa: E402
 from viewer.model.recorder import AttentionHooks  # noqa: E402
 from viewer.model.tables import LayerTables  # noqa: E402
 from viewer.model.tokens import Batch, TextEncoder  # noqa: E402
@@ -98,6 +99,7 @@ class LoadedModel:
         self.folder = folder
         # the model line: "folder", "base + adapter" for a merged adapter
         self.name = _folder_name(folder)
+        self.display_name = self.name  # what the model's own card calls it (``viewer.model.names``)
         self.base_folder: Path | None = None  # the base model folder of a merged adapter
         self.model = model
         self.tokenizer = tokenizer
@@ -267,8 +269,10 @@ def _open_checked(checked: ModelFolder, adapter: AdapterFolder | None = None) ->
         adapter.path if adapter else path, model, tokenizer, family, geometry, head_kind, tuple(notes), kernel
     )
     loaded.weight_files = checked.weights
+    loaded.display_name = display_name(path, raw)
     if adapter is not None:
         loaded.name = f"{_folder_name(path)} + {_folder_name(adapter.path)}"
+        loaded.display_name = card_name_of(adapter.path) or loaded.name
         loaded.base_folder = path
         loaded.weight_files += (adapter.weights,)
     return loaded

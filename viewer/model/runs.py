@@ -32,6 +32,7 @@ from viewer.core.softmax import softmax
 from viewer.core.terms import ScoreTerms
 from viewer.errors import HeadlightError
 from viewer.model.budget import fits, require_fits
+from viewer.model.names import head_phrase
 from viewer.model.recorder import Capture, LayerCapture
 from viewer.model.tables import stack_terms
 from viewer.model.tokens import BATCH_TOKENS, Batch
@@ -142,7 +143,7 @@ def kept_logits(loaded: LoadedModel, batch: Batch, out: Any) -> torch.Tensor | N
 def require_prediction(loaded: LoadedModel) -> None:
     if loaded.head_kind not in ("classifier", "causal-lm"):
         raise HeadlightError(
-            f"{loaded.name} has a {loaded.head_kind} head with no prediction to explain; this needs "
+            f"{loaded.name} has {head_phrase(loaded.head_kind)}, with no prediction to explain; this needs "
             "a sequence classifier or a causal language model"
         )
 

@@ -25,10 +25,13 @@ import numpy as np
 from viewer import __version__
 from viewer.core.attention import DEFAULT_TOLERANCE
 from viewer.core.insertion import POSITION_NAMES
+from viewer.core.stats import wilson_interval
 from viewer.core.words import contains
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
-from viewer.reports.evidence import ROW_TITLES, evidence_for
+from viewer.model.names import HEAD_KIND_NAMES
+from viewer.reports.cue import strongest_candidate
+from viewer.reports.evidence import ROW_LABELS, ROW_TITLES, ROWS, evidence_for
 from viewer.reports.heads import predicts
 from viewer.reports.predictions import accuracy_data, set_labels
 from viewer.reports.runfolder import input_digest
@@ -54,13 +57,6 @@ CAUTIONS = (
     "Decisions about deploying this model follow the team's own review process; the numbers "
     "here are inputs to that review, not a verdict.",
 )
-
-HEAD_KIND_NAMES = {
-    "classifier": "sequence classifier",
-    "causal-lm": "causal language model",
-    "masked-lm": "masked language model",
-    "encoder": "bare encoder",
-}
 
 
 def versions() -> dict[str, str]:
@@ -94,17 +90,6 @@ def example_text(
             if label is not None and label != labels[predicted[k]]:
                 return items[k].text
     return items[having[0]].text if having else items[0].text
-
-
-def strongest_candidate(shortcuts: dict) -> dict | None:
-    """The top word or the top two-word phrase, whichever ranks higher (flip low, then mean
-    drop; the word on a tie); None when knocking out neither flips anything."""
-    candidates = [
-        rows[0]
-        for rows in (shortcuts["tokens"], shortcuts.get("phrases") or [])
-        if rows and rows[0]["flip_rate"] > 0
-    ]
-    return max(candidates, key=lambda r: (r["flip_low"], r["mean_drop"]), default=None)
 
 
 def by_class_counts(labels: Sequence[str], row: dict) -> np.ndarray:
@@ -169,6 +154,7 @@ def card_data(
     items = load_text_set(source)
     data: dict = {
         "model": {
+            "name": loaded.display_name,  # as the window's model line names it
             "folder": loaded.name,
             "family": loaded.family.name,
             "layers": loaded.n_layers,
@@ -186,6 +172,7 @@ def card_data(
     }
     if pairs_path is not None:
         data["links"] = links_data(loaded, pairs_path, batch_size=batch_size, quiet=quiet, run=run)
+        add_link_intervals(data["links"])
         data["evaluation_data"]["pairs_file"] = pairs_path.name
         data["evaluation_data"]["pairs"] = data["links"]["pairs"]
     if predicts(loaded):
@@ -207,6 +194,19 @@ def card_data(
         if part in data:
             data[part].pop("model", None)  # the folder path is machine-specific; see "model"
     return data
+
+
+def add_link_intervals(links: dict) -> None:
+    """The best head's and the nearest baseline's pairs right, with the 95% Wilson score
+    interval of each share (Wilson 1927; ``viewer.core.stats.wilson_interval``)."""
+    n = int(links["pairs"])
+    for part, share in ((links["best"], links["best"]["accuracy"]), (links, links["nearest_baseline"])):
+        name = "nearest_baseline_" if part is links else ""
+        if share is None or not n:
+            continue
+        k = int(round(share * n))
+        part[f"{name}correct"] = k
+        part[f"{name}wilson_95"] = list(wilson_interval(k, n))
 
 
 def reproducibility(
@@ -257,6 +257,111 @@ def _insertion_line(ins: dict) -> str:
     return line + (f"; {'; '.join(others)}." if others else ".")
 
 
+EVIDENCE_SOURCES = {
+    "attention": "the model's own attention weights from the summary token",
+    "rollout": "Abnar & Zuidema 2020",
+    "flow": "Abnar & Zuidema 2020",
+    "value_norm": "Kobayashi et al. 2020",
+    "grad_input": "Shrikumar et al. 2016",  # from memory: "Not Just a Black Box", arXiv 1605.01713
+    "integrated_gradients": "Sundararajan et al. 2017",
+    "knockout": "the token deleted from the input and the model run again",
+}
+"""Where each row of the evidence strip comes from, for the card's caption."""
+
+
+def _model_name(m: dict) -> str:
+    """The model as the window names it (its own model card's name), with its folder."""
+    name = m.get("name") or m["folder"]
+    return f"**{name}**" + (f" (folder `{m['folder']}`)" if name != m["folder"] else "")
+
+
+def _links_line(links: dict) -> str:
+    b = links["best"]
+    line = f"- Link accuracy: best head layer {b['layer']} · head {b['head']} at {_fmt(b['accuracy'])}"
+    if "wilson_95" in b:
+        lo, hi = b["wilson_95"]
+        line += (
+            f" ({b['correct']} of {links['pairs']} pairs; 95% Wilson score interval "
+            f"{_fmt(lo)}–{_fmt(hi)}, Wilson 1927)"
+        )
+    line += f"; nearest-candidate baseline {_fmt(links['nearest_baseline'])}"
+    if "nearest_baseline_wilson_95" in links:
+        lo, hi = links["nearest_baseline_wilson_95"]
+        line += f" (95% Wilson {_fmt(lo)}–{_fmt(hi)})"
+    return line + "."
+
+
+def accuracy_table(acc: dict, cue: dict | None) -> list[str]:
+    """Per-class accuracy and the confusion matrix (docs/definitions.md, "Accuracy"), with
+    the accuracy with the cue removed and inserted beside it (docs/definitions.md, "Cue
+    accuracy") when the shortcut search found one."""
+    order = acc["confusion_order"]
+    extra = ("cue removed", "cue inserted") if cue else ()
+    head = ["label", "texts", "accuracy", *extra, *(f"predicted {c}" for c in order)]
+    lines = [
+        "Accuracy per class and confusion matrix on the labelled texts (rows: the label; "
+        "“predicted” columns: texts of that label predicted as each class)"
+        + (f"; beside it, the accuracy with the cue “{cue['cue']}” removed and inserted." if cue else "."),
+        "",
+        "| " + " | ".join(head) + " |",
+        "|---|" + "---:|" * (len(head) - 1),
+    ]
+    for a, label in enumerate(order):
+        pc = acc["per_class"][label]
+        cells = [label, str(pc["texts"]), _fmt(pc["accuracy"])]
+        if cue:
+            cells += [_fmt(cue[v]["per_class"][label]["accuracy"]) for v in ("removed", "inserted")]
+        cells += [str(n) for n in acc["confusion"][a]]
+        lines.append("| " + " | ".join(cells) + " |")
+    total = ["all", str(acc["labelled"]), _fmt(acc["accuracy"])]
+    if cue:
+        total += [_fmt(cue[v]["accuracy"]) for v in ("removed", "inserted")]
+    lines += ["| " + " | ".join(total + [""] * len(order)) + " |", ""]
+    return lines
+
+
+def evidence_caption(ex: dict, figure: str) -> list[str]:
+    """The evidence strip's figure with its text quoted, every row's source, how to read the
+    colours, and the rank agreements (or why they are withheld)."""
+    text = " ".join(ex["text"].split())
+    rows = [k for k in ROWS if any(v is not None for v in ex["rows"][k])]
+    sources = "; ".join(f"*{ROW_LABELS[k]}* — {ROW_TITLES[k]}, {EVIDENCE_SOURCES[k]}" for k in rows)
+    agreement = ex["agreement_with_knockout"]
+    if agreement:
+        rho = "Rank agreement with knockout (Spearman ρ, written at the right of each row): " + ", ".join(
+            f"{ROW_LABELS[k]} {_fmt(v, 2)}" for k, v in agreement.items()
+        )
+    elif ex.get("agreement_withheld"):
+        rho = f"Rank agreements are withheld: {ex['agreement_withheld']}"
+    else:
+        rho = "No rank agreement: there is no knockout row"
+    return [
+        f"![Evidence strip for one text]({figure})",
+        "",
+        f"Per-token evidence for this text (predicted: {ex['target_label']}):",
+        "",
+        f"> {text}",
+        "",
+        f"Rows: {sources}. Each row is scaled to its own largest absolute value, so colours "
+        "compare tokens within a row, not across rows; the bars at the right are the class "
+        f"probabilities, the predicted class filled. {rho}.",
+        "",
+    ]
+
+
+def _cue_sentence(cue: dict) -> str:
+    """Accuracy with the strongest candidate removed and inserted (docs/definitions.md, "Cue
+    accuracy"), beside the accuracy as given."""
+    g, r, i = cue["given"], cue["removed"], cue["inserted"]
+    others = g["labelled"] - cue["texts_with_cue"]
+    return (
+        f"Accuracy with the cue “{cue['cue']}” removed from the {cue['texts_with_cue']} texts "
+        f"holding it: {_fmt(r['accuracy'])} ({r['correct']} of {r['labelled']}); with it "
+        f"inserted at the end of the other {others}: {_fmt(i['accuracy'])} "
+        f"({i['correct']} of {i['labelled']}); as given: {_fmt(g['accuracy'])}."
+    )
+
+
 def card_markdown(data: dict, figures: dict[str, str]) -> str:
     """``card.md``: the numbers of ``data`` in words and tables, with the figures of ``figures``
     (name -> path of its PNG inside the card folder)."""
@@ -272,7 +377,7 @@ def card_markdown(data: dict, figures: dict[str, str]) -> str:
     lines += [
         "### What was inspected",
         "",
-        f"- Model: `{m['folder']}`, {m['family']} family, {m['layers']} layers × "
+        f"- Model: {_model_name(m)}, {m['family']} family, {m['layers']} layers × "
         f"{m['heads']} heads, {HEAD_KIND_NAMES[m['head_kind']]}{classes}.",
         f"- Evaluation data: `{ev['texts_file']}`, {ev['texts']} texts ({ev['labelled']} labelled).",
     ]
@@ -292,13 +397,11 @@ def card_markdown(data: dict, figures: dict[str, str]) -> str:
             f"- Accuracy on the labelled texts: {_fmt(acc['accuracy'])} "
             f"({acc['correct']} of {acc['labelled']})."
         )
+    cue = (data.get("shortcuts") or {}).get("cue_accuracy")
+    if cue:
+        lines.append(f"- {_cue_sentence(cue)}")
     if "links" in data:
-        b = data["links"]["best"]
-        lines.append(
-            f"- Link accuracy: best head layer {b['layer']} · head {b['head']} at "
-            f"{_fmt(b['accuracy'])}; nearest-candidate baseline "
-            f"{_fmt(data['links']['nearest_baseline'])}."
-        )
+        lines.append(_links_line(data["links"]))
     sc = data.get("shortcuts")
     if sc and (not sc["tokens"] or sc["tokens"][0]["flip_rate"] == 0):
         lines.append(
@@ -324,11 +427,14 @@ def card_markdown(data: dict, figures: dict[str, str]) -> str:
     if ins:
         lines.append(_insertion_line(ins))
     lines += ["", "### Quantitative analyses", ""]
+    if acc and acc.get("labelled"):
+        lines += accuracy_table(acc, cue)
     lines += [
         f"![Head map of mean attention entropy]({figures['head_entropy']})",
         "",
-        "Mean attention entropy per head, normalised by the log of the number of visible "
-        "keys (0: all weight on one key; 1: uniform).",
+        "Mean attention entropy per head (rows: layers, columns: heads, both from 0), "
+        "normalised by the log of the number of visible keys (0: all weight on one key; 1: "
+        "uniform); the colour bar gives the scale.",
         "",
     ]
     if "head_importance" in figures:
@@ -345,6 +451,10 @@ def card_markdown(data: dict, figures: dict[str, str]) -> str:
         accs = np.asarray(links["accuracy"], dtype=float)
         lines += [
             f"![Link accuracy per head]({figures['link_accuracy']})",
+            "",
+            f"Link accuracy per head over {links['pairs']} link pairs: each cell is the share of "
+            "pairs whose target the head scores above every distractor; the orange line on the "
+            "colour bar marks the nearest-candidate baseline.",
             "",
             "| layer | best head | link accuracy |",
             "|---:|---:|---:|",
@@ -385,31 +495,25 @@ def card_markdown(data: dict, figures: dict[str, str]) -> str:
         lines += [
             f"![Fixation plot]({figures['fixation']})",
             "",
-            "Fixation plot: per word, the summary token's last-layer attention share "
-            "(head mean) against the mean drop in the predicted class's probability when "
-            "the word is knocked out. Upper left: ignored but decisive; lower right: "
-            "attended but harmless.",
+            "Fixation plot: one dot per word seen in at least 3 texts, at the summary token's "
+            "last-layer attention share (head mean) and the mean drop in the predicted class's "
+            "probability when the word is knocked out; a dot's area grows with the number of "
+            "texts the word occurs in. The dashed lines are the medians of the two axes. Upper "
+            "left: ignored but decisive; lower right: attended but harmless.",
             "",
         ]
     if "insertion" in figures:
         lines += [
             f"![Insertion test]({figures['insertion']})",
             "",
-            f"Insertion test of “{ins['phrase']}”: flip-into rate per insertion point "
-            "with its 95% Wilson interval.",
+            f"Insertion test of “{ins['phrase']}”: one bar per insertion point (start, end, a "
+            "random word boundary), its length the share of texts not predicted "
+            f"{ins['class']} that flip into {ins['class']}, the line across its end the 95% "
+            "Wilson score interval (Wilson 1927), its label the flips of the texts tried.",
             "",
         ]
     if "evidence_example" in figures:
-        ex = data["example"]
-        lines += [
-            f"![Evidence strip for one text]({figures['evidence_example']})",
-            "",
-            f"Per-token evidence for one text (predicted: {ex['target_label']}). Rank "
-            "agreement with knockout (Spearman ρ): "
-            + ", ".join(f"{ROW_TITLES[k]} {_fmt(v, 2)}" for k, v in ex["agreement_with_knockout"].items())
-            + ".",
-            "",
-        ]
+        lines += evidence_caption(data["example"], figures["evidence_example"])
     lines += ["### Caveats and recommendations", ""]
     lines += [f"- {c}" for c in CAUTIONS]
     if sc and sc["tokens"] and sc["tokens"][0]["flip_low"] > 0.2:

@@ -25,7 +25,7 @@ needs re-normalising. F is the probability of the predicted class (or of the top
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 
@@ -35,8 +35,9 @@ from viewer.core.rollout import FLOW_MAX_TOKENS, attention_flow, rollout_row
 from viewer.core.stats import spearman
 from viewer.core.summary import summary_attention
 from viewer.errors import HeadlightError
-from viewer.model.attribution import gradient_evidence, token_knockout
+from viewer.model.attribution import gradient_evidence, predict_without, token_knockout
 from viewer.model.loader import LoadedModel
+from viewer.model.names import head_phrase
 from viewer.reports.heads import predicts
 
 ROWS = ("attention", "rollout", "flow", "value_norm", "grad_input", "integrated_gradients", "knockout")
@@ -59,12 +60,46 @@ ROW_LABELS = {
     "integrated_gradients": "integrated gradients",
     "knockout": "knockout",
 }
+FLAT_KNOCKOUT = 0.01
+"""Below this largest single-token knockout drop (in probability, over the ordinary tokens) the
+knockout row is flat and rank agreements with it are withheld (docs/definitions.md, "Flat
+knockout")."""
 HEAD_EVIDENCE_TOKENS = 256
 """Per-head importance and knockout of one text are computed up to this many tokens."""
 EVIDENCE_TOKENS = 1024
 """Gradient and token-knockout rows are computed up to this many tokens: knockout runs the model
 once per token, integrated gradients dozens of times with gradients, and a backward pass holds
 every layer's activations (the attention-based rows have no such limit)."""
+
+
+@dataclass(frozen=True)
+class SpanKnockout:
+    """Tokens ``first``..``last`` (inclusive) knocked out together (docs/definitions.md,
+    "Flat knockout"): their ordinary tokens deleted from the input as one, the model run again."""
+
+    first: int
+    last: int
+    text: str  # the characters the span covers
+    deleted: int  # ordinary tokens deleted (special tokens stay)
+    target_label: str
+    p_before: float
+    p_after: float
+    predicted_after: str | None  # the class predicted without the span (classifiers)
+
+    @property
+    def drop(self) -> float:
+        return self.p_before - self.p_after
+
+    def line(self) -> str:
+        """One line for the strip's title and the command's output."""
+        now = "" if self.predicted_after is None else f"; predicted without it: {self.predicted_after}"
+        return (
+            f"span knockout of '{self.text}' (tokens {self.first}–{self.last}): p({self.target_label}) "
+            f"{self.p_before:.3f} → {self.p_after:.3f}, drop {self.drop:+.3f}{now}"
+        )
+
+    def to_dict(self) -> dict:
+        return {**asdict(self), "drop": self.drop}
 
 
 @dataclass(frozen=True, eq=False)
@@ -81,6 +116,8 @@ class Evidence:
     notes: tuple[str, ...] = field(default_factory=tuple)
     head_importance: np.ndarray | None = None  # (L, H) Michel et al. 2019 for this text
     head_knockout: np.ndarray | None = None  # (L, H) drop in p(target), each head knocked out
+    withheld: str | None = None  # why the rank agreements are withheld (a flat knockout row)
+    span: SpanKnockout | None = None  # a span of tokens knocked out together, on request
 
     def strip_rows(self) -> tuple[tuple[str, ...], np.ndarray, tuple[float | str | None, ...]]:
         """The rows the evidence strip draws: (row labels, (K, T) values, agreement).
@@ -90,7 +127,7 @@ class Evidence:
         """
         names = [k for k in ROWS if np.isfinite(self.rows[k]).any()]
         values = np.stack([np.asarray(self.rows[k], dtype=np.float64) for k in names])
-        agreement = tuple("reference" if k == "knockout" else self.agreement.get(k) for k in names)
+        agreement = tuple(strip_agreement(k, self.agreement, self.withheld) for k in names)
         return tuple(ROW_LABELS[k] for k in names), values, agreement
 
     def to_dict(self) -> dict:
@@ -109,6 +146,8 @@ class Evidence:
             "probabilities": {lab: float(p) for lab, p in zip(rec.labels, self.probabilities, strict=False)},
             "rows": {k: [num(v) for v in self.rows[k]] for k in ROWS},
             "agreement_with_knockout": {k: num(v) for k, v in self.agreement.items()},
+            "agreement_withheld": self.withheld,
+            "span_knockout": None if self.span is None else self.span.to_dict(),
             "integrated_gradients_completeness_gap": num(self.completeness_gap),
             "integrated_gradients_steps": self.ig_steps,
             "notes": list(self.notes),
@@ -120,6 +159,14 @@ class Evidence:
                 )
             },
         }
+
+
+def strip_agreement(row: str, agreement: dict, withheld: str | None) -> float | str | None:
+    """What the strip writes at the right of ``row``: its ρ with knockout, "reference" for the
+    knockout row itself, "ρ withheld" / "knockout flat" when the knockout row is flat."""
+    if row == "knockout":
+        return "knockout flat" if withheld else "reference"
+    return agreement.get(row, "ρ withheld" if withheld else None)
 
 
 def value_norm_row(loaded: LoadedModel, rec: Recording, summary: int) -> np.ndarray:
@@ -191,20 +238,93 @@ def evidence_for(
             )
     else:
         notes.append(
-            f"{loaded.name} has a {loaded.head_kind} head: no prediction to explain, so "
+            f"{loaded.name} has {head_phrase(loaded.head_kind)}: no prediction to explain, so "
             "no gradient or knockout rows"
         )
 
     ordinary = ~rec.special
     agreement = {}
-    if np.isfinite(rows["knockout"]).any() and ordinary.sum() >= 2:
+    withheld = flat_knockout(rows["knockout"][ordinary])
+    if withheld:
+        notes.append(withheld)
+    elif np.isfinite(rows["knockout"]).any() and ordinary.sum() >= 2:
         for name in ROWS[:-1]:
             agreement[name] = (
                 spearman(rows[name][ordinary], rows["knockout"][ordinary])
                 if np.all(np.isfinite(rows[name][ordinary]))
                 else float("nan")
             )
-    return Evidence(rec, rows, last, agreement, target, label, probs, gap, ig_steps, tuple(notes))
+    return Evidence(
+        rec, rows, last, agreement, target, label, probs, gap, ig_steps, tuple(notes), withheld=withheld
+    )
+
+
+def flat_knockout(drops: np.ndarray, floor: float = FLAT_KNOCKOUT) -> str | None:
+    """Why rank agreements with a knockout row of ``drops`` (ordinary tokens) are withheld, or
+    None: when no single token's knockout moves the probability by ``floor`` or more
+    (docs/definitions.md, "Flat knockout"), the tokens back each other up and the row's order is
+    the order of differences too small to rank anything by."""
+    d = np.abs(np.asarray(drops, dtype=np.float64))
+    d = d[np.isfinite(d)]
+    if not d.size or d.max() >= floor:
+        return None
+    return (
+        f"knockout is flat: no single token moves the probability by {floor:g} or more "
+        f"(largest {d.max():.1g}), so rank agreements with it are withheld; knock out a "
+        "span of tokens together instead (the evidence strip: drag across tokens; the command: "
+        "--knockout-span)"
+    )
+
+
+def span_knockout(loaded: LoadedModel, ev: Evidence, first: int, last: int) -> SpanKnockout:
+    """``ev``'s prediction with tokens ``first``..``last`` (either order) deleted together
+    (``viewer.model.attribution.predict_without``, the one knockout by deletion)."""
+    rec = ev.recording
+    if ev.target is None:
+        raise HeadlightError("this model makes no prediction to knock a span out of")
+    first, last = sorted((int(first), int(last)))
+    if first < 0 or last >= rec.n_tokens:
+        raise HeadlightError(f"tokens {first}–{last} are not in this text of {rec.n_tokens} tokens")
+    gone = [t for t in range(first, last + 1) if not rec.special[t]]
+    if not gone:
+        raise HeadlightError("the span holds only special tokens, which are never knocked out")
+    if len(gone) == int((~rec.special).sum()):
+        raise HeadlightError("the span is the whole text; leave at least one token")
+    p = predict_without(loaded, [(rec.token_ids, gone)])[0]  # (C,)
+    starts = [rec.offsets[t][0] for t in gone]
+    ends = [rec.offsets[t][1] for t in gone]
+    return SpanKnockout(
+        first,
+        last,
+        rec.text[min(starts) : max(ends)],
+        len(gone),
+        str(ev.target_label),
+        float(rec.target_distribution()[ev.target]),
+        float(p[ev.target]),
+        rec.labels[int(np.argmax(p))] if loaded.head_kind == "classifier" else None,
+    )
+
+
+def with_span_of(loaded: LoadedModel, ev: Evidence, phrase: str) -> Evidence:
+    """``ev`` with the span knockout of ``phrase``'s first occurrence in the text."""
+    return replace(ev, span=span_knockout(loaded, ev, *phrase_tokens(ev.recording, phrase)))
+
+
+def phrase_tokens(rec: Recording, phrase: str) -> tuple[int, int]:
+    """The first and last token of the first case-insensitive occurrence of ``phrase`` in the
+    recording's text (tokens whose characters overlap it)."""
+    at = rec.text.lower().find(phrase.lower().strip())
+    if not phrase.strip() or at < 0:
+        raise HeadlightError(f"'{phrase}' does not occur in the text")
+    end = at + len(phrase.strip())
+    hit = [
+        t
+        for t in range(rec.n_tokens)
+        if not rec.special[t] and rec.offsets[t][0] < end and rec.offsets[t][1] > at
+    ]
+    if not hit:
+        raise HeadlightError(f"no token of the text covers '{phrase}'")
+    return hit[0], hit[-1]
 
 
 def head_evidence(

@@ -10,6 +10,10 @@ flips away from (``pointed_class``, a view of the per-class breakdown of the phr
 knockout tally: the shortcut search's, or one made by ``PhraseKnockoutKind``). For the demo's
 footer that is ``billing``: without "[via portal]" the portal messages stop being billing.
 
+The *mechanism check* (docs/definitions.md, "Mechanism check") runs the insertion test once
+more with chosen heads knocked out (their gates at 0, ``viewer.model.gates``) and reports, per
+position, the share of the intact flip rate that the heads carry.
+
 Both passes are report kinds of the shard engine (``PhraseKnockoutKind``, ``InsertionKind``), so they
 run on workers or a cluster and resume from a run folder like every set report.
 ``insertion_shard`` is the map step over one shard (indices are positions in the whole set, so
@@ -20,7 +24,7 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Callable, Iterable, Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import Any, ClassVar
 
 import numpy as np
@@ -30,6 +34,7 @@ from viewer.core.shortcuts import KnockoutTally
 from viewer.core.words import Span, contains, occurrences, phrase_keys, split_words
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
+from viewer.model.names import head_phrase
 from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
 from viewer.reports.shortcuts import ShortcutReport, class_labels, knock_out
 from viewer.reports.textsets import TextItem, TextSource
@@ -38,8 +43,8 @@ from viewer.reports.textsets import TextItem, TextSource
 def _require_classifier(loaded: LoadedModel) -> None:
     if loaded.head_kind != "classifier":
         raise HeadlightError(
-            f"the insertion test counts texts flipping into a class; {loaded.name} has a "
-            f"{loaded.head_kind} head, not a sequence classifier"
+            f"the insertion test counts texts flipping into a class; {loaded.name} has "
+            f"{head_phrase(loaded.head_kind)}, not a sequence classifier"
         )
 
 
@@ -159,6 +164,41 @@ class PhraseKnockoutKind:
         return KnockoutTally.from_state(state)
 
 
+Head = tuple[int, int]  # (layer, head), counted from 0
+
+
+def parse_heads(text: str, n_layers: int, n_heads: int) -> tuple[Head, ...]:
+    """ "1.2,3.0" -> ((1, 2), (3, 0)); "2.*" is every head of layer 2. Sorted, no repeats; a
+    HeadlightError names what does not fit the model."""
+    heads: set[Head] = set()
+    for part in (p.strip() for p in text.split(",")):
+        layer, dot, head = part.partition(".")
+        if not dot or not layer.isdigit() or not (head.isdigit() or head == "*"):
+            raise HeadlightError(
+                f"--knockout-heads takes LAYER.HEAD pairs counted from 0, like 1.2,3.0 (or 2.* for a "
+                f"whole layer); got {part!r}"
+            )
+        if int(layer) >= n_layers or (head != "*" and int(head) >= n_heads):
+            raise HeadlightError(
+                f"no head {part} in this model: it has layers 0-{n_layers - 1} and heads 0-{n_heads - 1}"
+            )
+        heads.update((int(layer), h) for h in (range(n_heads) if head == "*" else (int(head),)))
+    return tuple(sorted(heads))
+
+
+def heads_text(heads: Sequence[Head]) -> str:
+    """ "layer 1 · head 2, layer 3 · heads 0, 1" for titles and messages (one group a layer)."""
+    layers: dict[int, list[int]] = {}
+    for layer, head in sorted(set(heads)):
+        layers.setdefault(layer, []).append(head)
+    return ", ".join(
+        f"layer {layer} · head {hs[0]}"
+        if len(hs) == 1
+        else f"layer {layer} · heads {', '.join(map(str, hs))}"
+        for layer, hs in layers.items()
+    )
+
+
 def insertion_shard(
     loaded: LoadedModel,
     items: Sequence[tuple[int, TextItem]],
@@ -168,14 +208,25 @@ def insertion_shard(
     seed: int = 0,
     positions: Sequence[str] = POSITIONS,
     batch_size: int = 32,
+    heads: Sequence[Head] = (),
 ) -> InsertionTally:
-    """The insertion test over one shard: ``items`` are (index in the set, text) pairs."""
+    """The insertion test over one shard: ``items`` are (index in the set, text) pairs; with
+    ``heads`` the model runs with those heads knocked out, before and after the insertion."""
     tally = InsertionTally(positions)
     texts = [item.text for _, item in items]
     if not texts:
         return tally
+    gates = None
+    if heads:
+        from viewer.model.gates import knockout_gates
+
+        gates = knockout_gates(loaded, heads)
+
+    def predict(batch: list[str]) -> np.ndarray:
+        return loaded.predict(loaded.encode(batch), gates)  # (B, C)
+
     before = np.concatenate(
-        [loaded.predict(loaded.encode(texts[i : i + batch_size])) for i in range(0, len(texts), batch_size)]
+        [predict(texts[i : i + batch_size]) for i in range(0, len(texts), batch_size)]
     )  # (N, C)
     tally.texts = len(texts)
     todo = [(k, index) for k, (index, _) in enumerate(items) if before[k].argmax() != target]
@@ -187,10 +238,42 @@ def insertion_shard(
     ]
     for start in range(0, len(variants), batch_size):
         part = variants[start : start + batch_size]
-        after = loaded.predict(loaded.encode([v[3] for v in part]))  # (B, C)
+        after = predict([v[3] for v in part])  # (B, C)
         for (position, k, index, _), p in zip(part, after, strict=True):
             tally.add(position, index, bool(p.argmax() == target), float(p[target] - before[k, target]))
     return tally
+
+
+@dataclass
+class MechanismCheck:
+    """The insertion test rerun with ``heads`` knocked out, beside the intact test's tally
+    (docs/definitions.md, "Mechanism check")."""
+
+    heads: tuple[Head, ...]
+    tally: InsertionTally  # with the heads knocked out
+    intact: InsertionTally
+
+    def share_carried(self, position: str) -> float | None:
+        """(intact flip rate − flip rate without the heads) / intact flip rate; None when the
+        intact test flipped nothing or either test tried no text at that position."""
+        a, b = self.intact.positions[position], self.tally.positions[position]
+        if not a.tried or not b.tried or not a.flips:
+            return None
+        return (a.flips / a.tried - b.flips / b.tried) / (a.flips / a.tried)
+
+    def to_dict(self) -> dict[str, Any]:
+        rows = []
+        for position in self.tally.positions:
+            row = self.tally.entry(position)
+            row["intact_flip_rate"] = self.intact.entry(position)["flip_rate"]
+            row["share_carried"] = self.share_carried(position)
+            rows.append(row)
+        return {
+            "heads": [[layer, head] for layer, head in self.heads],
+            "texts": self.tally.texts,
+            "skipped": self.tally.skipped,
+            "positions": rows,
+        }
 
 
 @dataclass
@@ -202,6 +285,8 @@ class InsertionReport:
     seed: int
     tally: InsertionTally
     pointed: PointedClass | None = None
+    mechanism: MechanismCheck | None = None  # the same test with chosen heads knocked out
+    cue_accuracy: dict | None = None  # the set's accuracy with the phrase removed / inserted
 
     def to_dict(self) -> dict[str, Any]:
         out = {
@@ -215,7 +300,44 @@ class InsertionReport:
         if self.pointed is not None:
             out["knockout_flips_from"] = dict(self.pointed.flips_from)
             out["texts_with_phrase"] = dict(self.pointed.texts_with)
+        if self.mechanism is not None:
+            out["knockout_heads"] = self.mechanism.to_dict()
         return out
+
+    def headline(self) -> str:
+        """The test in one line, at the end of the texts (where a footer goes), with the
+        mechanism check's share when there is one."""
+        label, end = self.target_label, self.tally.entry("end")
+        if not end["tried"]:
+            return f"'{self.phrase}': every text is already predicted {label}"
+        line = (
+            f"'{self.phrase}' inserted at the end: {end['flips']} of {end['tried']} texts not "
+            f"predicted {label} flip into {label} (95% low {end['flip_low']:.2f})"
+        )
+        if self.mechanism is not None:
+            m = self.mechanism.tally.entry("end")
+            share = self.mechanism.share_carried("end")
+            carried = "no share to give" if share is None else f"they carry {share:.0%} of the flip rate"
+            line += f"; without {heads_text(self.mechanism.heads)}: {m['flips']} of {m['tried']}, {carried}"
+        if self.cue_accuracy is not None:
+            g, r, i = (self.cue_accuracy[v]["accuracy"] for v in ("given", "removed", "inserted"))
+            line += f"; set accuracy {g:.3f} as given, {r:.3f} with it removed, {i:.3f} with it inserted"
+        return line
+
+
+def lead_insertion(results: dict[str, InsertionReport], own: str | None = None) -> str | None:
+    """The key of the result to state first: the user's own word or phrase when it has one,
+    else the highest flip rate at the end (then more flips; the first key on a tie)."""
+    if own is not None and own in results:
+        return own
+    if not results:
+        return None
+
+    def strength(key: str) -> tuple[float, int]:
+        end = results[key].tally.entry("end")
+        return (end["flip_rate"] or 0.0, end["flips"])
+
+    return max(results, key=strength)
 
 
 @dataclass(frozen=True)
@@ -228,9 +350,13 @@ class InsertionKind:
     seed: int = 0
     batch_size: int = 32
     positions: tuple[str, ...] = POSITIONS
+    heads: tuple[Head, ...] = ()  # knocked out during the test (the mechanism check)
 
     def options(self) -> dict:
-        return asdict(self)
+        options = asdict(self)
+        if not self.heads:
+            del options["heads"]  # the intact test keeps the run folders it always had
+        return options
 
     def map(self, loaded: LoadedModel, shard: Shard, check: Callable[[], None]) -> InsertionTally:
         check()
@@ -242,6 +368,7 @@ class InsertionKind:
             seed=self.seed,
             positions=self.positions,
             batch_size=self.batch_size,
+            heads=self.heads,
         )
 
     def state(self, partial: InsertionTally) -> State:
@@ -259,13 +386,15 @@ def run_insertion(
     batch_size: int,
     run: Callable[[Any, str], Any],
     by_class: np.ndarray | None = None,
+    heads: Sequence[Head] = (),
 ) -> InsertionReport:
     """The insertion test with ``run(kind, label)`` mapping a report kind over the whole set
     (the engine call of the caller: the window's, or the command's with its progress bar).
 
     Without ``target`` the class is the one the phrase points to, read off ``by_class`` (its
     knockout's per-class breakdown, when the caller's shortcut search has it) or else found by
-    a knockout of the phrase over the set (``PhraseKnockoutKind``)."""
+    a knockout of the phrase over the set (``PhraseKnockoutKind``). With ``heads`` the test is
+    run again with those heads knocked out (``mechanism_check``)."""
     _require_classifier(loaded)
     phrase = " ".join(phrase.split())
     keys = insertion_keys(phrase)
@@ -280,7 +409,25 @@ def run_insertion(
         index = target if isinstance(target, int) else resolve_class(loaded, str(target))
         chosen = "given"
     tally = run(InsertionKind(phrase, index, seed, batch_size), f"insertion of '{phrase}'")
-    return InsertionReport(phrase, index, loaded.labels[index], chosen, seed, tally, pointed)
+    report = InsertionReport(phrase, index, loaded.labels[index], chosen, seed, tally, pointed)
+    if heads:
+        report.mechanism = mechanism_check(report, heads, batch_size, run)
+    return report
+
+
+def mechanism_check(
+    report: InsertionReport, heads: Sequence[Head], batch_size: int, run: Callable[[Any, str], Any]
+) -> MechanismCheck:
+    """``report``'s insertion test again (same phrase, class, seed and positions) with ``heads``
+    knocked out, ``run`` mapping the kind over the same set."""
+    heads = tuple(sorted(set(heads)))
+    if not heads:
+        raise HeadlightError("choose at least one head to knock out")
+    kind = InsertionKind(
+        report.phrase, report.target, report.seed, batch_size, tuple(report.tally.positions), heads
+    )
+    tally = run(kind, f"insertion of '{report.phrase}' without {heads_text(heads)}")
+    return MechanismCheck(heads, tally, report.tally)
 
 
 def insertion_test(
@@ -295,13 +442,46 @@ def insertion_test(
     cancelled: Callable[[], bool] | None = None,
     options: RunOptions = SERIAL,
     by_class: np.ndarray | None = None,
+    heads: Sequence[Head] = (),
 ) -> InsertionReport:
-    """The whole insertion test over the shards of the set (``viewer.reports.shards``).
+    """The whole insertion test over the shards of the set (``viewer.reports.shards``), with
+    the mechanism check of ``heads`` when given.
 
     Without ``target`` or ``by_class`` the set is read twice (the knockout that finds the
     pointed class, then the insertions): a one-shot stream of items is read into a list first.
     ``progress(done, total)`` follows the insertion pass.
     """
+    run = _set_runner(loaded, items, options, cancelled, progress)
+    return run_insertion(loaded, phrase, target, seed, batch_size, run, by_class, heads)
+
+
+def mechanism_test(
+    loaded: LoadedModel,
+    items: Iterable[TextItem] | TextSource,
+    report: InsertionReport,
+    heads: Sequence[Head],
+    *,
+    batch_size: int = 32,
+    progress: Callable[..., None] | None = None,
+    cancelled: Callable[[], bool] | None = None,
+    options: RunOptions = SERIAL,
+) -> InsertionReport:
+    """``report`` (an insertion test over ``items``) with its mechanism check of ``heads``: the
+    intact test is not run again."""
+    run = _set_runner(loaded, items, options, cancelled, progress)
+    return replace(report, mechanism=mechanism_check(report, heads, batch_size, run))
+
+
+def _set_runner(
+    loaded: LoadedModel,
+    items: Iterable[TextItem] | TextSource,
+    options: RunOptions,
+    cancelled: Callable[[], bool] | None,
+    progress: Callable[..., None] | None,
+) -> Callable[[Any, str], Any]:
+    """``run(kind, label)`` mapping a report kind over the shards of ``items`` (a one-shot
+    stream of items is read into a list first, since a test may read the set twice);
+    ``progress(done, total)`` follows the insertion passes."""
     if not isinstance(items, TextSource):
         items = list(items)
 
@@ -315,4 +495,4 @@ def insertion_test(
             progress=progress if isinstance(kind, InsertionKind) else None,
         )
 
-    return run_insertion(loaded, phrase, target, seed, batch_size, run, by_class)
+    return run

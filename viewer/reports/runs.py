@@ -9,7 +9,7 @@ report over a set runs through the shard engine (``viewer.reports.shards``) with
 from __future__ import annotations
 
 import os
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any, ClassVar
@@ -269,7 +269,36 @@ def shortcuts_data(
         loaded, one, batch_size=batch_size, phrases=phrases, exhaustive=exhaustive, share=share
     )
     cut = cut_data(loaded, (i.text for i in source.items()))
-    return {"model": str(loaded.folder), **report.to_dict(), **cut}
+    data = {"model": str(loaded.folder), **report.to_dict(), **cut}
+    cue = cue_data(loaded, source, data, batch_size=batch_size, quiet=quiet, run=run)
+    if cue is not None:
+        data["cue_accuracy"] = cue
+    return data
+
+
+def cue_data(
+    loaded: LoadedModel,
+    source: TextSource,
+    shortcuts: dict,
+    *,
+    batch_size: int = 16,
+    quiet: bool = False,
+    run: RunOptions = SERIAL,
+) -> dict | None:
+    """Set accuracy as given, with the strongest shortcut candidate removed and with it
+    inserted (``viewer.reports.cue``), for a classifier on a labelled set; None otherwise."""
+    from viewer.reports.cue import CueAccuracyKind, cue_accuracy_data, strongest_candidate
+    from viewer.reports.heads import check_labels
+    from viewer.reports.insertion import insertion_phrase
+
+    best = strongest_candidate(shortcuts)
+    counted = survey(source)
+    if best is None or loaded.head_kind != "classifier" or not check_labels(loaded, counted):
+        return None
+    cue = insertion_phrase(source.items(), best["token"])
+    kind = CueAccuracyKind(cue, batch_size)
+    counts = _run_set(kind, loaded, source, f"accuracy without and with '{cue}'", run, quiet, counted.texts)
+    return cue_accuracy_data(loaded.labels, cue, counts)
 
 
 def search_mode(data: dict) -> str:
@@ -298,9 +327,11 @@ def insertion_data(
     quiet: bool = False,
     run: RunOptions = SERIAL,
     by_class: np.ndarray | None = None,
+    heads: Sequence[tuple[int, int]] = (),
 ) -> dict:
     """``headlight insert``'s numbers; ``by_class``: the phrase's per-class knockout breakdown
-    when a shortcut search already has it (``viewer.reports.insertion.run_insertion``)."""
+    when a shortcut search already has it (``viewer.reports.insertion.run_insertion``); ``heads``:
+    also the mechanism check with those heads knocked out."""
     from viewer.reports.insertion import run_insertion
 
     source = as_source(texts)
@@ -313,5 +344,6 @@ def insertion_data(
         batch_size,
         lambda kind, label: _run_set(kind, loaded, source, label, run, quiet, total),
         by_class,
+        heads,
     )
     return {"model": str(loaded.folder), **report.to_dict()}

@@ -47,6 +47,7 @@ class View(Protocol):
     def set_editor_text(self, text: str) -> None: ...
     def model_opening(self, folder: str) -> None: ...
     def model_opened(self, info: ModelInfo, remember: bool) -> None: ...
+    def model_not_opened(self, info: ModelInfo | None) -> None: ...  # the open model stays (or none)
     def show_panel(self, name: str) -> None: ...  # "textset", "shortcuts", "compare"
     def evidence_after_runs(self) -> bool: ...
     def later(self, msecs: int, fn: Callable[[], None]) -> None: ...
@@ -128,6 +129,7 @@ class Controller:
             base = self.view.ask_base_model(info.folder, info.message)
             if not base:
                 self._after_open.clear()
+                self.view.model_not_opened(self.state.model)
                 self.view.show_error(info.message)
                 return
             self.worker.submit("open", jobs.open_model, "main", info.folder, str(base))
@@ -140,6 +142,13 @@ class Controller:
         todo, self._after_open = self._after_open, []
         for fn in todo:
             fn()
+
+    def _open_ended(self) -> None:
+        """An open failed or was cancelled: unless a newer open is on its way, the model label
+        names the model still open (or none), not the folder that did not open."""
+        if "open" not in self.worker.running_jobs():
+            self._after_open.clear()
+            self.view.model_not_opened(self.state.model)
 
     # -- runs -----------------------------------------------------------------------------------
     def run_current(self) -> None:
@@ -217,6 +226,22 @@ class Controller:
         if evidence.notes:
             self.view.set_status(evidence.notes[0])
 
+    def knock_out_span(self, first: int, last: int) -> None:
+        """Knock tokens ``first``..``last`` of the current run out together (docs/definitions.md,
+        "Flat knockout"); the evidence strip then shows the drop."""
+        ev = self.state.evidence
+        if ev is None or ev.target is None:
+            self.view.show_error("wait for the evidence strip; a span is knocked out of its prediction")
+            return
+        self.worker.submit("span", jobs.run_span_knockout, "main", ev, int(first), int(last))
+
+    def _done_span(self, evidence) -> None:
+        current = self.state.evidence
+        if current is None or evidence.recording is not current.recording:
+            return  # a newer run has arrived meanwhile
+        self.state.set_evidence(evidence)
+        self.view.set_status(evidence.span.line())
+
     def cancel(self) -> None:
         self.worker.cancel(keep=("figures",))
         self._after_open.clear()
@@ -277,35 +302,72 @@ class Controller:
         phrases = f" and {len(report.phrases.ranking())} phrases" if report.phrases.texts else ""
         self.view.set_status(f"shortcut report: {words} words{phrases}")
 
-    def run_insertions(self, words) -> None:
-        """Insertion tests for the shortcut report's ``words`` (on request: one pass over the
-        text set per word and position)."""
+    def run_insertions(self, words, own: str | None = None) -> None:
+        """Insertion tests for the shortcut report's ``words`` and the user's ``own`` word or
+        phrase, first (on request: one pass over the text set per word and position). ``own``
+        needs a text set but no search: its class is then found by its knockout."""
         ts, report = self.state.textset, self.state.shortcuts
-        if ts is None or report is None:
+        own = " ".join(own.split()) if own else None
+        if ts is None or (report is None and not own):
             self.view.show_error(
-                "search the text set for shortcuts first; the insertion test takes the report's top words"
+                "search the text set for shortcuts first, or type a word or phrase to insert; "
+                "the insertion test takes the report's top words"
             )
             return
-        words = tuple(words)
+        words = tuple(dict.fromkeys([*([own] if own else []), *(words if report is not None else ())]))
         if not words:
             self.view.show_error("the shortcut report has no words to test")
             return
-        self.worker.submit("insertions", jobs.run_insertions, "main", ts, report, words)
+        self.worker.submit("insertions", jobs.run_insertions, "main", ts, report, words, own)
 
     def _done_insertions(self, done) -> None:
-        report, results = done
+        from viewer.reports.insertion import lead_insertion
+
+        report, results, own, failed = done
         if report is not self.state.shortcuts:
             return  # a newer search replaced the report these words came from
         self.state.set_insertions(results)
-        best = max(results.values(), key=lambda r: r.tally.entry("end")["flip_rate"] or 0, default=None)
-        if best is None:
+        if failed:
+            self.view.show_error(failed)
+        lead = lead_insertion(results, own)
+        if lead is None:
             self.view.set_status("insertion tests: no top word points to a class")
             return
-        end = best.tally.entry("end")
-        self.view.set_status(
-            f"insertion tests: '{best.phrase}' at the end flips "
-            f"{end['flips']} of {end['tried']} texts into {best.target_label}"
+        self.view.set_status(f"insertion test: {results[lead].headline()}")
+
+    def mechanism_check(self, own: str | None = None) -> None:
+        """The insertion test of the lead word (``own`` when it has a result) rerun with the
+        selected head knocked out, or every head of the selected layer when the head mean is
+        selected (docs/definitions.md, "Mechanism check")."""
+        from viewer.reports.insertion import lead_insertion
+
+        insertions = self.state.insertions or {}
+        word = lead_insertion(insertions, " ".join(own.split()) if own else None)
+        if word is None or self.state.textset is None:
+            self.view.show_error(
+                "run the insertion test first; the mechanism check reruns it without the selected heads"
+            )
+            return
+        layer, head = self.state.layer, self.state.head
+        heads = tuple((layer, h) for h in range(self.state.n_heads)) if head is None else ((layer, head),)
+        self.worker.submit(
+            "mechanism",
+            jobs.run_mechanism,
+            "main",
+            self.state.textset,
+            self.state.shortcuts,
+            word,
+            insertions[word],
+            heads,
         )
+
+    def _done_mechanism(self, done) -> None:
+        report, word, result = done
+        shown = (self.state.insertions or {}).get(word)
+        if report is not self.state.shortcuts or shown is None or shown.tally is not result.tally:
+            return  # a newer search or insertion test replaced the one checked
+        self.state.set_insertions({**self.state.insertions, word: result})
+        self.view.set_status(f"mechanism check: {result.headline()}")
 
     # -- compare --------------------------------------------------------------------------------
     def run_compare(self) -> None:
@@ -419,9 +481,11 @@ class Controller:
         if name == "figures":
             self._figures_requested = False
         if name == "open":
-            self._after_open.clear()
+            self._open_ended()
         self.view.show_error(message)
 
     def cancelled(self, name: str) -> None:
+        if name == "open":
+            self._open_ended()
         if not self.worker.busy:
             self.view.set_status(f"{name} cancelled")

@@ -77,15 +77,10 @@ def settle_imports() -> None:
     gc.freeze()
 
 
-DEMO_NAME = "Northgate demo router"
-
-
 def info_of(loaded: Any) -> ModelInfo:
-    folder = Path(loaded.folder)
-    name = DEMO_NAME if folder.resolve() == demo_folder().resolve() else loaded.name
     return ModelInfo(
         folder=str(loaded.folder),
-        name=name,
+        name=loaded.display_name,  # what the model's own card calls it, as the card export does
         family=loaded.family.name,
         n_layers=int(loaded.n_layers),
         n_heads=int(loaded.n_heads),
@@ -353,22 +348,41 @@ def run_shortcuts(
     )
 
 
+def run_span_knockout(ctx: JobContext, slot: str, evidence: Any, first: int, last: int) -> Any:
+    """``evidence`` with tokens ``first``..``last`` knocked out together
+    (``viewer.reports.evidence.span_knockout``)."""
+    import dataclasses
+
+    from viewer.reports.evidence import span_knockout
+
+    ctx.progress(0, 0, f"knocking out tokens {min(first, last)}–{max(first, last)} together…")
+    return dataclasses.replace(evidence, span=span_knockout(ctx.model(slot), evidence, first, last))
+
+
 def run_insertions(
-    ctx: JobContext, slot: str, textset: TextSetResult, report: Any, words: tuple[str, ...]
-) -> tuple[Any, dict[str, Any]]:
+    ctx: JobContext,
+    slot: str,
+    textset: TextSetResult,
+    report: Any,
+    words: tuple[str, ...],
+    own: str | None = None,
+) -> tuple[Any, dict[str, Any], str | None, str | None]:
     """The insertion test (``viewer.reports.insertion``) for each of ``words`` over the open
-    text set, into the class knocking it out flips texts away from (read off the report's own
-    per-class breakdown when it has the word, else found by its knockout); a phrase is inserted as
-    the texts most often write it (``insertion_phrase``: "via portal" as "[via portal]"). A word
-    that points to no class is left out. Returns (``report``, {word: InsertionReport}): the
-    shortcut report the words came from, so that results of an older search are not shown
-    beside a newer one."""
+    text set, into the class knocking it out flips texts away from (read off the shortcut
+    report's own per-class breakdown when it has the word, else found by its knockout); a phrase
+    is inserted as the texts most often write it (``insertion_phrase``: "via portal" as "[via
+    portal]"). A report word that points to no class is left out; ``own``, the user's own word
+    or phrase (one of ``words``), is not: why it gives no result is returned. Returns
+    (``report``, {word: InsertionReport}, ``own``, why ``own`` has no result or None): the
+    shortcut report the words came from (None without a search), so that results of an older
+    search are not shown beside a newer one."""
     from viewer.errors import HeadlightError
     from viewer.reports.insertion import insertion_phrase, insertion_test, searched_by_class
 
     loaded = ctx.model(slot)
     items = textset.items()
     results: dict[str, Any] = {}
+    failed = None
     for k, word in enumerate(words):
         ctx.check()
         ctx.progress(k, len(words), f"insertion test: '{word}' ({k + 1} of {len(words)})")
@@ -378,12 +392,54 @@ def run_insertions(
                 items,
                 insertion_phrase(items, word),
                 cancelled=ctx.cancelled,
-                by_class=searched_by_class(report, word),
+                by_class=None if report is None else searched_by_class(report, word),
             )
-        except HeadlightError:
+        except HeadlightError as exc:
+            if word == own:
+                failed = f"insertion test of '{own}': {exc}"
             continue  # e.g. knocking it out flips nothing: it points to no class
+    lead = own if own in results else _strongest(report, results)
+    if lead is not None and textset.scores.get("labelled"):
+        ctx.progress(len(words), len(words), f"set accuracy without and with '{results[lead].phrase}'…")
+        results[lead] = _with_cue_accuracy(loaded, items, results[lead], ctx)
     ctx.progress(len(words), len(words), "insertion tests done")
-    return report, results
+    return report, results, own, failed
+
+
+def _strongest(report: Any, results: dict[str, Any]) -> str | None:
+    """The shortcut report's strongest candidate (the card's rule,
+    ``viewer.reports.card.strongest_candidate``) when it has an insertion result."""
+    from viewer.reports.cue import strongest_candidate
+
+    if report is None:
+        return None
+    best = strongest_candidate(report.to_dict(limit=1))
+    return best["token"] if best is not None and best["token"] in results else None
+
+
+def _with_cue_accuracy(loaded: Any, items: list, result: Any, ctx: JobContext) -> Any:
+    """``result`` with the set's accuracy with its phrase removed and inserted
+    (``viewer.reports.cue``, docs/definitions.md "Cue accuracy")."""
+    import dataclasses
+
+    from viewer.reports.cue import CueAccuracyKind, cue_accuracy_data
+    from viewer.reports.shards import run_report
+
+    counts = run_report(CueAccuracyKind(result.phrase), loaded, items, cancelled=ctx.cancelled)
+    return dataclasses.replace(result, cue_accuracy=cue_accuracy_data(loaded.labels, result.phrase, counts))
+
+
+def run_mechanism(
+    ctx: JobContext, slot: str, textset: TextSetResult, report: Any, word: str, result: Any, heads: tuple
+) -> tuple[Any, str, Any]:
+    """The mechanism check (``viewer.reports.insertion.mechanism_test``): ``word``'s insertion
+    test ``result`` rerun with ``heads`` knocked out. Returns (``report``, ``word``, the result
+    with its check)."""
+    from viewer.reports.insertion import heads_text, mechanism_test
+
+    ctx.progress(0, 0, f"mechanism check: '{result.phrase}' without {heads_text(heads)}…")
+    checked = mechanism_test(ctx.model(slot), textset.items(), result, heads, cancelled=ctx.cancelled)
+    return report, word, checked
 
 
 # -- card export ----------------------------------------------------------------------------------

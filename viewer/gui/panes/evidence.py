@@ -1,10 +1,13 @@
 """The evidence-strip pane: per-token evidence for the prediction, one row per piece of evidence.
 
 Each row is scaled to its own largest value; ρ at the right is the row's rank agreement with
-knockout. Click a token to make it the source token; wheel to zoom along the text.
+knockout. Click a token to make it the source token; drag across tokens to knock them out
+together (``span_chosen``; docs/definitions.md, "Flat knockout"); wheel to zoom along the text.
 """
 
 from __future__ import annotations
+
+from PySide6.QtCore import Signal
 
 from viewer.figures.blit import Blitter
 from viewer.figures.zoom import Extent, ZoomPan
@@ -13,12 +16,14 @@ from viewer.gui.panes.base import FigurePane
 
 class EvidencePane(FigurePane):
     title = "evidence strip"
+    span_chosen = Signal(int, int)  # first and last token of a drag: knock them out together
 
     def __init__(self, state, parent=None) -> None:
         super().__init__(state, parent)
         self.artists = None
         self._drawn_for = None  # the evidence the figure was built for
         self.zoom = ZoomPan(both=False)
+        self._drag_from: int | None = None
         self.observe("analysis", "evidence", "source")
         self.message.setText("Run a text to see which tokens the prediction rests on.")
 
@@ -33,7 +38,8 @@ class EvidencePane(FigurePane):
         probs = rec.class_probabilities()
         line = prediction_line(rec.labels, probs, rec.predicted(), a.label)
         ev = self.state.evidence
-        self.set_title(f"evidence strip · {line}")
+        span = "" if ev is None or ev.span is None else f" · {ev.span.line()}"
+        self.set_title(f"evidence strip · {line}{span}")
         if ev is None:
             return f"{line}\n\ncomputing the evidence for this prediction…"
         source = self.state.source
@@ -81,6 +87,13 @@ class EvidencePane(FigurePane):
             i = self._token(event)
             if i is not None:
                 self.state.select_tokens(i, self.state.target)
+            self._drag_from = i
+
+    def on_release(self, event) -> None:
+        start, self._drag_from = self._drag_from, None
+        i = self._token(event)
+        if event.button == 1 and start is not None and i is not None and i != start:
+            self.span_chosen.emit(min(start, i), max(start, i))
 
     def on_scroll(self, event) -> None:
         if self.artists is not None and event.inaxes is self.artists.ax:

@@ -5,10 +5,14 @@ of its 95% Wilson interval (the ranking key), mean drop in the predicted class's
 and focus (summary-token attention share); then, per class the model originally predicted, the
 texts of that class holding the word and how many of them flip ("flips/texts"), so a word that
 flips only one class's texts stands out. Clicking a word lists the texts that contain it.
-With "two-word phrases" ticked (the default) the report also ranks adjacent word pairs knocked
-out together (a shortcut such as a footer is often a phrase), shown by "phrases"; the summary
-line names the top phrase as the texts write it. The search is screened unless "every word" is
-ticked (docs/definitions.md, "Screen and confirmation").
+With "two-word phrases" ticked before a search (it is ticked at start), the report also ranks
+adjacent word pairs knocked out together (a shortcut such as a footer is often a phrase), shown
+by "phrases"; the summary line names the top phrase as the texts write it. The search is
+screened unless "every word" is ticked (docs/definitions.md, "Screen and confirmation"). The
+insertion test takes the report's top words, the strongest of the other view (the top phrase
+when words are shown), and the user's own word or phrase typed in the field beside it; the line
+under the buttons states the lead result (``lead_insertion``) and, after a mechanism check, the
+share of its flip rate the selected heads carry.
 """
 
 from __future__ import annotations
@@ -20,6 +24,7 @@ from PySide6.QtWidgets import (
     QHBoxLayout,
     QHeaderView,
     QLabel,
+    QLineEdit,
     QTableWidgetItem,
     QToolButton,
     QVBoxLayout,
@@ -50,6 +55,8 @@ def insertion_cell(report) -> tuple[str, str]:
             f"({e['flip_rate']:.0%}, 95% low {e['flip_low']:.2f}), "
             f"mean gain {e['mean_gain']:+.3f}"
         )
+    if report.mechanism is not None:
+        lines.append(report.headline().split("; ", 1)[-1])
     return text, "\n".join(lines)
 
 
@@ -69,6 +76,7 @@ class ShortcutPane(TableDock):
         search_action: QAction | None = None,
         insert_action: QAction | None = None,
         parent: QWidget | None = None,
+        mechanism_action: QAction | None = None,
     ) -> None:
         super().__init__(parent)
         self.state = state
@@ -82,12 +90,25 @@ class ShortcutPane(TableDock):
             button = QToolButton()
             button.setDefaultAction(search_action)
             top.addWidget(button)
+        self.own_edit = QLineEdit()
+        self.own_edit.setPlaceholderText("your word or phrase")
+        self.own_edit.setToolTip(
+            "a word or phrase of your own for the insertion test, inserted as you write it "
+            "(tested first, beside the report's top words; no search needed)"
+        )
+        self.own_edit.setMaximumWidth(200)
         if insert_action is not None:
             button = QToolButton()
             button.setDefaultAction(insert_action)
             top.addWidget(button)
+            top.addWidget(self.own_edit)
+            self.own_edit.returnPressed.connect(insert_action.trigger)
+        if mechanism_action is not None:
+            button = QToolButton()
+            button.setDefaultAction(mechanism_action)
+            top.addWidget(button)
         self.phrases_box = QCheckBox("two-word phrases")
-        self.phrases_box.setChecked(True)
+        self.phrases_box.setChecked(True)  # a footer is a phrase: its insertion is the headline
         self.phrases_box.setToolTip(
             "also rank every pair of adjacent words (a footer is often a phrase); "
             "takes effect at the next search"
@@ -110,6 +131,10 @@ class ShortcutPane(TableDock):
         self.summary.setWordWrap(True)
         top.addWidget(self.summary, 1)
         layout.addLayout(top)
+        self.insertion_line = QLabel("")
+        self.insertion_line.setWordWrap(True)
+        self.insertion_line.setVisible(False)
+        layout.addWidget(self.insertion_line)
         self.table = self.make_table((*COLUMNS, INSERTION_COLUMN))
         self.table.horizontalHeader().setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
         self.table.itemSelectionChanged.connect(self._word_chosen)
@@ -121,6 +146,7 @@ class ShortcutPane(TableDock):
         self.refresh()
 
     def refresh(self) -> None:
+        self._state_lead()
         report = self.state.shortcuts  # viewer.reports.shortcuts.ShortcutReport
         has_phrases = report is not None and report.phrases.texts > 0
         self.view_box.setVisible(has_phrases)
@@ -192,6 +218,32 @@ class ShortcutPane(TableDock):
     def top_words(self, n: int = TOP_INSERTIONS) -> list[str]:
         """The ``n`` strongest rows of the view shown (words or phrases)."""
         return list(self.words[:n])
+
+    def own_word(self) -> str | None:
+        """The user's own word or phrase for the insertion test, or None."""
+        return " ".join(self.own_edit.text().split()) or None
+
+    def insertion_words(self, n: int = TOP_INSERTIONS) -> list[str]:
+        """What the insertion test runs for: the ``n`` strongest rows of the view shown, then
+        the strongest row of the other view (the top phrase beside the words), once each."""
+        report = self.state.shortcuts
+        words = self.top_words(n)
+        if report is not None and report.phrases.texts > 0:
+            other = self._ranking(report, self.view_box.currentData() != "phrases")
+            if other:
+                words.append(other[0]["token"])
+        return list(dict.fromkeys(words))
+
+    def _state_lead(self) -> None:
+        """The lead insertion result in one line under the buttons (hidden without one)."""
+        results = self.state.insertions or {}
+        lead = None
+        if results:  # results come after torch is imported: not at start-up
+            from viewer.reports.insertion import lead_insertion
+
+            lead = lead_insertion(results, self.own_word())
+        self.insertion_line.setText("" if lead is None else f"insertion test: {results[lead].headline()}")
+        self.insertion_line.setVisible(lead is not None)
 
     def _ranking(self, report, phrases: bool) -> list[dict]:
         """The report's own ranking (``KnockoutTally.ranking``), computed once per report."""
