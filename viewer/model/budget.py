@@ -79,6 +79,9 @@ def pass_estimate(
     overview: bool = False,
     gradients: bool = False,
 ) -> Estimate:
+    """The estimate of one pass of ``loaded`` over texts of ``lengths`` tokens: ``keep`` every
+    layer (a recording), the model's own probabilities (``own_probs``, the eager kernel), a long
+    text's ``overview``, a backward pass (``gradients``)."""
     eager = own_probs or loaded.kernel == "eager"
     return estimate(
         model_size(loaded),
@@ -91,36 +94,16 @@ def pass_estimate(
     )
 
 
-def fits(
-    loaded: Any,
-    lengths: list[int],
-    *,
-    keep: bool,
-    own_probs: bool,
-    overview: bool = False,
-    gradients: bool = False,
-) -> bool:
-    """Whether a pass over texts of ``lengths`` tokens fits the budget."""
-    need = pass_estimate(
-        loaded, lengths, keep=keep, own_probs=own_probs, overview=overview, gradients=gradients
-    )
-    return need.total <= budget()
+def fits(loaded: Any, lengths: list[int], **options: bool) -> bool:
+    """Whether a pass over texts of ``lengths`` tokens fits the budget (``options``: those of
+    ``pass_estimate``)."""
+    return pass_estimate(loaded, lengths, **options).total <= budget()
 
 
-def require_fits(
-    loaded: Any,
-    lengths: list[int],
-    *,
-    keep: bool,
-    own_probs: bool,
-    overview: bool = False,
-    gradients: bool = False,
-) -> Estimate:
-    """The estimate of a pass over texts of ``lengths`` tokens; ``MemoryBudgetError`` when it
-    does not fit the budget."""
-    need = pass_estimate(
-        loaded, lengths, keep=keep, own_probs=own_probs, overview=overview, gradients=gradients
-    )
+def require_fits(loaded: Any, lengths: list[int], **options: bool) -> Estimate:
+    """The estimate of a pass over texts of ``lengths`` tokens (``options``: those of
+    ``pass_estimate``); ``MemoryBudgetError`` when it does not fit the budget."""
+    need = pass_estimate(loaded, lengths, **options)
     have = budget()
     if need.total <= have:
         return need
@@ -131,13 +114,8 @@ def require_fits(
             f"{gigabytes(need.total)} and {gigabytes(have)} is free; use a smaller --batch-size"
         )
 
-    def fits(n: int) -> bool:
-        own = own_probs and n <= longest
-        one = pass_estimate(loaded, [n], keep=keep, own_probs=own, overview=overview, gradients=gradients)
-        return one.total <= have
-
-    most = longest_that_fits(fits, longest)
-    what = "recording" if keep else "running"
+    most = longest_that_fits(lambda n: pass_estimate(loaded, [n], **options).total <= have, longest)
+    what = "recording" if options.get("keep") else "running"
     advice = f"at most {most:,} tokens fit (cut with --max-tokens {most})" if most >= 2 else "nothing fits"
     raise MemoryBudgetError(
         f"{what} {longest:,} tokens needs about {gigabytes(need.total)} and {gigabytes(have)} is "
