@@ -125,3 +125,35 @@ def test_a_nan_in_the_models_output_fails():
     context = rec.context.copy()
     context[0, 0, 0, 0] = np.nan
     assert not check_recording(dataclasses.replace(rec, context=context)).passed
+
+
+@pytest.mark.parametrize(
+    ("causal", "window"), [(True, None), (False, (3, 3)), (True, (2, -1)), (False, (-1, 4)), (False, None)]
+)
+def test_the_visible_mask_of_a_key_span_is_the_span_of_the_whole_rows(causal, window):
+    """Reference: the rule written out cell by cell (j <= i when causal; i − j <= before and
+    j − i <= after, −1 not limiting), over every key; a block's mask over its key span is the
+    same cells (the span form is what keeps a windowed layer's cost at its window)."""
+    from viewer.core.terms import visible_rows
+
+    n = 17
+
+    def sees(i: int, j: int) -> bool:
+        ok = j <= i if causal else True
+        if window is not None:
+            before, after = window
+            ok = ok and (before < 0 or i - j <= before) and (after < 0 or j - i <= after)
+        return ok
+
+    whole = np.array([[sees(i, j) for j in range(n)] for i in range(n)])
+    for rows, keys in (
+        (slice(0, 5), slice(0, 9)),
+        (slice(6, 11), slice(2, 15)),
+        (slice(12, 17), slice(8, 17)),
+    ):
+        got = visible_rows(rows, n, causal, window, keys)
+        if whole.all():
+            assert got is None
+            continue
+        np.testing.assert_array_equal(got, whole[rows, keys])
+        np.testing.assert_array_equal(visible_rows(rows, n, causal, window), whole[rows])

@@ -199,11 +199,14 @@ def layer_pass(
     rows = rows or slice(0, scores.n_tokens)
     for part in scores.row_blocks(rows):
         head_sum = None
+        visible = scores.visible(part, scores.keys(part))  # the same for every group
         for g in range(scores.n_kv_heads):
-            block = scores.block(scores.group_heads(g), part, own=not derive)
+            block = scores.block(scores.group_heads(g), part, own=not derive, visible=visible)
             if check is not None:
                 check.add(block)
-            shown = block if (scores.own is None or not derive) else scores.block(block.heads, part, own=True)
+            shown = block
+            if scores.own is not None and derive:
+                shown = scores.block(block.heads, part, own=True, visible=visible)
             for consume in consumers:
                 consume(shown)
             if mean_consumers:

@@ -138,11 +138,8 @@ class LayerScores:
 
     def visible(self, rows: slice, keys: slice) -> np.ndarray | None:
         """(b, S) bool: which keys of the span each row sees; None when all of them."""
-        full = visible_rows(rows, self.n_tokens, self.causal, self.window)
-        if full is None:
-            return None
-        part = full[:, keys]
-        return None if part.all() else part
+        part = visible_rows(rows, self.n_tokens, self.causal, self.window, keys)
+        return None if part is None or part.all() else part
 
     def visible_counts(self, rows: slice) -> np.ndarray:
         """(b,) int64: how many keys each row sees."""
@@ -161,9 +158,12 @@ class LayerScores:
             k = self._k64[group] = np.ascontiguousarray(self.k[group].T, dtype=np.float64)  # (d, T)
         return k
 
-    def derive(self, heads: slice, rows: slice, keys: slice) -> np.ndarray:
+    def derive(
+        self, heads: slice, rows: slice, keys: slice, visible: np.ndarray | None | bool = True
+    ) -> np.ndarray:
         """(h, b, S) float64 softmax of the scores of ``heads`` (within one key/value group),
-        query rows ``rows`` over the key span ``keys`` (which must hold every visible key)."""
+        query rows ``rows`` over the key span ``keys`` (which must hold every visible key);
+        ``visible``: the span's (b, S) ``visible`` mask when the caller has it (True: make it)."""
         group = heads.start // self.groups
         if (heads.stop - 1) // self.groups != group:
             raise ValueError(f"heads {heads} are not in one key/value group")
@@ -173,7 +173,8 @@ class LayerScores:
         s = (qb @ self._keys64(group)[:, keys]).reshape(h, b, -1)  # (h, b, S)
         self._add_relative(s, heads, rows, keys, qb.reshape(h, b, self.head_dim))
         soft_cap(s, self.cap)
-        visible = self.visible(rows, keys)
+        if visible is True:
+            visible = self.visible(rows, keys)
         if visible is not None:
             np.copyto(s, -np.inf, where=~visible)
         softmax_in_place(s)
@@ -198,15 +199,20 @@ class LayerScores:
             s += np.asarray(terms.bias[self.layer, heads], dtype=np.float64)[:, index]  # (h, b, S)
 
     # -- what callers ask for ----------------------------------------------------------------
-    def block(self, heads: slice, rows: slice, own: bool = True) -> Block:
+    def block(
+        self, heads: slice, rows: slice, own: bool = True, visible: np.ndarray | None | bool = True
+    ) -> Block:
         """Probabilities of ``heads`` (one key/value group) for ``rows`` over their key span:
-        the model's own when it gave them and ``own`` is set, else re-derived."""
+        the model's own when it gave them and ``own`` is set, else re-derived; ``visible``: the
+        rows' ``visible`` mask over their span when the caller has it (True: make it)."""
         keys = self.keys(rows)
+        if visible is True:
+            visible = self.visible(rows, keys)
         if own and self.own is not None:
             p = self.own[heads, rows, keys].astype(np.float64)
         else:
-            p = self.derive(heads, rows, keys)
-        return Block(heads, rows, keys, p, self.visible(rows, keys))
+            p = self.derive(heads, rows, keys, visible)
+        return Block(heads, rows, keys, p, visible)
 
     def row_blocks(self, rows: slice | None = None, heads: int | None = None, entries: int = BLOCK_ENTRIES):
         """Slices of query rows (of ``rows``, default all) whose scores for ``heads`` heads

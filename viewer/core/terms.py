@@ -72,9 +72,10 @@ def _any(values: np.ndarray, layer: int | None, test) -> bool:
 
 
 def visible_rows(
-    rows: slice, n_tokens: int, causal: bool, window: tuple[int, int] | None
+    rows: slice, n_tokens: int, causal: bool, window: tuple[int, int] | None, keys: slice | None = None
 ) -> np.ndarray | None:
-    """(rows, T) bool: which keys the query rows see; None when they see every key.
+    """(rows, T) bool: which keys the query rows see, or (rows, S) for the keys of the slice
+    ``keys`` only; None when they see every key.
 
     Key j is visible from query i when j <= i (causal), i − j <= before and j − i <= after
     (a window side of −1 does not limit).
@@ -82,7 +83,8 @@ def visible_rows(
     if not causal and window is None:
         return None
     i = np.arange(n_tokens)[rows, None]
-    offset = i - np.arange(n_tokens)[None, :]  # (rows, T) i − j
+    j = np.arange(n_tokens)[keys if keys is not None else slice(None)]
+    offset = i - j[None, :]  # (rows, S) i − j
     visible = np.ones(offset.shape, dtype=bool)
     if causal:
         visible &= offset >= 0

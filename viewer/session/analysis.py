@@ -177,11 +177,8 @@ class TextAnalysis:
         window; ``viewer.core.terms.visible_rows``), or None when it sees all of them. Only
         the rows asked for are built, never the T × T mask."""
         rec = self.recording
-        full = visible_rows(rows, rec.n_tokens, rec.causal, rec.terms.layer_window(layer))
-        if full is None:
-            return None
-        part = full[:, cols]
-        return None if part.all() else part
+        part = visible_rows(rows, rec.n_tokens, rec.causal, rec.terms.layer_window(layer), cols)
+        return None if part is None or part.all() else part
 
     def row(self, layer: int, head: int | None, i: int) -> np.ndarray:
         """(T,) float64 exact attention from query row i in one head or the head mean (zeros
