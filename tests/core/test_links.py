@@ -137,6 +137,8 @@ def test_nearest_baseline_hand_made():
     assert nearest_correct(_tokens(5, 3, 9))  # target 2 away, distractor 4 away
     assert not nearest_correct(_tokens(5, 1, 7))  # distractor closer (after the source)
     assert not nearest_correct(_tokens(5, 3, 7))  # equally close: a tie counts as wrong
+    assert not nearest_correct(_tokens(5, 7, 3))  # the same tie with the target after the source
+    assert not nearest_correct(_tokens(5, 8, 0, 2))  # a tie with the second distractor (3 away each)
     assert nearest_correct(_tokens(5, 6, 2, 9))  # target right after the source
     # first sub-tokens decide: target starts at 1 (distance 4) even though it spans 1..2
     assert not nearest_correct(PairTokens(np.array([5]), (np.array([1, 2]), np.array([8]))))

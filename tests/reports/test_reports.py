@@ -78,6 +78,83 @@ def test_links_against_a_brute_force_computation(bert, tmp_path):
     assert acc.pairs == 3
 
 
+# Pairs on which a wrong reading of docs/definitions.md, "Link pairs", changes the numbers on this
+# module's tiny BERT. Its attention is close to uniform, so on PAIRS every verdict follows from how
+# many sub-tokens each candidate has (the candidate of two wins in every head), and no pair is a tie
+# for the nearest baseline: a score read down the source's key column, or a nearest baseline that
+# settles a tie, gives the same report there. Here both candidates of the first pair are one token
+# each, and the tokens (the tokenizer's, checked below through the first sub-tokens) are:
+#   0 [CLS] 1 the 2 member 3 p 4 ##ai 5 ##d 6 the 7 invoice 8 and 9 she 10 left 11 [SEP]:
+#     she 9; member 2 (7 away), invoice 7 (2 away)
+#   0 [CLS] 1 the 2 mecha 3 ##nic 4 and 5 she 6 and 7 the 8 courier 9 [SEP]:
+#     she 5; mechanic 2, courier 8 (3 away each)
+#   0 [CLS] 1 the 2 courier 3 and 4 the 5 mecha 6 ##nic 7 s 8 ##ai 9 ##d 10 she 11 was ...:
+#     she 10; mechanic 5 (5 away), courier 2 (8 away)
+# so the nearest baseline gets only the last pair right: 1 of 4. The two middle pairs are one tie
+# with either candidate as the target: a tie is wrong, so no way of settling it gets both right.
+SHARP_PAIRS = [
+    {
+        "text": "the member paid the invoice and she left",
+        "source": "she",
+        "target": "member",
+        "distractors": ["invoice"],
+    },
+    {
+        "text": "the mechanic and she and the courier",
+        "source": "she",
+        "target": "mechanic",
+        "distractors": ["courier"],
+    },
+    {
+        "text": "the mechanic and she and the courier",
+        "source": "she",
+        "target": "courier",
+        "distractors": ["mechanic"],
+    },
+    {
+        "text": "the courier and the mechanic said she was late",
+        "source": "she",
+        "target": "mechanic",
+        "distractors": ["courier"],
+    },
+]
+
+
+def test_links_read_the_sources_query_row_and_a_nearest_tie_is_wrong(bert, tmp_path):
+    """The links report on pairs where reading the source's key column instead of its query row
+    changes some head's verdict, and where the nearest baseline meets a tie both ways round.
+    References: transformers' own attention through tests/reference.py's link accuracy (the
+    source's query row), and the nearest baseline worked out by hand above."""
+    from tests import reference
+
+    hf = reference.open_hf(bert.folder)
+    firsts, row_right, column_right = [], [], []
+    for pair in SHARP_PAIRS:
+        text = pair["text"]
+        probs, spans = reference.attentions(hf, text), reference.offsets(hf, text)
+        source = reference.tokens_of(spans, *reference.whole_word(text, pair["source"]))[0]
+        toks = [
+            reference.tokens_of(spans, *reference.whole_word(text, w))
+            for w in (pair["target"], *pair["distractors"])
+        ]
+        firsts.append((source, [t[0] for t in toks]))
+        row = [probs[:, :, source, t].sum(axis=-1) for t in toks]  # (L, H) each: the definition
+        column = [probs[:, :, t, source].sum(axis=-1) for t in toks]  # the key column: wrong
+        assert np.abs(row[0] - row[1]).min() > 1e-5  # no verdict rests on float32 rounding
+        row_right.append(row[0] > row[1])
+        column_right.append(column[0] > column[1])
+    assert firsts == [(9, [2, 7]), (5, [2, 8]), (5, [8, 2]), (10, [5, 2])]  # the hand-worked positions
+    accuracy, nearest = reference.link_accuracy(hf, SHARP_PAIRS)
+    np.testing.assert_array_equal(accuracy, np.mean(row_right, axis=0))
+    assert (np.mean(column_right, axis=0) != accuracy).any()  # the pairs tell the two readings apart
+    assert nearest == 0.25
+
+    report = link_report(bert, read_link_pairs(write_jsonl(tmp_path / "p.jsonl", SHARP_PAIRS)), batch_size=3)
+    assert report.pairs == 4
+    np.testing.assert_array_equal(report.accuracy, accuracy)
+    assert report.nearest_baseline == 0.25
+
+
 def test_head_summary_streams_and_equals_one_at_a_time(bert):
     """Batched streaming over the set equals adding one text at a time (padding respected)."""
     from viewer.core.headstats import HeadStats
