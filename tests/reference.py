@@ -117,6 +117,67 @@ def mean_distance(per_text: list[np.ndarray]) -> np.ndarray:
     return total / rows
 
 
+def special_tokens(m: Model, text: str) -> np.ndarray:
+    """(T,) bool: the tokenizer's own special-tokens mask of the text."""
+    return np.asarray(m.tokenizer(text, return_special_tokens_mask=True)["special_tokens_mask"], dtype=bool)
+
+
+def mean_special_share(per_text: list[np.ndarray], specials: list[np.ndarray]) -> np.ndarray:
+    """docs/definitions.md, "Head metrics": Σ_{j special} p_ij averaged over the rows of every
+    text together: (L, H)."""
+    total = rows = 0.0
+    for probs, special in zip(per_text, specials, strict=True):
+        total = total + probs[..., special].sum(axis=(-1, -2))
+        rows += probs.shape[-1]
+    return total / rows
+
+
+def mean_confidence(per_text: list[np.ndarray]) -> np.ndarray:
+    """Voita et al. 2019, §4.1: a head's confidence is the mean over rows of the row's largest
+    weight, here over the rows of every text together: (L, H)."""
+    total = rows = 0.0
+    for probs in per_text:
+        total = total + probs.max(axis=-1).sum(axis=-1)
+        rows += probs.shape[-1]
+    return total / rows
+
+
+def head_knockout(m: Model, texts: list[str], label: int) -> tuple[np.ndarray, np.ndarray]:
+    """Each head knocked out alone in a BERT-style encoder (its slice of the attention context
+    zeroed on the way into the layer's output projection, ``layer.N.attention.output.dense``):
+    the mean drop of p(originally predicted class) and the accuracy against ``label``: (L, H) each."""
+    config = m.model.config
+    n_l, n_h = config.num_hidden_layers, config.num_attention_heads
+    d = config.hidden_size // n_h
+    dense = {
+        int(found.group(1)): module
+        for name, module in m.model.named_modules()
+        if (found := re.search(r"layer\.(\d+)\.attention\.output\.dense$", name))
+    }
+    assert sorted(dense) == list(range(n_l))
+    before = class_probabilities(m, texts)
+    pred = before.argmax(axis=1)
+    drop, accuracy = np.zeros((n_l, n_h)), np.zeros((n_l, n_h))
+    for layer in range(n_l):
+        for head in range(n_h):
+
+            def zero_head(_module, args, head=head):
+                context = args[0].clone()
+                context[..., head * d : (head + 1) * d] = 0
+                return (context, *args[1:])
+
+            handle = dense[layer].register_forward_pre_hook(zero_head)
+            try:
+                after = class_probabilities(m, texts)
+            finally:
+                handle.remove()
+            drop[layer, head] = np.mean(
+                before[np.arange(len(pred)), pred] - after[np.arange(len(pred)), pred]
+            )
+            accuracy[layer, head] = np.mean(after.argmax(axis=1) == label)
+    return drop, accuracy
+
+
 def whole_word(text: str, word: str) -> tuple[int, int]:
     """docs/definitions.md, "Link pairs": the first whole-word, case-insensitive occurrence."""
     found = re.search(r"(?<![0-9A-Za-z_])" + re.escape(word) + r"(?![0-9A-Za-z_])", text, re.IGNORECASE)

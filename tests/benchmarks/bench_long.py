@@ -21,7 +21,7 @@ resident memory (``ru_maxrss``) and time, side by side:
 - **estimate**: the memory budget's estimate of the check's pass and of a recording, against the
   peak resident memory each added above the loaded model (sampled every 2 ms).
 
-Goals (issue of long texts): check peak <= 1.5 × bare peak + 1 GB; check time <= 1.5 × bare time
+Goals: check peak <= 1.5 × bare peak + 1 GB; check time <= 1.5 × bare time
 at 8,192 tokens; the estimate within 25 % of the measured increase.
 
 With ``--window`` the window is measured instead, in a fresh process, beside the bare forward:

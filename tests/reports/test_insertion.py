@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
 import pytest
 import torch
 from transformers import AutoModelForSequenceClassification, AutoTokenizer
@@ -43,9 +44,17 @@ def others():
 
 
 def transformers_predict(texts: list[str], heads=()) -> list[str]:
-    """transformers' own forward; ``heads`` (layer, head) knocked out by an independent hook:
-    each head's slice of the input to the layer's attention output projection is zeroed (head
-    masking, Michel et al. 2019: ξ_h = 0 on the head's output)."""
+    """transformers' own predicted class names (``transformers_probabilities``)."""
+    labels = AutoModelForSequenceClassification.from_pretrained(
+        MODEL_DIR, local_files_only=True
+    ).config.id2label
+    return [labels[int(k)] for k in transformers_probabilities(texts, heads).argmax(axis=1)]
+
+
+def transformers_probabilities(texts: list[str], heads=()) -> np.ndarray:
+    """transformers' own forward, softmax of the logits (N, C) float64; ``heads`` (layer, head)
+    knocked out by an independent hook: each head's slice of the input to the layer's attention
+    output projection is zeroed (head masking, Michel et al. 2019: ξ_h = 0 on the head's output)."""
     tok = AutoTokenizer.from_pretrained(MODEL_DIR, local_files_only=True)
     model = AutoModelForSequenceClassification.from_pretrained(MODEL_DIR, local_files_only=True)
     model.eval()
@@ -67,8 +76,8 @@ def transformers_predict(texts: list[str], heads=()) -> list[str]:
     with torch.no_grad():
         for i in range(0, len(texts), 32):
             batch = tok(texts[i : i + 32], padding=True, truncation=True, return_tensors="pt")
-            out += [model.config.id2label[int(k)] for k in model(**batch).logits.argmax(-1)]
-    return out
+            out.append(torch.softmax(model(**batch).logits.double(), -1).numpy())
+    return np.concatenate(out)
 
 
 def test_the_footer_points_to_billing_by_knockout(demo):
@@ -163,6 +172,14 @@ def test_headlight_insert_prints_the_numbers_of_the_models_own_forward(tmp_path,
     assert (data["class"], data["class_chosen_by"], data["phrase"]) == ("billing", "knockout", FOOTER)
     end = next(r for r in data["positions"] if r["position"] == "end")
     assert_end_position(end, footer_at_the_end)
+    # mean gain: p(billing) with the footer appended minus without, over the texts tried
+    tried = footer_at_the_end[0]
+    texts = [i.text for i in load_text_set(SAMPLES / "coop_messages.jsonl")]
+    id2label = json.loads((MODEL_DIR / "config.json").read_text(encoding="utf-8"))["id2label"]
+    billing = {name: int(k) for k, name in id2label.items()}["billing"]
+    before = transformers_probabilities([texts[k] for k in tried])[:, billing]
+    after = transformers_probabilities([texts[k].strip() + " " + FOOTER for k in tried])[:, billing]
+    assert end["mean_gain"] == pytest.approx(float(np.mean(after - before)), abs=1e-5)
     printed = capsys.readouterr().out
     assert f"{'end':<9} {end['tried']:>6} {end['flips']:>6} {end['flip_rate']:>9.3f}" in printed
     assert (

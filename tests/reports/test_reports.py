@@ -276,8 +276,14 @@ def test_cli_json_holds_the_numbers_of_the_models_own_forward(bert, tmp_path, ca
     np.testing.assert_allclose(h["distance"], reference.mean_distance(probs), atol=1e-5)
     predicted = reference.class_probabilities(hf, tiny.TEXTS).argmax(axis=1)
     assert h["base_accuracy"] == pytest.approx(np.mean(predicted == bert.labels.index("repair")))
-    for key in ("special", "confidence", "importance", "knockout_prob_drop", "knockout_accuracy"):
-        assert np.asarray(h[key]).shape == (2, 4), key
+    specials = [reference.special_tokens(hf, t) for t in tiny.TEXTS]
+    np.testing.assert_allclose(h["special"], reference.mean_special_share(probs, specials), atol=1e-6)
+    np.testing.assert_allclose(h["confidence"], reference.mean_confidence(probs), atol=1e-6)
+    drop, accuracy = reference.head_knockout(hf, tiny.TEXTS, bert.labels.index("repair"))
+    np.testing.assert_allclose(h["knockout_prob_drop"], drop, atol=1e-6)
+    np.testing.assert_array_equal(h["knockout_accuracy"], accuracy)
+    # importance against a finite difference of the head gate: tests/model/test_gates.py
+    assert np.asarray(h["importance"]).shape == (2, 4)
 
     assert main(["links", folder, "--pairs", str(pairs), "--json", str(tmp_path / "l.json")]) == 0
     lk = json.loads((tmp_path / "l.json").read_text())
