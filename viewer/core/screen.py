@@ -32,7 +32,7 @@ from typing import Any
 
 import numpy as np
 
-from viewer.core.shortcuts import MIN_TEXTS, _from_json_bytes, _json_bytes
+from viewer.core.shortcuts import MIN_TEXTS, from_json_bytes, rows_state
 from viewer.core.stats import wilson_interval
 
 REACH = 0.1
@@ -142,14 +142,9 @@ class ScreenTally:
 
     def state(self) -> dict[str, np.ndarray]:
         keys = list(self._rows)
-        rows = list(self._rows.values())
         c = len(self.labels)
         return {
-            "texts": np.array(self.texts, dtype=np.int64),
-            "keys": _json_bytes(keys),
-            "labels": _json_bytes(list(self.labels)),
-            "counts": np.array([[r[0], r[1]] for r in rows], dtype=np.int64).reshape(-1, 2),
-            "sums": np.array([[r[2], r[3]] for r in rows], dtype=np.float64).reshape(-1, 2),
+            **rows_state(self.texts, self.labels, self._rows),
             "predicted": np.array([self._predicted[k] for k in keys], dtype=np.int64).reshape(len(keys), c),
             "gold": np.array([self._gold[k] for k in keys], dtype=np.int64).reshape(len(keys), c),
             "totals": self.totals.copy(),
@@ -157,8 +152,8 @@ class ScreenTally:
 
     @classmethod
     def from_state(cls, state: Mapping[str, np.ndarray]) -> ScreenTally:
-        keys = _from_json_bytes(state["keys"])
-        tally = cls(_from_json_bytes(state["labels"]))
+        keys = from_json_bytes(state["keys"])
+        tally = cls(from_json_bytes(state["labels"]))
         tally.texts = int(state["texts"])
         tally.totals = np.asarray(state["totals"], dtype=np.int64).reshape(2, len(tally.labels)).copy()
         counts, sums = np.asarray(state["counts"]), np.asarray(state["sums"])

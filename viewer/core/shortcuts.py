@@ -62,12 +62,28 @@ def phrase_spans(text: str) -> dict[str, list[Span]]:
     return out
 
 
-def _json_bytes(value: Any) -> np.ndarray:
+def json_bytes(value: Any) -> np.ndarray:
+    """``value`` as UTF-8 JSON in a uint8 array (a tally state holds only arrays)."""
     return np.frombuffer(json.dumps(value, ensure_ascii=False).encode("utf-8"), np.uint8)
 
 
-def _from_json_bytes(array: np.ndarray) -> Any:
+def from_json_bytes(array: np.ndarray) -> Any:
     return json.loads(np.asarray(array, dtype=np.uint8).tobytes().decode("utf-8"))
+
+
+def rows_state(
+    texts: int, labels: Sequence[str], rows: Mapping[str, Sequence[float]]
+) -> dict[str, np.ndarray]:
+    """The part of a tally's state every per-key tally shares: the texts seen, the keys and
+    labels (``json_bytes``), and per key its row of two counts (int64) and two sums (float64)."""
+    values = list(rows.values())
+    return {
+        "texts": np.array(texts, dtype=np.int64),
+        "keys": json_bytes(list(rows)),
+        "labels": json_bytes(list(labels)),
+        "counts": np.array([[r[0], r[1]] for r in values], dtype=np.int64).reshape(-1, 2),
+        "sums": np.array([[r[2], r[3]] for r in values], dtype=np.float64).reshape(-1, 2),
+    }
 
 
 @dataclass(frozen=True)
@@ -154,13 +170,8 @@ class KnockoutTally:
         int64, (sum of drop, sum of focus) and the per-head focus sums as float64, the per-class
         (texts, flips) as int64; ``from_state`` restores it exactly, key order included."""
         keys = list(self._sums)
-        rows = list(self._sums.values())
         return {
-            "texts": np.array(self.texts, dtype=np.int64),
-            "keys": _json_bytes(keys),
-            "labels": _json_bytes(list(self.labels)),
-            "counts": np.array([[r[0], r[1]] for r in rows], dtype=np.int64).reshape(-1, 2),
-            "sums": np.array([[r[2], r[3]] for r in rows], dtype=np.float64).reshape(-1, 2),
+            **rows_state(self.texts, self.labels, self._sums),
             "head_focus": np.array(
                 [self._heads[k] for k in keys] if self.heads else [], dtype=np.float64
             ).reshape(len(keys), self.heads),
@@ -171,12 +182,12 @@ class KnockoutTally:
 
     @classmethod
     def from_state(cls, state: Mapping[str, np.ndarray]) -> KnockoutTally:
-        keys = _from_json_bytes(state["keys"])
+        keys = from_json_bytes(state["keys"])
         counts, sums = np.asarray(state["counts"]), np.asarray(state["sums"])
         heads, classes = np.asarray(state["head_focus"]), np.asarray(state["classes"])
         if not len(keys) == len(counts) == len(sums) == len(heads) == len(classes):
             raise ValueError(f"not a knockout-tally state: {len(keys)} keys, {len(counts)} counts")
-        tally = cls(_from_json_bytes(state["labels"]), heads.shape[1])
+        tally = cls(from_json_bytes(state["labels"]), heads.shape[1])
         tally.texts = int(state["texts"])
         for n, (key, (count, flips), (drop, focus)) in enumerate(
             zip(keys, counts.tolist(), sums.tolist(), strict=True)
