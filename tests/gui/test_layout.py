@@ -186,3 +186,30 @@ def test_dock_tables_have_rows_one_line_high(qtbot):
     assert all(table.rowHeight(row) <= line + 6 for row in range(3))
     table.resizeRowsToContents()  # stays fixed: nothing grows a row back
     assert all(table.rowHeight(row) <= line + 6 for row in range(3))
+
+
+def test_a_long_status_message_ends_in_an_ellipsis_left_of_the_status_widgets(qtbot, tmp_path, monkeypatch):
+    """At 1366 × 768 the insertion test's status line is wider than the bar: it is elided with
+    "…" (Qt's own ``QFontMetrics.elidedText``) and kept left of the cancel button and the
+    check badge, the whole message in the tooltip; the window does not widen for it."""
+    from viewer.gui.window import MainWindow
+
+    monkeypatch.setattr(window_module, "available_geometry", lambda: QRect(0, 40, 1366, 728))
+    settings = QSettings(str(tmp_path / "w.ini"), QSettings.Format.IniFormat)
+    w = MainWindow(settings=settings, config_dir=tmp_path / "config", restore_geometry=False)
+    qtbot.addWidget(w)
+    w.show()
+    width = w.width()
+    message = (
+        "insertion test: '[via portal]' inserted at the end: 55 of 56 texts not predicted billing flip into "
+        "billing (95% low 0.91); set accuracy 0.675 as given, 1.000 with it removed, 0.225 with it inserted"
+    )
+    w.set_status(message)
+    qtbot.wait(50)
+    label = w.status_label
+    shown = label.shown_text()
+    assert label.fontMetrics().horizontalAdvance(message) > label.contentsRect().width()
+    assert shown.endswith("…") and message.startswith(shown[:-1]) and label.toolTip() == message
+    assert label.geometry().right() < w.cancel_button.geometry().left()
+    assert w.width() == width
+    w.close()

@@ -23,6 +23,7 @@ from PySide6.QtWidgets import (
     QPlainTextEdit,
     QProgressBar,
     QPushButton,
+    QSizePolicy,
     QSplitter,
     QToolButton,
     QVBoxLayout,
@@ -32,6 +33,7 @@ from PySide6.QtWidgets import (
 from viewer.errors import HeadlightError
 from viewer.gui.badge import CheckBadge
 from viewer.gui.export import PaneExporter
+from viewer.gui.panes.base import ElidedLabel
 from viewer.gui.panes.compare import ComparePane
 from viewer.gui.panes.evidence import EvidencePane
 from viewer.gui.panes.fixation import FixationPane
@@ -314,8 +316,11 @@ class MainWindow(QMainWindow):
 
     def _build_status(self) -> None:
         bar = self.statusBar()
-        self.status_label = QLabel("starting…")
+        # ends in "…" when the bar is narrower than the message (a laptop's 1366 pixels), the
+        # whole message in the tooltip, rather than cut off under the permanent widgets
+        self.status_label = ElidedLabel("starting…")
         self.status_label.setTextFormat(Qt.TextFormat.PlainText)
+        self.status_label.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
         bar.addWidget(self.status_label, 1)
         self.progress = QProgressBar()
         self.progress.setMaximumWidth(200)
@@ -425,6 +430,7 @@ class MainWindow(QMainWindow):
 
     def set_status(self, text: str) -> None:
         self.status_label.setText(text)
+        self.status_label.setToolTip(text)
 
     def show_error(self, message: str) -> None:
         """A non-blocking dialog with the one-line message; the window stays usable."""
