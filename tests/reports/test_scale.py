@@ -403,3 +403,12 @@ def test_a_stream_and_a_list_give_the_same_report(demo, items):
     assert all(np.array_equal(a[k], b[k]) for k in a)
     assert run_shards(kind, demo, iter([]), options=RunOptions()) is None
     assert TextItem("x", None, 3, unit="row").where == "row 3"
+
+
+def test_the_screened_search_reads_a_stream_of_texts_twice_as_it_reads_a_list(demo, items):
+    """The default search makes two passes (screen, then confirmation): a one-shot stream
+    must give the report a list gives, not an empty confirmation."""
+    listed = shortcut_search(demo, list(items), phrases=False)
+    streamed = shortcut_search(demo, iter(items), phrases=False)
+    assert listed.confirmed > 0 and (streamed.texts, streamed.confirmed) == (listed.texts, listed.confirmed)
+    assert streamed.words.ranking() == listed.words.ranking()

@@ -35,7 +35,7 @@ from viewer.core.words import Span, contains, occurrences, phrase_keys, split_wo
 from viewer.errors import HeadlightError
 from viewer.model.loader import LoadedModel
 from viewer.model.names import head_phrase
-from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
+from viewer.reports.shards import SERIAL, RunOptions, Shard, State, set_runner
 from viewer.reports.shortcuts import ShortcutReport, class_labels, knock_out
 from viewer.reports.textsets import TextItem, TextSource
 
@@ -451,7 +451,9 @@ def insertion_test(
     pointed class, then the insertions): a one-shot stream of items is read into a list first.
     ``progress(done, total)`` follows the insertion pass.
     """
-    run = _set_runner(loaded, items, options, cancelled, progress)
+    run = set_runner(
+        loaded, items, options=options, cancelled=cancelled, progress=progress, progress_of=_is_insertion
+    )
     return run_insertion(loaded, phrase, target, seed, batch_size, run, by_class, heads)
 
 
@@ -468,31 +470,13 @@ def mechanism_test(
 ) -> InsertionReport:
     """``report`` (an insertion test over ``items``) with its mechanism check of ``heads``: the
     intact test is not run again."""
-    run = _set_runner(loaded, items, options, cancelled, progress)
+    run = set_runner(
+        loaded, items, options=options, cancelled=cancelled, progress=progress, progress_of=_is_insertion
+    )
     return replace(report, mechanism=mechanism_check(report, heads, batch_size, run))
 
 
-def _set_runner(
-    loaded: LoadedModel,
-    items: Iterable[TextItem] | TextSource,
-    options: RunOptions,
-    cancelled: Callable[[], bool] | None,
-    progress: Callable[..., None] | None,
-) -> Callable[[Any, str], Any]:
-    """``run(kind, label)`` mapping a report kind over the shards of ``items`` (a one-shot
-    stream of items is read into a list first, since a test may read the set twice);
-    ``progress(done, total)`` follows the insertion passes."""
-    if not isinstance(items, TextSource):
-        items = list(items)
-
-    def run(kind: Any, _label: str) -> Any:
-        return run_report(
-            kind,
-            loaded,
-            items.items() if isinstance(items, TextSource) else items,
-            options=options,
-            cancelled=cancelled,
-            progress=progress if isinstance(kind, InsertionKind) else None,
-        )
-
-    return run
+def _is_insertion(kind: Any) -> bool:
+    """The passes whose progress the insertion test reports: the insertions, not the knockout
+    that finds the pointed class."""
+    return isinstance(kind, InsertionKind)

@@ -212,3 +212,34 @@ def run_report(
     return require_some(
         run_shards(kind, loaded, items, options=options, on_shard=on_shard, cancelled=cancelled), empty
     )
+
+
+def set_runner(
+    loaded: Any,
+    items: Iterable[Any],
+    *,
+    options: RunOptions = SERIAL,
+    cancelled: Callable[[], bool] | None = None,
+    progress: Callable[..., None] | None = None,
+    progress_of: Callable[[Any], bool] = lambda kind: True,
+) -> Callable[[Any, str], Any]:
+    """``run(kind, label)``: ``run_report`` of a report kind over ``items`` as often as a
+    report needs to read the set (a one-shot stream of items is read into a list first; a
+    ``TextSource`` reads its file again); ``progress(done, total)`` follows the kinds that
+    ``progress_of`` accepts."""
+    from viewer.reports.textsets import TextSource
+
+    if not isinstance(items, TextSource):
+        items = list(items)
+
+    def run(kind: Any, _label: str) -> Any:
+        return run_report(
+            kind,
+            loaded,
+            items.items() if isinstance(items, TextSource) else items,
+            options=options,
+            cancelled=cancelled,
+            progress=progress if progress_of(kind) else None,
+        )
+
+    return run

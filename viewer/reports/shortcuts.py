@@ -41,7 +41,7 @@ from viewer.model.attribution import predict_without
 from viewer.model.loader import LoadedModel
 from viewer.model.runs import TextAttention, attentions
 from viewer.reports.heads import require_prediction
-from viewer.reports.shards import SERIAL, RunOptions, Shard, State, run_report
+from viewer.reports.shards import SERIAL, RunOptions, Shard, State, set_runner
 from viewer.reports.textsets import TextItem, chunks
 
 TEXTS_PER_FORWARD_GROUP = 16  # texts whose knockouts are batched together
@@ -379,7 +379,6 @@ def shortcut_search(
     """
     require_prediction(loaded, "shortcut search")
 
-    def run(kind: Any, _label: str) -> Any:
-        return run_report(kind, loaded, items, options=options, progress=progress, cancelled=cancelled)
-
+    # the screened search reads the set twice (screen, then confirmation)
+    run = set_runner(loaded, items, options=options, cancelled=cancelled, progress=progress)
     return run_search(loaded, run, batch_size=batch_size, phrases=phrases, exhaustive=exhaustive, share=share)

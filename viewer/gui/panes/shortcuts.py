@@ -81,7 +81,7 @@ class ShortcutPane(TableDock):
         super().__init__(parent)
         self.state = state
         self.words: list[str] = []
-        self._ranked: tuple | None = None  # ((report id, phrases), report, rows)
+        self._ranked: tuple | None = None  # (report, {phrases: rows}) for the report shown
         self._written: tuple | None = None  # (report, its top phrase as the texts write it)
         layout = QVBoxLayout(self)
         layout.setContentsMargins(4, 2, 4, 2)
@@ -246,12 +246,14 @@ class ShortcutPane(TableDock):
         self.insertion_line.setVisible(lead is not None)
 
     def _ranking(self, report, phrases: bool) -> list[dict]:
-        """The report's own ranking (``KnockoutTally.ranking``), computed once per report."""
-        key = (id(report), phrases)
-        if self._ranked is None or self._ranked[0] != key or self._ranked[1] is not report:
-            tally = report.phrases if phrases else report.words
-            self._ranked = (key, report, tally.ranking())
-        return self._ranked[2]
+        """The report's own ranking (``KnockoutTally.ranking``) of words or of phrases, each
+        computed once per report (a refresh asks for both views)."""
+        if self._ranked is None or self._ranked[0] is not report:
+            self._ranked = (report, {})
+        views = self._ranked[1]
+        if phrases not in views:
+            views[phrases] = (report.phrases if phrases else report.words).ranking()
+        return views[phrases]
 
     def _top_phrase(self, report) -> str:
         """ "; top phrase “[via portal]” …": the strongest phrase, as the texts write it."""
