@@ -158,12 +158,10 @@ class LayerScores:
             k = self._k64[group] = np.ascontiguousarray(self.k[group].T, dtype=np.float64)  # (d, T)
         return k
 
-    def derive(
-        self, heads: slice, rows: slice, keys: slice, visible: np.ndarray | None | bool = True
-    ) -> np.ndarray:
+    def derive(self, heads: slice, rows: slice, keys: slice, visible: np.ndarray | None) -> np.ndarray:
         """(h, b, S) float64 softmax of the scores of ``heads`` (within one key/value group),
         query rows ``rows`` over the key span ``keys`` (which must hold every visible key);
-        ``visible``: the span's (b, S) ``visible`` mask when the caller has it (True: make it)."""
+        ``visible``: the span's (b, S) ``visible`` mask (None: every key of the span)."""
         group = heads.start // self.groups
         if (heads.stop - 1) // self.groups != group:
             raise ValueError(f"heads {heads} are not in one key/value group")
@@ -173,8 +171,6 @@ class LayerScores:
         s = (qb @ self._keys64(group)[:, keys]).reshape(h, b, -1)  # (h, b, S)
         self._add_relative(s, heads, rows, keys, qb.reshape(h, b, self.head_dim))
         soft_cap(s, self.cap)
-        if visible is True:
-            visible = self.visible(rows, keys)
         if visible is not None:
             np.copyto(s, -np.inf, where=~visible)
         softmax_in_place(s)

@@ -216,11 +216,12 @@ def scan(
     (for a gradient taken after the pass; the captures are detached). Returns the model's output.
     """
     overview = keep and max(batch.lengths) > DENSE_TOKENS
+    options = {"keep": keep, "overview": overview, "gradients": grad}  # of the memory budget
     if own_probs is None:  # a bonus, asked for only where it fits the memory budget too
-        own = wants_own_probs(loaded, batch) and fits(loaded, batch.lengths, keep=keep, own_probs=True)
+        own = wants_own_probs(loaded, batch) and fits(loaded, batch.lengths, own_probs=True, **options)
     else:
         own = own_probs
-    require_fits(loaded, batch.lengths, keep=keep, own_probs=own, overview=overview, gradients=grad)
+    require_fits(loaded, batch.lengths, own_probs=own, **options)
     waiting: list[list[TextLayer]] = []
 
     def on_layer(cap: LayerCapture) -> None:
@@ -465,6 +466,8 @@ def attentions(
     predicts = loaded.head_kind in ("classifier", "causal-lm")
     if gradients:
         require_prediction(loaded)
+        if not attention:  # the backward runs inside the attention pass (``_gradient_times_input``)
+            raise ValueError("gradients are taken in the attention pass: attention=False has none")
     limit = GRADIENT_TOKENS if gradients else BATCH_TOKENS
     for batch in loaded.text.batches(texts, batch_size, limit):
         enc = batch.encoding
