@@ -13,6 +13,8 @@ from __future__ import annotations
 
 import math
 import re
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -142,35 +144,52 @@ def mean_confidence(per_text: list[np.ndarray]) -> np.ndarray:
     return total / rows
 
 
-def head_knockout(m: Model, texts: list[str], label: int) -> tuple[np.ndarray, np.ndarray]:
-    """Each head knocked out alone in a BERT-style encoder (its slice of the attention context
-    zeroed on the way into the layer's output projection, ``layer.N.attention.output.dense``):
-    the mean drop of p(originally predicted class) and the accuracy against ``label``: (L, H) each."""
-    config = m.model.config
-    n_l, n_h = config.num_hidden_layers, config.num_attention_heads
-    d = config.hidden_size // n_h
+@contextmanager
+def heads_masked(model: torch.nn.Module, heads) -> Iterator[None]:
+    """Inside the block, the (layer, head) pairs of ``heads`` are knocked out of a BERT-style
+    encoder: each head's slice of the attention context is zeroed on the way into the layer's
+    output projection, ``layer.N.attention.output.dense`` (head masking, Michel et al. 2019:
+    ξ_h = 0 on the head's output)."""
+    config = model.config
+    d = config.hidden_size // config.num_attention_heads
     dense = {
         int(found.group(1)): module
-        for name, module in m.model.named_modules()
+        for name, module in model.named_modules()
         if (found := re.search(r"layer\.(\d+)\.attention\.output\.dense$", name))
     }
-    assert sorted(dense) == list(range(n_l))
+    assert sorted(dense) == list(range(config.num_hidden_layers))
+
+    def zero(cols):
+        def hook(_module, args):
+            context = args[0].clone()
+            for h in cols:
+                context[..., h * d : (h + 1) * d] = 0
+            return (context, *args[1:])
+
+        return hook
+
+    handles = [
+        dense[layer].register_forward_pre_hook(zero([h for lay, h in heads if lay == layer]))
+        for layer in sorted({layer for layer, _ in heads})
+    ]
+    try:
+        yield
+    finally:
+        for handle in handles:
+            handle.remove()
+
+
+def head_knockout(m: Model, texts: list[str], label: int) -> tuple[np.ndarray, np.ndarray]:
+    """Each head knocked out alone (``heads_masked``): the mean drop of p(originally predicted
+    class) and the accuracy against ``label``: (L, H) each."""
+    n_l, n_h = m.model.config.num_hidden_layers, m.model.config.num_attention_heads
     before = class_probabilities(m, texts)
     pred = before.argmax(axis=1)
     drop, accuracy = np.zeros((n_l, n_h)), np.zeros((n_l, n_h))
     for layer in range(n_l):
         for head in range(n_h):
-
-            def zero_head(_module, args, head=head):
-                context = args[0].clone()
-                context[..., head * d : (head + 1) * d] = 0
-                return (context, *args[1:])
-
-            handle = dense[layer].register_forward_pre_hook(zero_head)
-            try:
+            with heads_masked(m.model, [(layer, head)]):
                 after = class_probabilities(m, texts)
-            finally:
-                handle.remove()
             drop[layer, head] = np.mean(
                 before[np.arange(len(pred)), pred] - after[np.arange(len(pred)), pred]
             )

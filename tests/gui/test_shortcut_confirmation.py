@@ -107,7 +107,7 @@ def test_the_footer_headline_after_search_and_insertion_test_then_its_mechanism(
     transformers' own forward gives with the footer appended (tests/reports/test_insertion.py).
     Then the user's own phrase, and the mechanism check on the selected layer's heads, against
     the same forward with those heads masked by the test's own hook."""
-    from tests.reports.test_insertion import FOOTER, footer_at_the_end_of, footer_at_the_end_without
+    from tests.reports.test_insertion import FOOTER, footer_at_the_end_of
     from viewer.reports.textsets import load_text_set
 
     w = demo_window
@@ -165,7 +165,7 @@ def test_the_footer_headline_after_search_and_insertion_test_then_its_mechanism(
     qtbot.waitUntil(lambda: w.state.insertions["via portal"].mechanism is not None, timeout=WAIT_MS)
     mech = w.state.insertions["via portal"].mechanism
     assert mech.heads == ((1, 0), (1, 1), (1, 2), (1, 3))
-    tried2, flipped2 = footer_at_the_end_without(items, mech.heads)
+    tried2, flipped2 = footer_at_the_end_of(items, mech.heads)
     m = mech.tally.entry("end")
     assert (m["tried"], m["flipped"]) == (len(tried2), flipped2)
     share = (len(flipped) / len(tried) - len(flipped2) / len(tried2)) / (len(flipped) / len(tried))

@@ -8,6 +8,7 @@ own numbers.
 
 from __future__ import annotations
 
+import functools
 from pathlib import Path
 
 import numpy as np
@@ -43,37 +44,26 @@ def others():
     ]
 
 
+@functools.cache
+def demo_hf():
+    """The demo checkpoint through transformers alone (its tokenizer, its classifier), once."""
+    tok = AutoTokenizer.from_pretrained(MODEL_DIR, local_files_only=True)
+    model = AutoModelForSequenceClassification.from_pretrained(MODEL_DIR, local_files_only=True)
+    return tok, model.eval()
+
+
 def transformers_predict(texts: list[str], heads=()) -> list[str]:
     """transformers' own predicted class names (``transformers_probabilities``)."""
-    labels = AutoModelForSequenceClassification.from_pretrained(
-        MODEL_DIR, local_files_only=True
-    ).config.id2label
+    labels = demo_hf()[1].config.id2label
     return [labels[int(k)] for k in transformers_probabilities(texts, heads).argmax(axis=1)]
 
 
 def transformers_probabilities(texts: list[str], heads=()) -> np.ndarray:
-    """transformers' own forward, softmax of the logits (N, C) float64; ``heads`` (layer, head)
-    knocked out by an independent hook: each head's slice of the input to the layer's attention
-    output projection is zeroed (head masking, Michel et al. 2019: ξ_h = 0 on the head's output)."""
-    tok = AutoTokenizer.from_pretrained(MODEL_DIR, local_files_only=True)
-    model = AutoModelForSequenceClassification.from_pretrained(MODEL_DIR, local_files_only=True)
-    model.eval()
-    d = model.config.hidden_size // model.config.num_attention_heads
-
-    def zero(cols):
-        def hook(_module, args):
-            x = args[0].clone()
-            for h in cols:
-                x[..., h * d : (h + 1) * d] = 0
-            return (x,)
-
-        return hook
-
-    for layer in {layer for layer, _ in heads}:
-        dense = model.bert.encoder.layer[layer].attention.output.dense
-        dense.register_forward_pre_hook(zero([h for lay, h in heads if lay == layer]))
+    """transformers' own forward, softmax of the logits (N, C) float64, with ``heads`` (layer,
+    head) knocked out by the test's own hook (``tests.reference.heads_masked``)."""
+    tok, model = demo_hf()
     out = []
-    with torch.no_grad():
+    with torch.no_grad(), reference.heads_masked(model, heads):
         for i in range(0, len(texts), 32):
             batch = tok(texts[i : i + 32], padding=True, truncation=True, return_tensors="pt")
             out.append(torch.softmax(model(**batch).logits.double(), -1).numpy())
@@ -175,8 +165,7 @@ def test_headlight_insert_prints_the_numbers_of_the_models_own_forward(tmp_path,
     # mean gain: p(billing) with the footer appended minus without, over the texts tried
     tried = footer_at_the_end[0]
     texts = [i.text for i in load_text_set(SAMPLES / "coop_messages.jsonl")]
-    id2label = json.loads((MODEL_DIR / "config.json").read_text(encoding="utf-8"))["id2label"]
-    billing = {name: int(k) for k, name in id2label.items()}["billing"]
+    billing = demo_hf()[1].config.label2id["billing"]
     before = transformers_probabilities([texts[k] for k in tried])[:, billing]
     after = transformers_probabilities([texts[k].strip() + " " + FOOTER for k in tried])[:, billing]
     assert end["mean_gain"] == pytest.approx(float(np.mean(after - before)), abs=1e-5)
@@ -279,10 +268,6 @@ def test_parse_heads():
             parse_heads(bad, 4, 4)
 
 
-def footer_at_the_end_without(items, heads) -> tuple[list[int], list[int]]:
-    return footer_at_the_end_of(items, heads)
-
-
 def test_the_mechanism_check_reruns_the_test_without_the_heads(tmp_path, capsys):
     """``headlight insert --knockout-heads``: the knocked-out test's end position holds the
     numbers of transformers' own forward with the heads masked by a hook of this test, and the
@@ -302,7 +287,7 @@ def test_the_mechanism_check_reruns_the_test_without_the_heads(tmp_path, capsys)
     mech = data["knockout_heads"]
     assert mech["heads"] == [[1, 0], [1, 1], [1, 2], [1, 3]]
     end = next(r for r in mech["positions"] if r["position"] == "end")
-    tried, flipped = footer_at_the_end_without(items, [(1, h) for h in range(4)])
+    tried, flipped = footer_at_the_end_of(items, [(1, h) for h in range(4)])
     assert (end["tried"], end["flipped"]) == (len(tried), flipped)
     intact = next(r for r in data["positions"] if r["position"] == "end")
     assert end["intact_flip_rate"] == intact["flip_rate"]
