@@ -119,7 +119,7 @@ def estimate(
     if gradients:  # every layer's activations wait for the backward
         kept += s.layers * forward
     derived = views = 0
-    longest = max(lengths, default=0)
+    longest = t
     if derive:  # keys and values in float64, blocks of scores of every thread
         derived = 2 * F64 * s.kv_heads * longest * s.head_dim + F64 * threads * BLOCK_COPIES * BLOCK_ENTRIES
     if overview:  # block max and mean of every head and the head mean, float32, and a layer's builder

@@ -23,7 +23,6 @@ from PySide6.QtWidgets import (
     QPlainTextEdit,
     QProgressBar,
     QPushButton,
-    QSizePolicy,
     QSplitter,
     QToolButton,
     QVBoxLayout,
@@ -319,8 +318,6 @@ class MainWindow(QMainWindow):
         # ends in "…" when the bar is narrower than the message (a laptop's 1366 pixels), the
         # whole message in the tooltip, rather than cut off under the permanent widgets
         self.status_label = ElidedLabel("starting…")
-        self.status_label.setTextFormat(Qt.TextFormat.PlainText)
-        self.status_label.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
         bar.addWidget(self.status_label, 1)
         self.progress = QProgressBar()
         self.progress.setMaximumWidth(200)
@@ -430,7 +427,6 @@ class MainWindow(QMainWindow):
 
     def set_status(self, text: str) -> None:
         self.status_label.setText(text)
-        self.status_label.setToolTip(text)
 
     def show_error(self, message: str) -> None:
         """A non-blocking dialog with the one-line message; the window stays usable."""

@@ -408,7 +408,6 @@ def check_against_weights(config: dict, shapes: dict[str, list[int]], folder: Pa
     if width != want:
         raise refuse(f"embedding width {want} but the token embedding is {width} wide")
 
-    first: dict[str, list[int]] = {}
     if config["model_type"] == "albert":
         found = {(int(m[1]), int(m[2])) for name in shapes if (m := _ALBERT_GROUP.search(name))}
         groups = {g for g, _ in found}

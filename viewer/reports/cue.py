@@ -82,7 +82,7 @@ def cue_shard(
     """The three predictions of every text of one shard, counted."""
     keys = phrase_keys(cue)
     out = CueCounts.empty(len(loaded.labels))
-    removals, insertions = [], []  # (text index, case)
+    removals = []  # (text index, case)
     given = np.zeros(len(texts), np.int64)
     for k, att in enumerate(attentions(loaded, list(texts), batch_size, attention=False)):
         given[k] = int(np.argmax(att.target))

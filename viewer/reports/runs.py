@@ -288,7 +288,6 @@ def cue_data(
     """Set accuracy as given, with the strongest shortcut candidate removed and with it
     inserted (``viewer.reports.cue``), for a classifier on a labelled set; None otherwise."""
     from viewer.reports.cue import CueAccuracyKind, cue_accuracy_data, strongest_candidate
-    from viewer.reports.heads import check_labels
     from viewer.reports.insertion import insertion_phrase
 
     best = strongest_candidate(shortcuts)

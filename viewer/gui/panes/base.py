@@ -57,7 +57,18 @@ class StateListener:
 
 class ElidedLabel(QLabel):
     """A one-line label that ends in "…" when it is too narrow for its text (the tooltip keeps
-    the whole text), instead of cutting it off mid-word."""
+    the whole text), instead of cutting it off mid-word. Plain text; it takes the width its
+    layout gives it rather than asking for its text's."""
+
+    def __init__(self, text: str = "", parent=None) -> None:
+        super().__init__(text, parent)
+        self.setTextFormat(Qt.TextFormat.PlainText)
+        self.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
+        self.setToolTip(text)
+
+    def setText(self, text: str) -> None:  # noqa: N802 - Qt name
+        super().setText(text)
+        self.setToolTip(text)
 
     def shown_text(self) -> str:
         """The text as painted at the label's current width."""
@@ -156,8 +167,6 @@ class FigurePane(StateListener, QWidget):
         self.header.setSpacing(6)
         self.title_label = ElidedLabel(self.title)
         self.title_label.setObjectName("paneTitle")
-        self.title_label.setTextFormat(Qt.TextFormat.PlainText)
-        self.title_label.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
         self.title_label.setMinimumWidth(60)
         self.header.addWidget(self.title_label, 1)
         outer.addLayout(self.header)
@@ -306,7 +315,6 @@ class FigurePane(StateListener, QWidget):
 
     def set_title(self, text: str) -> None:
         self.title_label.setText(text)
-        self.title_label.setToolTip(text)
 
     # -- mouse (matplotlib events); subclasses override the on_* hooks ---------------------------
     def _press(self, event) -> None:
