@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from viewer.core.norms import transformed_vectors, value_weighted_norms
+from viewer.core.norms import head_sum_norms, transformed_vectors, value_weighted_norms
 
 
 def _brute_force(x, w_v, b_v, w_o, alpha, n_heads, n_kv_heads):
@@ -66,3 +66,24 @@ def test_torch_layout_is_rejected_with_a_hint():
     transformed_vectors(x, w_v, None, rng.normal(size=(6, 5)), n_heads=2)
     with pytest.raises(ValueError, match="transpose"):
         transformed_vectors(x, rng.normal(size=(4, 6)), None, rng.normal(size=(4, 5)), n_heads=2)
+
+
+@pytest.mark.parametrize("n_heads,n_kv_heads,tokens", [(3, 3, 2), (4, 2, 5), (4, 1, 100)])
+def test_head_sum_by_blocks_against_brute_force(n_heads, n_kv_heads, tokens):
+    """The streaming head sum for a few query rows equals the direct loops (Kobayashi et al.
+    2020), whatever the block of key tokens, with grouped values read by h // (H / G)."""
+    rng = np.random.default_rng(7 * n_heads + n_kv_heads)
+    t, d_in, d, d_out = 7, 5, 3, 4
+    x = rng.normal(size=(t, d_in))
+    w_v = rng.normal(size=(d_in, n_kv_heads * d))
+    b_v = rng.normal(size=n_kv_heads * d)
+    w_o = rng.normal(size=(n_heads * d, d_out))
+    alpha = rng.random((n_heads, t, t))
+    alpha /= alpha.sum(axis=-1, keepdims=True)
+    _, ref_sum = _brute_force(x, w_v, b_v, w_o, alpha, n_heads, n_kv_heads)
+    values = (x @ w_v + b_v).reshape(t, n_kv_heads, d).transpose(1, 0, 2)  # (G, T, d) as captured
+    rows = [0, 4]
+    got = head_sum_norms(alpha[:, rows], values.astype(np.float32), w_o.reshape(n_heads, d, d_out), tokens)
+    np.testing.assert_allclose(got, ref_sum[rows], rtol=1e-6)  # float32 values given
+    with pytest.raises(ValueError, match="disagree"):
+        head_sum_norms(alpha[:, rows], values[:, :-1], w_o.reshape(n_heads, d, d_out))

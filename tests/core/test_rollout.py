@@ -11,7 +11,10 @@ from viewer.core.rollout import (
     flow_network,
     layer_graph,
     residual_attention,
+    rollout_row,
 )
+from viewer.core.scores import LayerScores
+from viewer.core.terms import ScoreTerms
 
 
 def _probs(rng: np.random.Generator, n_layers: int, h: int, t: int, causal: bool = False):
@@ -52,6 +55,33 @@ def test_rollout_is_product_of_layer_matrices():
     np.testing.assert_allclose(all_layers[2], mats[2] @ mats[1] @ mats[0])
     np.testing.assert_allclose(attention_rollout(probs), all_layers[2])
     np.testing.assert_allclose(all_layers.sum(axis=-1), 1.0)  # rows stay stochastic
+
+
+@pytest.mark.parametrize("causal", [False, True])
+def test_rollout_row_by_blocks_is_the_row_of_the_product(causal):
+    """rollout_row (row vector through the layers, block by block, from Q/K) equals the row of
+    the explicit product of Abnar & Zuidema 2020, Eq. 1, over the same layers' dense
+    probabilities; and each layer's float64 keys are dropped once it is done."""
+    rng = np.random.default_rng(3)
+    n_layers, h, g, t, d = 3, 4, 2, 9, 5
+    layers = [
+        LayerScores(
+            rng.normal(size=(h, t, d)).astype(np.float32),
+            rng.normal(size=(g, t, d)).astype(np.float32),
+            0.5,
+            causal,
+            ScoreTerms(),
+            0,
+        )
+        for _ in range(n_layers)
+    ]
+    probs = np.stack([np.stack([s.head(i) for i in range(h)]) for s in layers])  # (L, H, T, T)
+    for s in layers:
+        s.forget()
+    token = t - 2
+    got = rollout_row(layers, token)
+    np.testing.assert_allclose(got, attention_rollout(probs)[token], rtol=1e-12, atol=1e-15)
+    assert all(not s._k64 for s in layers)
 
 
 def test_flow_equals_rollout_at_first_layer():

@@ -78,7 +78,8 @@ def rollout_row(layers: Sequence[LayerScores], token: int) -> np.ndarray:
     Row s of R_{L-1} = Ã_{L-1} ··· Ã_0 is e_sᵀ Ã_{L-1} ··· Ã_0, a row vector taken through the
     layers from the last to the first: r ← r Ã_l = 0.5 · r A_l + 0.5 · r, with r A_l =
     Σ_i r_i · mean_h A_{l,h}[i, :] summed block by block of rows (``viewer.core.scores``).
-    Costs one pass over every layer's probabilities; (T,) float64.
+    Costs one pass over every layer's probabilities; (T,) float64. Each layer's float64
+    copies are dropped once it is done (``LayerScores.forget``).
     """
     n = layers[0].n_tokens
     r = np.zeros(n)
@@ -91,6 +92,7 @@ def rollout_row(layers: Sequence[LayerScores], token: int) -> np.ndarray:
             if part.any():
                 moved[block.keys] += weight * np.einsum("b,hbs->s", part, block.p)
         r = 0.5 * moved + 0.5 * r
+        scores.forget()  # one layer's float64 keys at a time
     return r
 
 

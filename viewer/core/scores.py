@@ -130,7 +130,13 @@ class LayerScores:
         one_blas_thread()
         self._k64: dict[int, np.ndarray] = {}  # group -> (d, T) float64 keys, made when first used
         self._p2c: np.ndarray | None = None
-        self._c2p_table: np.ndarray | None = None
+
+    def forget(self) -> None:
+        """Drop the float64 copies made for the re-derivation (recomputed if asked again): a
+        caller walking every layer of a long text keeps one layer's, not all of them (12 key
+        heads of 8,192 tokens are 50 MB a layer)."""
+        self._k64 = {}
+        self._p2c = None
 
     # -- geometry ----------------------------------------------------------------------------
     def keys(self, rows: slice) -> slice:

@@ -29,7 +29,7 @@ from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 
-from viewer.core.norms import value_weighted_norms
+from viewer.core.norms import head_sum_norms
 from viewer.core.recording import Recording
 from viewer.core.rollout import FLOW_MAX_TOKENS, attention_flow, rollout_row
 from viewer.core.stats import spearman
@@ -173,15 +173,14 @@ def value_norm_row(loaded: LoadedModel, rec: Recording, summary: int) -> np.ndar
     """‖Σ_h α^h_sj f_h(x_j)‖ for the summary row s of the last layer (Kobayashi et al. 2020).
 
     f_h(x_j) = (x_j W_V^h + b_V^h) W_O^h: the captured values already are x_j W_V^h + b_V^h,
-    so only the output projection's slice W_O^h is applied here.
+    so only the output projection's slice W_O^h is applied here (``head_sum_norms``, by blocks
+    of tokens: a long text never holds every head's f).
     """
     layer = rec.n_layers - 1
     h, d = rec.n_heads, rec.q.shape[-1]
-    v = np.repeat(rec.v[layer].astype(np.float64), h // rec.n_kv_heads, axis=0)  # (H, T, d)
     w_o = loaded.output_projection(layer).reshape(h, d, -1)  # (H, d, D)
-    f = np.einsum("htd,hdD->htD", v, w_o)  # (H, T, D)
     alpha = rec.layer(layer).rows(slice(summary, summary + 1))  # (H, 1, T) the summary row
-    return value_weighted_norms(alpha, f).head_sum[0]
+    return head_sum_norms(alpha, rec.v[layer], w_o)[0]
 
 
 def evidence_for(
