@@ -138,3 +138,34 @@ def test_head_importance_unit_norm_and_zero_for_a_silent_head(tmp_path):
     assert (raw[0] > 0).all() and (np.delete(raw[1], 2) > 0).all()
     np.testing.assert_allclose(np.linalg.norm(norm, axis=1), 1.0, atol=1e-12)
     assert imp["importance_targets"] == "labels"
+
+
+def test_evidence_batches_shrink_to_the_memory_allowance_with_the_same_numbers(bert, evidence, monkeypatch):
+    """Integrated-gradient path points and knockout variants run in batches that fit
+    ``BATCH_BYTES`` (and the budget); batched or one by one, the rows are the same. Reference:
+    the estimate of ``pass_estimate`` for the batch sizes seen by a hook on the model's forward."""
+    from viewer.model import budget
+    from viewer.model.budget import pass_estimate
+
+    t = evidence.recording.n_tokens
+    two = pass_estimate(bert, [t] * 2, keep=False, own_probs=False, gradients=True).total
+    monkeypatch.setattr(budget, "BATCH_BYTES", two)  # two path points, a few knockouts at most
+    seen = []
+    handle = bert.model.register_forward_pre_hook(
+        lambda module, args, kwargs: seen.append(
+            next(v for v in kwargs.values() if torch.is_tensor(v)).shape[0]
+        ),
+        with_kwargs=True,
+    )
+    try:
+        small = evidence_for(bert, TEXT)
+    finally:
+        handle.remove()
+    knockouts = budget.batch_that_fits(bert, t, 32)  # inference keeps no graph: more fit
+    assert budget.batch_that_fits(bert, t, 25, gradients=True) == 2 and knockouts < 25
+    assert max(seen) == knockouts and 2 in seen  # not the 25 path points or 32 knockouts of the default
+    for row in ("grad_input", "integrated_gradients", "knockout"):
+        np.testing.assert_allclose(small.rows[row], evidence.rows[row], rtol=1e-4, atol=1e-7)
+    monkeypatch.setenv("HEADLIGHT_MEMORY", "1K")
+    with pytest.raises(budget.MemoryBudgetError, match="needs about"):
+        budget.batch_that_fits(bert, t, 25, gradients=True)

@@ -15,6 +15,7 @@ import torch
 
 from viewer.core.gradients import completeness_gap, integrated_gradients
 from viewer.model import gates as head_gates
+from viewer.model.budget import batch_that_fits
 from viewer.model.loader import Batch, LoadedModel
 
 
@@ -79,9 +80,11 @@ def gradient_evidence(
     The path integral starts with `steps` trapezoid steps. When the sum of the attributions
     misses F(x) − F(x') by more than `tolerance` of max(|F(x) − F(x')|, 0.01) — which happens
     when the prediction switches abruptly somewhere along the path — the step count is doubled,
-    up to `max_steps`; the steps used are reported.
+    up to `max_steps`; the steps used are reported. At most `chunk` path points run in one
+    batch, fewer when their backward would not fit ``viewer.model.budget.batch_that_fits``.
     """
     batch = loaded.encode([text])
+    chunk = batch_that_fits(loaded, batch.lengths[0], chunk, gradients=True)
     ids = batch.encoding["input_ids"]
     x = _embed(loaded, ids)  # (1, T, D)
     special = batch.encoding["special_tokens_mask"].bool()[0]
@@ -136,11 +139,14 @@ def token_knockout(
 
     Special tokens are never deleted (NaN in their place). drop = p(target | text) −
     p(target | text without token t): positive when the token supported the prediction.
+    At most ``batch_size`` variants run at once, fewer where they would not fit
+    (``viewer.model.budget.batch_that_fits``).
     """
     positions = [t for t in range(len(token_ids)) if not special[t]]
     drops = np.full(len(token_ids), np.nan)
     if not positions:
         return drops
+    batch_size = batch_that_fits(loaded, len(token_ids), batch_size)
     after = predict_without(loaded, [(token_ids, [t]) for t in positions], batch_size)[:, target]
     drops[positions] = p_before - after
     return drops
