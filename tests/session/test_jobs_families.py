@@ -29,7 +29,9 @@ def test_every_family_runs_through_the_windows_jobs(kind, tmp_path, coarse_integ
     ctx = context()
     info = jobs.open_model(ctx, "main", str(folder))
     assert isinstance(info, jobs.ModelInfo) and info.n_layers > 0
-    analysis = jobs.summarise_run(ctx, jobs.run_text(ctx, "main", tiny.TEXTS[1]))
+    recorded = jobs.run_text(ctx, "main", tiny.TEXTS[1])
+    assert "units" in recorded._cache  # the words are found on the worker, not by the GUI thread
+    analysis = jobs.summarise_run(ctx, recorded)
     rec = analysis.recording
     assert analysis.check.passed, analysis.check.to_dict()
     hf = reference.open_hf(folder)

@@ -125,8 +125,9 @@ class TextAnalysis:
     notes: tuple[str, ...] = field(default_factory=tuple)
     check: CheckResult | None = None  # filled in by ``summarise``
     heads: HeadSummary | None = None  # per-head metrics of this one text, by ``summarise``
-    # head means and word units, computed when first asked for (not on the way from the model
-    # to the first painted grid); shared by the copies ``summarise`` makes
+    # head means, computed when first asked for (not on the way from the model to the first
+    # painted grid), and word units (filled by the run job, off the GUI thread); shared by the
+    # copies ``summarise`` makes
     _cache: dict = field(default_factory=dict, repr=False, compare=False)
 
     @property
