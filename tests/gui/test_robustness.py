@@ -8,6 +8,8 @@ import subprocess
 import sys
 import textwrap
 
+import pytest
+
 from tests.gui.conftest import WAIT_MS, run_and_wait
 
 
@@ -93,3 +95,30 @@ def test_the_window_is_visible_before_torch_and_matplotlib_are_imported(tmp_path
         [sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=True
     )
     assert out.stdout.strip().splitlines()[-1] == "True []"
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="per-thread niceness is Linux's")
+def test_the_worker_runs_below_the_gui_threads_priority(qtbot, window):
+    """The worker thread and the threads it starts yield the CPU to the event loop: their
+    niceness (os.getpriority of the thread, Linux) is WORKER_NICENESS, the GUI thread's is not
+    raised."""
+    import os
+    import threading
+    from concurrent.futures import ThreadPoolExecutor
+
+    from viewer.gui.worker import WORKER_NICENESS
+
+    def niceness() -> int:
+        return os.getpriority(os.PRIO_PROCESS, threading.get_native_id())
+
+    def job(ctx):
+        with ThreadPoolExecutor(1) as pool:  # a thread the job starts, as numpy's blocks do
+            return niceness(), pool.submit(niceness).result()
+
+    got = []
+    window.worker.finished.connect(lambda name, result: got.append(result) if name == "nice" else None)
+    gui = niceness()
+    window.worker.submit("nice", job)
+    qtbot.waitUntil(lambda: bool(got), timeout=WAIT_MS)
+    assert got[0] == (max(gui, WORKER_NICENESS), max(gui, WORKER_NICENESS))
+    assert niceness() == gui

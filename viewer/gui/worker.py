@@ -12,10 +12,16 @@ marshalled by Qt across threads, and nothing polls: while the model runs, the GU
 until there is a message (a poll every few milliseconds would take the GIL from the recording
 each time). Cancelling sets a flag the job checks
 between steps; a new job of the same name cancels the one it replaces.
+
+The worker thread runs at a lower scheduling priority than the GUI thread (``WORKER_NICENESS``
+more, on Linux, where niceness is per thread and inherited by the threads it starts: torch's and
+numpy's): on a laptop's two cores, a recording, a check and a drawing all want the CPU, and the
+one the user waits on from moment to moment is the event loop.
 """
 
 from __future__ import annotations
 
+import os
 import queue
 import sys
 import threading
@@ -27,6 +33,21 @@ from PySide6.QtCore import QObject, QRunnable, Qt, QThreadPool, Signal
 
 from viewer.errors import HeadlightError
 from viewer.session.jobs import Cancelled, JobContext
+
+WORKER_NICENESS = 5
+
+
+def lower_priority() -> None:
+    """Raise this thread's niceness to ``WORKER_NICENESS`` (once; where the OS allows)."""
+    if not sys.platform.startswith("linux"):
+        return
+    tid = threading.get_native_id()
+    try:
+        now = os.getpriority(os.PRIO_PROCESS, tid)
+        if now < WORKER_NICENESS:
+            os.setpriority(os.PRIO_PROCESS, tid, WORKER_NICENESS)
+    except OSError:  # not allowed here: the thread keeps its priority
+        pass
 
 
 class Job(QRunnable):
@@ -66,6 +87,7 @@ class Job(QRunnable):
         self._post("progress", int(done), int(total), str(message))
 
     def run(self) -> None:  # worker thread
+        lower_priority()
         ctx = JobContext(progress=self._progress, cancelled=self.cancel_flag.is_set, models=self.models)
         try:
             ctx.check()
