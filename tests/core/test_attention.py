@@ -157,3 +157,25 @@ def test_the_visible_mask_of_a_key_span_is_the_span_of_the_whole_rows(causal, wi
             continue
         np.testing.assert_array_equal(got, whole[rows, keys])
         np.testing.assert_array_equal(visible_rows(rows, n, causal, window), whole[rows])
+
+
+def test_rows_are_split_over_threads_by_their_work_and_every_row_is_checked():
+    """Worked examples of ``split_rows``: a causal row i sees i + 1 keys, so two equal halves of
+    Σ (i + 1) = 5,050 over 100 rows cut at 71 (Σ_{i<71} (i + 1) = 2,556 ≥ 2,525 > Σ_{i<70} =
+    2,485); a window of 2 keys each side gives widths 3, 4, 5, …, 5, 4, 3. And a head-output
+    error in the last row is found whatever the number of threads (every row is in a part)."""
+    from viewer.core.attention import check_layer
+
+    rec = make_recording(np.random.default_rng(5), causal=True, t=100, own=False)
+    scores = rec.layer(0)
+    assert scores.split_rows(2) == [slice(0, 71), slice(71, 100)]
+    assert scores.split_rows(1) == [slice(0, 100)]
+    windowed = dataclasses.replace(scores.terms, window=np.array([[2, 2]]))
+    wide = type(scores)(rec.q[0], rec.k[0], 1.0, False, windowed, 0)
+    widths = wide.span_widths()
+    assert widths[:3].tolist() == [3, 4, 5] and widths[-3:].tolist() == [5, 4, 3] and set(widths[2:-2]) == {5}
+    context = rec.context.copy()
+    context[0, 1, 99] += 1e-3  # the last row of head 1
+    for threads in (1, 2, 3):
+        errors = check_layer(rec.layer(0), rec.v[0], context[0], threads=threads).ctx
+        assert errors[1] > 1e-4 and np.delete(errors, 1).max() < 1e-5, threads

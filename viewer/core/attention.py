@@ -280,11 +280,10 @@ def check_layer(
     scores: LayerScores, v: np.ndarray, context: np.ndarray, threads: int | None = None
 ) -> LayerCheck:
     """The check of one layer of one text, its rows split over ``threads`` threads (default one
-    per core); the returned ``LayerCheck`` keeps only its errors, not the layer's arrays."""
+    per core) in parts of about equal work (``LayerScores.split_rows``); the returned
+    ``LayerCheck`` keeps only its errors, not the layer's arrays."""
     workers = min(4, os.cpu_count() or 1) if threads is None else max(1, int(threads))
-    n = scores.n_tokens
-    cuts = [n * part // workers for part in range(workers + 1)]
-    parts = [slice(a, b) for a, b in zip(cuts, cuts[1:], strict=False) if b > a]
+    parts = scores.split_rows(workers)
     checks = [LayerCheck(scores, v, context) for _ in parts]
     run_parallel(
         [

@@ -248,6 +248,32 @@ class LayerScores:
             after = 0
         return min(self.n_tokens, before + after + 1)
 
+    def span_widths(self) -> np.ndarray:
+        """(T,) int64: how many keys each row's span holds (``key_span`` of the row alone), the
+        work of re-deriving it: i + 1 for a causal row, its window's width for a windowed one."""
+        i = np.arange(self.n_tokens, dtype=np.int64)
+        start, stop = np.zeros_like(i), np.full_like(i, self.n_tokens)
+        if self.causal:
+            stop = i + 1
+        if self.window is not None:
+            before, after = self.window
+            if before >= 0:
+                start = np.maximum(0, i - before)
+            if after >= 0:
+                stop = np.minimum(stop, i + after + 1)
+        return np.maximum(stop - start, 0)
+
+    def split_rows(self, parts: int) -> list[slice]:
+        """At most ``parts`` contiguous slices of rows with about equal work (``span_widths``):
+        an even split of a causal layer gives the last part three times the first's work."""
+        work = np.cumsum(self.span_widths())
+        total = int(work[-1]) if work.size else 0
+        cuts = [0]
+        for k in range(1, max(1, int(parts))):
+            cuts.append(int(np.searchsorted(work, total * k / parts, side="left")) + 1)
+        cuts.append(self.n_tokens)
+        return [slice(a, b) for a, b in zip(cuts, cuts[1:], strict=False) if b > a]
+
     def rows(self, rows: slice, heads: slice | None = None, own: bool = True) -> np.ndarray:
         """(h, b, T) float64 full rows of ``heads`` (default all), zeros outside the span."""
         heads = heads or slice(0, self.n_heads)
