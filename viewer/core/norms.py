@@ -122,8 +122,9 @@ def head_sum_norms(alpha: np.ndarray, v: np.ndarray, w_o: np.ndarray, tokens: in
     per_group = h_count // g_count
     out = np.empty((r_count, t_count), dtype=np.float64)
     w = np.asarray(w_o, dtype=np.float64)
-    for start in range(0, t_count, max(1, int(tokens))):
-        cols = slice(start, min(t_count, start + max(1, int(tokens))))
+    step = max(1, int(tokens))
+    for start in range(0, t_count, step):
+        cols = slice(start, min(t_count, start + step))
         vb = np.asarray(v[:, cols], dtype=np.float64)  # (G, b, d)
         for r in range(r_count):
             total = np.zeros((cols.stop - cols.start, w.shape[2]))  # (b, D)

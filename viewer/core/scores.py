@@ -56,22 +56,29 @@ def one_blas_thread() -> None:
         _blas_limited = True
 
 
-def key_span(rows: slice, n_tokens: int, causal: bool, window: tuple[int, int] | None) -> slice:
-    """The contiguous keys that query rows [rows.start, rows.stop) can see, together.
+def span_bounds(first, last, n_tokens: int, causal: bool, window: tuple[int, int] | None):
+    """(start, stop) of the keys that query rows first..last can see together; ``first`` and
+    ``last`` are ints or int arrays (one span per element).
 
     Causal rows see j <= i; a window (before, after) limits them to i − before <= j <= i + after
     (a side of −1 does not limit). The span is the union over the rows.
     """
-    first, last = rows.start, rows.stop - 1  # the block's first and last row
-    start, stop = 0, n_tokens
+    start, stop = 0 * first, 0 * last + n_tokens  # ints stay ints: a block's span is asked often
     if causal:
         stop = last + 1
     if window is not None:
         before, after = window
         if before >= 0:
-            start = max(0, first - before)
+            start = np.maximum(0, first - before)
         if after >= 0:
-            stop = min(stop, last + after + 1)
+            stop = np.minimum(stop, last + after + 1)
+    return start, stop
+
+
+def key_span(rows: slice, n_tokens: int, causal: bool, window: tuple[int, int] | None) -> slice:
+    """The contiguous keys that query rows [rows.start, rows.stop) can see, together
+    (``span_bounds`` of the block's first and last row)."""
+    start, stop = (int(x) for x in span_bounds(rows.start, rows.stop - 1, n_tokens, causal, window))
     return slice(start, max(start, stop))
 
 
@@ -249,18 +256,10 @@ class LayerScores:
         return min(self.n_tokens, before + after + 1)
 
     def span_widths(self) -> np.ndarray:
-        """(T,) int64: how many keys each row's span holds (``key_span`` of the row alone), the
-        work of re-deriving it: i + 1 for a causal row, its window's width for a windowed one."""
+        """(T,) int64: how many keys each row's span holds (``span_bounds`` of the row alone),
+        the work of re-deriving it: i + 1 for a causal row, its window's width for a windowed one."""
         i = np.arange(self.n_tokens, dtype=np.int64)
-        start, stop = np.zeros_like(i), np.full_like(i, self.n_tokens)
-        if self.causal:
-            stop = i + 1
-        if self.window is not None:
-            before, after = self.window
-            if before >= 0:
-                start = np.maximum(0, i - before)
-            if after >= 0:
-                stop = np.minimum(stop, i + after + 1)
+        start, stop = span_bounds(i, i, self.n_tokens, self.causal, self.window)
         return np.maximum(stop - start, 0)
 
     def split_rows(self, parts: int) -> list[slice]:
